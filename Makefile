@@ -1,0 +1,134 @@
+# stopcock: GNU make build. `make` builds build/stopcockd and build/stopcock;
+# `make check` installs missing Debian packages (as root), then runs every
+# test and ends with "N passed, N failed"; `make demo` runs the scenario.
+#
+# BUILD selects the output directory, so parallel work (and the sanitizer
+# build, SAN=1) never share objects.
+
+BUILD	?= build
+PREFIX	?= /usr/local
+DESTDIR	?=
+CC	?= cc
+ifeq ($(origin CC),default)
+CC	= cc
+endif
+
+PKGS_CORE	= gsl jansson inih libcrypto
+PKGS_DAEMON	= libevent hiredis libcurl libsystemd
+PKGS_TEST	= cmocka
+
+WARN	= -Wall -Wextra -Wformat=2 -Wshadow -Wstrict-prototypes \
+	  -Wmissing-prototypes -Wwrite-strings -Wno-unused-parameter -Werror
+OPT	?= -O2
+CPPFLAGS += -Iinclude -D_GNU_SOURCE
+CFLAGS	?= -g
+CFLAGS	+= -std=c11 $(OPT) $(WARN) -fno-strict-aliasing \
+	   $(shell pkg-config --cflags $(PKGS_CORE) $(PKGS_DAEMON) 2>/dev/null)
+LDLIBS_CORE	= $(shell pkg-config --libs $(PKGS_CORE) 2>/dev/null) -lm
+LDLIBS_DAEMON	= $(shell pkg-config --libs $(PKGS_DAEMON) 2>/dev/null) \
+		  -levent_openssl -lssl
+LDLIBS_TEST	= $(shell pkg-config --libs $(PKGS_TEST) 2>/dev/null)
+
+ifeq ($(SAN),1)
+BUILD	= build/san
+OPT	= -O1
+CFLAGS	+= -fsanitize=address,undefined -fno-omit-frame-pointer \
+	   -fno-sanitize-recover=undefined
+LDFLAGS	+= -fsanitize=address,undefined
+endif
+
+CORE_SRC	= $(sort $(wildcard src/util/*.c src/core/*.c src/core/stats/*.c))
+DAEMON_SRC	= $(sort $(wildcard src/daemon/*.c))
+CLI_SRC		= $(sort $(wildcard src/cli/*.c))
+UNIT_SRC	= $(sort $(wildcard tests/unit/test_*.c))
+TOOL_SRC	= $(sort $(wildcard tests/tools/*.c))
+FUZZ_SRC	= $(sort $(wildcard tests/fuzz/fuzz_*.c))
+
+CORE_OBJ	= $(CORE_SRC:%.c=$(BUILD)/obj/%.o)
+DAEMON_OBJ	= $(DAEMON_SRC:%.c=$(BUILD)/obj/%.o)
+CLI_OBJ		= $(CLI_SRC:%.c=$(BUILD)/obj/%.o)
+UNIT_BIN	= $(UNIT_SRC:tests/unit/%.c=$(BUILD)/tests/%)
+TOOL_BIN	= $(TOOL_SRC:tests/tools/%.c=$(BUILD)/tests/%)
+LIBCORE		= $(BUILD)/libstopcock.a
+
+.PHONY: all deps check check-fast unit test-build demo bench fuzz install \
+	clean
+.DEFAULT_GOAL := all
+
+all: $(BUILD)/stopcockd $(BUILD)/stopcock
+
+$(BUILD)/obj/%.o: %.c
+	@mkdir -p $(@D)
+	$(CC) $(CPPFLAGS) $(CFLAGS) -MMD -MP -c $< -o $@
+
+$(LIBCORE): $(CORE_OBJ)
+	@mkdir -p $(@D)
+	$(AR) rcs $@ $^
+
+$(BUILD)/stopcockd: $(DAEMON_OBJ) $(LIBCORE)
+	$(CC) $(LDFLAGS) -o $@ $(DAEMON_OBJ) $(LIBCORE) $(LDLIBS_DAEMON) \
+	    $(LDLIBS_CORE)
+
+$(BUILD)/stopcock: $(CLI_OBJ) $(LIBCORE)
+	$(CC) $(LDFLAGS) -o $@ $(CLI_OBJ) $(LIBCORE) $(LDLIBS_DAEMON) \
+	    $(LDLIBS_CORE)
+
+$(BUILD)/tests/%: tests/unit/%.c $(LIBCORE)
+	@mkdir -p $(@D)
+	$(CC) $(CPPFLAGS) $(CFLAGS) $(LDFLAGS) -o $@ $< $(LIBCORE) \
+	    $(LDLIBS_TEST) $(LDLIBS_CORE)
+
+$(BUILD)/tests/%: tests/tools/%.c $(LIBCORE)
+	@mkdir -p $(@D)
+	$(CC) $(CPPFLAGS) $(CFLAGS) $(LDFLAGS) -o $@ $< $(LIBCORE) \
+	    $(LDLIBS_CORE)
+
+test-build: all $(UNIT_BIN) $(TOOL_BIN)
+
+deps:
+	@sh tools/deps.sh
+
+# Every test: unit (plain and under ASan+UBSan), reference checks against
+# scipy/numpy, and integration tests against real servers.
+check: deps
+	@$(MAKE) --no-print-directory test-build
+	@$(MAKE) --no-print-directory SAN=1 test-build
+	@sh tests/run.sh $(BUILD) build/san
+
+# Unit tests only, no install step (for quick iteration).
+unit: test-build
+	@sh tests/run.sh --unit-only $(BUILD)
+
+demo: deps
+	@$(MAKE) --no-print-directory all
+	@sh tools/demo.sh $(BUILD)
+
+bench: deps
+	@$(MAKE) --no-print-directory test-build
+	@sh bench/run.sh $(BUILD)
+
+fuzz:
+	@mkdir -p build/fuzz
+	@for f in $(FUZZ_SRC); do \
+	    n=$$(basename $$f .c); \
+	    clang -std=c11 -g -O1 -Iinclude -D_GNU_SOURCE \
+	        $$(pkg-config --cflags $(PKGS_CORE)) \
+	        -fsanitize=fuzzer,address,undefined -o build/fuzz/$$n $$f \
+	        $(CORE_SRC) $(LDLIBS_CORE) || exit 1; \
+	done
+
+install: all
+	install -d $(DESTDIR)$(PREFIX)/bin $(DESTDIR)$(PREFIX)/sbin \
+	    $(DESTDIR)/etc/stopcock $(DESTDIR)$(PREFIX)/lib/systemd/system
+	install -m 755 $(BUILD)/stopcock $(DESTDIR)$(PREFIX)/bin/stopcock
+	install -m 755 $(BUILD)/stopcockd $(DESTDIR)$(PREFIX)/sbin/stopcockd
+	test -e $(DESTDIR)/etc/stopcock/stopcock.conf || \
+	    install -m 640 conf/stopcock.conf $(DESTDIR)/etc/stopcock/stopcock.conf
+	sed 's|@SBINDIR@|$(PREFIX)/sbin|g' systemd/stopcockd.service > \
+	    $(DESTDIR)$(PREFIX)/lib/systemd/system/stopcockd.service
+	chmod 644 $(DESTDIR)$(PREFIX)/lib/systemd/system/stopcockd.service
+
+clean:
+	rm -rf build
+
+-include $(shell find $(BUILD)/obj -name '*.d' 2>/dev/null)

@@ -1,0 +1,146 @@
+/*
+ * conf.h: stopcock's configuration. One table of options in conf.c drives
+ * parsing, validation, defaults and the help text. Loading is
+ * all-or-nothing: a file with any error yields no configuration and every
+ * error as "file:line: message". The structure is plain data, read-only
+ * once loaded; its owner frees it with conf_free.
+ */
+#ifndef STOPCOCK_CONF_H
+#define STOPCOCK_CONF_H
+
+#include <stddef.h>
+#include <stdint.h>
+#include <stdio.h>
+
+#include "stopcock/proto.h"
+
+#define CONF_NAME_MAX PROTO_NAME_MAX
+#define CONF_GUARDRAILS_MAX 64
+#define CONF_EXPERIMENTS_MAX 256	/* planned in the file */
+#define CONF_WEBHOOKS_MAX 16
+
+enum conf_test { TEST_MEAN, TEST_PROPORTION, TEST_RATE, TEST_QUANTILE };
+enum conf_harm { HARM_INCREASE, HARM_DECREASE };
+enum conf_action { ACTION_ALERT, ACTION_PAUSE };
+
+struct conf_guardrail {
+	char		name[CONF_NAME_MAX + 1];
+	char		metric[CONF_NAME_MAX + 1];
+	enum conf_test	test;
+	double		quantile;	/* test = quantile: in (0, 1) */
+	enum conf_harm	harm;
+	double		margin;		/* >= 0 */
+	int		margin_relative;	/* margin given with a % suffix;
+					   stored as a fraction (5% -> 0.05) */
+	enum conf_action action;
+	double		plan_units;	/* 0: use the experiment's / default */
+	int		line;		/* where it was defined, for messages */
+};
+
+struct conf_experiment {
+	char		id[CONF_NAME_MAX + 1];
+	int		narms;		/* 0: no plan in the file */
+	struct proto_arm arms[PROTO_PLAN_MAX];
+	double		alpha;		/* 0: defaults.alpha */
+	double		srm_alpha;	/* 0: defaults.srm_alpha */
+	double		plan_units;	/* 0: defaults.plan_units */
+	int		line;
+};
+
+struct conf_webhook {
+	char		name[CONF_NAME_MAX + 1];
+	char		*url;
+	char		*secret;	/* "whsec_" + base64, may be NULL */
+	double		timeout;	/* seconds per request */
+	int		max_attempts;
+	uint32_t	queue;		/* bounded queue length */
+	int		line;
+};
+
+struct conf {
+	char		*path;		/* file it came from, or NULL */
+
+	/* [defaults]: statistics */
+	double		alpha;		/* family-wise budget per experiment */
+	double		srm_alpha;
+	double		plan_units;	/* planned units per arm: tunes mixtures */
+	double		rate_concentration;	/* 0: tuned from plan_units */
+	double		sketch_accuracy;
+	uint32_t	sketch_buckets;
+	uint32_t	history_points;	/* chart points kept per test */
+	/* [defaults]: caps (hostile cardinality) */
+	uint32_t	max_experiments;
+	uint32_t	max_variants;
+	uint32_t	max_metrics;
+
+	int		nguardrails;
+	struct conf_guardrail guardrails[CONF_GUARDRAILS_MAX];
+	int		nexperiments;
+	struct conf_experiment experiments[CONF_EXPERIMENTS_MAX];
+
+	/* [daemon] */
+	char		*tcp;		/* host:port or NULL */
+	char		*udp;
+	char		*unix_path;
+	char		*http;
+	char		*state_dir;
+	double		tick;		/* seconds */
+	double		checkpoint_every;	/* seconds */
+	uint32_t	max_clients;
+	uint32_t	client_buffer;	/* bytes buffered per client */
+	char		*http_token;	/* bearer token for POST; NULL: POST off */
+	char		*public_url;	/* base of links in alerts */
+
+	/* [redis] */
+	char		*redis_address;	/* NULL: no Redis input */
+	char		*redis_stream;
+	char		*redis_group;
+	char		*redis_consumer;	/* "%h" expands to the host name */
+	char		*redis_dead_letter;
+	uint32_t	redis_max_deliveries;
+	double		redis_claim_idle;	/* seconds */
+	uint32_t	redis_batch;	/* entries per XREADGROUP */
+	double		redis_block;	/* seconds per blocking read */
+
+	/* [alerts] */
+	double		remind_every;	/* 0: no reminders */
+
+	/* [pause] */
+	char		*pause_url;
+	char		*pause_secret;
+	char		*pause_redis_key;	/* "%e" = experiment id */
+	char		*pause_redis_channel;
+	double		pause_alpha;	/* 0: a tenth of the experiment's alpha */
+	int		pause_dry_run;
+	int		pause_on_srm;	/* allow pausing for SRM itself */
+	uint32_t	pause_max_per_hour;
+
+	/* [syslog] */
+	char		*syslog_ident;
+	char		*syslog_facility;
+
+	int		nwebhooks;
+	struct conf_webhook webhooks[CONF_WEBHOOKS_MAX];
+};
+
+/* Defaults only (no guardrails, no listeners). */
+struct conf	*conf_new(void);
+void		 conf_free(struct conf *);
+/*
+ * Parse INI text; name is used in messages. Returns 0 and *out, or -1
+ * and *cause (all errors, one "name:line: message" per line; caller
+ * frees).
+ */
+int		 conf_parse(const char *text, const char *name,
+		    struct conf **out, char **cause);
+/* Read a file, then conf_parse. */
+int		 conf_load(const char *path, struct conf **out, char **cause);
+/* The option table as help text. */
+void		 conf_help(FILE *);
+const struct conf_guardrail *conf_guardrail_for(const struct conf *,
+		    const char *metric, int *index_from);
+const struct conf_experiment *conf_experiment_find(const struct conf *,
+		    const char *id);
+const char	*conf_test_name(enum conf_test);
+
+#endif

@@ -1,0 +1,159 @@
+/*
+ * engine.h: the pure engine, the one entry point of the core. The daemon,
+ * `stopcock replay`, `stopcock simulate` and the tests all drive it the
+ * same way: engine_apply() for each parsed record, engine_tick() on a
+ * timer (record time in replay, wall time in the daemon). The engine
+ * never does I/O, never blocks and never reads the clock: time comes in
+ * with each call. Verdict changes leave through the sink callback.
+ *
+ * Data flow inside: record -> experiment/epoch/arm/metric lookup ->
+ * tallies -> tests (cheap ones on apply, quantiles on tick) -> verdicts.
+ */
+#ifndef STOPCOCK_ENGINE_H
+#define STOPCOCK_ENGINE_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include <jansson.h>
+
+#include "stopcock/conf.h"
+#include "stopcock/proto.h"
+
+enum verdict { VERDICT_UNDECIDED, VERDICT_HARM, VERDICT_SAFE };
+
+/* Why a record was refused by the engine (after parsing succeeded). */
+enum engine_reject {
+	ENGINE_OK = 0,
+	ENGINE_E_UNPLANNED,	/* "unplanned": no plan for the experiment */
+	ENGINE_E_VARIANT,	/* "unknown_variant": not in the current plan */
+	ENGINE_E_EXPERIMENTS,	/* "cap_experiments" */
+	ENGINE_E_VARIANTS,	/* "cap_variants": plan with too many arms */
+	ENGINE_E_METRICS,	/* "cap_metrics" */
+	ENGINE_E_MISMATCH,	/* "kind_mismatch": observe for a count metric.. */
+	ENGINE_E_K_GT_N,	/* "k_exceeds_n": proportion with K > N */
+	ENGINE_NREJECT
+};
+
+enum finding_kind {
+	FINDING_VERDICT,	/* a guardrail x arm verdict changed */
+	FINDING_SRM,		/* sample ratio mismatch established */
+	FINDING_UNTRUSTED,	/* SRM made the experiment's verdicts untrustworthy */
+	FINDING_PAUSE,		/* a pause guardrail reached pause_alpha */
+	FINDING_EPOCH		/* a new plan started an epoch (or a reset) */
+};
+
+struct finding_arm {
+	const char	*variant;
+	double		 weight;
+	uint64_t	 exposures;	/* this epoch */
+	double		 n;		/* samples (observe) or sum N (count) */
+	double		 k;		/* sum K (count metrics) */
+	double		 value;		/* arm's mean, rate or quantile */
+	double		 lower, upper;	/* CS for value (quantiles), else NAN */
+};
+
+/*
+ * Everything an alert, a replay line, the API or a metric needs about one
+ * test (experiment x guardrail x treatment arm, or the SRM check). All
+ * pointers are borrowed from the engine and valid until the next call
+ * into it.
+ */
+struct finding {
+	enum finding_kind kind;
+	const char	*experiment;
+	uint32_t	 epoch;		/* 1-based */
+	const char	*guardrail;	/* configured name, or "srm" */
+	const char	*metric;	/* NULL for srm */
+	const char	*test;		/* "mean", ..., "srm" */
+	double		 quantile;	/* for quantile tests, else 0 */
+	const char	*variant;	/* treatment arm (NULL for srm) */
+	const char	*control;
+	const char	*harm;		/* "increase" | "decrease" */
+	enum verdict	 verdict;
+	enum verdict	 previous;
+	int		 action_pause;
+	double		 p;		/* always-valid p-value */
+	double		 log_e;		/* current log evidence */
+	double		 alpha;		/* level of this test: alpha / family */
+	double		 alpha_total;	/* the experiment's alpha */
+	int		 family;	/* guardrails x treatment arms */
+	double		 estimate, lower, upper;	/* effect, absolute */
+	double		 rel_estimate, rel_lower, rel_upper;	/* relative */
+	double		 margin;	/* absolute margin in force */
+	double		 chi2_p;	/* srm: one-look chi-square p */
+	double		 sketch_accuracy;	/* quantile tests */
+	int		 untrusted;	/* SRM has fired in this epoch */
+	double		 ts;		/* record time of the finding */
+	double		 first_ts;	/* when the verdict first held */
+	uint64_t	 event;		/* record number it was found at */
+	int		 narms;
+	struct finding_arm arms[PROTO_PLAN_MAX];
+};
+
+typedef void (*engine_sink)(void *arg, const struct finding *);
+
+struct engine_counters {
+	uint64_t	 applied[4];	/* by enum proto_kind */
+	uint64_t	 rejected[ENGINE_NREJECT];
+	uint32_t	 experiments;
+	uint64_t	 series;	/* (experiment, epoch, arm, metric) */
+	uint64_t	 tests;		/* live guardrail x arm tests */
+	size_t		 bytes;		/* memory held by tallies and tests */
+	uint64_t	 findings;
+};
+
+struct engine;
+
+/* hashkey seeds the SipHash tables; the conf is copied (not borrowed). */
+struct engine	*engine_new(const struct conf *, const uint8_t hashkey[16]);
+void		 engine_free(struct engine *);
+void		 engine_set_sink(struct engine *, engine_sink, void *arg);
+/* Swap the configuration (guardrails, alpha, caps) keeping tallies;
+ * tests whose guardrail changed restart. */
+int		 engine_reconfigure(struct engine *, const struct conf *,
+		    char **cause);
+
+/*
+ * Apply one record at time now (the record's own ts when it has one is
+ * used for the finding's ts). event is the caller's sequence number
+ * (1-based line number in replay). Cheap tests run here.
+ */
+enum engine_reject engine_apply(struct engine *, const struct record *,
+		    double now, uint64_t event);
+/* Run costly tests (quantiles) and take chart history points. */
+void		 engine_tick(struct engine *, double now);
+const char	*engine_reason(enum engine_reject);
+
+/* Operator actions (from the HTTP API). 0 or -1 with *cause. */
+int		 engine_plan(struct engine *, const char *experiment,
+		    const struct proto_arm *, int narms, double now,
+		    char **cause);
+int		 engine_new_epoch(struct engine *, const char *experiment,
+		    double now, char **cause);
+int		 engine_reset(struct engine *, const char *experiment,
+		    double now, char **cause);
+
+void		 engine_counters(const struct engine *,
+		    struct engine_counters *);
+/* Current state of every test, SRM checks included, through cb. */
+void		 engine_foreach(const struct engine *,
+		    void (*cb)(void *, const struct finding *), void *arg);
+/* One experiment only; -1 when unknown. */
+int		 engine_foreach_in(const struct engine *, const char *experiment,
+		    void (*cb)(void *, const struct finding *), void *arg);
+
+/* JSON views for the API (pinned shapes in the README). New references. */
+json_t		*engine_json_list(const struct engine *);
+json_t		*engine_json_experiment(const struct engine *, const char *id);
+
+/* Full state for checkpoints; restore refuses foreign or bad input. */
+json_t		*engine_save(const struct engine *);
+struct engine	*engine_restore(const struct conf *, const uint8_t hashkey[16],
+		    const json_t *, char **cause);
+
+const char	*verdict_name(enum verdict);
+/* The finding as a JSON object (the replay line and webhook payload). */
+json_t		*finding_json(const struct finding *);
+
+#endif
