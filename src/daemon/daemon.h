@@ -1,0 +1,132 @@
+/*
+ * daemon.h: the shells of stopcockd around the pure engine. One struct
+ * daemon owns everything (no globals beyond the logger); each subsystem
+ * is one file with a prefix matching its name and an opaque struct the
+ * daemon owns:
+ *
+ *   main.c      options, start-up, signals, the loop        (daemon_*)
+ *   ingest.c    one line from any source -> proto -> engine (ingest_*)
+ *   listen.c    TCP, UDP and Unix stream listeners          (listen_*)
+ *   redis_in.c  the Redis stream consumer (hiredis async)    (redis_in_*)
+ *   ckpt.c      checkpoint write/restore, atomic and checksummed (ckpt_*)
+ *   alert.c     verdict findings -> alerts: identity, dedupe, syslog (alert_*)
+ *   webhook.c   signed webhooks over libcurl multi, spooled (webhook_*)
+ *   pause.c     auto-pause: rules, audit log, HTTP + Redis delivery (pause_*)
+ *   http.c      JSON API, /metrics and the page (libevent http) (http_*)
+ *
+ * Data flows one way: inputs -> ingest -> engine -> (sink) alert ->
+ * webhook / pause / syslog. The HTTP server only reads state, except the
+ * authenticated POST actions that go through the same engine calls.
+ */
+#ifndef STOPCOCK_DAEMON_H
+#define STOPCOCK_DAEMON_H
+
+#include <stdint.h>
+
+#include <event2/buffer.h>
+#include <event2/event.h>
+#include <jansson.h>
+
+#include "stopcock/conf.h"
+#include "stopcock/engine.h"
+#include "stopcock/proto.h"
+
+enum source { SRC_TCP, SRC_UDP, SRC_UNIX, SRC_REDIS, SRC_HTTP, SRC_N };
+
+struct listen;
+struct redis_in;
+struct alert;
+struct webhook;
+struct pause;
+struct http;
+
+struct ingest_counters {
+	uint64_t	records[SRC_N];		/* applied */
+	uint64_t	lines[SRC_N];		/* read, including skipped */
+	uint64_t	bytes[SRC_N];
+	uint64_t	proto_rejected[SRC_N][PROTO_NSTATUS];
+	uint64_t	engine_rejected[SRC_N][ENGINE_NREJECT];
+};
+
+struct daemon {
+	struct event_base	*base;
+	struct conf		*conf;		/* owned; swapped on reload */
+	char			*conf_path;
+	struct engine		*engine;
+	uint8_t			 hashkey[16];
+
+	struct listen		*listen;
+	struct redis_in		*redis;
+	struct alert		*alert;
+	struct webhook		*webhook;
+	struct pause		*pause;
+	struct http		*http;
+
+	struct ingest_counters	 counters;
+	double			 started;	/* wall time */
+	double			 last_checkpoint;	/* wall time, 0 never */
+	uint64_t		 checkpoints;
+	int			 draining;	/* SIGTERM seen */
+	int			 debug;
+};
+
+const char	*source_name(enum source);
+double		 daemon_now(void);	/* wall clock, seconds */
+
+/* ingest.c: every input hands complete lines here. 0 applied or skipped,
+ * -1 rejected (counted and, for the first few, logged). */
+int		 ingest_line(struct daemon *, enum source, const char *line,
+		    size_t len);
+void		 ingest_metrics(struct daemon *, struct evbuffer *);
+
+/* ckpt.c */
+int		 ckpt_write(struct daemon *, char **cause);
+int		 ckpt_restore(struct daemon *, char **cause);
+
+/* listen.c */
+struct listen	*listen_new(struct daemon *, char **cause);
+void		 listen_free(struct listen *);
+void		 listen_metrics(struct listen *, struct evbuffer *);
+
+/* redis_in.c: last_id is the last entry applied (restored from the
+ * checkpoint); redis_in_covered() is called after each checkpoint so the
+ * consumer may XACK what it covers. */
+struct redis_in	*redis_in_new(struct daemon *, const char *last_id,
+		    char **cause);
+void		 redis_in_free(struct redis_in *);
+const char	*redis_in_last_id(struct redis_in *);
+void		 redis_in_covered(struct redis_in *);
+void		 redis_in_metrics(struct redis_in *, struct evbuffer *);
+json_t		*redis_in_json(struct redis_in *);
+
+/* alert.c: the engine's sink points here. */
+struct alert	*alert_new(struct daemon *, char **cause);
+void		 alert_free(struct alert *);
+void		 alert_finding(void *alert, const struct finding *);
+int		 alert_ack(struct alert *, const char *experiment,
+		    const char *guardrail, const char *variant, char **cause);
+void		 alert_experiment_reset(struct alert *, const char *experiment);
+json_t		*alert_save(struct alert *);
+int		 alert_restore(struct alert *, const json_t *, char **cause);
+json_t		*alert_json(struct alert *);	/* raised alerts */
+void		 alert_metrics(struct alert *, struct evbuffer *);
+
+/* webhook.c */
+struct webhook	*webhook_new(struct daemon *, char **cause);
+void		 webhook_free(struct webhook *);
+/* Queue body (not stolen) for every receiver; id is the stable
+ * webhook-id. */
+void		 webhook_send(struct webhook *, const char *id, json_t *body);
+void		 webhook_metrics(struct webhook *, struct evbuffer *);
+
+/* pause.c */
+struct pause	*pause_new(struct daemon *, char **cause);
+void		 pause_free(struct pause *);
+void		 pause_finding(struct pause *, const struct finding *);
+void		 pause_metrics(struct pause *, struct evbuffer *);
+
+/* http.c */
+struct http	*http_new(struct daemon *, char **cause);
+void		 http_free(struct http *);
+
+#endif
