@@ -143,7 +143,25 @@ void		 engine_foreach(const struct engine *,
 int		 engine_foreach_in(const struct engine *, const char *experiment,
 		    void (*cb)(void *, const struct finding *), void *arg);
 
-/* JSON views for the API (pinned shapes in the README). New references. */
+/*
+ * JSON views for the API. New references. Pinned shapes:
+ *
+ * engine_json_list:
+ *   {"experiments": [{"id": "...", "epoch": 1, "untrusted": false,
+ *     "arms": [{"variant": "control", "weight": 50, "exposures": 1234}],
+ *     "guardrails": [{"name": "...", "variant": "...",
+ *                     "verdict": "harm|safe|undecided", "p": 0.3}],
+ *     "srm": {"verdict": "harm|undecided", "p": 0.5}}]}
+ *
+ * engine_json_experiment: the list entry plus
+ *   "control": "...", "alpha": 0.05, "srm_alpha": 0.001, "family": 6,
+ *   "epochs": [{"epoch": 1, "started": TS, "arms": [{"variant","weight"}]}],
+ *   "srm": {"verdict", "p", "log_e", "alpha", "chi2_p", "first_ts",
+ *           "history": [[t, log_e, p], ...]},
+ *   "tests": [ finding_json(test) + {"history": [[t, estimate, lower,
+ *              upper, p], ...]} ]
+ * Times are unix seconds (record time). Non-finite numbers are null.
+ */
 json_t		*engine_json_list(const struct engine *);
 json_t		*engine_json_experiment(const struct engine *, const char *id);
 
@@ -153,7 +171,15 @@ struct engine	*engine_restore(const struct conf *, const uint8_t hashkey[16],
 		    const json_t *, char **cause);
 
 const char	*verdict_name(enum verdict);
-/* The finding as a JSON object (the replay line and webhook payload). */
+/*
+ * The finding as a JSON object (the replay line, webhook payload and API
+ * test entry): kind, experiment, epoch, guardrail, metric, test, quantile,
+ * variant, control, harm, action, verdict, previous, p, log_e, alpha,
+ * alpha_total, family, estimate, lower, upper, rel_estimate, rel_lower,
+ * rel_upper, margin, chi2_p (srm), sketch_accuracy (quantile), untrusted,
+ * ts, first_ts, event, arms: [{variant, weight, exposures, n, k, value,
+ * lower, upper}]. Non-finite numbers are null.
+ */
 json_t		*finding_json(const struct finding *);
 
 #endif

@@ -30,6 +30,7 @@
 #include "stopcock/conf.h"
 #include "stopcock/engine.h"
 #include "stopcock/proto.h"
+#include "stopcock/util.h"
 
 enum source { SRC_TCP, SRC_UDP, SRC_UNIX, SRC_REDIS, SRC_HTTP, SRC_N };
 
