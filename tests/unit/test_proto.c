@@ -1,0 +1,647 @@
+/*
+ * test_proto.c: the event protocol parser. A table of good and bad lines
+ * reaches every proto_status; field checks on the good ones; the plain
+ * form's number parser against the C library's strtod on random decimal
+ * strings (strtod is the outside reference: glibc rounds correctly);
+ * proto_format round trips; and a bad line in a stream never changes how
+ * the good lines around it parse.
+ */
+#include <math.h>
+#include <setjmp.h>
+#include <stdarg.h>
+#include <stddef.h>
+#include <stdint.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include <cmocka.h>
+
+#include "stopcock/proto.h"
+
+struct pcase {
+	const char		*line;
+	enum proto_status	 want;
+};
+
+#define N64 "aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa"
+
+static const struct pcase cases[] = {
+	/* skip */
+	{ "", PROTO_SKIP },
+	{ "   \t ", PROTO_SKIP },
+	{ "# a comment", PROTO_SKIP },
+	{ "  \t# indented comment with = and { }", PROTO_SKIP },
+	{ "#", PROTO_SKIP },
+	{ "\r", PROTO_SKIP },
+	/* good plain records */
+	{ "plan checkout-v2 control=50 treatment=50", PROTO_OK },
+	{ "plan e a=1 b=2 c=3.5", PROTO_OK },
+	{ "plan e a=1e-3 b=1e6", PROTO_OK },
+	{ "expose checkout-v2 control", PROTO_OK },
+	{ "expose checkout-v2 control 25", PROTO_OK },
+	{ "expose e v 1000000000", PROTO_OK },
+	{ "expose e v +3", PROTO_OK },
+	{ "observe checkout-v2 treatment latency_ms 123.5", PROTO_OK },
+	{ "observe e v m -1.5e-3", PROTO_OK },
+	{ "observe e v m .5", PROTO_OK },
+	{ "observe e v m 5.", PROTO_OK },
+	{ "observe e v m 1e-999", PROTO_OK },	/* underflows to 0: finite */
+	{ "observe e v m 00000000000000000000000000000012.5", PROTO_OK },
+	{ "count checkout-v2 control errors 3 1000", PROTO_OK },
+	{ "count e v m 0 0.25", PROTO_OK },
+	{ "count e v m 7 3", PROTO_OK },	/* K > N is the engine's call */
+	{ "@1700000000 observe e v m 1", PROTO_OK },
+	{ "@1700000000.125 count e v m 1 2", PROTO_OK },
+	{ "@0 expose e v", PROTO_OK },
+	{ "@99999999999.5 expose e v", PROTO_OK },
+	{ "\tobserve\te\tv\tm\t2\t", PROTO_OK },
+	{ "observe e v m 2\r", PROTO_OK },
+	{ "observe " N64 " v m 1", PROTO_OK },
+	{ "observe A.b_c:d-0 v m 1", PROTO_OK },
+	/* too long is tested apart; kind */
+	{ "obsrve e v m 1", PROTO_E_KIND },
+	{ "Observe e v m 1", PROTO_E_KIND },
+	{ "x", PROTO_E_KIND },
+	{ "@1 planx e a=1 b=1", PROTO_E_KIND },
+	{ "counts e v m 1 2", PROTO_E_KIND },
+	{ "expos e v", PROTO_E_KIND },
+	{ "e=1", PROTO_E_KIND },
+	/* fields */
+	{ "observe e v m", PROTO_E_FIELDS },
+	{ "observe e v m 1 2", PROTO_E_FIELDS },
+	{ "expose e", PROTO_E_FIELDS },
+	{ "expose e v 1 2", PROTO_E_FIELDS },
+	{ "count e v m 1", PROTO_E_FIELDS },
+	{ "count e v m 1 2 3", PROTO_E_FIELDS },
+	{ "plan", PROTO_E_FIELDS },
+	{ "@17", PROTO_E_FIELDS },
+	{ "observe a b c d e f g h i j k l m n o p q r s t u v w x y z",
+	    PROTO_E_FIELDS },
+	/* names */
+	{ "observe " N64 "a v m 1", PROTO_E_NAME },
+	{ "observe e v/x m 1", PROTO_E_NAME },
+	{ "observe e v m/s 1", PROTO_E_NAME },
+	{ "observe e v \xc3\xa9t\xc3\xa9 1", PROTO_E_NAME },
+	{ "expose e\"x v", PROTO_E_NAME },
+	{ "plan e =1 b=1", PROTO_E_NAME },
+	{ "plan e a*=1 b=1", PROTO_E_NAME },
+	{ "plan e/x a=1 b=1", PROTO_E_NAME },
+	{ "count e v m,n 1 2", PROTO_E_NAME },
+	/* numbers */
+	{ "observe e v m nan", PROTO_E_NUMBER },
+	{ "observe e v m NaN", PROTO_E_NUMBER },
+	{ "observe e v m inf", PROTO_E_NUMBER },
+	{ "observe e v m -Infinity", PROTO_E_NUMBER },
+	{ "observe e v m 0x10", PROTO_E_NUMBER },
+	{ "observe e v m 0x1p3", PROTO_E_NUMBER },
+	{ "observe e v m 1e999", PROTO_E_NUMBER },
+	{ "observe e v m -1e400", PROTO_E_NUMBER },
+	{ "observe e v m 1.5x", PROTO_E_NUMBER },
+	{ "observe e v m 1e", PROTO_E_NUMBER },
+	{ "observe e v m 1e+", PROTO_E_NUMBER },
+	{ "observe e v m .", PROTO_E_NUMBER },
+	{ "observe e v m -", PROTO_E_NUMBER },
+	{ "observe e v m 1.2.3", PROTO_E_NUMBER },
+	{ "observe e v m 1,5", PROTO_E_NUMBER },
+	{ "observe e v m --1", PROTO_E_NUMBER },
+	{ "count e v m one 2", PROTO_E_NUMBER },
+	{ "count e v m 1 2k", PROTO_E_NUMBER },
+	{ "expose e v 1.5", PROTO_E_NUMBER },
+	{ "expose e v 1e3", PROTO_E_NUMBER },
+	{ "expose e v x", PROTO_E_NUMBER },
+	{ "plan e a=x b=1", PROTO_E_NUMBER },
+	{ "plan e a=nan b=1", PROTO_E_NUMBER },
+	{ "plan e a= b=1", PROTO_E_NUMBER },
+	/* ranges */
+	{ "count e v m -1 10", PROTO_E_RANGE },
+	{ "count e v m 1 0", PROTO_E_RANGE },
+	{ "count e v m 1 -5", PROTO_E_RANGE },
+	{ "count e v m 0 0", PROTO_E_RANGE },
+	{ "expose e v 0", PROTO_E_RANGE },
+	{ "expose e v -1", PROTO_E_RANGE },
+	{ "expose e v 1000000001", PROTO_E_RANGE },
+	{ "expose e v 99999999999999999999999999", PROTO_E_RANGE },
+	{ "plan e a=1 b=1000001", PROTO_E_RANGE },
+	/* timestamps */
+	{ "@ observe e v m 1", PROTO_E_TS },
+	{ "@-1 observe e v m 1", PROTO_E_TS },
+	{ "@+1 observe e v m 1", PROTO_E_TS },
+	{ "@1e11 observe e v m 1", PROTO_E_TS },
+	{ "@100000000000 observe e v m 1", PROTO_E_TS },
+	{ "@nan observe e v m 1", PROTO_E_TS },
+	{ "@inf observe e v m 1", PROTO_E_TS },
+	{ "@17x observe e v m 1", PROTO_E_TS },
+	{ "@1e999 observe e v m 1", PROTO_E_TS },
+	/* plans */
+	{ "plan e a=1", PROTO_E_PLAN },
+	{ "plan e", PROTO_E_PLAN },
+	{ "plan e a=1 a=1", PROTO_E_PLAN },
+	{ "plan e a=1 b=1 a=2", PROTO_E_PLAN },
+	{ "plan e a=0 b=1", PROTO_E_PLAN },
+	{ "plan e a=-1 b=1", PROTO_E_PLAN },
+	{ "plan e a=1 b", PROTO_E_PLAN },
+	{ "plan e a1 b=1", PROTO_E_PLAN },
+	{ "plan e a=1 b=1 c=1 d=1 e=1 f=1 g=1 h=1 i=1 j=1 k=1 l=1 m=1 "
+	    "n=1 o=1 p=1 q=1", PROTO_E_PLAN },
+	{ "plan e a=1 b=1 c=1 d=1 e=1 f=1 g=1 h=1 i=1 j=1 k=1 l=1 m=1 "
+	    "n=1 o=1 p=1 q=1 r=1 s=1 t=1 u=1 v=1 w=1 x=1 y=1 z=1", PROTO_E_PLAN },
+	{ "@5 plan e a=1 b=1 c=1 d=1 e=1 f=1 g=1 h=1 i=1 j=1 k=1 l=1 m=1 "
+	    "n=1 o=1 p=1 q=1 r=1 s=1 t=1 u=1 v=1 w=1 x=1 y=1 z=1", PROTO_E_PLAN },
+	/* bytes */
+	{ "observe e v\x01 m 1", PROTO_E_BYTES },
+	{ "observe e v m 1\r\r", PROTO_E_BYTES },
+	{ "observe e\rv m 1", PROTO_E_BYTES },
+	{ "observe e v m 1\x7f", PROTO_E_BYTES },
+	{ "# comment with a bell \x07", PROTO_E_BYTES },
+	{ "{\"kind\":\"expose\",\x1b\"experiment\":\"e\",\"variant\":\"v\"}",
+	    PROTO_E_BYTES },
+	{ "observe e v m 1\n", PROTO_E_BYTES },
+	/* JSON, good */
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\"}",
+	    PROTO_OK },
+	{ "  {\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"n\":12}  ", PROTO_OK },
+	{ "{\"ts\":1700000000.5,\"kind\":\"observe\",\"experiment\":\"e\","
+	    "\"variant\":\"v\",\"metric\":\"m\",\"value\":-2.5}", PROTO_OK },
+	{ "{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"k\":3,\"n\":100}", PROTO_OK },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "[{\"variant\":\"control\",\"weight\":50},"
+	    "{\"weight\":50,\"variant\":\"t\"}]}", PROTO_OK },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\"}\r",
+	    PROTO_OK },
+	/* JSON, bad */
+	{ "{", PROTO_E_JSON },
+	{ "{}x", PROTO_E_JSON },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\"} {}",
+	    PROTO_E_JSON },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"varaint\":\"v\"}",
+	    PROTO_E_JSON },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"variant\":\"w\"}", PROTO_E_JSON },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":7}",
+	    PROTO_E_JSON },
+	{ "{\"kind\":5,\"experiment\":\"e\",\"variant\":\"v\"}", PROTO_E_JSON },
+	{ "{\"kind\":\"observe\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"value\":\"1.5\"}", PROTO_E_JSON },
+	{ "{\"kind\":\"observe\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"value\":NaN}", PROTO_E_JSON },
+	{ "{\"kind\":\"observe\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"value\":1e999}", PROTO_E_JSON },
+	{ "{\"ts\":\"now\",\"kind\":\"expose\",\"experiment\":\"e\","
+	    "\"variant\":\"v\"}", PROTO_E_JSON },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "{\"a\":1,\"b\":1}}", PROTO_E_JSON },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "[[\"a\",1],[\"b\",1]]}", PROTO_E_JSON },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "[{\"variant\":\"a\",\"weight\":1,\"x\":1},"
+	    "{\"variant\":\"b\",\"weight\":1}]}", PROTO_E_JSON },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\\u0000x\",\"variant\":\"v\"}",
+	    PROTO_E_JSON },
+	/* JSON, other reasons */
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\"}", PROTO_E_FIELDS },
+	{ "{\"experiment\":\"e\",\"variant\":\"v\"}", PROTO_E_FIELDS },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\"}", PROTO_E_FIELDS },
+	{ "{\"kind\":\"observe\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\"}", PROTO_E_FIELDS },
+	{ "{\"kind\":\"publish\",\"experiment\":\"e\",\"variant\":\"v\"}",
+	    PROTO_E_KIND },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e x\",\"variant\":\"v\"}",
+	    PROTO_E_NAME },
+	{ "{\"kind\":\"expose\",\"experiment\":\"\",\"variant\":\"v\"}",
+	    PROTO_E_NAME },
+	{ "{\"kind\":\"expose\",\"experiment\":\"" N64 "b\",\"variant\":\"v\"}",
+	    PROTO_E_NAME },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"n\":0}", PROTO_E_RANGE },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"n\":1.5}", PROTO_E_NUMBER },
+	{ "{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"k\":-1,\"n\":100}", PROTO_E_RANGE },
+	{ "{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"k\":1,\"n\":0}", PROTO_E_RANGE },
+	{ "{\"ts\":-3,\"kind\":\"expose\",\"experiment\":\"e\","
+	    "\"variant\":\"v\"}", PROTO_E_TS },
+	{ "{\"ts\":1e12,\"kind\":\"expose\",\"experiment\":\"e\","
+	    "\"variant\":\"v\"}", PROTO_E_TS },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "[{\"variant\":\"a\",\"weight\":1}]}", PROTO_E_PLAN },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "[{\"variant\":\"a\",\"weight\":1},"
+	    "{\"variant\":\"a\",\"weight\":1}]}", PROTO_E_PLAN },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "[{\"variant\":\"a\",\"weight\":0},"
+	    "{\"variant\":\"b\",\"weight\":1}]}", PROTO_E_PLAN },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":[]}",
+	    PROTO_E_PLAN },
+};
+
+static void
+test_table(void **state)
+{
+	struct record r;
+	size_t i;
+	int bad = 0;
+	enum proto_status got;
+
+	for (i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+		memset(&r, 0xa5, sizeof r);
+		got = proto_parse(cases[i].line, strlen(cases[i].line), &r);
+		if (got != cases[i].want) {
+			print_error("case %zu \"%s\": got %s, want %s\n", i,
+			    cases[i].line, proto_reason(got),
+			    proto_reason(cases[i].want));
+			bad++;
+		}
+	}
+	assert_int_equal(bad, 0);
+}
+
+/* Every status is reached by the table or by the length test below. */
+static void
+test_every_status(void **state)
+{
+	int seen[PROTO_NSTATUS] = { 0 };
+	size_t i;
+
+	for (i = 0; i < sizeof cases / sizeof cases[0]; i++)
+		seen[cases[i].want] = 1;
+	seen[PROTO_E_LONG] = 1;		/* test_long */
+	for (i = 0; i < PROTO_NSTATUS; i++) {
+		assert_true(seen[i]);
+		assert_non_null(proto_reason(i));
+		assert_true(strlen(proto_describe(i)) > 5);
+	}
+	assert_string_equal(proto_reason(PROTO_E_NAME), "bad_name");
+	assert_string_equal(proto_reason(PROTO_E_LONG), "too_long");
+	assert_string_equal(proto_reason(PROTO_E_RANGE), "out_of_range");
+	assert_string_equal(proto_reason(PROTO_NSTATUS), "unknown");
+}
+
+static void
+test_long(void **state)
+{
+	char *buf = malloc(PROTO_LINE_MAX + 8);
+	struct record r;
+	const char *rec = "observe e v m 1";
+	size_t n = strlen(rec);
+
+	assert_non_null(buf);
+	/* A valid record padded with blanks to exactly the limit. */
+	memset(buf, ' ', PROTO_LINE_MAX + 8);
+	memcpy(buf, rec, n);
+	assert_int_equal(proto_parse(buf, PROTO_LINE_MAX, &r), PROTO_OK);
+	assert_true(r.value == 1);
+	/* The limit plus a CR is still the limit. */
+	buf[PROTO_LINE_MAX] = '\r';
+	assert_int_equal(proto_parse(buf, PROTO_LINE_MAX + 1, &r), PROTO_OK);
+	buf[PROTO_LINE_MAX] = ' ';
+	assert_int_equal(proto_parse(buf, PROTO_LINE_MAX + 1, &r),
+	    PROTO_E_LONG);
+	/* Too long wins even for a comment. */
+	buf[0] = '#';
+	assert_int_equal(proto_parse(buf, PROTO_LINE_MAX + 1, &r),
+	    PROTO_E_LONG);
+	assert_int_equal(proto_parse(buf, PROTO_LINE_MAX, &r), PROTO_SKIP);
+	/* Numbers have their own bound: 400 characters. */
+	memcpy(buf, "observe e v m ", 14);
+	memset(buf + 14, '1', 400);
+	buf[14 + 1] = '.';
+	assert_int_equal(proto_parse(buf, 14 + 400, &r), PROTO_OK);
+	buf[14 + 400] = '1';
+	assert_int_equal(proto_parse(buf, 14 + 401, &r), PROTO_E_NUMBER);
+	free(buf);
+}
+
+static void
+test_names(void **state)
+{
+	char name[PROTO_NAME_MAX + 2];
+	int c;
+
+	memset(name, 'x', sizeof name);
+	assert_true(proto_name_ok(name, PROTO_NAME_MAX));
+	assert_false(proto_name_ok(name, PROTO_NAME_MAX + 1));
+	assert_false(proto_name_ok(name, 0));
+	for (c = 0; c < 256; c++) {
+		name[0] = (char)c;
+		int want = (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') ||
+		    (c >= '0' && c <= '9') || c == '.' || c == '_' ||
+		    c == ':' || c == '-';
+		assert_int_equal(proto_name_ok(name, 1), want);
+	}
+}
+
+static void
+test_fields(void **state)
+{
+	struct record r;
+	const char *l;
+
+	l = "@1700000000.125 count checkout-v2 control errors 3 1000";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.kind, PROTO_COUNT);
+	assert_true(r.has_ts);
+	assert_true(r.ts == 1700000000.125);
+	assert_string_equal(r.experiment, "checkout-v2");
+	assert_string_equal(r.variant, "control");
+	assert_string_equal(r.metric, "errors");
+	assert_true(r.k == 3 && r.n == 1000);
+
+	l = "expose e v";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.kind, PROTO_EXPOSE);
+	assert_false(r.has_ts);
+	assert_true(r.units == 1);
+	assert_string_equal(r.metric, "");
+
+	l = "expose e v 1000000000";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_true(r.units == 1000000000ULL);
+
+	l = "  plan checkout-v2\tcontrol=40 t1=30 t2=30.5  ";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.kind, PROTO_PLAN);
+	assert_int_equal(r.narms, 3);
+	assert_string_equal(r.arms[0].name, "control");
+	assert_string_equal(r.arms[2].name, "t2");
+	assert_true(r.arms[0].weight == 40 && r.arms[2].weight == 30.5);
+
+	l = "observe e v m -1.5e-3";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_true(r.value == -1.5e-3);
+
+	l = "observe e v m -0";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_true(r.value == 0 && signbit(r.value));
+
+	l = "{\"ts\":1700000000.5,\"kind\":\"observe\",\"experiment\":\"e\","
+	    "\"variant\":\"v\",\"metric\":\"m\",\"value\":-2.5}";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.kind, PROTO_OBSERVE);
+	assert_true(r.has_ts && r.ts == 1700000000.5);
+	assert_true(r.value == -2.5);
+	assert_string_equal(r.metric, "m");
+
+	l = "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+	    "[{\"variant\":\"control\",\"weight\":50},"
+	    "{\"weight\":25.5,\"variant\":\"t\"}]}";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.narms, 2);
+	assert_string_equal(r.arms[0].name, "control");
+	assert_string_equal(r.arms[1].name, "t");
+	assert_true(r.arms[1].weight == 25.5);
+
+	l = "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"n\":12}";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_true(r.units == 12);
+
+	/* Embedded NUL inside the given length is a bad byte, not an end. */
+	assert_int_equal(proto_parse("expose e v\0x", 12, &r), PROTO_E_BYTES);
+	/* Only len bytes are read. */
+	assert_int_equal(proto_parse("expose e vXYZ", 10, &r), PROTO_OK);
+	assert_string_equal(r.variant, "v");
+}
+
+/* Records equal in every field their kind uses. */
+static int
+same_record(const struct record *a, const struct record *b)
+{
+	int i;
+
+	if (a->kind != b->kind || a->has_ts != b->has_ts ||
+	    (a->has_ts && a->ts != b->ts) ||
+	    strcmp(a->experiment, b->experiment) != 0)
+		return 0;
+	switch (a->kind) {
+	case PROTO_PLAN:
+		if (a->narms != b->narms)
+			return 0;
+		for (i = 0; i < a->narms; i++) {
+			if (strcmp(a->arms[i].name, b->arms[i].name) != 0 ||
+			    a->arms[i].weight != b->arms[i].weight)
+				return 0;
+		}
+		return 1;
+	case PROTO_EXPOSE:
+		return strcmp(a->variant, b->variant) == 0 &&
+		    a->units == b->units;
+	case PROTO_OBSERVE:
+		return strcmp(a->variant, b->variant) == 0 &&
+		    strcmp(a->metric, b->metric) == 0 &&
+		    memcmp(&a->value, &b->value, sizeof a->value) == 0;
+	case PROTO_COUNT:
+		return strcmp(a->variant, b->variant) == 0 &&
+		    strcmp(a->metric, b->metric) == 0 &&
+		    a->k == b->k && a->n == b->n;
+	}
+	return 0;
+}
+
+static void
+test_format_roundtrip(void **state)
+{
+	struct record r, r2;
+	char buf[PROTO_LINE_MAX + 1];
+	size_t i;
+	int n, done = 0;
+
+	for (i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+		if (cases[i].want != PROTO_OK)
+			continue;
+		assert_int_equal(proto_parse(cases[i].line,
+		    strlen(cases[i].line), &r), PROTO_OK);
+		n = proto_format(&r, buf, sizeof buf);
+		assert_true(n > 0 && (size_t)n == strlen(buf));
+		if (proto_parse(buf, (size_t)n, &r2) != PROTO_OK ||
+		    !same_record(&r, &r2))
+			fail_msg("\"%s\" -> \"%s\" does not round-trip",
+			    cases[i].line, buf);
+		done++;
+	}
+	assert_true(done > 20);
+
+	assert_int_equal(proto_parse("@1700000000.1 plan e c=50 t=50", 30, &r),
+	    PROTO_OK);
+	n = proto_format(&r, buf, sizeof buf);
+	assert_string_equal(buf, "@1700000000.1 plan e c=50 t=50");
+	/* Too small a buffer fails cleanly. */
+	assert_int_equal(proto_format(&r, buf, 10), -1);
+	assert_int_equal(proto_format(&r, buf, 0), -1);
+	assert_int_equal(proto_format(&r, buf, (size_t)n), -1);
+	assert_int_equal(proto_format(&r, buf, (size_t)n + 1), n);
+
+	r.kind = PROTO_OBSERVE;
+	r.has_ts = 0;
+	strcpy(r.variant, "v");
+	strcpy(r.metric, "m");
+	r.value = 0.1 + 0.2;	/* needs 17 digits */
+	n = proto_format(&r, buf, sizeof buf);
+	assert_string_equal(buf, "observe e v m 0.30000000000000004");
+	assert_int_equal(proto_parse(buf, (size_t)n, &r2), PROTO_OK);
+	assert_true(same_record(&r, &r2));
+}
+
+/* xorshift64*, so the random cases are the same on every run. */
+static uint64_t rng_state = 0x9e3779b97f4a7c15ULL;
+
+static uint64_t
+rng(void)
+{
+	rng_state ^= rng_state >> 12;
+	rng_state ^= rng_state << 25;
+	rng_state ^= rng_state >> 27;
+	return rng_state * 0x2545f4914f6cdd1dULL;
+}
+
+/* A random decimal string in the grammar, weighted toward the fast path. */
+static void
+random_decimal(char *s, size_t size)
+{
+	size_t i = 0, nd, point, k;
+	int x;
+
+	if (rng() % 4 == 0)
+		s[i++] = rng() % 2 ? '-' : '+';
+	nd = 1 + rng() % (rng() % 3 == 0 ? 40 : 17);
+	point = rng() % (nd + 2);	/* nd + 1: no point */
+	for (k = 0; k < nd; k++) {
+		if (k == point)
+			s[i++] = '.';
+		s[i++] = (char)('0' + rng() % 10);
+	}
+	if (point == nd)
+		s[i++] = '.';
+	if (rng() % 3 == 0) {
+		s[i++] = rng() % 2 ? 'e' : 'E';
+		x = (int)(rng() % 700) - 350;
+		if (rng() % 2)
+			x = (int)(rng() % 50) - 25;
+		i += (size_t)snprintf(s + i, size - i, "%d", x);
+	}
+	s[i] = '\0';
+}
+
+static void
+test_numbers_vs_strtod(void **state)
+{
+	char num[128], line[600];
+	struct record r;
+	double want;
+	char *end;
+	int i, n, bad = 0, finite = 0;
+
+	for (i = 0; i < 300000; i++) {
+		random_decimal(num, sizeof num);
+		n = snprintf(line, sizeof line, "observe e v m %s", num);
+		want = strtod(num, &end);
+		assert_true(*end == '\0');
+		if (!isfinite(want)) {
+			if (proto_parse(line, (size_t)n, &r) != PROTO_E_NUMBER)
+				bad++;
+			continue;
+		}
+		finite++;
+		if (proto_parse(line, (size_t)n, &r) != PROTO_OK ||
+		    memcmp(&r.value, &want, sizeof want) != 0) {
+			if (bad++ < 5)
+				print_error("%s: got %.17g want %.17g\n", num,
+				    r.value, want);
+		}
+	}
+	assert_int_equal(bad, 0);
+	assert_true(finite > 250000);
+
+	/* Edges of the fast path: 2^53, 2^53 + 1, 10^22, 10^23. */
+	static const char *edge[] = {
+		"9007199254740992", "9007199254740993", "9007199254740993e3",
+		"1e22", "1e23", "1e-22", "1e-23", "123456789012345678e-5",
+		"0.1", "0.30000000000000004", "2.2250738585072011e-308",
+		"4.9e-324", "2e-324", "1.7976931348623157e308",
+		"179769313486231580793728971405303415079934132710037826936173"
+		"778980444968292764750946649017977587207096330286416692887910"
+		"946555547851940402630657488671505820681908902000708383676273"
+		"854845817711531764475730270069855571366959622842914819860834"
+		"936475292719074168444365510704342711559699508093042880177904"
+		"174497791", "0.000000000000000000000000000000000000000001",
+		"12345678901234567890", "1234567890123456789000000e-10",
+	};
+	for (i = 0; i < (int)(sizeof edge / sizeof edge[0]); i++) {
+		n = snprintf(line, sizeof line, "observe e v m %s", edge[i]);
+		want = strtod(edge[i], NULL);
+		if (n >= (int)sizeof line)
+			continue;
+		if (isfinite(want)) {
+			assert_int_equal(proto_parse(line, (size_t)n, &r),
+			    PROTO_OK);
+			assert_memory_equal(&r.value, &want, sizeof want);
+		}
+	}
+}
+
+/*
+ * A stream with bad lines between good ones: each good line parses the
+ * same as it does alone, whatever garbage came before it.
+ */
+static void
+test_bad_between_good(void **state)
+{
+	static const char *good[] = {
+		"plan e c=1 t=1",
+		"@1700000000 expose e c 3",
+		"observe e t lat 12.25",
+		"{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"t\","
+		    "\"metric\":\"err\",\"k\":1,\"n\":9}",
+		"count e c err 2 10",
+	};
+	static const char *badl[] = {
+		"observe e t lat nan", "{\"kind\":", "plan e a=1 a=1",
+		"\x01\x02\x03", "observe e v m 1 2 3 4 5 6 7 8 9 10 11 12 13 "
+		"14 15 16 17 18 19 20 21 22 23 24 25 26 27 28 29",
+	};
+	struct record alone[5], r;
+	char garbage[300];
+	size_t i, j, k, n;
+	int round;
+
+	for (i = 0; i < 5; i++)
+		assert_int_equal(proto_parse(good[i], strlen(good[i]),
+		    &alone[i]), PROTO_OK);
+	for (round = 0; round < 2000; round++) {
+		for (i = 0; i < 5; i++) {
+			j = rng() % 6;
+			if (j < 5)
+				proto_parse(badl[j], strlen(badl[j]), &r);
+			else {
+				n = rng() % sizeof garbage;
+				for (k = 0; k < n; k++)
+					garbage[k] = (char)rng();
+				proto_parse(garbage, n, &r);
+			}
+			assert_int_equal(proto_parse(good[i], strlen(good[i]),
+			    &r), PROTO_OK);
+			assert_true(same_record(&r, &alone[i]));
+		}
+	}
+}
+
+int
+main(void)
+{
+	const struct CMUnitTest tests[] = {
+		cmocka_unit_test(test_table),
+		cmocka_unit_test(test_every_status),
+		cmocka_unit_test(test_long),
+		cmocka_unit_test(test_names),
+		cmocka_unit_test(test_fields),
+		cmocka_unit_test(test_format_roundtrip),
+		cmocka_unit_test(test_numbers_vs_strtod),
+		cmocka_unit_test(test_bad_between_good),
+	};
+
+	return cmocka_run_group_tests(tests, NULL, NULL);
+}
