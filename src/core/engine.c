@@ -1,0 +1,967 @@
+/*
+ * engine.c: the one entry point of the core. engine_apply() routes a
+ * parsed record to its experiment, epoch, arm and metric, updates the
+ * tallies and runs the cheap tests; engine_tick() runs the costly ones
+ * (quantiles, rate confidence sequences) and takes chart points. Verdict
+ * changes leave through the sink. No I/O, no clock: time comes in with
+ * every call, so the daemon, replay, the simulator and the tests all see
+ * exactly the same engine.
+ *
+ * Memory is allocated only when an experiment, metric or test appears,
+ * and every such appearance is capped (max_experiments, max_variants,
+ * max_metrics), so hostile cardinality costs a counter, not memory.
+ */
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "stopcock/util.h"
+#include "engine_int.h"
+
+static const char *reject_names[ENGINE_NREJECT] = {
+	"ok", "unplanned", "unknown_variant", "cap_experiments",
+	"cap_variants", "cap_metrics", "kind_mismatch", "k_exceeds_n",
+};
+
+const char *
+engine_reason(enum engine_reject r)
+{
+	return (unsigned)r < ENGINE_NREJECT ? reject_names[r] : "unknown";
+}
+
+const char *
+verdict_name(enum verdict v)
+{
+	switch (v) {
+	case VERDICT_HARM:
+		return "harm";
+	case VERDICT_SAFE:
+		return "safe";
+	default:
+		return "undecided";
+	}
+}
+
+/* ---- chart history ---- */
+
+void
+hist_offer(struct hist *h, uint32_t cap, double t, double a, double b,
+    double c, double p)
+{
+	uint32_t i;
+
+	if (cap < 2)
+		return;
+	if (h->stride == 0)
+		h->stride = 1;
+	if (h->n > 0 && ++h->skip < h->stride)
+		return;
+	h->skip = 0;
+	if (h->cap < cap) {
+		/* grow geometrically up to the configured bound */
+		uint32_t ncap = h->cap ? h->cap * 2 : 8;
+		if (ncap > cap)
+			ncap = cap;
+		h->pt = xreallocarray(h->pt, ncap, sizeof *h->pt);
+		h->cap = ncap;
+	}
+	if (h->n == cap) {
+		/* full: keep every other point and halve the rate */
+		for (i = 0; i < cap / 2; i++)
+			h->pt[i] = h->pt[2 * i + 1];
+		h->n = cap / 2;
+		h->stride *= 2;
+	}
+	h->pt[h->n].t = t;
+	h->pt[h->n].a = (float)a;
+	h->pt[h->n].b = (float)b;
+	h->pt[h->n].c = (float)c;
+	h->pt[h->n].p = (float)p;
+	h->n++;
+}
+
+void
+hist_free(struct hist *h)
+{
+	free(h->pt);
+	memset(h, 0, sizeof *h);
+}
+
+/* ---- experiments ---- */
+
+static struct experiment *
+exp_find(const struct engine *eng, const char *id)
+{
+	uint32_t slot;
+
+	if (nmap_get(eng->index, id, strlen(id), &slot) != 0)
+		return NULL;
+	return eng->exps[slot];
+}
+
+static int
+arm_find(const struct experiment *e, const char *name)
+{
+	int i;
+
+	for (i = 0; i < e->narms; i++)
+		if (strcmp(e->arms[i].name, name) == 0)
+			return i;
+	return -1;
+}
+
+static void
+series_free(struct metric *m, int narms)
+{
+	int i;
+
+	if (m->arm == NULL)
+		return;
+	for (i = 0; i < narms; i++)
+		sketch_free(m->arm[i].sk);
+	free(m->arm);
+	m->arm = NULL;
+}
+
+int
+engine_metric_alloc_series(struct engine *eng, struct experiment *e,
+    struct metric *m)
+{
+	int i;
+
+	m->arm = xcalloc((size_t)e->narms, sizeof *m->arm);
+	if (m->want_sketch)
+		for (i = 0; i < e->narms; i++)
+			m->arm[i].sk = sketch_new(eng->conf->sketch_accuracy,
+			    eng->conf->sketch_buckets);
+	return 0;
+}
+
+/* Guardrail-derived needs of a metric. */
+void
+engine_metric_needs(const struct conf *conf, struct metric *m)
+{
+	int i;
+
+	m->want_sketch = m->want_k_le_n = 0;
+	for (i = 0; i < conf->nguardrails; i++) {
+		if (strcmp(conf->guardrails[i].metric, m->name) != 0)
+			continue;
+		if (conf->guardrails[i].test == TEST_QUANTILE)
+			m->want_sketch = 1;
+		if (conf->guardrails[i].test == TEST_PROPORTION)
+			m->want_k_le_n = 1;
+	}
+}
+
+static int
+metric_find(const struct experiment *e, const char *name)
+{
+	int i;
+	size_t len = strlen(name);
+
+	for (i = 0; i < e->nmetrics; i++)
+		if (e->metrics[i].len == len &&
+		    memcmp(e->metrics[i].name, name, len) == 0)
+			return i;
+	return -1;
+}
+
+static void
+test_reset_epoch(struct test *t)
+{
+	t->closed_log_e += t->log_e;
+	t->log_e = 0;
+	t->verdict = VERDICT_UNDECIDED;
+	t->cs_lo = -INFINITY;
+	t->cs_hi = INFINITY;
+	t->est = t->lo = t->hi = NAN;
+	t->rel = t->rel_lo = t->rel_hi = NAN;
+	t->ctl_value = t->trt_value = NAN;
+	t->ctl_lo = t->ctl_hi = t->trt_lo = t->trt_hi = NAN;
+	t->margin_abs = NAN;
+	t->first_ts = NAN;
+	t->first_event = 0;
+	t->pause_sent = 0;
+	t->dirty = t->hist_dirty = 0;
+}
+
+static void
+test_init(struct test *t, int g, const char *variant)
+{
+	memset(t, 0, sizeof *t);
+	t->g = g;
+	snprintf(t->variant, sizeof t->variant, "%s", variant);
+	t->arm = -1;
+	t->metric = -1;
+	test_reset_epoch(t);
+	t->closed_log_e = 0;
+}
+
+/* Link every test to its arm and metric in the current epoch. */
+void
+engine_link_tests(const struct engine *eng, struct experiment *e)
+{
+	int i;
+	struct test *t;
+
+	for (i = 0; i < e->ntests; i++) {
+		t = &e->tests[i];
+		t->arm = arm_find(e, t->variant);
+		t->metric = metric_find(e, eng->conf->guardrails[t->g].metric);
+	}
+}
+
+/* Make sure a test exists for every guardrail x treatment arm. */
+static void
+exp_ensure_tests(const struct engine *eng, struct experiment *e)
+{
+	int g, j, i, found;
+
+	for (g = 0; g < eng->conf->nguardrails; g++) {
+		for (j = 1; j < e->narms; j++) {
+			found = 0;
+			for (i = 0; i < e->ntests && !found; i++)
+				found = e->tests[i].g == g &&
+				    strcmp(e->tests[i].variant,
+				    e->arms[j].name) == 0;
+			if (found)
+				continue;
+			if (e->ntests == e->testcap) {
+				e->testcap = e->testcap ? e->testcap * 2 : 8;
+				e->tests = xreallocarray(e->tests,
+				    (size_t)e->testcap, sizeof *e->tests);
+			}
+			test_init(&e->tests[e->ntests++], g, e->arms[j].name);
+		}
+	}
+	engine_link_tests(eng, e);
+}
+
+static void
+exp_settings(const struct engine *eng, struct experiment *e)
+{
+	const struct conf *c = eng->conf;
+	const struct conf_experiment *ce = conf_experiment_find(c, e->id);
+	int treat = e->narms - 1;
+
+	e->alpha = ce && ce->alpha > 0 ? ce->alpha : c->alpha;
+	e->srm_alpha = ce && ce->srm_alpha > 0 ? ce->srm_alpha : c->srm_alpha;
+	e->plan_units = ce && ce->plan_units > 0 ? ce->plan_units :
+	    c->plan_units;
+	/*
+	 * Bonferroni over every configured guardrail x treatment arm, fixed
+	 * by the plan rather than by which metrics happen to arrive, so the
+	 * family cannot grow with the data (METHODS.md sec. 6).
+	 */
+	e->family = c->nguardrails * (treat > 0 ? treat : 1);
+	if (e->family < 1)
+		e->family = 1;
+}
+
+/* SRM state for a new epoch: Dirichlet(k0 theta0) prior. */
+static void
+exp_srm_start(struct experiment *e)
+{
+	double sum = 0, k0;
+	int i;
+
+	for (i = 0; i < e->narms; i++)
+		sum += e->arms[i].weight;
+	/* HRMS-derived concentration, tightest at the planned total
+	 * (METHODS.md sec. 3); fixed before any exposure is seen. */
+	k0 = stats_dm_k0(e->plan_units * e->narms, e->srm_alpha);
+	if (!(k0 > 0))
+		k0 = 100;
+	for (i = 0; i < e->narms; i++) {
+		e->theta0[i] = e->arms[i].weight / sum;
+		e->srm_a[i] = k0 * e->theta0[i];
+		e->exposures[i] = 0;
+	}
+	e->srm_log_e = e->srm_max_log_e = 0;
+	e->srm_fired = 0;
+	e->srm_first_ts = NAN;
+	e->srm_first_event = 0;
+}
+
+static void
+exp_push_epoch(struct experiment *e, double now)
+{
+	struct epoch_info *ep;
+
+	if (e->nepochs == ENGINE_EPOCHS_KEPT) {
+		memmove(e->epochs, e->epochs + 1,
+		    (ENGINE_EPOCHS_KEPT - 1) * sizeof *e->epochs);
+		e->nepochs--;
+	}
+	if (e->epochs == NULL)
+		e->epochs = xcalloc(ENGINE_EPOCHS_KEPT, sizeof *e->epochs);
+	ep = &e->epochs[e->nepochs++];
+	ep->epoch = e->epoch;
+	ep->started = now;
+	ep->narms = e->narms;
+	memcpy(ep->arms, e->arms, sizeof ep->arms);
+}
+
+struct experiment *
+engine_exp_new(struct engine *eng, const char *id,
+    const struct proto_arm *arms, int narms, double now)
+{
+	struct experiment *e;
+
+	e = xcalloc(1, sizeof *e);
+	snprintf(e->id, sizeof e->id, "%s", id);
+	e->epoch = 1;
+	e->narms = narms;
+	memcpy(e->arms, arms, (size_t)narms * sizeof *arms);
+	exp_settings(eng, e);
+	exp_srm_start(e);
+	exp_push_epoch(e, now);
+	exp_ensure_tests(eng, e);
+	e->last_ts = now;
+	if (eng->nexps == eng->capexps) {
+		eng->capexps = eng->capexps ? eng->capexps * 2 : 16;
+		eng->exps = xreallocarray(eng->exps, eng->capexps,
+		    sizeof *eng->exps);
+	}
+	nmap_put(eng->index, e->id, strlen(e->id), eng->nexps);
+	eng->exps[eng->nexps++] = e;
+	eng->counters.experiments = eng->nexps;
+	return e;
+}
+
+void
+engine_exp_free(struct experiment *e)
+{
+	int i;
+
+	if (e == NULL)
+		return;
+	for (i = 0; i < e->nmetrics; i++)
+		series_free(&e->metrics[i], e->narms);
+	free(e->metrics);
+	for (i = 0; i < e->ntests; i++)
+		hist_free(&e->tests[i].hist);
+	free(e->tests);
+	hist_free(&e->srm_hist);
+	free(e->epochs);
+	free(e);
+}
+
+/*
+ * Start a new epoch: tallies and SRM start afresh (never pooled across
+ * weights, the trap that turns a ramp into Simpson's paradox); each
+ * test's finished epoch martingale is folded into closed_log_e.
+ */
+static void
+exp_new_epoch(struct engine *eng, struct experiment *e,
+    const struct proto_arm *arms, int narms, double now, int forget)
+{
+	struct finding f;
+	int i;
+
+	for (i = 0; i < e->nmetrics; i++)
+		series_free(&e->metrics[i], e->narms);
+	e->narms = narms;
+	if (arms != e->arms)
+		memcpy(e->arms, arms, (size_t)narms * sizeof *arms);
+	e->epoch++;
+	for (i = 0; i < e->nmetrics; i++) {
+		engine_metric_needs(eng->conf, &e->metrics[i]);
+		engine_metric_alloc_series(eng, e, &e->metrics[i]);
+	}
+	for (i = 0; i < e->ntests; i++) {
+		test_reset_epoch(&e->tests[i]);
+		if (forget) {
+			e->tests[i].closed_log_e = 0;
+			e->tests[i].max_log_e = 0;
+			hist_free(&e->tests[i].hist);
+		}
+	}
+	if (forget)
+		hist_free(&e->srm_hist);
+	exp_settings(eng, e);
+	exp_srm_start(e);
+	exp_push_epoch(e, now);
+	exp_ensure_tests(eng, e);
+	engine_fill_srm(eng, e, FINDING_EPOCH, &f);
+	engine_emit(eng, &f);
+}
+
+static int
+same_plan(const struct experiment *e, const struct proto_arm *arms,
+    int narms)
+{
+	int i;
+
+	if (narms != e->narms)
+		return 0;
+	for (i = 0; i < narms; i++)
+		if (strcmp(arms[i].name, e->arms[i].name) != 0 ||
+		    arms[i].weight != e->arms[i].weight)
+			return 0;
+	return 1;
+}
+
+static enum engine_reject
+apply_plan(struct engine *eng, const struct proto_arm *arms, int narms,
+    const char *id, double now)
+{
+	struct experiment *e;
+
+	if ((uint32_t)narms > eng->conf->max_variants)
+		return ENGINE_E_VARIANTS;
+	if ((e = exp_find(eng, id)) == NULL) {
+		if (eng->nexps >= eng->conf->max_experiments)
+			return ENGINE_E_EXPERIMENTS;
+		e = engine_exp_new(eng, id, arms, narms, now);
+		return ENGINE_OK;
+	}
+	if (!same_plan(e, arms, narms))
+		exp_new_epoch(eng, e, arms, narms, now, 0);
+	return ENGINE_OK;
+}
+
+/* ---- findings ---- */
+
+void
+engine_emit(struct engine *eng, const struct finding *f)
+{
+	eng->counters.findings++;
+	if (eng->sink != NULL)
+		eng->sink(eng->sink_arg, f);
+}
+
+static void
+fill_arms(const struct engine *eng, const struct experiment *e,
+    const struct test *t, const struct metric *m, struct finding *f)
+{
+	const struct conf_guardrail *g = t ? &eng->conf->guardrails[t->g] :
+	    NULL;
+	const struct series *s;
+	struct finding_arm *fa;
+	int i;
+
+	f->narms = e->narms;
+	for (i = 0; i < e->narms; i++) {
+		fa = &f->arms[i];
+		fa->variant = e->arms[i].name;
+		fa->weight = e->arms[i].weight;
+		fa->exposures = e->exposures[i];
+		fa->n = fa->k = fa->value = NAN;
+		fa->lower = fa->upper = NAN;
+		if (m == NULL || m->arm == NULL)
+			continue;
+		s = &m->arm[i];
+		if (m->kind == METRIC_OBSERVE) {
+			fa->n = (double)s->m.n;
+			fa->value = s->m.n ? s->m.mean : NAN;
+			if (g && g->test == TEST_QUANTILE && s->sk)
+				fa->value = sketch_quantile(s->sk, g->quantile);
+		} else if (m->kind == METRIC_COUNT) {
+			fa->n = (double)s->r.n;
+			fa->k = (double)s->r.k;
+			fa->value = tally_ratio_rate(&s->r);
+		}
+		if (g && g->test == TEST_QUANTILE && t) {
+			if (i == 0) {
+				fa->lower = t->ctl_lo;
+				fa->upper = t->ctl_hi;
+			} else if (i == t->arm) {
+				fa->lower = t->trt_lo;
+				fa->upper = t->trt_hi;
+			}
+		}
+	}
+}
+
+void
+engine_fill_finding(const struct engine *eng, const struct experiment *e,
+    const struct test *t, enum finding_kind kind, struct finding *f)
+{
+	const struct conf_guardrail *g = &eng->conf->guardrails[t->g];
+
+	memset(f, 0, sizeof *f);
+	f->kind = kind;
+	f->experiment = e->id;
+	f->epoch = e->epoch;
+	f->guardrail = g->name;
+	f->metric = g->metric;
+	f->test = conf_test_name(g->test);
+	f->quantile = g->test == TEST_QUANTILE ? g->quantile : 0;
+	f->variant = t->variant;
+	f->control = e->arms[0].name;
+	f->harm = g->harm == HARM_INCREASE ? "increase" : "decrease";
+	f->verdict = t->verdict;
+	f->previous = t->verdict;
+	f->action_pause = g->action == ACTION_PAUSE;
+	f->p = stats_p_from_log_e(t->max_log_e);
+	f->log_e = t->closed_log_e + t->log_e;
+	f->alpha = verdict_level(e);
+	f->alpha_total = e->alpha;
+	f->family = e->family;
+	f->estimate = t->est;
+	f->lower = t->cs_lo;
+	f->upper = t->cs_hi;
+	f->rel_estimate = t->rel;
+	f->rel_lower = t->rel_lo;
+	f->rel_upper = t->rel_hi;
+	f->margin = t->margin_abs;
+	f->chi2_p = NAN;
+	f->sketch_accuracy = g->test == TEST_QUANTILE ?
+	    eng->conf->sketch_accuracy : NAN;
+	f->untrusted = e->srm_fired;
+	f->ts = eng->now;
+	f->first_ts = t->first_ts;
+	f->event = t->first_event ? t->first_event : eng->event;
+	fill_arms(eng, e, t, t->metric >= 0 ? &e->metrics[t->metric] : NULL,
+	    f);
+}
+
+void
+engine_fill_srm(const struct engine *eng, const struct experiment *e,
+    enum finding_kind kind, struct finding *f)
+{
+	double counts[PROTO_PLAN_MAX], x2;
+	int i;
+
+	memset(f, 0, sizeof *f);
+	f->kind = kind;
+	f->experiment = e->id;
+	f->epoch = e->epoch;
+	f->guardrail = "srm";
+	f->test = "srm";
+	f->control = e->arms[0].name;
+	f->harm = "mismatch";
+	f->verdict = e->srm_fired ? VERDICT_HARM : VERDICT_UNDECIDED;
+	f->previous = VERDICT_UNDECIDED;
+	f->p = stats_p_from_log_e(e->srm_max_log_e);
+	f->log_e = e->srm_log_e;
+	f->alpha = e->srm_alpha;
+	f->alpha_total = e->srm_alpha;
+	f->family = 1;
+	f->estimate = f->lower = f->upper = NAN;
+	f->rel_estimate = f->rel_lower = f->rel_upper = NAN;
+	f->margin = NAN;
+	f->sketch_accuracy = NAN;
+	for (i = 0; i < e->narms; i++)
+		counts[i] = (double)e->exposures[i];
+	/* The classic chi-square, shown as a one-look figure only. */
+	f->chi2_p = stats_srm_chi2(e->narms, counts, e->theta0, &x2);
+	f->untrusted = e->srm_fired;
+	f->ts = eng->now;
+	f->first_ts = e->srm_first_ts;
+	f->event = e->srm_first_event ? e->srm_first_event : eng->event;
+	fill_arms(eng, e, NULL, NULL, f);
+}
+
+/* ---- the engine ---- */
+
+struct engine *
+engine_new(const struct conf *conf, const uint8_t hashkey[16])
+{
+	struct engine *eng;
+	const struct conf_experiment *ce;
+	int i;
+
+	eng = xcalloc(1, sizeof *eng);
+	eng->conf = conf_dup(conf);
+	memcpy(eng->key, hashkey, sizeof eng->key);
+	eng->index = nmap_new(eng->key);
+	for (i = 0; i < conf->nexperiments; i++) {
+		ce = &conf->experiments[i];
+		if (ce->narms >= 2 && exp_find(eng, ce->id) == NULL &&
+		    eng->nexps < eng->conf->max_experiments)
+			engine_exp_new(eng, ce->id, ce->arms, ce->narms, 0);
+	}
+	return eng;
+}
+
+void
+engine_free(struct engine *eng)
+{
+	uint32_t i;
+
+	if (eng == NULL)
+		return;
+	for (i = 0; i < eng->nexps; i++)
+		engine_exp_free(eng->exps[i]);
+	free(eng->exps);
+	nmap_free(eng->index);
+	conf_free(eng->conf);
+	free(eng->scratch_v);
+	free(eng->scratch_c);
+	free(eng);
+}
+
+void
+engine_set_sink(struct engine *eng, engine_sink sink, void *arg)
+{
+	eng->sink = sink;
+	eng->sink_arg = arg;
+}
+
+static int
+guardrail_same(const struct conf_guardrail *a, const struct conf_guardrail *b)
+{
+	return strcmp(a->name, b->name) == 0 &&
+	    strcmp(a->metric, b->metric) == 0 && a->test == b->test &&
+	    a->quantile == b->quantile && a->harm == b->harm &&
+	    a->margin == b->margin && a->margin_relative == b->margin_relative &&
+	    a->action == b->action && a->plan_units == b->plan_units;
+}
+
+int
+engine_reconfigure(struct engine *eng, const struct conf *conf, char **cause)
+{
+	struct conf *old = eng->conf;
+	struct experiment *e;
+	struct test *nt;
+	uint32_t i;
+	int j, k, ntests;
+
+	eng->conf = conf_dup(conf);
+	for (i = 0; i < eng->nexps; i++) {
+		e = eng->exps[i];
+		/* keep a test only if its guardrail is unchanged */
+		nt = xcalloc((size_t)e->ntests + 1, sizeof *nt);
+		ntests = 0;
+		for (j = 0; j < e->ntests; j++) {
+			const struct conf_guardrail *og =
+			    &old->guardrails[e->tests[j].g];
+			for (k = 0; k < eng->conf->nguardrails; k++)
+				if (guardrail_same(og, &eng->conf->guardrails[k]))
+					break;
+			if (k == eng->conf->nguardrails) {
+				hist_free(&e->tests[j].hist);
+				continue;
+			}
+			nt[ntests] = e->tests[j];
+			nt[ntests++].g = k;
+		}
+		free(e->tests);
+		e->tests = nt;
+		e->ntests = ntests;
+		e->testcap = e->ntests + 1;
+		for (j = 0; j < e->nmetrics; j++) {
+			struct metric *m = &e->metrics[j];
+			engine_metric_needs(eng->conf, m);
+			for (k = 0; m->arm && k < e->narms; k++)
+				if (m->want_sketch && m->arm[k].sk == NULL)
+					m->arm[k].sk = sketch_new(
+					    eng->conf->sketch_accuracy,
+					    eng->conf->sketch_buckets);
+		}
+		exp_settings(eng, e);
+		exp_ensure_tests(eng, e);
+	}
+	conf_free(old);
+	(void)cause;
+	return 0;
+}
+
+/* Find or create the metric of a record; 0 or a reject reason. */
+static enum engine_reject
+metric_for(struct engine *eng, struct experiment *e, const char *name,
+    enum metric_kind kind, struct metric **out)
+{
+	struct metric *m;
+	int i, j;
+
+	if ((i = metric_find(e, name)) < 0) {
+		if ((uint32_t)e->nmetrics >= eng->conf->max_metrics)
+			return ENGINE_E_METRICS;
+		/* a metric a guardrail reads must arrive as that guardrail's
+		 * record kind */
+		for (j = 0; j < eng->conf->nguardrails; j++) {
+			const struct conf_guardrail *g =
+			    &eng->conf->guardrails[j];
+			int obs = g->test == TEST_MEAN ||
+			    g->test == TEST_QUANTILE;
+			if (strcmp(g->metric, name) == 0 &&
+			    obs != (kind == METRIC_OBSERVE))
+				return ENGINE_E_MISMATCH;
+		}
+		e->metrics = xreallocarray(e->metrics, (size_t)e->nmetrics + 1,
+		    sizeof *e->metrics);
+		m = &e->metrics[e->nmetrics];
+		memset(m, 0, sizeof *m);
+		snprintf(m->name, sizeof m->name, "%s", name);
+		m->len = (uint8_t)strlen(m->name);
+		m->kind = kind;
+		engine_metric_needs(eng->conf, m);
+		engine_metric_alloc_series(eng, e, m);
+		e->nmetrics++;
+		eng->counters.series += (uint64_t)e->narms;
+		engine_link_tests(eng, e);
+		i = e->nmetrics - 1;
+	}
+	m = &e->metrics[i];
+	if (m->kind != kind)
+		return ENGINE_E_MISMATCH;
+	*out = m;
+	return ENGINE_OK;
+}
+
+/* Cheap tests reading metric mi, for one arm (all treatments when the
+ * control moved). */
+static void
+evaluate_metric(struct engine *eng, struct experiment *e, int mi, int arm)
+{
+	struct test *t;
+	int i;
+
+	for (i = 0; i < e->ntests; i++) {
+		t = &e->tests[i];
+		if (t->metric != mi || (arm != 0 && t->arm != arm))
+			continue;
+		t->dirty = 1;
+		verdict_evaluate(eng, e, t, 0);
+	}
+}
+
+enum engine_reject
+engine_apply(struct engine *eng, const struct record *r, double now,
+    uint64_t event)
+{
+	struct experiment *e;
+	struct metric *m;
+	enum engine_reject rc = ENGINE_OK;
+	double x[PROTO_PLAN_MAX];
+	int arm, mi;
+
+	eng->now = now;
+	eng->event = event;
+	if (r->kind == PROTO_PLAN) {
+		rc = apply_plan(eng, r->arms, r->narms, r->experiment, now);
+		goto done;
+	}
+	if ((e = exp_find(eng, r->experiment)) == NULL) {
+		rc = ENGINE_E_UNPLANNED;
+		goto done;
+	}
+	if ((arm = arm_find(e, r->variant)) < 0) {
+		rc = ENGINE_E_VARIANT;
+		goto done;
+	}
+	e->last_ts = now;
+	e->last_event = event;
+	switch (r->kind) {
+	case PROTO_EXPOSE:
+		e->exposures[arm] += r->units;
+		memset(x, 0, sizeof x);
+		x[arm] = (double)r->units;
+		/* exact Dirichlet-multinomial batch update (sec. 3) */
+		e->srm_log_e += stats_dm_update(e->narms, e->srm_a, x,
+		    e->theta0);
+		verdict_srm(eng, e);
+		break;
+	case PROTO_OBSERVE:
+		if ((rc = metric_for(eng, e, r->metric, METRIC_OBSERVE,
+		    &m)) != ENGINE_OK)
+			goto done;
+		tally_moments_add(&m->arm[arm].m, r->value);
+		if (m->arm[arm].sk != NULL)
+			sketch_add(m->arm[arm].sk, r->value, 1);
+		mi = (int)(m - e->metrics);
+		evaluate_metric(eng, e, mi, arm);
+		break;
+	case PROTO_COUNT:
+		if ((rc = metric_for(eng, e, r->metric, METRIC_COUNT, &m)) !=
+		    ENGINE_OK)
+			goto done;
+		if (m->want_k_le_n && r->k > r->n) {
+			rc = ENGINE_E_K_GT_N;
+			goto done;
+		}
+		tally_ratio_add(&m->arm[arm].r, r->k, r->n);
+		mi = (int)(m - e->metrics);
+		evaluate_metric(eng, e, mi, arm);
+		break;
+	default:
+		break;
+	}
+done:
+	if (rc == ENGINE_OK)
+		eng->counters.applied[r->kind]++;
+	else
+		eng->counters.rejected[rc]++;
+	return rc;
+}
+
+void
+engine_tick(struct engine *eng, double now)
+{
+	struct experiment *e;
+	struct test *t;
+	uint32_t i, cap = eng->conf->history_points;
+	int j;
+
+	eng->now = now;
+	for (i = 0; i < eng->nexps; i++) {
+		e = eng->exps[i];
+		for (j = 0; j < e->ntests; j++) {
+			t = &e->tests[j];
+			if (t->dirty)
+				verdict_evaluate(eng, e, t, 1);
+			if (t->hist_dirty) {
+				hist_offer(&t->hist, cap, now, t->est,
+				    t->cs_lo, t->cs_hi,
+				    stats_p_from_log_e(t->max_log_e));
+				t->hist_dirty = 0;
+			}
+		}
+		if (e->srm_dirty) {
+			hist_offer(&e->srm_hist, cap, now, e->srm_log_e,
+			    log(1 / e->srm_alpha), 0,
+			    stats_p_from_log_e(e->srm_max_log_e));
+			e->srm_dirty = 0;
+		}
+	}
+}
+
+int
+engine_plan(struct engine *eng, const char *id, const struct proto_arm *arms,
+    int narms, double now, char **cause)
+{
+	int i, j;
+
+	if (!proto_name_ok(id, strlen(id))) {
+		xasprintf(cause, "bad experiment name");
+		return -1;
+	}
+	if (narms < 2 || narms > PROTO_PLAN_MAX) {
+		xasprintf(cause, "a plan needs 2 to %d arms", PROTO_PLAN_MAX);
+		return -1;
+	}
+	for (i = 0; i < narms; i++) {
+		if (!proto_name_ok(arms[i].name, strlen(arms[i].name)) ||
+		    !(arms[i].weight > 0) || !isfinite(arms[i].weight)) {
+			xasprintf(cause, "arm %d: bad variant name or weight",
+			    i + 1);
+			return -1;
+		}
+		for (j = 0; j < i; j++)
+			if (strcmp(arms[i].name, arms[j].name) == 0) {
+				xasprintf(cause, "variant %s appears twice",
+				    arms[i].name);
+				return -1;
+			}
+	}
+	eng->now = now;
+	switch (apply_plan(eng, arms, narms, id, now)) {
+	case ENGINE_OK:
+		return 0;
+	case ENGINE_E_VARIANTS:
+		xasprintf(cause, "more than %u arms", eng->conf->max_variants);
+		return -1;
+	default:
+		xasprintf(cause, "experiment cap (%u) reached",
+		    eng->conf->max_experiments);
+		return -1;
+	}
+}
+
+static int
+epoch_action(struct engine *eng, const char *id, double now, int forget,
+    char **cause)
+{
+	struct experiment *e;
+
+	if ((e = exp_find(eng, id)) == NULL) {
+		xasprintf(cause, "no experiment %s", id);
+		return -1;
+	}
+	eng->now = now;
+	exp_new_epoch(eng, e, e->arms, e->narms, now, forget);
+	return 0;
+}
+
+int
+engine_new_epoch(struct engine *eng, const char *id, double now,
+    char **cause)
+{
+	return epoch_action(eng, id, now, 0, cause);
+}
+
+int
+engine_reset(struct engine *eng, const char *id, double now, char **cause)
+{
+	return epoch_action(eng, id, now, 1, cause);
+}
+
+void
+engine_counters(const struct engine *eng, struct engine_counters *c)
+{
+	const struct experiment *e;
+	uint32_t i;
+	int j, k;
+	size_t bytes = sizeof *eng + nmap_bytes(eng->index) +
+	    eng->capexps * sizeof *eng->exps;
+	uint64_t tests = 0;
+
+	for (i = 0; i < eng->nexps; i++) {
+		e = eng->exps[i];
+		bytes += sizeof *e + (size_t)e->nmetrics * sizeof *e->metrics +
+		    (size_t)e->testcap * sizeof *e->tests +
+		    (e->epochs ? ENGINE_EPOCHS_KEPT * sizeof *e->epochs : 0) +
+		    e->srm_hist.cap * sizeof(struct hist_point);
+		for (j = 0; j < e->nmetrics; j++) {
+			if (e->metrics[j].arm == NULL)
+				continue;
+			bytes += (size_t)e->narms * sizeof(struct series);
+			for (k = 0; k < e->narms; k++)
+				if (e->metrics[j].arm[k].sk)
+					bytes += sketch_bytes(
+					    e->metrics[j].arm[k].sk);
+		}
+		for (j = 0; j < e->ntests; j++)
+			bytes += e->tests[j].hist.cap *
+			    sizeof(struct hist_point);
+		tests += (uint64_t)e->ntests;
+	}
+	*c = eng->counters;
+	c->experiments = eng->nexps;
+	c->tests = tests;
+	c->bytes = bytes;
+}
+
+static void
+foreach_exp(const struct engine *eng, const struct experiment *e,
+    void (*cb)(void *, const struct finding *), void *arg)
+{
+	struct finding f;
+	int j;
+
+	engine_fill_srm(eng, e, FINDING_SRM, &f);
+	cb(arg, &f);
+	for (j = 0; j < e->ntests; j++) {
+		if (e->tests[j].arm <= 0)
+			continue;
+		engine_fill_finding(eng, e, &e->tests[j], FINDING_VERDICT, &f);
+		cb(arg, &f);
+	}
+}
+
+void
+engine_foreach(const struct engine *eng,
+    void (*cb)(void *, const struct finding *), void *arg)
+{
+	uint32_t i;
+
+	for (i = 0; i < eng->nexps; i++)
+		foreach_exp(eng, eng->exps[i], cb, arg);
+}
+
+int
+engine_foreach_in(const struct engine *eng, const char *id,
+    void (*cb)(void *, const struct finding *), void *arg)
+{
+	const struct experiment *e = exp_find(eng, id);
+
+	if (e == NULL)
+		return -1;
+	foreach_exp(eng, e, cb, arg);
+	return 0;
+}

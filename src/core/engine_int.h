@@ -1,0 +1,161 @@
+/*
+ * engine_int.h: the engine's internal structures, shared by engine.c
+ * (apply, tick, plans), verdict.c (tests -> verdicts) and engine_json.c
+ * (views, checkpoints). Nothing outside src/core includes this.
+ *
+ * Ownership: struct engine owns experiments; an experiment owns its
+ * metrics (each owning one series per arm), its tests and histories.
+ */
+#ifndef STOPCOCK_ENGINE_INT_H
+#define STOPCOCK_ENGINE_INT_H
+
+#include <stdint.h>
+
+#include "stopcock/conf.h"
+#include "stopcock/engine.h"
+#include "stopcock/names.h"
+#include "stopcock/sketch.h"
+#include "stopcock/stats.h"
+#include "stopcock/tally.h"
+
+/* Minimum records per arm before a plug-in variance is trusted
+ * (common practice for CLT-based tests; our choice of 30). */
+#define ENGINE_BURN_IN 30
+
+enum metric_kind { METRIC_UNSET, METRIC_OBSERVE, METRIC_COUNT };
+
+struct series {
+	struct tally_moments	 m;	/* observe values */
+	struct tally_ratio	 r;	/* count records */
+	struct sketch		*sk;	/* when a quantile guardrail reads it */
+};
+
+struct metric {
+	char		 name[PROTO_NAME_MAX + 1];
+	uint8_t		 len;
+	enum metric_kind kind;
+	int		 want_sketch;
+	int		 want_k_le_n;	/* a proportion guardrail reads it */
+	struct series	*arm;		/* [narms] */
+};
+
+/* Chart history: a bounded series of points, decimated by two when full. */
+struct hist_point {
+	double	t;
+	float	a, b, c, p;	/* estimate, lower, upper, p (SRM: log_e) */
+};
+
+struct hist {
+	uint32_t		 n, cap;
+	uint32_t		 stride;	/* take every stride-th offer */
+	uint32_t		 skip;
+	struct hist_point	*pt;
+};
+
+/* One guardrail x treatment arm. Identity: (guardrail name, variant). */
+struct test {
+	int		 g;		/* index into conf->guardrails */
+	char		 variant[PROTO_NAME_MAX + 1];
+	int		 arm;		/* index in the current plan, -1 gone */
+	int		 metric;	/* index in exp->metrics, -1 not seen */
+	enum verdict	 verdict;
+	double		 log_e;		/* current epoch, at the margin */
+	double		 closed_log_e;	/* product of closed epochs' values */
+	double		 max_log_e;	/* running max of closed + current */
+	double		 cs_lo, cs_hi;	/* running intersection, this epoch */
+	double		 est, lo, hi;	/* latest estimate and CS (absolute) */
+	double		 rel, rel_lo, rel_hi;
+	double		 margin_abs;
+	double		 ctl_value, trt_value;
+	double		 ctl_lo, ctl_hi, trt_lo, trt_hi;	/* quantile CSs */
+	double		 first_ts;
+	uint64_t	 first_event;
+	int		 pause_sent;	/* FINDING_PAUSE emitted this epoch */
+	int		 dirty;		/* data changed since last evaluation */
+	int		 hist_dirty;
+	struct hist	 hist;
+};
+
+struct epoch_info {
+	uint32_t	 epoch;
+	double		 started;
+	int		 narms;
+	struct proto_arm arms[PROTO_PLAN_MAX];
+};
+
+struct experiment {
+	char		 id[PROTO_NAME_MAX + 1];
+	uint32_t	 epoch;		/* 1-based */
+	int		 narms;
+	struct proto_arm arms[PROTO_PLAN_MAX];
+	double		 theta0[PROTO_PLAN_MAX];	/* normalised weights */
+	uint64_t	 exposures[PROTO_PLAN_MAX];	/* this epoch */
+	double		 alpha, srm_alpha, plan_units;
+	int		 family;	/* guardrails x treatment arms */
+
+	/* SRM, this epoch (Lindon & Malek 2022 Dirichlet-multinomial). */
+	double		 srm_a[PROTO_PLAN_MAX];	/* posterior concentration */
+	double		 srm_log_e, srm_max_log_e;
+	int		 srm_fired;	/* untrusted this epoch */
+	double		 srm_first_ts;
+	uint64_t	 srm_first_event;
+	int		 srm_dirty;
+	struct hist	 srm_hist;
+
+	int		 nmetrics;
+	struct metric	*metrics;	/* [nmetrics], grows to max_metrics */
+	int		 ntests, testcap;
+	struct test	*tests;
+
+	int		 nepochs;	/* epoch boundaries for charts */
+	struct epoch_info *epochs;	/* bounded: last ENGINE_EPOCHS_KEPT */
+
+	double		 last_ts;
+	uint64_t	 last_event;
+};
+
+#define ENGINE_EPOCHS_KEPT 32
+
+struct engine {
+	struct conf	*conf;		/* owned copy */
+	uint8_t		 key[16];
+	struct nmap	*index;		/* id -> slot in exps */
+	struct experiment **exps;
+	uint32_t	 nexps, capexps;
+	engine_sink	 sink;
+	void		*sink_arg;
+	struct engine_counters counters;
+	double		 now;
+	uint64_t	 event;
+	/* Scratch for quantile tests, grown once, reused every tick. */
+	double		*scratch_v;
+	uint64_t	*scratch_c;
+	size_t		 scratch_n;
+};
+
+/* engine.c */
+struct experiment *engine_exp_new(struct engine *, const char *id,
+		    const struct proto_arm *, int narms, double now);
+void		 engine_exp_free(struct experiment *);
+void		 engine_fill_finding(const struct engine *,
+		    const struct experiment *, const struct test *,
+		    enum finding_kind, struct finding *);
+void		 engine_fill_srm(const struct engine *,
+		    const struct experiment *, enum finding_kind,
+		    struct finding *);
+void		 engine_emit(struct engine *, const struct finding *);
+int		 engine_metric_alloc_series(struct engine *,
+		    struct experiment *, struct metric *);
+void		 engine_metric_needs(const struct conf *, struct metric *);
+void		 engine_link_tests(const struct engine *, struct experiment *);
+void		 hist_offer(struct hist *, uint32_t cap, double t, double a,
+		    double b, double c, double p);
+void		 hist_free(struct hist *);
+
+/* verdict.c */
+void		 verdict_evaluate(struct engine *, struct experiment *,
+		    struct test *, int costly);
+void		 verdict_srm(struct engine *, struct experiment *);
+double		 verdict_level(const struct experiment *);
+
+#endif

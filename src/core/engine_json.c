@@ -1,0 +1,783 @@
+/*
+ * engine_json.c: the engine's state as JSON. Two kinds of output live
+ * here: the read-only views the API, the page, `stopcock status` and
+ * replay print (finding_json, engine_json_list, engine_json_experiment),
+ * and the full state image the daemon checkpoints (engine_save,
+ * engine_restore). Views write non-finite numbers as null; the state
+ * image keeps infinities as the strings "inf"/"-inf" so a restore gives
+ * back exactly the running intersections it saved.
+ */
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include <openssl/evp.h>
+
+#include "stopcock/util.h"
+#include "engine_int.h"
+
+#define STATE_FORMAT "stopcock-engine"
+#define STATE_VERSION 1
+
+/* ---- views ---- */
+
+static json_t *
+jnum(double x)
+{
+	return isfinite(x) ? json_real(x) : json_null();
+}
+
+static const char *
+finding_kind_name(enum finding_kind k)
+{
+	switch (k) {
+	case FINDING_VERDICT:
+		return "verdict";
+	case FINDING_SRM:
+		return "srm";
+	case FINDING_UNTRUSTED:
+		return "untrusted";
+	case FINDING_PAUSE:
+		return "pause";
+	case FINDING_EPOCH:
+		return "epoch";
+	}
+	return "unknown";
+}
+
+static json_t *
+arms_json(const struct finding *f)
+{
+	json_t *a = json_array(), *o;
+	int i;
+
+	for (i = 0; i < f->narms; i++) {
+		const struct finding_arm *fa = &f->arms[i];
+		o = json_pack("{s:s, s:o, s:I}", "variant", fa->variant,
+		    "weight", jnum(fa->weight), "exposures",
+		    (json_int_t)fa->exposures);
+		json_object_set_new(o, "n", jnum(fa->n));
+		json_object_set_new(o, "k", jnum(fa->k));
+		json_object_set_new(o, "value", jnum(fa->value));
+		json_object_set_new(o, "lower", jnum(fa->lower));
+		json_object_set_new(o, "upper", jnum(fa->upper));
+		json_array_append_new(a, o);
+	}
+	return a;
+}
+
+static void
+set_str(json_t *o, const char *k, const char *v)
+{
+	json_object_set_new(o, k, v ? json_string(v) : json_null());
+}
+
+json_t *
+finding_json(const struct finding *f)
+{
+	json_t *o = json_object();
+
+	set_str(o, "kind", finding_kind_name(f->kind));
+	set_str(o, "experiment", f->experiment);
+	json_object_set_new(o, "epoch", json_integer(f->epoch));
+	set_str(o, "guardrail", f->guardrail);
+	set_str(o, "metric", f->metric);
+	set_str(o, "test", f->test);
+	json_object_set_new(o, "quantile", f->quantile > 0 ?
+	    json_real(f->quantile) : json_null());
+	set_str(o, "variant", f->variant);
+	set_str(o, "control", f->control);
+	set_str(o, "harm", f->harm);
+	set_str(o, "action", f->action_pause ? "pause" : "alert");
+	set_str(o, "verdict", verdict_name(f->verdict));
+	set_str(o, "previous", verdict_name(f->previous));
+	json_object_set_new(o, "p", jnum(f->p));
+	json_object_set_new(o, "log_e", jnum(f->log_e));
+	json_object_set_new(o, "alpha", jnum(f->alpha));
+	json_object_set_new(o, "alpha_total", jnum(f->alpha_total));
+	json_object_set_new(o, "family", json_integer(f->family));
+	json_object_set_new(o, "estimate", jnum(f->estimate));
+	json_object_set_new(o, "lower", jnum(f->lower));
+	json_object_set_new(o, "upper", jnum(f->upper));
+	json_object_set_new(o, "rel_estimate", jnum(f->rel_estimate));
+	json_object_set_new(o, "rel_lower", jnum(f->rel_lower));
+	json_object_set_new(o, "rel_upper", jnum(f->rel_upper));
+	json_object_set_new(o, "margin", jnum(f->margin));
+	json_object_set_new(o, "chi2_p", jnum(f->chi2_p));
+	json_object_set_new(o, "sketch_accuracy", jnum(f->sketch_accuracy));
+	json_object_set_new(o, "untrusted", json_boolean(f->untrusted));
+	json_object_set_new(o, "ts", jnum(f->ts));
+	json_object_set_new(o, "first_ts", jnum(f->first_ts));
+	json_object_set_new(o, "event", json_integer((json_int_t)f->event));
+	json_object_set_new(o, "arms", arms_json(f));
+	return o;
+}
+
+struct list_ctx {
+	json_t	*guardrails;
+	json_t	*srm;
+};
+
+static void
+list_cb(void *arg, const struct finding *f)
+{
+	struct list_ctx *c = arg;
+
+	if (f->kind == FINDING_SRM) {
+		c->srm = json_pack("{s:s, s:o, s:o}", "verdict",
+		    verdict_name(f->verdict), "p", jnum(f->p), "chi2_p",
+		    jnum(f->chi2_p));
+		return;
+	}
+	json_array_append_new(c->guardrails, json_pack(
+	    "{s:s, s:s, s:s, s:s, s:o, s:b}", "name", f->guardrail,
+	    "variant", f->variant, "metric", f->metric, "verdict",
+	    verdict_name(f->verdict), "p", jnum(f->p), "untrusted",
+	    f->untrusted));
+}
+
+static json_t *
+exp_summary(const struct engine *eng, const struct experiment *e)
+{
+	struct list_ctx c;
+	json_t *o, *arms = json_array();
+	int i;
+
+	for (i = 0; i < e->narms; i++)
+		json_array_append_new(arms, json_pack("{s:s, s:o, s:I}",
+		    "variant", e->arms[i].name, "weight",
+		    jnum(e->arms[i].weight), "exposures",
+		    (json_int_t)e->exposures[i]));
+	c.guardrails = json_array();
+	c.srm = NULL;
+	engine_foreach_in(eng, e->id, list_cb, &c);
+	o = json_pack("{s:s, s:i, s:b, s:o, s:o, s:o}", "id", e->id, "epoch",
+	    (int)e->epoch, "untrusted", e->srm_fired, "arms", arms,
+	    "guardrails", c.guardrails, "srm", c.srm ? c.srm : json_null());
+	json_object_set_new(o, "last_ts", jnum(e->last_ts));
+	return o;
+}
+
+json_t *
+engine_json_list(const struct engine *eng)
+{
+	json_t *a = json_array();
+	uint32_t i;
+
+	for (i = 0; i < eng->nexps; i++)
+		json_array_append_new(a, exp_summary(eng, eng->exps[i]));
+	return json_pack("{s:o}", "experiments", a);
+}
+
+static json_t *
+hist_json(const struct hist *h, int srm)
+{
+	json_t *a = json_array();
+	uint32_t i;
+
+	for (i = 0; i < h->n; i++) {
+		const struct hist_point *p = &h->pt[i];
+		if (srm)
+			json_array_append_new(a, json_pack("[o, o, o]",
+			    jnum(p->t), jnum(p->a), jnum(p->p)));
+		else
+			json_array_append_new(a, json_pack("[o, o, o, o, o]",
+			    jnum(p->t), jnum(p->a), jnum(p->b), jnum(p->c),
+			    jnum(p->p)));
+	}
+	return a;
+}
+
+struct detail_ctx {
+	const struct experiment	*e;
+	json_t			*tests;
+	json_t			*srm;
+	int			 i;
+};
+
+static void
+detail_cb(void *arg, const struct finding *f)
+{
+	struct detail_ctx *c = arg;
+	json_t *o = finding_json(f);
+	int j;
+
+	if (f->kind == FINDING_SRM) {
+		json_object_set_new(o, "history", hist_json(&c->e->srm_hist,
+		    1));
+		c->srm = o;
+		return;
+	}
+	/* foreach_exp walks tests in order, skipping those without an arm */
+	for (j = c->i; j < c->e->ntests; j++)
+		if (c->e->tests[j].arm > 0)
+			break;
+	c->i = j + 1;
+	if (j < c->e->ntests)
+		json_object_set_new(o, "history",
+		    hist_json(&c->e->tests[j].hist, 0));
+	json_array_append_new(c->tests, o);
+}
+
+json_t *
+engine_json_experiment(const struct engine *eng, const char *id)
+{
+	const struct experiment *e;
+	struct detail_ctx c;
+	json_t *o, *ep, *arms;
+	uint32_t slot;
+	int i, j;
+
+	if (nmap_get(eng->index, id, strlen(id), &slot) != 0)
+		return NULL;
+	e = eng->exps[slot];
+	o = exp_summary(eng, e);
+	c.e = e;
+	c.tests = json_array();
+	c.srm = NULL;
+	c.i = 0;
+	engine_foreach_in(eng, id, detail_cb, &c);
+	json_object_set_new(o, "tests", c.tests);
+	if (c.srm)
+		json_object_set_new(o, "srm", c.srm);
+	set_str(o, "control", e->arms[0].name);
+	json_object_set_new(o, "alpha", jnum(e->alpha));
+	json_object_set_new(o, "srm_alpha", jnum(e->srm_alpha));
+	json_object_set_new(o, "family", json_integer(e->family));
+	json_object_set_new(o, "plan_units", jnum(e->plan_units));
+	ep = json_array();
+	for (i = 0; i < e->nepochs; i++) {
+		arms = json_array();
+		for (j = 0; j < e->epochs[i].narms; j++)
+			json_array_append_new(arms, json_pack("{s:s, s:o}",
+			    "variant", e->epochs[i].arms[j].name, "weight",
+			    jnum(e->epochs[i].arms[j].weight)));
+		json_array_append_new(ep, json_pack("{s:i, s:o, s:o}",
+		    "epoch", (int)e->epochs[i].epoch, "started",
+		    jnum(e->epochs[i].started), "arms", arms));
+	}
+	json_object_set_new(o, "epochs", ep);
+	return o;
+}
+
+/* ---- state image ---- */
+
+static json_t *
+sreal(double x)
+{
+	if (isfinite(x))
+		return json_real(x);
+	if (isnan(x))
+		return json_null();
+	return json_string(x > 0 ? "inf" : "-inf");
+}
+
+static int
+get_real(const json_t *o, const char *k, double *out)
+{
+	const json_t *v = json_object_get(o, k);
+	const char *s;
+
+	if (v == NULL)
+		return -1;
+	if (json_is_number(v)) {
+		*out = json_number_value(v);
+		return 0;
+	}
+	if (json_is_null(v)) {
+		*out = NAN;
+		return 0;
+	}
+	if ((s = json_string_value(v)) != NULL) {
+		if (strcmp(s, "inf") == 0)
+			*out = INFINITY;
+		else if (strcmp(s, "-inf") == 0)
+			*out = -INFINITY;
+		else
+			return -1;
+		return 0;
+	}
+	return -1;
+}
+
+static double
+aget(const json_t *a, size_t i)
+{
+	const json_t *v = json_array_get(a, i);
+
+	if (json_is_number(v))
+		return json_number_value(v);
+	if (json_is_string(v))
+		return strcmp(json_string_value(v), "-inf") == 0 ? -INFINITY :
+		    INFINITY;
+	return NAN;
+}
+
+static json_t *
+hist_save(const struct hist *h)
+{
+	json_t *a = json_array();
+	uint32_t i;
+
+	for (i = 0; i < h->n; i++)
+		json_array_append_new(a, json_pack("[o, o, o, o, o]",
+		    sreal(h->pt[i].t), sreal(h->pt[i].a), sreal(h->pt[i].b),
+		    sreal(h->pt[i].c), sreal(h->pt[i].p)));
+	return json_pack("{s:o, s:i, s:i}", "points", a, "stride",
+	    (int)h->stride, "skip", (int)h->skip);
+}
+
+static void
+hist_load(struct hist *h, const json_t *o, uint32_t cap)
+{
+	const json_t *a = json_object_get(o, "points"), *p;
+	size_t i;
+
+	memset(h, 0, sizeof *h);
+	json_array_foreach(a, i, p) {
+		if (i >= cap)
+			break;
+		hist_offer(h, cap, aget(p, 0), aget(p, 1), aget(p, 2),
+		    aget(p, 3), aget(p, 4));
+	}
+	h->stride = (uint32_t)json_integer_value(json_object_get(o,
+	    "stride"));
+	if (h->stride == 0)
+		h->stride = 1;
+	h->skip = (uint32_t)json_integer_value(json_object_get(o, "skip"));
+}
+
+static json_t *
+arms_save(const struct proto_arm *arms, int narms)
+{
+	json_t *a = json_array();
+	int i;
+
+	for (i = 0; i < narms; i++)
+		json_array_append_new(a, json_pack("[s, f]", arms[i].name,
+		    arms[i].weight));
+	return a;
+}
+
+static int
+arms_load(const json_t *a, struct proto_arm *arms, int *narms)
+{
+	const json_t *v;
+	size_t i;
+	const char *name;
+
+	if (!json_is_array(a) || json_array_size(a) < 2 ||
+	    json_array_size(a) > PROTO_PLAN_MAX)
+		return -1;
+	json_array_foreach(a, i, v) {
+		name = json_string_value(json_array_get(v, 0));
+		if (name == NULL || !proto_name_ok(name, strlen(name)))
+			return -1;
+		snprintf(arms[i].name, sizeof arms[i].name, "%s", name);
+		arms[i].weight = aget(v, 1);
+		if (!(arms[i].weight > 0))
+			return -1;
+	}
+	*narms = (int)json_array_size(a);
+	return 0;
+}
+
+static json_t *
+sketch_save(const struct sketch *sk)
+{
+	size_t n = sketch_encoded_size(sk), m;
+	uint8_t *buf = xmalloc(n);
+	char *b64;
+	json_t *s;
+
+	m = sketch_encode(sk, buf, n);
+	b64 = xmalloc(4 * ((m + 2) / 3) + 1);
+	EVP_EncodeBlock((unsigned char *)b64, buf, (int)m);
+	s = json_string(b64);
+	free(b64);
+	free(buf);
+	return s;
+}
+
+static struct sketch *
+sketch_load(const char *b64)
+{
+	size_t len = strlen(b64), pad = 0;
+	uint8_t *buf;
+	int n;
+	struct sketch *sk;
+
+	if (len % 4 != 0 || len > (1u << 26))
+		return NULL;
+	buf = xmalloc(len / 4 * 3 + 1);
+	if ((n = EVP_DecodeBlock(buf, (const unsigned char *)b64,
+	    (int)len)) < 0) {
+		free(buf);
+		return NULL;
+	}
+	if (len >= 1 && b64[len - 1] == '=')
+		pad++;
+	if (len >= 2 && b64[len - 2] == '=')
+		pad++;
+	sk = sketch_decode(buf, (size_t)n - pad);
+	free(buf);
+	return sk;
+}
+
+static json_t *
+exp_save(const struct experiment *e, const struct conf *conf)
+{
+	json_t *o, *a, *m, *arms, *tests;
+	int i, j;
+
+	o = json_pack("{s:s, s:i, s:o}", "id", e->id, "epoch", (int)e->epoch,
+	    "arms", arms_save(e->arms, e->narms));
+	a = json_array();
+	for (i = 0; i < e->narms; i++)
+		json_array_append_new(a, json_integer(
+		    (json_int_t)e->exposures[i]));
+	json_object_set_new(o, "exposures", a);
+	a = json_array();
+	for (i = 0; i < e->narms; i++)
+		json_array_append_new(a, sreal(e->srm_a[i]));
+	json_object_set_new(o, "srm", json_pack(
+	    "{s:o, s:o, s:o, s:b, s:o, s:I, s:o}", "a", a, "log_e",
+	    sreal(e->srm_log_e), "max_log_e", sreal(e->srm_max_log_e),
+	    "fired", e->srm_fired, "first_ts", sreal(e->srm_first_ts),
+	    "first_event", (json_int_t)e->srm_first_event, "hist",
+	    hist_save(&e->srm_hist)));
+	a = json_array();
+	for (i = 0; i < e->nepochs; i++)
+		json_array_append_new(a, json_pack("{s:i, s:o, s:o}", "epoch",
+		    (int)e->epochs[i].epoch, "started",
+		    sreal(e->epochs[i].started), "arms",
+		    arms_save(e->epochs[i].arms, e->epochs[i].narms)));
+	json_object_set_new(o, "epochs", a);
+	a = json_array();
+	for (i = 0; i < e->nmetrics; i++) {
+		const struct metric *mt = &e->metrics[i];
+		arms = json_array();
+		for (j = 0; mt->arm && j < e->narms; j++) {
+			const struct series *s = &mt->arm[j];
+			m = json_pack("{s:[I, o, o], s:[I, o, o, o, o, o]}",
+			    "m", (json_int_t)s->m.n, sreal(s->m.mean),
+			    sreal(s->m.m2), "r", (json_int_t)s->r.records,
+			    sreal((double)s->r.k), sreal((double)s->r.n),
+			    sreal((double)s->r.kk), sreal((double)s->r.kn),
+			    sreal((double)s->r.nn));
+			if (s->sk)
+				json_object_set_new(m, "sketch",
+				    sketch_save(s->sk));
+			json_array_append_new(arms, m);
+		}
+		json_array_append_new(a, json_pack("{s:s, s:i, s:o}", "name",
+		    mt->name, "kind", (int)mt->kind, "series", arms));
+	}
+	json_object_set_new(o, "metrics", a);
+	tests = json_array();
+	for (i = 0; i < e->ntests; i++) {
+		const struct test *t = &e->tests[i];
+		const struct conf_guardrail *g = &conf->guardrails[t->g];
+		json_t *to = json_pack("{s:s, s:s, s:s, s:s, s:i}",
+		    "guardrail", g->name, "metric", g->metric, "test",
+		    conf_test_name(g->test), "variant", t->variant, "verdict",
+		    (int)t->verdict);
+		json_object_set_new(to, "log_e", sreal(t->log_e));
+		json_object_set_new(to, "closed_log_e", sreal(t->closed_log_e));
+		json_object_set_new(to, "max_log_e", sreal(t->max_log_e));
+		json_object_set_new(to, "cs_lo", sreal(t->cs_lo));
+		json_object_set_new(to, "cs_hi", sreal(t->cs_hi));
+		json_object_set_new(to, "est", sreal(t->est));
+		json_object_set_new(to, "lo", sreal(t->lo));
+		json_object_set_new(to, "hi", sreal(t->hi));
+		json_object_set_new(to, "rel", sreal(t->rel));
+		json_object_set_new(to, "rel_lo", sreal(t->rel_lo));
+		json_object_set_new(to, "rel_hi", sreal(t->rel_hi));
+		json_object_set_new(to, "margin_abs", sreal(t->margin_abs));
+		json_object_set_new(to, "ctl_value", sreal(t->ctl_value));
+		json_object_set_new(to, "trt_value", sreal(t->trt_value));
+		json_object_set_new(to, "ctl_lo", sreal(t->ctl_lo));
+		json_object_set_new(to, "ctl_hi", sreal(t->ctl_hi));
+		json_object_set_new(to, "trt_lo", sreal(t->trt_lo));
+		json_object_set_new(to, "trt_hi", sreal(t->trt_hi));
+		json_object_set_new(to, "first_ts", sreal(t->first_ts));
+		json_object_set_new(to, "first_event",
+		    json_integer((json_int_t)t->first_event));
+		json_object_set_new(to, "pause_sent",
+		    json_boolean(t->pause_sent));
+		json_object_set_new(to, "dirty", json_boolean(t->dirty));
+		json_object_set_new(to, "hist", hist_save(&t->hist));
+		json_array_append_new(tests, to);
+	}
+	json_object_set_new(o, "tests", tests);
+	json_object_set_new(o, "last_ts", sreal(e->last_ts));
+	json_object_set_new(o, "last_event",
+	    json_integer((json_int_t)e->last_event));
+	return o;
+}
+
+json_t *
+engine_save(const struct engine *eng)
+{
+	json_t *a = json_array(), *c;
+	uint32_t i;
+	int k;
+
+	for (i = 0; i < eng->nexps; i++)
+		json_array_append_new(a, exp_save(eng->exps[i], eng->conf));
+	c = json_object();
+	json_object_set_new(c, "applied", json_array());
+	json_object_set_new(c, "rejected", json_array());
+	for (k = 0; k < 4; k++)
+		json_array_append_new(json_object_get(c, "applied"),
+		    json_integer((json_int_t)eng->counters.applied[k]));
+	for (k = 0; k < ENGINE_NREJECT; k++)
+		json_array_append_new(json_object_get(c, "rejected"),
+		    json_integer((json_int_t)eng->counters.rejected[k]));
+	json_object_set_new(c, "findings",
+	    json_integer((json_int_t)eng->counters.findings));
+	return json_pack("{s:s, s:i, s:o, s:I, s:o, s:o}", "format",
+	    STATE_FORMAT, "version", STATE_VERSION, "now", sreal(eng->now),
+	    "event", (json_int_t)eng->event, "counters", c, "experiments", a);
+}
+
+/* Find the guardrail a saved test belongs to; -1 when it changed. */
+static int
+restore_guardrail(const struct conf *conf, const json_t *to)
+{
+	const char *name = json_string_value(json_object_get(to, "guardrail"));
+	const char *metric = json_string_value(json_object_get(to, "metric"));
+	const char *test = json_string_value(json_object_get(to, "test"));
+	int g;
+
+	if (name == NULL || metric == NULL || test == NULL)
+		return -1;
+	for (g = 0; g < conf->nguardrails; g++)
+		if (strcmp(conf->guardrails[g].name, name) == 0 &&
+		    strcmp(conf->guardrails[g].metric, metric) == 0 &&
+		    strcmp(conf_test_name(conf->guardrails[g].test),
+		    test) == 0)
+			return g;
+	return -1;
+}
+
+static int
+exp_restore(struct engine *eng, const json_t *o, char **cause)
+{
+	struct proto_arm arms[PROTO_PLAN_MAX];
+	struct experiment *e;
+	const json_t *a, *v, *srm, *ser, *sv;
+	const char *id = json_string_value(json_object_get(o, "id"));
+	int narms, g;
+	size_t i, j;
+	uint32_t cap = eng->conf->history_points;
+
+	if (id == NULL || !proto_name_ok(id, strlen(id)) ||
+	    arms_load(json_object_get(o, "arms"), arms, &narms) != 0) {
+		xasprintf(cause, "experiment entry without a valid id or plan");
+		return -1;
+	}
+	if (nmap_get(eng->index, id, strlen(id), &(uint32_t){0}) == 0) {
+		/* planned in the config: the saved state replaces it */
+		uint32_t slot;
+		nmap_get(eng->index, id, strlen(id), &slot);
+		engine_exp_free(eng->exps[slot]);
+		eng->exps[slot] = eng->exps[--eng->nexps];
+		nmap_del(eng->index, id, strlen(id));
+		if (slot < eng->nexps)
+			nmap_put(eng->index, eng->exps[slot]->id,
+			    strlen(eng->exps[slot]->id), slot);
+	}
+	e = engine_exp_new(eng, id, arms, narms, 0);
+	e->epoch = (uint32_t)json_integer_value(json_object_get(o, "epoch"));
+	if (e->epoch == 0)
+		e->epoch = 1;
+	a = json_object_get(o, "exposures");
+	for (i = 0; i < (size_t)narms; i++)
+		e->exposures[i] = (uint64_t)json_integer_value(
+		    json_array_get(a, i));
+	srm = json_object_get(o, "srm");
+	a = json_object_get(srm, "a");
+	for (i = 0; i < (size_t)narms; i++)
+		e->srm_a[i] = aget(a, i);
+	get_real(srm, "log_e", &e->srm_log_e);
+	get_real(srm, "max_log_e", &e->srm_max_log_e);
+	e->srm_fired = json_is_true(json_object_get(srm, "fired"));
+	get_real(srm, "first_ts", &e->srm_first_ts);
+	e->srm_first_event = (uint64_t)json_integer_value(json_object_get(srm,
+	    "first_event"));
+	hist_load(&e->srm_hist, json_object_get(srm, "hist"), cap);
+	a = json_object_get(o, "epochs");
+	e->nepochs = 0;
+	json_array_foreach(a, i, v) {
+		struct epoch_info *ep;
+		if (e->nepochs == ENGINE_EPOCHS_KEPT)
+			break;
+		ep = &e->epochs[e->nepochs++];
+		ep->epoch = (uint32_t)json_integer_value(json_object_get(v,
+		    "epoch"));
+		get_real(v, "started", &ep->started);
+		if (arms_load(json_object_get(v, "arms"), ep->arms,
+		    &ep->narms) != 0) {
+			xasprintf(cause, "experiment %s: bad epoch entry", id);
+			return -1;
+		}
+	}
+	a = json_object_get(o, "metrics");
+	json_array_foreach(a, i, v) {
+		const char *name = json_string_value(json_object_get(v,
+		    "name"));
+		struct metric *m;
+		int kind = (int)json_integer_value(json_object_get(v, "kind"));
+		if (name == NULL || !proto_name_ok(name, strlen(name)) ||
+		    (kind != METRIC_OBSERVE && kind != METRIC_COUNT) ||
+		    (uint32_t)e->nmetrics >= eng->conf->max_metrics) {
+			xasprintf(cause, "experiment %s: bad metric entry", id);
+			return -1;
+		}
+		e->metrics = xreallocarray(e->metrics, (size_t)e->nmetrics + 1,
+		    sizeof *e->metrics);
+		m = &e->metrics[e->nmetrics++];
+		memset(m, 0, sizeof *m);
+		snprintf(m->name, sizeof m->name, "%s", name);
+		m->len = (uint8_t)strlen(m->name);
+		m->kind = (enum metric_kind)kind;
+		engine_metric_needs(eng->conf, m);
+		engine_metric_alloc_series(eng, e, m);
+		eng->counters.series += (uint64_t)e->narms;
+		ser = json_object_get(v, "series");
+		json_array_foreach(ser, j, sv) {
+			struct series *s;
+			const json_t *mm = json_object_get(sv, "m");
+			const json_t *rr = json_object_get(sv, "r");
+			const char *b64 = json_string_value(
+			    json_object_get(sv, "sketch"));
+			if (j >= (size_t)e->narms)
+				break;
+			s = &m->arm[j];
+			s->m.n = (uint64_t)json_integer_value(
+			    json_array_get(mm, 0));
+			s->m.mean = aget(mm, 1);
+			s->m.m2 = aget(mm, 2);
+			s->r.records = (uint64_t)json_integer_value(
+			    json_array_get(rr, 0));
+			s->r.k = aget(rr, 1);
+			s->r.n = aget(rr, 2);
+			s->r.kk = aget(rr, 3);
+			s->r.kn = aget(rr, 4);
+			s->r.nn = aget(rr, 5);
+			if (b64 != NULL && s->sk != NULL) {
+				struct sketch *sk = sketch_load(b64);
+				if (sk == NULL) {
+					xasprintf(cause, "experiment %s: "
+					    "metric %s: bad sketch", id, name);
+					return -1;
+				}
+				sketch_free(s->sk);
+				s->sk = sk;
+			}
+		}
+	}
+	engine_link_tests(eng, e);
+	a = json_object_get(o, "tests");
+	json_array_foreach(a, i, v) {
+		const char *variant = json_string_value(json_object_get(v,
+		    "variant"));
+		struct test *t = NULL;
+		int k;
+		if ((g = restore_guardrail(eng->conf, v)) < 0 ||
+		    variant == NULL)
+			continue;	/* guardrail changed: test restarts */
+		for (k = 0; k < e->ntests; k++)
+			if (e->tests[k].g == g &&
+			    strcmp(e->tests[k].variant, variant) == 0)
+				t = &e->tests[k];
+		if (t == NULL)
+			continue;
+		t->verdict = (enum verdict)json_integer_value(
+		    json_object_get(v, "verdict"));
+		get_real(v, "log_e", &t->log_e);
+		get_real(v, "closed_log_e", &t->closed_log_e);
+		get_real(v, "max_log_e", &t->max_log_e);
+		get_real(v, "cs_lo", &t->cs_lo);
+		get_real(v, "cs_hi", &t->cs_hi);
+		get_real(v, "est", &t->est);
+		get_real(v, "lo", &t->lo);
+		get_real(v, "hi", &t->hi);
+		get_real(v, "rel", &t->rel);
+		get_real(v, "rel_lo", &t->rel_lo);
+		get_real(v, "rel_hi", &t->rel_hi);
+		get_real(v, "margin_abs", &t->margin_abs);
+		get_real(v, "ctl_value", &t->ctl_value);
+		get_real(v, "trt_value", &t->trt_value);
+		get_real(v, "ctl_lo", &t->ctl_lo);
+		get_real(v, "ctl_hi", &t->ctl_hi);
+		get_real(v, "trt_lo", &t->trt_lo);
+		get_real(v, "trt_hi", &t->trt_hi);
+		get_real(v, "first_ts", &t->first_ts);
+		t->first_event = (uint64_t)json_integer_value(
+		    json_object_get(v, "first_event"));
+		t->pause_sent = json_is_true(json_object_get(v, "pause_sent"));
+		t->dirty = json_is_true(json_object_get(v, "dirty"));
+		hist_load(&t->hist, json_object_get(v, "hist"), cap);
+	}
+	get_real(o, "last_ts", &e->last_ts);
+	e->last_event = (uint64_t)json_integer_value(json_object_get(o,
+	    "last_event"));
+	return 0;
+}
+
+struct engine *
+engine_restore(const struct conf *conf, const uint8_t hashkey[16],
+    const json_t *state, char **cause)
+{
+	struct engine *eng;
+	const json_t *a, *v, *c;
+	const char *fmt = json_string_value(json_object_get(state, "format"));
+	size_t i;
+	int k;
+
+	if (fmt == NULL || strcmp(fmt, STATE_FORMAT) != 0) {
+		xasprintf(cause, "not a stopcock engine state");
+		return NULL;
+	}
+	if (json_integer_value(json_object_get(state, "version")) !=
+	    STATE_VERSION) {
+		xasprintf(cause, "engine state version %lld, expected %d",
+		    (long long)json_integer_value(json_object_get(state,
+		    "version")), STATE_VERSION);
+		return NULL;
+	}
+	a = json_object_get(state, "experiments");
+	if (!json_is_array(a)) {
+		xasprintf(cause, "engine state without experiments");
+		return NULL;
+	}
+	eng = engine_new(conf, hashkey);
+	json_array_foreach(a, i, v) {
+		if (eng->nexps >= eng->conf->max_experiments) {
+			xasprintf(cause, "state holds more experiments than "
+			    "max_experiments (%u)", eng->conf->max_experiments);
+			engine_free(eng);
+			return NULL;
+		}
+		if (exp_restore(eng, v, cause) != 0) {
+			engine_free(eng);
+			return NULL;
+		}
+	}
+	get_real(state, "now", &eng->now);
+	eng->event = (uint64_t)json_integer_value(json_object_get(state,
+	    "event"));
+	c = json_object_get(state, "counters");
+	for (k = 0; k < 4; k++)
+		eng->counters.applied[k] = (uint64_t)json_integer_value(
+		    json_array_get(json_object_get(c, "applied"), (size_t)k));
+	for (k = 0; k < ENGINE_NREJECT; k++)
+		eng->counters.rejected[k] = (uint64_t)json_integer_value(
+		    json_array_get(json_object_get(c, "rejected"), (size_t)k));
+	eng->counters.findings = (uint64_t)json_integer_value(
+	    json_object_get(c, "findings"));
+	return eng;
+}

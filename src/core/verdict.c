@@ -1,0 +1,392 @@
+/*
+ * verdict.c: guardrail policy x tallies -> evidence -> verdicts. For one
+ * test (a guardrail on one treatment arm against the control) this turns
+ * the two arms' tallies into an estimate, an always-valid p-value and a
+ * confidence sequence by calling the statistics module, then applies the
+ * one rule shared by every test kind:
+ *
+ *   harm  when the always-valid p-value for "effect = margin" is at most
+ *         the test's level (alpha / family, Bonferroni) and the estimate
+ *         lies beyond the margin in the harmful direction;
+ *   safe  when the confidence sequence lies entirely on the good side of
+ *         the margin (harm beyond the margin is ruled out);
+ *   otherwise undecided.
+ *
+ * For a single epoch the harm rule is the confidence-sequence rule of the
+ * issue: the running-intersection CS lies beyond the margin exactly when
+ * the mixture rejected the margin at some earlier look with the estimate
+ * on that side. Across epochs the p-value multiplies per-epoch test
+ * martingales (closed_log_e), never pooling tallies across weights.
+ * Verdicts are sticky within an epoch. Tests only read numbers; the
+ * engine decides when to call them (cheap kinds on every record,
+ * quantiles and rate CSs on the tick).
+ */
+#include <math.h>
+#include <string.h>
+
+#include "stopcock/util.h"
+#include "engine_int.h"
+
+double
+verdict_level(const struct experiment *e)
+{
+	return e->alpha / (e->family > 0 ? e->family : 1);
+}
+
+static double
+pause_level(const struct engine *eng, const struct experiment *e)
+{
+	double pa = eng->conf->pause_alpha > 0 ? eng->conf->pause_alpha :
+	    e->alpha / 10;
+
+	return pa / (e->family > 0 ? e->family : 1);
+}
+
+/* Signed direction: +1 when an increase is harmful. */
+static double
+harm_sign(const struct conf_guardrail *g)
+{
+	return g->harm == HARM_INCREASE ? 1.0 : -1.0;
+}
+
+static double
+margin_abs(const struct conf_guardrail *g, double control)
+{
+	if (!g->margin_relative)
+		return g->margin;
+	return isfinite(control) ? g->margin * fabs(control) : 0;
+}
+
+static void
+cs_intersect(struct test *t, double lo, double hi)
+{
+	/*
+	 * Running intersection (METHODS.md sec. 0). With plug-in variances
+	 * the intersection can come out empty, a sign of model misfit; we
+	 * then restart from the current interval rather than report an
+	 * empty set.
+	 */
+	double nlo = fmax(t->cs_lo, lo), nhi = fmin(t->cs_hi, hi);
+
+	if (nlo > nhi) {
+		nlo = lo;
+		nhi = hi;
+	}
+	t->cs_lo = nlo;
+	t->cs_hi = nhi;
+}
+
+static void
+set_relative(struct test *t)
+{
+	double c = t->ctl_value;
+
+	if (isfinite(c) && c != 0) {
+		t->rel = t->est / fabs(c);
+		t->rel_lo = t->cs_lo / fabs(c);
+		t->rel_hi = t->cs_hi / fabs(c);
+	} else
+		t->rel = t->rel_lo = t->rel_hi = NAN;
+}
+
+/*
+ * Mean and proportion: two-sample mSPRT with a normal mixture in the
+ * generic form for unequal arms (Johari, Pekelis & Walsh 2022; METHODS.md
+ * sec. 1) with plug-in variances. tau^2 follows rule (a): tightest at the
+ * planned units per arm, expressed in units of the pooled per-unit
+ * variance so it is fixed before monitoring in standardised terms.
+ */
+static int
+eval_normal(struct experiment *e, struct test *t,
+    const struct conf_guardrail *g, const struct series *a,
+    const struct series *b, double level)
+{
+	double na, nb, va, vb, V, tau2, hw, theta0;
+
+	if (g->test == TEST_MEAN) {
+		if (a->m.n < ENGINE_BURN_IN || b->m.n < ENGINE_BURN_IN)
+			return -1;
+		na = (double)a->m.n;
+		nb = (double)b->m.n;
+		t->ctl_value = a->m.mean;
+		t->trt_value = b->m.mean;
+		va = tally_moments_var(&a->m);	/* per observation */
+		vb = tally_moments_var(&b->m);
+	} else {
+		if (a->r.records < ENGINE_BURN_IN ||
+		    b->r.records < ENGINE_BURN_IN)
+			return -1;
+		na = (double)a->r.records;
+		nb = (double)b->r.records;
+		t->ctl_value = tally_ratio_rate(&a->r);
+		t->trt_value = tally_ratio_rate(&b->r);
+		/* per-record variance of the ratio, from the delta method */
+		va = tally_ratio_var(&a->r) * na;
+		vb = tally_ratio_var(&b->r) * nb;
+	}
+	if (!isfinite(t->ctl_value) || !isfinite(t->trt_value))
+		return -1;
+	V = va / na + vb / nb;
+	if (!(V > 0))
+		return -1;
+	tau2 = stats_msprt_tau2(va + vb, level, e->plan_units);
+	t->est = t->trt_value - t->ctl_value;
+	t->margin_abs = margin_abs(g, t->ctl_value);
+	theta0 = harm_sign(g) * t->margin_abs;
+	t->log_e = stats_msprt_log_lr(t->est, theta0, V, tau2);
+	hw = stats_msprt_halfwidth(V, tau2, level);
+	t->lo = t->est - hw;
+	t->hi = t->est + hw;
+	cs_intersect(t, t->lo, t->hi);
+	return 0;
+}
+
+/*
+ * Rate: events over exposure. Given the total, each event's arm is a
+ * categorical draw with the exposure share as null probability; the
+ * beta-mixture Bayes factor is exact at any count (Lindon & Malek 2022;
+ * METHODS.md sec. 5). The null is the margin's rate ratio r0; the
+ * one-sided factor (prior truncated to the harmful side) is a test
+ * supermartingale for every ratio on the good side of r0.
+ */
+static int
+eval_rate(struct experiment *e, struct test *t,
+    const struct conf_guardrail *g, const struct series *a,
+    const struct series *b, double level, double k, int costly)
+{
+	double ka = (double)a->r.k, ea = (double)a->r.n;
+	double kb = (double)b->r.k, eb = (double)b->r.n;
+	double ra, rb, share, r0, th0, rlo, rhi;
+
+	if (!(ea > 0) || !(eb > 0) || ka + kb < 1)
+		return -1;
+	ra = ka / ea;
+	rb = kb / eb;
+	t->ctl_value = ra;
+	t->trt_value = rb;
+	t->est = rb - ra;
+	t->margin_abs = margin_abs(g, ra);
+	/* the margin as a rate ratio */
+	if (g->margin_relative)
+		r0 = 1 + harm_sign(g) * g->margin;
+	else
+		r0 = ra > 0 ? 1 + harm_sign(g) * g->margin / ra : 1;
+	if (!(r0 > 0))
+		r0 = 1e-9;
+	share = eb / (ea + eb);
+	th0 = share * r0 / (share * r0 + (1 - share));
+	if (g->harm == HARM_INCREASE)
+		t->log_e = stats_rate_log_bf(ka, kb, th0, k, 1);
+	else
+		t->log_e = stats_rate_log_bf(kb, ka, 1 - th0, k, 1);
+	if (costly && stats_rate_ratio_cs(ka, ea, kb, eb, k, level, &rlo,
+	    &rhi) == 0) {
+		/* reported on the rate-difference scale at the current
+		 * control rate; the ratio itself is rel + 1 */
+		t->lo = (rlo - 1) * ra;
+		t->hi = isfinite(rhi) ? (rhi - 1) * ra : INFINITY;
+		cs_intersect(t, t->lo, t->hi);
+	}
+	return 0;
+}
+
+/* Fill the engine's scratch with a sketch's blocks, values scaled. */
+static void
+blocks_of(struct engine *eng, const struct sketch *sk, size_t off,
+    double scale, double shift, struct stats_blocks *out)
+{
+	size_t i, n;
+	uint64_t total = 0;
+
+	n = sketch_buckets(sk, eng->scratch_v + off, eng->scratch_c + off,
+	    eng->scratch_n / 2);
+	for (i = 0; i < n; i++) {
+		eng->scratch_v[off + i] = eng->scratch_v[off + i] * scale +
+		    shift;
+		total += eng->scratch_c[off + i];
+	}
+	out->value = eng->scratch_v + off;
+	out->count = eng->scratch_c + off;
+	out->n = n;
+	out->total = total;
+}
+
+static void
+scratch_reserve(struct engine *eng, size_t need)
+{
+	if (eng->scratch_n >= 2 * need)
+		return;
+	eng->scratch_n = 2 * need;
+	eng->scratch_v = xreallocarray(eng->scratch_v, eng->scratch_n,
+	    sizeof *eng->scratch_v);
+	eng->scratch_c = xreallocarray(eng->scratch_c, eng->scratch_n,
+	    sizeof *eng->scratch_c);
+}
+
+/*
+ * Quantile: one-sided sequential comparison on sketch buckets (Howard &
+ * Ramdas 2022; METHODS.md sec. 4). The margin enters by scaling (or
+ * shifting) the control's values, so H0 is Q_b <= (1 + m) Q_a for an
+ * increase. Bucket indices are monotone in the value, so validity holds
+ * for the rounded distributions, i.e. at sketch resolution.
+ */
+static int
+eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
+    const struct conf_guardrail *g, const struct series *a,
+    const struct series *b, double level)
+{
+	struct stats_blocks ba, bb, ca, cb;
+	double q = g->quantile, scale, shift, m;
+	size_t need;
+
+	if (a->sk == NULL || b->sk == NULL || sketch_count(a->sk) == 0 ||
+	    sketch_count(b->sk) == 0)
+		return -1;
+	need = sketch_nbuckets(a->sk) + sketch_nbuckets(b->sk) + 2;
+	scratch_reserve(eng, need);
+	t->ctl_value = sketch_quantile(a->sk, q);
+	t->trt_value = sketch_quantile(b->sk, q);
+	t->est = t->trt_value - t->ctl_value;
+	t->margin_abs = margin_abs(g, t->ctl_value);
+	m = g->margin;
+	if (g->harm == HARM_INCREASE) {
+		scale = g->margin_relative ? 1 + m : 1;
+		shift = g->margin_relative ? 0 : m;
+		blocks_of(eng, a->sk, 0, scale, shift, &ba);
+		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
+		t->log_e = stats_quantile_log_e1(&ba, &bb, q, e->plan_units);
+	} else {
+		scale = g->margin_relative ? 1 - m : 1;
+		shift = g->margin_relative ? 0 : -m;
+		blocks_of(eng, a->sk, 0, scale, shift, &ba);
+		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
+		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
+		t->log_e = stats_quantile_log_e1(&bb, &ba, q, e->plan_units);
+	}
+	/* Per-arm CSs at level/2 each: the difference's bounds hold
+	 * jointly by a union bound. */
+	blocks_of(eng, a->sk, 0, 1, 0, &ca);
+	blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &cb);
+	if (stats_quantile_cs(&ca, q, e->plan_units, level / 2, &t->ctl_lo,
+	    &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q, e->plan_units,
+	    level / 2, &t->trt_lo, &t->trt_hi) != 0)
+		return 0;
+	t->lo = t->trt_lo - t->ctl_hi;
+	t->hi = t->trt_hi - t->ctl_lo;
+	if (isnan(t->lo))
+		t->lo = -INFINITY;
+	if (isnan(t->hi))
+		t->hi = INFINITY;
+	cs_intersect(t, t->lo, t->hi);
+	return 0;
+}
+
+static double
+rate_concentration(const struct engine *eng)
+{
+	/* METHODS.md sec. 3: k = 100 as a default concentration for the
+	 * categorical rate test; configurable. */
+	return eng->conf->rate_concentration > 0 ?
+	    eng->conf->rate_concentration : 100;
+}
+
+void
+verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
+    int costly)
+{
+	const struct conf_guardrail *g = &eng->conf->guardrails[t->g];
+	const struct metric *m;
+	const struct series *a, *b;
+	struct finding f;
+	double level = verdict_level(e), s, p;
+	enum verdict old = t->verdict, nv;
+	int rc;
+
+	if (t->metric < 0 || t->arm <= 0)
+		return;
+	m = &e->metrics[t->metric];
+	if (m->arm == NULL)
+		return;
+	a = &m->arm[0];
+	b = &m->arm[t->arm];
+	switch (g->test) {
+	case TEST_MEAN:
+	case TEST_PROPORTION:
+		rc = eval_normal(e, t, g, a, b, level);
+		break;
+	case TEST_RATE:
+		rc = eval_rate(e, t, g, a, b, level, rate_concentration(eng),
+		    costly);
+		break;
+	case TEST_QUANTILE:
+		if (!costly)
+			return;
+		rc = eval_quantile(eng, e, t, g, a, b, level);
+		break;
+	default:
+		return;
+	}
+	if (costly)
+		t->dirty = 0;
+	if (rc != 0)
+		return;
+	t->hist_dirty = 1;
+	if (t->closed_log_e + t->log_e > t->max_log_e)
+		t->max_log_e = t->closed_log_e + t->log_e;
+	set_relative(t);
+
+	s = harm_sign(g);
+	p = stats_p_from_log_e(t->max_log_e);
+	nv = old;
+	if (old == VERDICT_UNDECIDED) {
+		if (p <= level && s * (t->est - s * t->margin_abs) > 0)
+			nv = VERDICT_HARM;
+		else if (isfinite(t->cs_lo) && isfinite(t->cs_hi) &&
+		    s * (s * t->margin_abs - (s > 0 ? t->cs_hi : t->cs_lo)) > 0)
+			nv = VERDICT_SAFE;
+	}
+	if (nv != old) {
+		if (g->test == TEST_RATE && !costly)
+			/* the CS is computed lazily; refresh it for the
+			 * finding so the alert carries real bounds */
+			(void)eval_rate(e, t, g, a, b, level,
+			    rate_concentration(eng), 1), set_relative(t);
+		t->verdict = nv;
+		t->first_ts = eng->now;
+		t->first_event = eng->event;
+		engine_fill_finding(eng, e, t, FINDING_VERDICT, &f);
+		f.previous = old;
+		engine_emit(eng, &f);
+	}
+	if (t->verdict == VERDICT_HARM && g->action == ACTION_PAUSE &&
+	    !t->pause_sent && p <= pause_level(eng, e)) {
+		t->pause_sent = 1;
+		engine_fill_finding(eng, e, t, FINDING_PAUSE, &f);
+		engine_emit(eng, &f);
+	}
+}
+
+/*
+ * SRM: the Dirichlet-multinomial Bayes factor against the epoch's
+ * weights (Lindon & Malek 2022; METHODS.md sec. 3) is updated by
+ * engine_apply; here its running maximum becomes the verdict. Once it
+ * fires, every verdict of the epoch is marked untrustworthy.
+ */
+void
+verdict_srm(struct engine *eng, struct experiment *e)
+{
+	struct finding f;
+
+	if (e->srm_log_e > e->srm_max_log_e)
+		e->srm_max_log_e = e->srm_log_e;
+	e->srm_dirty = 1;
+	if (e->srm_fired || e->srm_max_log_e < log(1 / e->srm_alpha))
+		return;
+	e->srm_fired = 1;
+	e->srm_first_ts = eng->now;
+	e->srm_first_event = eng->event;
+	engine_fill_srm(eng, e, FINDING_SRM, &f);
+	engine_emit(eng, &f);
+	engine_fill_srm(eng, e, FINDING_UNTRUSTED, &f);
+	engine_emit(eng, &f);
+}
