@@ -1,0 +1,463 @@
+/*
+ * test_engine.c: the engine end to end on small, seeded streams: routing
+ * and every rejection reason, caps, epochs, SRM, harm for each test kind,
+ * the untrusted mark, and checkpoint round trips. Statistical values are
+ * checked against the statistics module's closed forms (themselves
+ * checked against METHODS.md sec. 10 and scipy in test_stats and
+ * tests/ref), so what is tested here is the routing and bookkeeping.
+ */
+#include <math.h>
+#include <setjmp.h>
+#include <stdarg.h>
+#include <stddef.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include <cmocka.h>
+#include <gsl/gsl_randist.h>
+#include <gsl/gsl_rng.h>
+
+#include "stopcock/conf.h"
+#include "stopcock/engine.h"
+#include "stopcock/proto.h"
+#include "stopcock/stats.h"
+#include "stopcock/util.h"
+
+static const char *base_conf =
+    "[defaults]\n"
+    "alpha = 0.05\n"
+    "srm_alpha = 0.001\n"
+    "plan_units = 2000\n"
+    "max_experiments = 3\n"
+    "max_metrics = 4\n"
+    "max_variants = 3\n"
+    "[guardrail p99]\n"
+    "metric = latency_ms\n"
+    "test = quantile\n"
+    "quantile = 0.99\n"
+    "[guardrail render]\n"
+    "metric = render_ms\n"
+    "test = mean\n"
+    "[guardrail errors]\n"
+    "metric = server_errors\n"
+    "test = proportion\n"
+    "action = pause\n"
+    "[guardrail crashes]\n"
+    "metric = crashes\n"
+    "test = rate\n";
+
+struct seen {
+	int		 n;
+	int		 verdicts, harms, safes, srm, untrusted, pauses, epochs;
+	char		 last_guardrail[PROTO_NAME_MAX + 1];
+	enum verdict	 last_verdict;
+	int		 last_untrusted;
+	double		 last_p, last_lower, last_upper, last_est;
+	uint64_t	 last_event;
+};
+
+static void
+sink(void *arg, const struct finding *f)
+{
+	struct seen *s = arg;
+
+	s->n++;
+	switch (f->kind) {
+	case FINDING_VERDICT:
+		s->verdicts++;
+		s->harms += f->verdict == VERDICT_HARM;
+		s->safes += f->verdict == VERDICT_SAFE;
+		snprintf(s->last_guardrail, sizeof s->last_guardrail, "%s",
+		    f->guardrail);
+		s->last_verdict = f->verdict;
+		s->last_untrusted = f->untrusted;
+		s->last_p = f->p;
+		s->last_lower = f->lower;
+		s->last_upper = f->upper;
+		s->last_est = f->estimate;
+		s->last_event = f->event;
+		break;
+	case FINDING_SRM:
+		s->srm++;
+		break;
+	case FINDING_UNTRUSTED:
+		s->untrusted++;
+		break;
+	case FINDING_PAUSE:
+		s->pauses++;
+		break;
+	case FINDING_EPOCH:
+		s->epochs++;
+		break;
+	}
+}
+
+static struct conf *
+load(const char *extra)
+{
+	struct conf *c;
+	char *text, *cause = NULL;
+
+	xasprintf(&text, "%s%s", base_conf, extra ? extra : "");
+	if (conf_parse(text, "test.conf", &c, &cause) != 0)
+		fail_msg("config: %s", cause);
+	free(text);
+	return c;
+}
+
+struct fx {
+	struct conf	*conf;
+	struct engine	*eng;
+	struct seen	 seen;
+	uint64_t	 event;
+	double		 now;
+};
+
+static int
+setup(void **state)
+{
+	struct fx *fx = xcalloc(1, sizeof *fx);
+	uint8_t key[16] = { 1, 2, 3 };
+
+	fx->conf = load(NULL);
+	fx->eng = engine_new(fx->conf, key);
+	engine_set_sink(fx->eng, sink, &fx->seen);
+	fx->now = 1700000000;
+	*state = fx;
+	return 0;
+}
+
+static int
+teardown(void **state)
+{
+	struct fx *fx = *state;
+
+	engine_free(fx->eng);
+	conf_free(fx->conf);
+	free(fx);
+	return 0;
+}
+
+/* Apply one protocol line; returns the engine's verdict on it. */
+static enum engine_reject
+feed(struct fx *fx, const char *fmt, ...)
+{
+	char line[PROTO_LINE_MAX + 1];
+	struct record r;
+	va_list ap;
+
+	va_start(ap, fmt);
+	vsnprintf(line, sizeof line, fmt, ap);
+	va_end(ap);
+	assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+	fx->now += 0.01;
+	return engine_apply(fx->eng, &r, fx->now, ++fx->event);
+}
+
+static void
+test_rejections(void **state)
+{
+	struct fx *fx = *state;
+	struct engine_counters c;
+
+	assert_int_equal(feed(fx, "expose shop A"), ENGINE_E_UNPLANNED);
+	assert_int_equal(feed(fx, "plan shop A=50 B=50"), ENGINE_OK);
+	assert_int_equal(feed(fx, "expose shop C"), ENGINE_E_VARIANT);
+	assert_int_equal(feed(fx, "count shop A server_errors 1 2"), ENGINE_OK);
+	/* server_errors is read by a proportion guardrail: K <= N */
+	assert_int_equal(feed(fx, "count shop A server_errors 3 2"),
+	    ENGINE_E_K_GT_N);
+	/* a rate metric may have K > N (events over exposure) */
+	assert_int_equal(feed(fx, "count shop A crashes 3 2"), ENGINE_OK);
+	/* render_ms is read by a mean guardrail: observe only */
+	assert_int_equal(feed(fx, "count shop A render_ms 1 2"),
+	    ENGINE_E_MISMATCH);
+	assert_int_equal(feed(fx, "observe shop A server_errors 1"),
+	    ENGINE_E_MISMATCH);
+	assert_int_equal(feed(fx, "observe shop A latency_ms 12"), ENGINE_OK);
+	assert_int_equal(feed(fx, "observe shop A other 1"), ENGINE_OK);
+	/* max_metrics = 4: server_errors, crashes, latency_ms, other */
+	assert_int_equal(feed(fx, "observe shop A fifth 1"), ENGINE_E_METRICS);
+	assert_int_equal(feed(fx, "plan big A=1 B=1 C=1 D=1"),
+	    ENGINE_E_VARIANTS);
+	assert_int_equal(feed(fx, "plan e2 A=1 B=1"), ENGINE_OK);
+	assert_int_equal(feed(fx, "plan e3 A=1 B=1"), ENGINE_OK);
+	assert_int_equal(feed(fx, "plan e4 A=1 B=1"), ENGINE_E_EXPERIMENTS);
+	engine_counters(fx->eng, &c);
+	assert_int_equal(c.experiments, 3);
+	assert_int_equal(c.rejected[ENGINE_E_MISMATCH], 2);
+	assert_int_equal(c.rejected[ENGINE_E_EXPERIMENTS], 1);
+	assert_int_equal(c.applied[PROTO_PLAN], 3);
+	assert_string_equal(engine_reason(ENGINE_E_K_GT_N), "k_exceeds_n");
+}
+
+static void
+test_epochs(void **state)
+{
+	struct fx *fx = *state;
+	json_t *j;
+
+	assert_int_equal(feed(fx, "plan ramp control=90 treatment=10"), 0);
+	assert_int_equal(feed(fx, "expose ramp control 9"), 0);
+	/* the same plan again is not a new epoch */
+	assert_int_equal(feed(fx, "plan ramp control=90 treatment=10"), 0);
+	assert_int_equal(fx->seen.epochs, 0);
+	assert_int_equal(feed(fx, "plan ramp control=50 treatment=50"), 0);
+	assert_int_equal(fx->seen.epochs, 1);
+	j = engine_json_experiment(fx->eng, "ramp");
+	assert_non_null(j);
+	assert_int_equal(json_integer_value(json_object_get(j, "epoch")), 2);
+	/* exposures restart with the epoch: never pooled across weights */
+	assert_int_equal(json_integer_value(json_object_get(json_array_get(
+	    json_object_get(j, "arms"), 0), "exposures")), 0);
+	assert_int_equal(json_array_size(json_object_get(j, "epochs")), 2);
+	json_decref(j);
+	assert_null(engine_json_experiment(fx->eng, "nope"));
+}
+
+/*
+ * SRM: a 50/50 plan receiving 53/47 traffic must fire, and the engine's
+ * incremental per-record updates must equal the closed-form batch Bayes
+ * factor (the updates are exact and order-invariant, METHODS sec. 3).
+ */
+static void
+test_srm(void **state)
+{
+	struct fx *fx = *state;
+	json_t *j;
+	double counts[2] = { 0, 0 }, theta0[2] = { .5, .5 }, a0[2], k0;
+	int i;
+
+	assert_int_equal(feed(fx, "plan srm control=1 treatment=1"), 0);
+	for (i = 0; i < 20000 && fx->seen.srm == 0; i++) {
+		int arm = (i % 100) < 53 ? 0 : 1;
+		feed(fx, "expose srm %s", arm ? "treatment" : "control");
+		counts[arm]++;
+	}
+	assert_int_equal(fx->seen.srm, 1);
+	assert_int_equal(fx->seen.untrusted, 1);
+	j = engine_json_experiment(fx->eng, "srm");
+	k0 = stats_dm_k0(2000 * 2, 0.001);
+	a0[0] = a0[1] = k0 / 2;
+	assert_float_equal(json_real_value(json_object_get(json_object_get(j,
+	    "srm"), "log_e")), stats_dm_log_bf(2, counts, theta0, a0), 1e-6);
+	assert_true(json_real_value(json_object_get(json_object_get(j, "srm"),
+	    "p")) <= 0.001);
+	assert_true(json_is_true(json_object_get(j, "untrusted")));
+	json_decref(j);
+}
+
+/* A clearly slower treatment: the mean guardrail must find harm, with
+ * the CS beyond zero and the estimate inside it. */
+static void
+test_mean_harm(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	int i;
+
+	gsl_rng_set(rng, 7);
+	feed(fx, "plan m control=50 treatment=50");
+	for (i = 0; i < 4000 && fx->seen.harms == 0; i++) {
+		feed(fx, "observe m control render_ms %.6f",
+		    100 + gsl_ran_gaussian(rng, 10));
+		feed(fx, "observe m treatment render_ms %.6f",
+		    105 + gsl_ran_gaussian(rng, 10));
+	}
+	gsl_rng_free(rng);
+	assert_int_equal(fx->seen.harms, 1);
+	assert_string_equal(fx->seen.last_guardrail, "render");
+	assert_true(fx->seen.last_p <= 0.05 / 4);
+	assert_true(fx->seen.last_lower > 0);
+	assert_true(fx->seen.last_est >= fx->seen.last_lower &&
+	    fx->seen.last_est <= fx->seen.last_upper);
+	assert_int_equal(fx->seen.last_untrusted, 0);
+	assert_int_equal(fx->seen.last_event, fx->event);
+}
+
+/* Clustered errors: the proportion guardrail fires harm and, being a
+ * pause guardrail, a pause finding once p falls under pause_alpha. */
+static void
+test_proportion_harm_and_pause(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	int i, n;
+
+	gsl_rng_set(rng, 11);
+	feed(fx, "plan p control=50 treatment=50");
+	for (i = 0; i < 20000 && fx->seen.pauses == 0; i++) {
+		n = 1 + (int)gsl_ran_poisson(rng, 4);
+		feed(fx, "count p control server_errors %u %d",
+		    gsl_ran_binomial(rng, 0.02, (unsigned)n), n);
+		feed(fx, "count p treatment server_errors %u %d",
+		    gsl_ran_binomial(rng, 0.04, (unsigned)n), n);
+	}
+	gsl_rng_free(rng);
+	assert_int_equal(fx->seen.harms, 1);
+	assert_int_equal(fx->seen.pauses, 1);
+	assert_string_equal(fx->seen.last_guardrail, "errors");
+}
+
+/* Crash rate doubles in the treatment: the rate test fires harm. */
+static void
+test_rate_harm(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	int i;
+
+	gsl_rng_set(rng, 5);
+	feed(fx, "plan r control=50 treatment=50");
+	for (i = 0; i < 20000 && fx->seen.harms == 0; i++) {
+		feed(fx, "count r control crashes %u 0.5",
+		    gsl_ran_poisson(rng, 0.01));
+		feed(fx, "count r treatment crashes %u 0.5",
+		    gsl_ran_poisson(rng, 0.02));
+	}
+	gsl_rng_free(rng);
+	assert_int_equal(fx->seen.harms, 1);
+	assert_string_equal(fx->seen.last_guardrail, "crashes");
+	assert_true(fx->seen.last_lower > 0);
+}
+
+/* p99 latency 30% higher: found at a tick, not on apply. */
+static void
+test_quantile_harm_on_tick(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	int i;
+
+	gsl_rng_set(rng, 3);
+	feed(fx, "plan q control=50 treatment=50");
+	for (i = 0; i < 30000; i++) {
+		feed(fx, "observe q control latency_ms %.4f",
+		    exp(4 + 0.5 * gsl_ran_gaussian(rng, 1)));
+		feed(fx, "observe q treatment latency_ms %.4f",
+		    1.3 * exp(4 + 0.5 * gsl_ran_gaussian(rng, 1)));
+	}
+	gsl_rng_free(rng);
+	assert_int_equal(fx->seen.harms, 0);
+	engine_tick(fx->eng, fx->now);
+	assert_int_equal(fx->seen.harms, 1);
+	assert_string_equal(fx->seen.last_guardrail, "p99");
+	assert_true(fx->seen.last_lower > 0);
+}
+
+/* Save, restore, save again: the same image; and both engines then
+ * evolve identically under the same further records. */
+static void
+test_save_restore(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	struct engine *copy;
+	json_t *a, *b;
+	char *cause = NULL;
+	uint8_t key[16] = { 9 };
+	struct record r;
+	char line[256];
+	int i;
+
+	gsl_rng_set(rng, 1);
+	feed(fx, "plan s control=50 treatment=50");
+	for (i = 0; i < 3000; i++) {
+		feed(fx, "expose s %s", i % 2 ? "control" : "treatment");
+		feed(fx, "observe s %s latency_ms %.3f",
+		    i % 2 ? "control" : "treatment",
+		    exp(3 + gsl_ran_gaussian(rng, 1)));
+		feed(fx, "count s %s server_errors %d 3",
+		    i % 2 ? "control" : "treatment", i % 7 == 0);
+	}
+	engine_tick(fx->eng, fx->now);
+	a = engine_save(fx->eng);
+	copy = engine_restore(fx->conf, key, a, &cause);
+	if (copy == NULL)
+		fail_msg("restore: %s", cause);
+	b = engine_save(copy);
+	assert_true(json_equal(a, b));
+	json_decref(b);
+	for (i = 0; i < 500; i++) {
+		snprintf(line, sizeof line, "observe s treatment latency_ms %.3f",
+		    exp(3.2 + gsl_ran_gaussian(rng, 1)));
+		assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+		engine_apply(fx->eng, &r, fx->now + i, 99999 + (uint64_t)i);
+		engine_apply(copy, &r, fx->now + i, 99999 + (uint64_t)i);
+	}
+	engine_tick(fx->eng, fx->now + 600);
+	engine_tick(copy, fx->now + 600);
+	json_decref(a);
+	a = engine_save(fx->eng);
+	b = engine_save(copy);
+	assert_true(json_equal(a, b));
+	json_decref(a);
+	json_decref(b);
+	engine_free(copy);
+	gsl_rng_free(rng);
+
+	/* foreign and damaged images are refused, never half-loaded */
+	a = json_pack("{s:s, s:i, s:[]}", "format", "something-else",
+	    "version", 1, "experiments");
+	assert_null(engine_restore(fx->conf, key, a, &cause));
+	free(cause);
+	cause = NULL;
+	json_decref(a);
+	a = json_pack("{s:s, s:i, s:[{s:s}]}", "format", "stopcock-engine",
+	    "version", 1, "experiments", "id", "bad name!");
+	assert_null(engine_restore(fx->conf, key, a, &cause));
+	assert_non_null(cause);
+	free(cause);
+	json_decref(a);
+}
+
+/* Reload: tallies survive, a changed guardrail's test restarts. */
+static void
+test_reconfigure(void **state)
+{
+	struct fx *fx = *state;
+	struct conf *c2;
+	char *cause = NULL;
+	json_t *j;
+	int i;
+
+	feed(fx, "plan rc control=50 treatment=50");
+	for (i = 0; i < 100; i++)
+		feed(fx, "expose rc %s", i % 2 ? "control" : "treatment");
+	c2 = load("[guardrail extra]\nmetric = checkout_ms\ntest = mean\n");
+	assert_int_equal(engine_reconfigure(fx->eng, c2, &cause), 0);
+	j = engine_json_experiment(fx->eng, "rc");
+	assert_int_equal(json_integer_value(json_object_get(json_array_get(
+	    json_object_get(j, "arms"), 1), "exposures")), 50);
+	/* 5 guardrails x 1 treatment arm */
+	assert_int_equal(json_integer_value(json_object_get(j, "family")), 5);
+	assert_int_equal(json_array_size(json_object_get(j, "guardrails")), 5);
+	json_decref(j);
+	conf_free(c2);
+}
+
+int
+main(void)
+{
+	const struct CMUnitTest tests[] = {
+		cmocka_unit_test_setup_teardown(test_rejections, setup,
+		    teardown),
+		cmocka_unit_test_setup_teardown(test_epochs, setup, teardown),
+		cmocka_unit_test_setup_teardown(test_srm, setup, teardown),
+		cmocka_unit_test_setup_teardown(test_mean_harm, setup,
+		    teardown),
+		cmocka_unit_test_setup_teardown(test_proportion_harm_and_pause,
+		    setup, teardown),
+		cmocka_unit_test_setup_teardown(test_rate_harm, setup,
+		    teardown),
+		cmocka_unit_test_setup_teardown(test_quantile_harm_on_tick,
+		    setup, teardown),
+		cmocka_unit_test_setup_teardown(test_save_restore, setup,
+		    teardown),
+		cmocka_unit_test_setup_teardown(test_reconfigure, setup,
+		    teardown),
+	};
+
+	return cmocka_run_group_tests(tests, NULL, NULL);
+}
