@@ -142,5 +142,7 @@ const struct conf_guardrail *conf_guardrail_for(const struct conf *,
 const struct conf_experiment *conf_experiment_find(const struct conf *,
 		    const char *id);
 const char	*conf_test_name(enum conf_test);
+/* A deep copy (the engine keeps its own); free with conf_free. */
+struct conf	*conf_dup(const struct conf *);
 
 #endif
