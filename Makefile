@@ -51,6 +51,16 @@ UNIT_BIN	= $(UNIT_SRC:tests/unit/%.c=$(BUILD)/tests/%)
 TOOL_BIN	= $(TOOL_SRC:tests/tools/%.c=$(BUILD)/tests/%)
 LIBCORE		= $(BUILD)/libstopcock.a
 
+# The daemon's page (src/daemon/page.html) is compiled in as a C array,
+# so stopcockd serves it with no files at run time.
+DAEMON_OBJ	+= $(BUILD)/obj/gen/page.o
+$(BUILD)/gen/page.c: src/daemon/page.html tools/embed.sh
+	@mkdir -p $(@D)
+	sh tools/embed.sh http_page src/daemon/page.html > $@.tmp && mv $@.tmp $@
+$(BUILD)/obj/gen/page.o: $(BUILD)/gen/page.c
+	@mkdir -p $(@D)
+	$(CC) $(CPPFLAGS) $(CFLAGS) -c $< -o $@
+
 .PHONY: all deps check check-fast unit test-build demo bench fuzz install \
 	clean
 .DEFAULT_GOAL := all
