@@ -473,7 +473,8 @@ static const struct ecase ecases[] = {
 	{ "metrics over cap", "[defaults]\nmax_metrics = 1\n"
 	  "[guardrail a]\nmetric = m1\ntest = mean\n"
 	  "[guardrail b]\nmetric = m2\ntest = mean\n",
-	  "t.conf: guardrails watch 2 metrics, more than max_metrics (1)" },
+	  "t.conf:6: guardrail b watches metric m2, more distinct metrics "
+	  "than max_metrics (1)" },
 };
 
 static void
