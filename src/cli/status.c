@@ -1,0 +1,369 @@
+/*
+ * status.c: `stopcock status [--url URL] [--json] [EXP]`, a terminal view
+ * of a running daemon. It reads the daemon's JSON API (the same one the
+ * page uses) with one blocking libcurl request and prints a compact table:
+ * every experiment with its guardrail verdicts, or, given EXP, each test
+ * with its estimate, bounds and p-value. Colour only on a terminal, and
+ * always with the verdict in words; --json passes the API's answer
+ * through untouched.
+ */
+#include <ctype.h>
+#include <getopt.h>
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <time.h>
+#include <unistd.h>
+
+#include <curl/curl.h>
+#include <jansson.h>
+
+#include "stopcock/util.h"
+#include "cli.h"
+
+#define STATUS_URL	"http://127.0.0.1:7721"
+#define STATUS_BODY_MAX	(64u * 1024 * 1024)	/* bytes we accept */
+#define STATUS_TIMEOUT	10L			/* seconds */
+
+struct status_buf {
+	char	*p;
+	size_t	 len;
+	int	 overflow;
+};
+
+struct status_style {
+	const char	*harm, *safe, *warn, *dim, *bold, *off;
+};
+
+static const struct status_style status_plain = { "", "", "", "", "", "" };
+static const struct status_style status_ansi = { "\033[1;31m", "\033[32m",
+    "\033[1;33m", "\033[2m", "\033[1m", "\033[0m" };
+
+static size_t
+status_write(char *data, size_t size, size_t n, void *arg)
+{
+	struct status_buf *b = arg;
+	size_t len = size * n;
+
+	if (b->len + len > STATUS_BODY_MAX) {
+		b->overflow = 1;
+		return 0;
+	}
+	b->p = xreallocarray(b->p, b->len + len + 1, 1);
+	memcpy(b->p + b->len, data, len);
+	b->len += len;
+	b->p[b->len] = '\0';
+	return len;
+}
+
+/* GET url into *body. 0 with the HTTP status in *code, or -1 with the
+ * reason in *cause. */
+static int
+status_get(const char *url, struct status_buf *body, long *code,
+    char **cause)
+{
+	char err[CURL_ERROR_SIZE] = "";
+	CURLcode rc;
+	CURL *c;
+
+	if ((c = curl_easy_init()) == NULL) {
+		*cause = xstrdup("cannot start libcurl");
+		return -1;
+	}
+	if (curl_easy_setopt(c, CURLOPT_URL, url) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_PROTOCOLS_STR, "http,https") !=
+	    CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_WRITEFUNCTION, status_write) !=
+	    CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_WRITEDATA, body) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_ERRORBUFFER, err) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_TIMEOUT, STATUS_TIMEOUT) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_NOSIGNAL, 1L) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_USERAGENT, "stopcock-status") !=
+	    CURLE_OK) {
+		curl_easy_cleanup(c);
+		xasprintf(cause, "%s: cannot set up the request", url);
+		return -1;
+	}
+	rc = curl_easy_perform(c);
+	if (rc != CURLE_OK) {
+		if (body->overflow)
+			xasprintf(cause, "%s: answer larger than %u bytes", url,
+			    STATUS_BODY_MAX);
+		else
+			xasprintf(cause, "%s: %s", url, *err != '\0' ? err :
+			    curl_easy_strerror(rc));
+		curl_easy_cleanup(c);
+		return -1;
+	}
+	curl_easy_getinfo(c, CURLINFO_RESPONSE_CODE, code);
+	curl_easy_cleanup(c);
+	return 0;
+}
+
+static double
+status_num(const json_t *o, const char *key)
+{
+	const json_t *j = json_object_get(o, key);
+
+	return json_is_number(j) ? json_number_value(j) : NAN;
+}
+
+static const char *
+status_str(const json_t *o, const char *key)
+{
+	const char *s = json_string_value(json_object_get(o, key));
+
+	return s != NULL ? s : "?";
+}
+
+/* Names come from the network: print them without terminal controls. */
+static void
+status_name(const char *s, int width)
+{
+	int n = 0;
+
+	for (; *s != '\0'; s++, n++)
+		putchar(isprint((unsigned char)*s) ? *s : '?');
+	for (; n < width; n++)
+		putchar(' ');
+}
+
+static const char *
+status_verdict_colour(const struct status_style *st, const char *v)
+{
+	if (strcmp(v, "harm") == 0)
+		return st->harm;
+	if (strcmp(v, "safe") == 0)
+		return st->safe;
+	return st->dim;
+}
+
+static void
+status_p(char *buf, size_t size, double p)
+{
+	if (!isfinite(p))
+		snprintf(buf, size, "n/a");
+	else if (p < 1e-4)
+		snprintf(buf, size, "<0.0001");
+	else
+		snprintf(buf, size, "%.4f", p);
+}
+
+static void
+status_time(char *buf, size_t size, double t)
+{
+	struct tm tm;
+	time_t tt;
+
+	if (!isfinite(t) || t <= 0) {
+		snprintf(buf, size, "-");
+		return;
+	}
+	tt = (time_t)t;
+	if (gmtime_r(&tt, &tm) == NULL)
+		snprintf(buf, size, "?");
+	else
+		strftime(buf, size, "%Y-%m-%d %H:%M UTC", &tm);
+}
+
+static void
+status_list(const json_t *root, const struct status_style *st)
+{
+	const json_t *xs = json_object_get(root, "experiments"), *x, *g, *a;
+	const char *v;
+	char p[32];
+	size_t i, j;
+
+	if (json_array_size(xs) == 0) {
+		printf("no experiments yet\n");
+		return;
+	}
+	for (i = 0; i < json_array_size(xs); i++) {
+		x = json_array_get(xs, i);
+		printf("%s", st->bold);
+		status_name(status_str(x, "id"), 0);
+		printf("%s  epoch %.0f ", st->off, status_num(x, "epoch"));
+		for (j = 0; j < json_array_size(json_object_get(x, "arms"));
+		    j++) {
+			a = json_array_get(json_object_get(x, "arms"), j);
+			printf(" ");
+			status_name(status_str(a, "variant"), 0);
+			printf("=%.0f", status_num(a, "exposures"));
+		}
+		if (json_is_true(json_object_get(x, "untrusted")) ||
+		    strcmp(status_str(json_object_get(x, "srm"), "verdict"),
+		    "harm") == 0)
+			printf("  %sSRM: sample ratio mismatch, verdicts "
+			    "untrustworthy%s\n", st->warn, st->off);
+		else
+			printf("  SRM: none found\n");
+		g = json_object_get(x, "guardrails");
+		for (j = 0; j < json_array_size(g); j++) {
+			const json_t *e = json_array_get(g, j);
+
+			v = status_str(e, "verdict");
+			status_p(p, sizeof p, status_num(e, "p"));
+			printf("  %s%-10s%s ", status_verdict_colour(st, v), v,
+			    st->off);
+			status_name(status_str(e, "name"), 0);
+			printf(" / ");
+			status_name(status_str(e, "variant"), 0);
+			printf("  p=%s\n", p);
+		}
+		if (json_array_size(g) == 0)
+			printf("  %s(no guardrail data yet)%s\n", st->dim,
+			    st->off);
+	}
+}
+
+static void
+status_experiment(const json_t *x, const struct status_style *st)
+{
+	const json_t *tests = json_object_get(x, "tests"), *t, *srm;
+	char p[32], since[40], est[96], rel[96];
+	const char *v;
+	size_t i;
+
+	srm = json_object_get(x, "srm");
+	printf("%s", st->bold);
+	status_name(status_str(x, "id"), 0);
+	printf("%s  epoch %.0f  alpha %g over %.0f tests  srm_alpha %g\n",
+	    st->off, status_num(x, "epoch"), status_num(x, "alpha"),
+	    status_num(x, "family"), status_num(x, "srm_alpha"));
+	status_p(p, sizeof p, status_num(srm, "p"));
+	if (strcmp(status_str(srm, "verdict"), "harm") == 0) {
+		status_time(since, sizeof since, status_num(srm, "first_ts"));
+		printf("%sUNTRUSTWORTHY: sample ratio mismatch since %s "
+		    "(p=%s)%s\n", st->warn, since, p, st->off);
+	} else
+		printf("sample ratio: no mismatch found (p=%s)\n", p);
+	printf("\n%-10s %-28s %-34s %-24s %-8s %s\n", "VERDICT",
+	    "GUARDRAIL / VARIANT", "EFFECT [BOUNDS]", "RELATIVE", "P",
+	    "SINCE");
+	for (i = 0; i < json_array_size(tests); i++) {
+		char name[160];
+
+		t = json_array_get(tests, i);
+		v = status_str(t, "verdict");
+		snprintf(name, sizeof name, "%s / %s",
+		    status_str(t, "guardrail"), status_str(t, "variant"));
+		snprintf(est, sizeof est, "%+.4g [%+.4g, %+.4g]",
+		    status_num(t, "estimate"), status_num(t, "lower"),
+		    status_num(t, "upper"));
+		snprintf(rel, sizeof rel, "%+.3g%% [%+.3g%%, %+.3g%%]",
+		    100 * status_num(t, "rel_estimate"),
+		    100 * status_num(t, "rel_lower"),
+		    100 * status_num(t, "rel_upper"));
+		status_p(p, sizeof p, status_num(t, "p"));
+		if (strcmp(v, "undecided") != 0)
+			status_time(since, sizeof since,
+			    status_num(t, "first_ts"));
+		else
+			snprintf(since, sizeof since, "-");
+		printf("%s%-10s%s ", status_verdict_colour(st, v), v, st->off);
+		status_name(name, 28);
+		printf(" %-34s %-24s %-8s %s\n", est, rel, p, since);
+	}
+	if (json_array_size(tests) == 0)
+		printf("%s(no guardrail data in this epoch yet)%s\n", st->dim,
+		    st->off);
+}
+
+static void
+status_usage(FILE *fp)
+{
+	fprintf(fp, "usage: stopcock status [--url URL] [--json] "
+	    "[EXPERIMENT]\n"
+	    "  --url URL  the daemon's HTTP address (default $STOPCOCK_URL "
+	    "or " STATUS_URL ")\n"
+	    "  --json     print the API's JSON as it comes\n");
+}
+
+int
+cmd_status(int argc, char **argv)
+{
+	static const struct option opts[] = {
+		{ "url", required_argument, NULL, 'u' },
+		{ "json", no_argument, NULL, 'j' },
+		{ "help", no_argument, NULL, 'h' },
+		{ NULL, 0, NULL, 0 },
+	};
+	const struct status_style *st = &status_plain;
+	struct status_buf body = { NULL, 0, 0 };
+	const char *base = getenv("STOPCOCK_URL"), *exp = NULL, *msg;
+	char *url, *cause = NULL, *esc;
+	json_error_t jerr;
+	json_t *root;
+	long code = 0;
+	int c, raw = 0, rc = SC_EX_OK;
+	size_t blen;
+
+	if (base == NULL || *base == '\0')
+		base = STATUS_URL;
+	optind = 1;
+	while ((c = getopt_long(argc, argv, "u:jh", opts, NULL)) != -1) {
+		switch (c) {
+		case 'u': base = optarg; break;
+		case 'j': raw = 1; break;
+		case 'h': status_usage(stdout); return SC_EX_OK;
+		default: status_usage(stderr); return SC_EX_USAGE;
+		}
+	}
+	if (argc - optind > 1) {
+		status_usage(stderr);
+		return SC_EX_USAGE;
+	}
+	if (argc - optind == 1)
+		exp = argv[optind];
+	if (isatty(STDOUT_FILENO) && getenv("NO_COLOR") == NULL)
+		st = &status_ansi;
+
+	if (curl_global_init(CURL_GLOBAL_DEFAULT) != CURLE_OK) {
+		fprintf(stderr, "stopcock status: cannot start libcurl\n");
+		return SC_EX_SOFTWARE;
+	}
+	blen = strlen(base);
+	while (blen > 0 && base[blen - 1] == '/')
+		blen--;
+	if (exp != NULL) {
+		CURL *e = curl_easy_init();
+
+		if (e == NULL || (esc = curl_easy_escape(e, exp, 0)) == NULL)
+			fatal("status: cannot escape the experiment name");
+		xasprintf(&url, "%.*s/api/experiments/%s", (int)blen, base, esc);
+		curl_free(esc);
+		curl_easy_cleanup(e);
+	} else
+		xasprintf(&url, "%.*s/api/experiments", (int)blen, base);
+
+	if (status_get(url, &body, &code, &cause) != 0) {
+		fprintf(stderr, "stopcock status: %s\n", cause);
+		free(cause);
+		rc = SC_EX_IOERR;
+		goto out;
+	}
+	root = body.p != NULL ? json_loadb(body.p, body.len, 0, &jerr) : NULL;
+	if (code != 200) {
+		msg = json_string_value(json_object_get(root, "error"));
+		fprintf(stderr, "stopcock status: %s: HTTP %ld%s%s\n", url, code,
+		    msg != NULL ? ": " : "", msg != NULL ? msg : "");
+		rc = code == 404 ? SC_EX_NOINPUT : SC_EX_IOERR;
+	} else if (raw)
+		fwrite(body.p, 1, body.len, stdout);
+	else if (root == NULL) {
+		fprintf(stderr, "stopcock status: %s: answer is not JSON\n",
+		    url);
+		rc = SC_EX_DATAERR;
+	} else if (exp != NULL)
+		status_experiment(root, st);
+	else
+		status_list(root, st);
+	json_decref(root);
+out:
+	free(body.p);
+	free(url);
+	curl_global_cleanup();
+	return rc;
+}
