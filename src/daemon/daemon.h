@@ -111,6 +111,10 @@ json_t		*alert_save(struct alert *);
 int		 alert_restore(struct alert *, const json_t *, char **cause);
 json_t		*alert_json(struct alert *);	/* raised alerts */
 void		 alert_metrics(struct alert *, struct evbuffer *);
+/* pause.c reports a pause it made (dry_run 0) or would have made
+ * (dry_run 1), so on-call people learn it through the same channels. */
+void		 alert_pause(struct alert *, const struct finding *,
+		    int dry_run, const char *reason);
 
 /* webhook.c */
 struct webhook	*webhook_new(struct daemon *, char **cause);
@@ -118,13 +122,20 @@ void		 webhook_free(struct webhook *);
 /* Queue body (not stolen) for every receiver; id is the stable
  * webhook-id. */
 void		 webhook_send(struct webhook *, const char *id, json_t *body);
+/* Queue body for one receiver by name (pause.c posts to WEBHOOK_PAUSE,
+ * the internal receiver built from [pause] url/secret). -1 if unknown. */
+#define WEBHOOK_PAUSE "@pause"
+int		 webhook_post(struct webhook *, const char *receiver,
+		    const char *id, json_t *body);
 void		 webhook_metrics(struct webhook *, struct evbuffer *);
+json_t		*webhook_json(struct webhook *);	/* receivers, counters */
 
 /* pause.c */
 struct pause	*pause_new(struct daemon *, char **cause);
 void		 pause_free(struct pause *);
 void		 pause_finding(struct pause *, const struct finding *);
 void		 pause_metrics(struct pause *, struct evbuffer *);
+json_t		*pause_json(struct pause *);	/* counters, recent decisions */
 
 /* http.c */
 struct http	*http_new(struct daemon *, char **cause);

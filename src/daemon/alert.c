@@ -1,0 +1,793 @@
+/*
+ * alert.c: the engine's sink. Verdict transitions become alerts that
+ * people can act on: one per identity (experiment, epoch, guardrail,
+ * variant, and what happened: harm, safe, srm, untrusted, pause), raised
+ * once and kept raised until the experiment starts a new epoch, is reset
+ * or the alert is acknowledged. Each raise writes one syslog line of
+ * key=value fields and queues one signed webhook (webhook.c) whose
+ * webhook-id is derived from the identity, so receivers deduplicate and a
+ * restart that replays the same verdict never pages twice. Optional
+ * reminders repeat raised, unacknowledged alerts. The state is saved in
+ * the checkpoint (alert_save / alert_restore).
+ *
+ * Alerts go to syslog(3) directly, also when the daemon runs in the
+ * foreground (where the logger writes to stderr): they are for the
+ * operators' log pipeline, not for the console.
+ */
+#include <math.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <syslog.h>
+
+#include <openssl/sha.h>
+
+#include "stopcock/log.h"
+#include "daemon.h"
+
+#define ALERT_MAX	4096	/* alerts remembered (raised and acked) */
+#define ALERT_LINE_MAX	2048	/* bytes in one syslog line */
+#define ALERT_ID_BYTES	16	/* of SHA-256, as hex after "sc_" */
+
+enum alert_state { ALERT_RAISED, ALERT_ACKED };
+
+struct alert_entry {
+	char		 id[3 + 2 * ALERT_ID_BYTES + 1];
+	char		*experiment;
+	uint32_t	 epoch;
+	char		*guardrail;
+	char		*variant;	/* "" for the SRM check */
+	char		*what;		/* harm, safe, srm, untrusted, pause.. */
+	enum alert_state state;
+	int		 priority;
+	double		 first_seen;	/* wall time */
+	double		 last_sent;
+	uint32_t	 reminders;
+	char		*line;		/* syslog fields, for reminders */
+	json_t		*body;		/* webhook payload as first sent */
+};
+
+struct alert {
+	struct daemon		*d;
+	int			 facility;
+	struct event		*remind;
+	double			 remind_every;
+	struct alert_entry	**v;
+	size_t			 n;
+	uint64_t		 raised[6];	/* by alert_kinds index */
+	uint64_t		 reminders;
+	uint64_t		 acked;
+	uint64_t		 evicted;
+	uint64_t		 duplicates;
+};
+
+static const char *alert_kinds[] = {
+	"harm", "safe", "srm", "untrusted", "pause", "pause_dry_run"
+};
+
+/*
+ * syslog(3) keeps the ident pointer for the life of the process, so it
+ * cannot live in an object that is freed; like the logger's own state
+ * this is process-wide.
+ */
+static char alert_ident[64];
+
+/* A bounded line builder: appends stop at the end, never overflow. */
+struct alert_line {
+	char	buf[ALERT_LINE_MAX];
+	size_t	len;
+};
+
+static void alert_printf(struct alert_line *, const char *, ...)
+    SC_PRINTF(2, 3);
+
+static void
+alert_printf(struct alert_line *l, const char *fmt, ...)
+{
+	va_list ap;
+	int n;
+
+	if (l->len >= sizeof l->buf - 1)
+		return;
+	va_start(ap, fmt);
+	n = vsnprintf(l->buf + l->len, sizeof l->buf - l->len, fmt, ap);
+	va_end(ap);
+	if (n < 0)
+		return;
+	l->len += (size_t)n;
+	if (l->len >= sizeof l->buf)
+		l->len = sizeof l->buf - 1;
+}
+
+static void
+alert_num(struct alert_line *l, const char *key, double v)
+{
+	if (isfinite(v))
+		alert_printf(l, " %s=%.6g", key, v);
+	else
+		alert_printf(l, " %s=nan", key);
+}
+
+static int
+alert_kind_index(const char *what)
+{
+	size_t i;
+
+	for (i = 0; i < SC_NELEM(alert_kinds); i++)
+		if (strcmp(alert_kinds[i], what) == 0)
+			return (int)i;
+	return -1;
+}
+
+/* "sc_" + hex of the first bytes of SHA-256 over the identity. */
+static void
+alert_make_id(char *out, const char *experiment, uint32_t epoch,
+    const char *guardrail, const char *variant, const char *what)
+{
+	unsigned char md[SHA256_DIGEST_LENGTH];
+	char *s;
+	int len, i;
+
+	/* NUL-separated so no two identities share a string. */
+	len = xasprintf(&s, "%s%c%u%c%s%c%s%c%s", experiment, 0, epoch, 0,
+	    guardrail, 0, variant, 0, what);
+	SHA256((unsigned char *)s, (size_t)len, md);
+	free(s);
+	memcpy(out, "sc_", 3);
+	for (i = 0; i < ALERT_ID_BYTES; i++)
+		snprintf(out + 3 + 2 * i, 3, "%02x", md[i]);
+}
+
+/* <public_url>/?experiment=ID; names are URL-safe ([A-Za-z0-9._:-]). */
+static char *
+alert_link(struct alert *a, const char *experiment)
+{
+	const struct conf *c = a->d->conf;
+	char *base, *link;
+	size_t len;
+
+	if (c->public_url != NULL && *c->public_url != '\0')
+		base = xstrdup(c->public_url);
+	else if (c->http != NULL && *c->http != '\0')
+		xasprintf(&base, "http://%s", c->http);
+	else
+		return NULL;
+	len = strlen(base);
+	while (len > 0 && base[len - 1] == '/')
+		base[--len] = '\0';
+	xasprintf(&link, "%s/?experiment=%s", base, experiment);
+	free(base);
+	return link;
+}
+
+static const char *
+alert_what(const struct finding *f)
+{
+	switch (f->kind) {
+	case FINDING_VERDICT:
+		if (f->verdict == VERDICT_HARM)
+			return "harm";
+		if (f->verdict == VERDICT_SAFE)
+			return "safe";
+		return NULL;
+	case FINDING_SRM:
+		return f->verdict == VERDICT_UNDECIDED ? NULL : "srm";
+	case FINDING_UNTRUSTED:
+		return "untrusted";
+	default:
+		return NULL;
+	}
+}
+
+static int
+alert_priority(const struct finding *f, const char *what)
+{
+	if (strcmp(what, "harm") == 0)
+		return f->action_pause ? LOG_CRIT : LOG_ERR;
+	if (strcmp(what, "srm") == 0 || strcmp(what, "pause") == 0)
+		return strcmp(what, "pause") == 0 ? LOG_CRIT : LOG_ERR;
+	if (strcmp(what, "safe") == 0)
+		return LOG_NOTICE;
+	return LOG_WARNING;	/* untrusted, pause_dry_run */
+}
+
+static const char *
+alert_arm_role(const struct finding *f, const char *variant)
+{
+	if (f->control != NULL && strcmp(variant, f->control) == 0)
+		return "control";
+	if (f->variant != NULL && strcmp(variant, f->variant) == 0)
+		return "treatment";
+	return NULL;
+}
+
+/* One human sentence: what happened, where, how sure. */
+static char *
+alert_summary(const struct finding *f, const char *what, const char *reason)
+{
+	struct alert_line l;
+	int i;
+
+	l.len = 0;
+	l.buf[0] = '\0';
+	if (strcmp(what, "srm") == 0 || strcmp(what, "untrusted") == 0) {
+		alert_printf(&l, "%s in experiment %s epoch %u:",
+		    strcmp(what, "srm") == 0 ? "Sample ratio mismatch" :
+		    "Verdicts untrustworthy (sample ratio mismatch)",
+		    f->experiment, f->epoch);
+		for (i = 0; i < f->narms; i++)
+			alert_printf(&l, "%s %s %llu exposures (weight %g)",
+			    i == 0 ? "" : ",", f->arms[i].variant,
+			    (unsigned long long)f->arms[i].exposures,
+			    f->arms[i].weight);
+		alert_printf(&l, "; p=%.3g", f->p);
+		return xstrdup(l.buf);
+	}
+	if (strcmp(what, "pause") == 0 || strcmp(what, "pause_dry_run") == 0) {
+		alert_printf(&l, "%s experiment %s: %s",
+		    strcmp(what, "pause") == 0 ? "Paused" :
+		    "Dry run: would have paused", f->experiment,
+		    reason != NULL ? reason : "pause guardrail");
+		return xstrdup(l.buf);
+	}
+	alert_printf(&l, "guardrail %s %s for %s vs %s in experiment %s: "
+	    "effect %+.4g", f->guardrail, strcmp(what, "safe") == 0 ?
+	    "is safe" : "shows harm", f->variant ? f->variant : "?",
+	    f->control ? f->control : "?", f->experiment, f->estimate);
+	if (isfinite(f->rel_estimate))
+		alert_printf(&l, " (%+.1f%%)", 100 * f->rel_estimate);
+	alert_printf(&l, ", confidence sequence [%.4g, %.4g], p=%.3g, "
+	    "alpha %.3g of %d tests", f->lower, f->upper, f->p, f->alpha,
+	    f->family);
+	if (f->untrusted)
+		alert_printf(&l, "; UNTRUSTED: sample ratio mismatch in this "
+		    "epoch");
+	return xstrdup(l.buf);
+}
+
+/* The key=value fields of the syslog line (after "alert raised"). */
+static char *
+alert_fields(const struct finding *f, const char *id, const char *what,
+    const char *link)
+{
+	struct alert_line l;
+	char key[PROTO_NAME_MAX + 16];
+	int i, srm;
+
+	srm = strcmp(what, "srm") == 0 || strcmp(what, "untrusted") == 0;
+	l.len = 0;
+	l.buf[0] = '\0';
+	alert_printf(&l, "id=%s alert=%s experiment=%s epoch=%u guardrail=%s",
+	    id, what, f->experiment, f->epoch, f->guardrail ? f->guardrail :
+	    "srm");
+	if (!srm) {
+		alert_printf(&l, " metric=%s test=%s variant=%s control=%s "
+		    "harm=%s verdict=%s", f->metric ? f->metric : "-",
+		    f->test ? f->test : "-", f->variant ? f->variant : "-",
+		    f->control ? f->control : "-", f->harm ? f->harm : "-",
+		    verdict_name(f->verdict));
+		alert_num(&l, "estimate", f->estimate);
+		alert_num(&l, "lower", f->lower);
+		alert_num(&l, "upper", f->upper);
+		alert_num(&l, "rel_estimate", f->rel_estimate);
+		alert_num(&l, "rel_lower", f->rel_lower);
+		alert_num(&l, "rel_upper", f->rel_upper);
+	} else
+		alert_printf(&l, " verdict=srm");
+	alert_num(&l, "p", f->p);
+	alert_num(&l, "alpha", f->alpha);
+	alert_printf(&l, " family=%d untrusted=%s", f->family,
+	    f->untrusted ? "yes" : "no");
+	/* Counts per arm: every arm for SRM, the two compared otherwise. */
+	for (i = 0; i < f->narms; i++) {
+		const struct finding_arm *arm = &f->arms[i];
+
+		if (!srm && alert_arm_role(f, arm->variant) == NULL)
+			continue;
+		alert_printf(&l, " exposures.%s=%llu", arm->variant,
+		    (unsigned long long)arm->exposures);
+		if (srm)
+			continue;
+		snprintf(key, sizeof key, "n.%s", arm->variant);
+		alert_num(&l, key, arm->n);
+		if (f->test != NULL && (strcmp(f->test, "proportion") == 0 ||
+		    strcmp(f->test, "rate") == 0)) {
+			snprintf(key, sizeof key, "k.%s", arm->variant);
+			alert_num(&l, key, arm->k);
+		}
+	}
+	if (link != NULL)
+		alert_printf(&l, " link=%s", link);
+	return xstrdup(l.buf);
+}
+
+static void
+alert_entry_free(struct alert_entry *e)
+{
+	if (e == NULL)
+		return;
+	free(e->experiment);
+	free(e->guardrail);
+	free(e->variant);
+	free(e->what);
+	free(e->line);
+	json_decref(e->body);
+	free(e);
+}
+
+static struct alert_entry *
+alert_find(struct alert *a, const char *id)
+{
+	size_t i;
+
+	for (i = 0; i < a->n; i++)
+		if (strcmp(a->v[i]->id, id) == 0)
+			return a->v[i];
+	return NULL;
+}
+
+static void
+alert_remove_at(struct alert *a, size_t i)
+{
+	alert_entry_free(a->v[i]);
+	memmove(&a->v[i], &a->v[i + 1], (a->n - i - 1) * sizeof *a->v);
+	a->n--;
+}
+
+/* Bounded: past ALERT_MAX the oldest acknowledged alert goes first. */
+static void
+alert_insert(struct alert *a, struct alert_entry *e)
+{
+	size_t i, victim = 0;
+	int found = 0;
+
+	if (a->n >= ALERT_MAX) {
+		for (i = 0; i < a->n && !found; i++) {
+			if (a->v[i]->state == ALERT_ACKED) {
+				victim = i;
+				found = 1;
+			}
+		}
+		log_warnx("alert: more than %d alerts, forgetting id=%s "
+		    "experiment=%s", ALERT_MAX, a->v[victim]->id,
+		    a->v[victim]->experiment);
+		alert_remove_at(a, victim);
+		a->evicted++;
+	}
+	a->v = xreallocarray(a->v, a->n + 1, sizeof *a->v);
+	a->v[a->n++] = e;
+}
+
+static void
+alert_syslog(struct alert *a, struct alert_entry *e, const char *event)
+{
+	if (e->reminders > 0 && strcmp(event, "reminder") == 0)
+		syslog(a->facility | e->priority, "alert %s %s reminder=%u",
+		    event, e->line, e->reminders);
+	else
+		syslog(a->facility | e->priority, "alert %s %s", event,
+		    e->line);
+	log_debug("alert %s %s", event, e->line);
+}
+
+static void
+alert_raise(struct alert *a, const struct finding *f, const char *what,
+    const char *reason)
+{
+	struct alert_entry *e;
+	const char *guardrail, *variant;
+	char id[sizeof e->id], *link, *summary;
+	json_t *body;
+	double now = daemon_now();
+
+	guardrail = f->guardrail != NULL ? f->guardrail : "srm";
+	variant = f->variant != NULL ? f->variant : "";
+	alert_make_id(id, f->experiment, f->epoch, guardrail, variant, what);
+	if (alert_find(a, id) != NULL) {
+		/* Already raised (or acknowledged): never page twice. */
+		a->duplicates++;
+		return;
+	}
+	e = xcalloc(1, sizeof *e);
+	memcpy(e->id, id, sizeof e->id);
+	e->experiment = xstrdup(f->experiment);
+	e->epoch = f->epoch;
+	e->guardrail = xstrdup(guardrail);
+	e->variant = xstrdup(variant);
+	e->what = xstrdup(what);
+	e->state = ALERT_RAISED;
+	e->priority = alert_priority(f, what);
+	e->first_seen = now;
+	e->last_sent = now;
+
+	link = alert_link(a, f->experiment);
+	e->line = alert_fields(f, id, what, link);
+	summary = alert_summary(f, what, reason);
+	if ((body = finding_json(f)) == NULL || !json_is_object(body)) {
+		json_decref(body);
+		body = json_object();
+	}
+	json_object_set_new(body, "id", json_string(id));
+	json_object_set_new(body, "type", json_string("stopcock.alert.raised"));
+	json_object_set_new(body, "alert", json_string(what));
+	json_object_set_new(body, "first_seen", json_real(now));
+	json_object_set_new(body, "summary", json_string(summary));
+	json_object_set_new(body, "untrusted", json_boolean(f->untrusted));
+	json_object_set_new(body, "link", link ? json_string(link) :
+	    json_null());
+	json_object_set_new(body, "reminder", json_integer(0));
+	if (reason != NULL)
+		json_object_set_new(body, "reason", json_string(reason));
+	e->body = body;
+	free(link);
+	free(summary);
+
+	alert_insert(a, e);
+	a->raised[alert_kind_index(what)]++;
+	alert_syslog(a, e, "raised");
+	webhook_send(a->d->webhook, e->id, e->body);
+}
+
+/* A new epoch (a new plan or a reset) retires the earlier epochs' alerts. */
+static void
+alert_clear(struct alert *a, const char *experiment, uint32_t below)
+{
+	size_t i = 0;
+
+	while (i < a->n) {
+		if (strcmp(a->v[i]->experiment, experiment) == 0 &&
+		    a->v[i]->epoch < below)
+			alert_remove_at(a, i);
+		else
+			i++;
+	}
+}
+
+void
+alert_finding(void *arg, const struct finding *f)
+{
+	struct alert *a = arg;
+	const char *what;
+
+	if (a == NULL || f == NULL || f->experiment == NULL)
+		return;
+	switch (f->kind) {
+	case FINDING_EPOCH:
+		alert_clear(a, f->experiment, f->epoch);
+		return;
+	case FINDING_PAUSE:
+		pause_finding(a->d->pause, f);
+		return;
+	default:
+		break;
+	}
+	if ((what = alert_what(f)) == NULL)
+		return;
+	if (f->kind == FINDING_VERDICT && f->previous == f->verdict)
+		return;
+	alert_raise(a, f, what, NULL);
+	if (f->kind == FINDING_SRM)
+		pause_finding(a->d->pause, f);	/* it decides (pause_on_srm) */
+}
+
+void
+alert_pause(struct alert *a, const struct finding *f, int dry_run,
+    const char *reason)
+{
+	if (a != NULL)
+		alert_raise(a, f, dry_run ? "pause_dry_run" : "pause", reason);
+}
+
+int
+alert_ack(struct alert *a, const char *experiment, const char *guardrail,
+    const char *variant, char **cause)
+{
+	struct alert_entry *e;
+	size_t i;
+	int n = 0;
+
+	for (i = 0; i < a->n; i++) {
+		e = a->v[i];
+		if (e->state != ALERT_RAISED ||
+		    strcmp(e->experiment, experiment) != 0 ||
+		    (guardrail != NULL && strcmp(e->guardrail, guardrail) != 0) ||
+		    (variant != NULL && *variant != '\0' &&
+		    strcmp(e->variant, variant) != 0))
+			continue;
+		e->state = ALERT_ACKED;
+		n++;
+		syslog(a->facility | LOG_NOTICE, "alert acknowledged id=%s "
+		    "alert=%s experiment=%s epoch=%u guardrail=%s variant=%s",
+		    e->id, e->what, e->experiment, e->epoch, e->guardrail,
+		    *e->variant ? e->variant : "-");
+	}
+	if (n == 0) {
+		xasprintf(cause, "no raised alert for experiment %s guardrail "
+		    "%s variant %s", experiment, guardrail ? guardrail : "*",
+		    variant && *variant ? variant : "*");
+		return -1;
+	}
+	a->acked += (uint64_t)n;
+	return 0;
+}
+
+void
+alert_experiment_reset(struct alert *a, const char *experiment)
+{
+	if (a != NULL)
+		alert_clear(a, experiment, UINT32_MAX);
+}
+
+static int
+alert_remindable(const struct alert_entry *e)
+{
+	return e->state == ALERT_RAISED && (strcmp(e->what, "harm") == 0 ||
+	    strcmp(e->what, "srm") == 0 || strcmp(e->what, "untrusted") == 0);
+}
+
+static void
+alert_remind_event(evutil_socket_t fd, short what, void *arg)
+{
+	struct alert *a = arg;
+	struct alert_entry *e;
+	double now = daemon_now();
+	json_t *body;
+	char *id;
+	size_t i;
+
+	for (i = 0; i < a->n; i++) {
+		e = a->v[i];
+		if (!alert_remindable(e) || now - e->last_sent < a->remind_every)
+			continue;
+		e->reminders++;
+		e->last_sent = now;
+		a->reminders++;
+		alert_syslog(a, e, "reminder");
+		/* A reminder is a new message: its own webhook-id. */
+		xasprintf(&id, "%s_r%u", e->id, e->reminders);
+		body = json_deep_copy(e->body);
+		json_object_set_new(body, "type",
+		    json_string("stopcock.alert.reminder"));
+		json_object_set_new(body, "reminder",
+		    json_integer(e->reminders));
+		json_object_set_new(body, "sent_at", json_real(now));
+		webhook_send(a->d->webhook, id, body);
+		json_decref(body);
+		free(id);
+	}
+}
+
+struct alert *
+alert_new(struct daemon *d, char **cause)
+{
+	const struct conf *c = d->conf;
+	struct alert *a;
+	struct timeval tv;
+	double every;
+	int fac;
+
+	fac = log_facility(c->syslog_facility ? c->syslog_facility : "daemon");
+	if (fac == -1) {
+		xasprintf(cause, "unknown syslog facility %s",
+		    c->syslog_facility);
+		return NULL;
+	}
+	a = xcalloc(1, sizeof *a);
+	a->d = d;
+	a->facility = fac;
+	a->remind_every = c->remind_every;
+	snprintf(alert_ident, sizeof alert_ident, "%s",
+	    c->syslog_ident ? c->syslog_ident : "stopcockd");
+	openlog(alert_ident, LOG_PID | LOG_NDELAY, fac);
+	if (a->remind_every > 0) {
+		every = a->remind_every / 4;
+		every = every < 0.25 ? 0.25 : every > 60 ? 60 : every;
+		tv.tv_sec = (time_t)every;
+		tv.tv_usec = (suseconds_t)((every - (double)tv.tv_sec) * 1e6);
+		a->remind = event_new(d->base, -1, EV_PERSIST,
+		    alert_remind_event, a);
+		if (a->remind == NULL || event_add(a->remind, &tv) == -1)
+			fatalx("alert: cannot arm the reminder timer");
+	}
+	if (d->engine != NULL)
+		engine_set_sink(d->engine, alert_finding, a);
+	return a;
+}
+
+void
+alert_free(struct alert *a)
+{
+	size_t i;
+
+	if (a == NULL)
+		return;
+	if (a->remind != NULL)
+		event_free(a->remind);
+	for (i = 0; i < a->n; i++)
+		alert_entry_free(a->v[i]);
+	free(a->v);
+	free(a);
+}
+
+json_t *
+alert_save(struct alert *a)
+{
+	struct alert_entry *e;
+	json_t *list = json_array();
+	size_t i;
+
+	for (i = 0; a != NULL && i < a->n; i++) {
+		e = a->v[i];
+		json_array_append_new(list, json_pack("{s:s, s:s, s:I, s:s, "
+		    "s:s, s:s, s:s, s:i, s:f, s:f, s:I, s:s, s:O}",
+		    "id", e->id, "experiment", e->experiment, "epoch",
+		    (json_int_t)e->epoch, "guardrail", e->guardrail, "variant",
+		    e->variant, "alert", e->what, "state",
+		    e->state == ALERT_RAISED ? "raised" : "acked", "priority",
+		    e->priority, "first_seen", e->first_seen, "last_sent",
+		    e->last_sent, "reminders", (json_int_t)e->reminders,
+		    "line", e->line, "body", e->body));
+	}
+	return json_pack("{s:i, s:o}", "version", 1, "alerts", list);
+}
+
+static struct alert_entry *
+alert_restore_one(const json_t *j, char **cause)
+{
+	struct alert_entry *e;
+	const char *id, *exp, *gr, *var, *what, *state, *line;
+	json_int_t epoch, reminders;
+	json_t *body;
+	json_error_t err;
+	char check[sizeof e->id];
+	int priority;
+	double first, last;
+
+	if (json_unpack_ex((json_t *)j, &err, 0, "{s:s, s:s, s:I, s:s, s:s, "
+	    "s:s, s:s, s:i, s:F, s:F, s:I, s:s, s:o}", "id", &id, "experiment",
+	    &exp, "epoch", &epoch, "guardrail", &gr, "variant", &var, "alert",
+	    &what, "state", &state, "priority", &priority, "first_seen",
+	    &first, "last_sent", &last, "reminders", &reminders, "line", &line,
+	    "body", &body) == -1) {
+		xasprintf(cause, "alert state: %s", err.text);
+		return NULL;
+	}
+	if (epoch < 1 || epoch > UINT32_MAX || reminders < 0 ||
+	    reminders > UINT32_MAX || alert_kind_index(what) == -1 ||
+	    (strcmp(state, "raised") != 0 && strcmp(state, "acked") != 0) ||
+	    priority < LOG_EMERG || priority > LOG_DEBUG ||
+	    !json_is_object(body) || strlen(line) >= ALERT_LINE_MAX ||
+	    !proto_name_ok(exp, strlen(exp))) {
+		xasprintf(cause, "alert state: bad entry %s", id);
+		return NULL;
+	}
+	alert_make_id(check, exp, (uint32_t)epoch, gr, var, what);
+	if (strcmp(check, id) != 0) {
+		xasprintf(cause, "alert state: id %s does not match its "
+		    "identity", id);
+		return NULL;
+	}
+	e = xcalloc(1, sizeof *e);
+	memcpy(e->id, check, sizeof e->id);
+	e->experiment = xstrdup(exp);
+	e->epoch = (uint32_t)epoch;
+	e->guardrail = xstrdup(gr);
+	e->variant = xstrdup(var);
+	e->what = xstrdup(what);
+	e->state = strcmp(state, "raised") == 0 ? ALERT_RAISED : ALERT_ACKED;
+	e->priority = priority;
+	e->first_seen = first;
+	e->last_sent = last;
+	e->reminders = (uint32_t)reminders;
+	e->line = xstrdup(line);
+	e->body = json_incref(body);
+	return e;
+}
+
+int
+alert_restore(struct alert *a, const json_t *j, char **cause)
+{
+	struct alert_entry **v = NULL, *e;
+	const json_t *list;
+	json_int_t version;
+	size_t i, n = 0;
+
+	if (json_unpack((json_t *)j, "{s:I, s:o}", "version", &version,
+	    "alerts", &list) == -1 || !json_is_array(list)) {
+		*cause = xstrdup("alert state: not an alert state object");
+		return -1;
+	}
+	if (version != 1) {
+		xasprintf(cause, "alert state: unknown version %lld",
+		    (long long)version);
+		return -1;
+	}
+	if (json_array_size(list) > ALERT_MAX) {
+		xasprintf(cause, "alert state: more than %d alerts", ALERT_MAX);
+		return -1;
+	}
+	for (i = 0; i < json_array_size(list); i++) {
+		if ((e = alert_restore_one(json_array_get(list, i), cause)) ==
+		    NULL)
+			goto fail;
+		v = xreallocarray(v, n + 1, sizeof *v);
+		v[n++] = e;
+	}
+	/* All or nothing: the current state goes only now. */
+	for (i = 0; i < a->n; i++)
+		alert_entry_free(a->v[i]);
+	free(a->v);
+	a->v = v;
+	a->n = n;
+	return 0;
+fail:
+	for (i = 0; i < n; i++)
+		alert_entry_free(v[i]);
+	free(v);
+	return -1;
+}
+
+json_t *
+alert_json(struct alert *a)
+{
+	struct alert_entry *e;
+	json_t *list = json_array(), *o;
+	size_t i;
+
+	for (i = 0; a != NULL && i < a->n; i++) {
+		e = a->v[i];
+		o = json_deep_copy(e->body);
+		json_object_set_new(o, "state", json_string(e->state ==
+		    ALERT_RAISED ? "raised" : "acked"));
+		json_object_set_new(o, "last_sent", json_real(e->last_sent));
+		json_object_set_new(o, "reminder", json_integer(e->reminders));
+		json_object_del(o, "type");
+		json_array_append_new(list, o);
+	}
+	return list;
+}
+
+void
+alert_metrics(struct alert *a, struct evbuffer *b)
+{
+	uint64_t active[SC_NELEM(alert_kinds)] = { 0 };
+	size_t i;
+	int k;
+
+	if (a == NULL)
+		return;
+	for (i = 0; i < a->n; i++)
+		if (a->v[i]->state == ALERT_RAISED &&
+		    (k = alert_kind_index(a->v[i]->what)) != -1)
+			active[k]++;
+	evbuffer_add_printf(b, "# HELP stopcock_alerts_raised_total Alerts "
+	    "raised since start, by kind.\n"
+	    "# TYPE stopcock_alerts_raised_total counter\n");
+	for (i = 0; i < SC_NELEM(alert_kinds); i++)
+		evbuffer_add_printf(b, "stopcock_alerts_raised_total"
+		    "{alert=\"%s\"} %llu\n", alert_kinds[i],
+		    (unsigned long long)a->raised[i]);
+	evbuffer_add_printf(b, "# HELP stopcock_alerts_active Alerts raised "
+	    "and not acknowledged, by kind.\n"
+	    "# TYPE stopcock_alerts_active gauge\n");
+	for (i = 0; i < SC_NELEM(alert_kinds); i++)
+		evbuffer_add_printf(b, "stopcock_alerts_active{alert=\"%s\"} "
+		    "%llu\n", alert_kinds[i], (unsigned long long)active[i]);
+	evbuffer_add_printf(b, "# HELP stopcock_alerts_reminders_total "
+	    "Reminders sent.\n# TYPE stopcock_alerts_reminders_total counter\n"
+	    "stopcock_alerts_reminders_total %llu\n"
+	    "# HELP stopcock_alerts_acked_total Alerts acknowledged.\n"
+	    "# TYPE stopcock_alerts_acked_total counter\n"
+	    "stopcock_alerts_acked_total %llu\n"
+	    "# HELP stopcock_alerts_duplicates_total Findings that matched an "
+	    "alert already raised (not sent again).\n"
+	    "# TYPE stopcock_alerts_duplicates_total counter\n"
+	    "stopcock_alerts_duplicates_total %llu\n"
+	    "# HELP stopcock_alerts_evicted_total Alerts forgotten because "
+	    "more than the limit were held.\n"
+	    "# TYPE stopcock_alerts_evicted_total counter\n"
+	    "stopcock_alerts_evicted_total %llu\n",
+	    (unsigned long long)a->reminders, (unsigned long long)a->acked,
+	    (unsigned long long)a->duplicates, (unsigned long long)a->evicted);
+}

@@ -1,0 +1,1062 @@
+/*
+ * webhook.c: signed webhook deliveries over libcurl's multi interface,
+ * driven by the daemon's libevent loop, so no call here ever blocks on
+ * the network. One receiver per [webhook NAME], plus an internal receiver
+ * for the pause URL (pause.c posts through webhook_post). Each delivery
+ * is spooled to <state_dir>/spool/<receiver>/ before it is attempted and
+ * deleted once the receiver answers 2xx, so an outage or a restart loses
+ * nothing; the queue per receiver is bounded (oldest dropped, counted).
+ *
+ * Signing follows the Standard Webhooks specification: the secret is
+ * "whsec_" + base64 key bytes; webhook-signature is "v1," +
+ * base64(HMAC-SHA256(key, id "." timestamp "." body)). The webhook-id is
+ * stable for one message across attempts, so receivers can deduplicate.
+ *
+ * Retries: timeouts, connection errors, 429 and 5xx are retried with
+ * capped exponential backoff with full jitter (Brooker, "Exponential
+ * backoff and jitter", AWS Architecture Blog, 2015); the backoff is per
+ * receiver, and while a receiver is failing only one request probes it.
+ * Any other answer (4xx, 3xx) is final: counted as failed and dropped.
+ */
+#include <sys/queue.h>
+#include <sys/stat.h>
+#include <sys/types.h>
+
+#include <dirent.h>
+#include <errno.h>
+#include <fcntl.h>
+#include <inttypes.h>
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include <curl/curl.h>
+#include <openssl/evp.h>
+#include <openssl/hmac.h>
+#include <openssl/rand.h>
+
+#include "stopcock/log.h"
+#include "daemon.h"
+
+#define WEBHOOK_INFLIGHT_MAX	4	/* requests per healthy receiver */
+#define WEBHOOK_BACKOFF_BASE	1.0	/* seconds */
+#define WEBHOOK_BACKOFF_CAP	300.0
+#define WEBHOOK_TIMEOUT		10.0	/* when the config gives none */
+#define WEBHOOK_QUEUE		1000
+#define WEBHOOK_KEY_MAX		256	/* bytes of a decoded secret */
+#define WEBHOOK_SPOOL_MAX	(1024 * 1024)	/* bytes of one spool file */
+#define WEBHOOK_REPLY_MAX	256	/* bytes of an answer kept for logs */
+
+struct receiver;
+
+struct delivery {
+	TAILQ_ENTRY(delivery)	 entry;
+	struct receiver		*rcv;
+	uint64_t		 seq;
+	char			*id;
+	char			*body;
+	size_t			 len;
+	char			*path;		/* spool file, NULL if none */
+	int			 attempts;
+	CURL			*easy;
+	struct curl_slist	*headers;
+	char			 error[CURL_ERROR_SIZE];
+	char			 reply[WEBHOOK_REPLY_MAX + 1];
+	size_t			 replylen;
+};
+TAILQ_HEAD(deliveries, delivery);
+
+struct receiver {
+	struct webhook		*w;
+	char			*name;
+	char			*url;
+	char			*spool;		/* directory, NULL: memory only */
+	unsigned char		 key[WEBHOOK_KEY_MAX];
+	size_t			 keylen;
+	int			 sign;
+	int			 internal;	/* not reached by webhook_send */
+	double			 timeout;
+	int			 max_attempts;	/* <= 0: unlimited */
+	uint32_t		 queue_max;
+
+	struct deliveries	 waiting;	/* oldest first */
+	struct deliveries	 inflight;
+	uint32_t		 nwaiting;
+	uint32_t		 ninflight;
+	uint32_t		 failing;	/* consecutive retryable failures */
+	double			 next_try;	/* wall time */
+	struct event		*wake;
+
+	uint64_t		 sent;
+	uint64_t		 failed;
+	uint64_t		 dropped;
+	uint64_t		 retries;
+	uint64_t		 spool_errors;
+};
+
+struct webhook {
+	struct daemon		*d;
+	CURLM			*multi;
+	struct event		*timer;
+	struct receiver		**rcv;
+	int			 nrcv;
+	uint64_t		 seq;
+};
+
+static void	webhook_kick(struct receiver *);
+
+/*
+ * Decode a Standard Webhooks secret ("whsec_" + base64) into key bytes.
+ * EVP_DecodeBlock wants a multiple of four characters and counts padding
+ * as zero bytes, so pad first and trim after.
+ */
+static int
+webhook_secret_key(const char *secret, unsigned char *key, size_t *keylen,
+    char **cause)
+{
+	const char *b64;
+	char *padded;
+	size_t len, i, pad = 0;
+	int n;
+
+	if (strncmp(secret, "whsec_", 6) != 0) {
+		*cause = xstrdup("secret must start with whsec_");
+		return -1;
+	}
+	b64 = secret + 6;
+	len = strlen(b64);
+	if (len == 0 || len > (WEBHOOK_KEY_MAX / 3) * 4) {
+		*cause = xstrdup("secret has no key or a key that is too long");
+		return -1;
+	}
+	for (i = 0; i < len; i++) {
+		if (b64[i] == '=' && i + 2 < len) {
+			*cause = xstrdup("secret is not valid base64");
+			return -1;
+		}
+	}
+	padded = xmalloc(len + 4);
+	memcpy(padded, b64, len);
+	while ((len % 4) != 0)
+		padded[len++] = '=';
+	padded[len] = '\0';
+	for (i = len; i > 0 && padded[i - 1] == '='; i--)
+		pad++;
+	n = EVP_DecodeBlock(key, (unsigned char *)padded, (int)len);
+	free(padded);
+	if (n < 0 || pad > 2 || (size_t)n < pad || (size_t)n - pad == 0) {
+		*cause = xstrdup("secret is not valid base64");
+		return -1;
+	}
+	*keylen = (size_t)n - pad;
+	return 0;
+}
+
+/* "v1," + base64(HMAC-SHA256(key, id.timestamp.body)) into out. */
+static int
+webhook_sign(const struct receiver *r, const char *id, long long ts,
+    const char *body, size_t len, char *out, size_t outsize)
+{
+	unsigned char mac[EVP_MAX_MD_SIZE];
+	unsigned int maclen = 0;
+	char *msg;
+	size_t msglen;
+	int n;
+
+	msglen = (size_t)xasprintf(&msg, "%s.%lld.", id, ts);
+	msg = xreallocarray(msg, msglen + len + 1, 1);
+	memcpy(msg + msglen, body, len);
+	msglen += len;
+	if (HMAC(EVP_sha256(), r->key, (int)r->keylen, (unsigned char *)msg,
+	    msglen, mac, &maclen) == NULL) {
+		free(msg);
+		return -1;
+	}
+	free(msg);
+	if (outsize < 3 + 4 * ((maclen + 2) / 3) + 1)
+		return -1;
+	memcpy(out, "v1,", 3);
+	n = EVP_EncodeBlock((unsigned char *)out + 3, mac, (int)maclen);
+	if (n < 0)
+		return -1;
+	out[3 + n] = '\0';
+	return 0;
+}
+
+/* Full jitter: uniform in [0, min(cap, base * 2^(failures - 1))]. */
+static double
+webhook_backoff(uint32_t failures)
+{
+	double ceiling;
+	uint32_t u;
+
+	ceiling = WEBHOOK_BACKOFF_BASE * ldexp(1.0,
+	    (int)(failures > 20 ? 20 : failures) - 1);
+	if (ceiling > WEBHOOK_BACKOFF_CAP)
+		ceiling = WEBHOOK_BACKOFF_CAP;
+	if (RAND_bytes((unsigned char *)&u, sizeof u) != 1)
+		u = (uint32_t)random();
+	return ceiling * ((double)u / 4294967296.0);
+}
+
+static void
+webhook_delivery_free(struct delivery *dl)
+{
+	if (dl->easy != NULL) {
+		curl_multi_remove_handle(dl->rcv->w->multi, dl->easy);
+		curl_easy_cleanup(dl->easy);
+	}
+	curl_slist_free_all(dl->headers);
+	free(dl->id);
+	free(dl->body);
+	free(dl->path);
+	free(dl);
+}
+
+/* The delivery is settled (sent, failed or dropped): forget its spool. */
+static void
+webhook_unspool(struct delivery *dl)
+{
+	if (dl->path != NULL && unlink(dl->path) == -1 && errno != ENOENT)
+		log_warn("webhook: unlink %s", dl->path);
+}
+
+/* Write tmp, fsync, rename, fsync the directory: all or nothing. */
+static int
+webhook_spool_write(struct receiver *r, struct delivery *dl)
+{
+	json_t *j;
+	char *text, *path, *tmp;
+	size_t len, off = 0;
+	ssize_t n;
+	int fd, dfd;
+
+	j = json_pack("{s:s, s:s%, s:s, s:I}", "id", dl->id, "body", dl->body,
+	    dl->len, "receiver", r->name, "seq", (json_int_t)dl->seq);
+	if (j == NULL)
+		return -1;
+	text = json_dumps(j, JSON_COMPACT);
+	json_decref(j);
+	if (text == NULL)
+		return -1;
+	len = strlen(text);
+	xasprintf(&path, "%s/%016" PRIx64 ".json", r->spool, dl->seq);
+	xasprintf(&tmp, "%s.tmp", path);
+	fd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0600);
+	if (fd == -1)
+		goto fail;
+	while (off < len) {
+		n = write(fd, text + off, len - off);
+		if (n == -1 && errno == EINTR)
+			continue;
+		if (n <= 0)
+			goto fail_fd;
+		off += (size_t)n;
+	}
+	if (fsync(fd) == -1 || close(fd) == -1) {
+		fd = -1;
+		goto fail_unlink;
+	}
+	if (rename(tmp, path) == -1)
+		goto fail_unlink;
+	if ((dfd = open(r->spool, O_RDONLY | O_DIRECTORY | O_CLOEXEC)) != -1) {
+		(void)fsync(dfd);
+		close(dfd);
+	}
+	free(text);
+	free(tmp);
+	dl->path = path;
+	return 0;
+
+fail_fd:
+	close(fd);
+fail_unlink:
+	unlink(tmp);
+fail:
+	log_warn("webhook: spool %s", tmp);
+	free(text);
+	free(tmp);
+	free(path);
+	return -1;
+}
+
+static int
+webhook_mkdirs(const char *path, char **cause)
+{
+	char *p, *s;
+
+	p = xstrdup(path);
+	for (s = p + 1; *s != '\0'; s++) {
+		if (*s != '/')
+			continue;
+		*s = '\0';
+		if (mkdir(p, 0700) == -1 && errno != EEXIST)
+			goto fail;
+		*s = '/';
+	}
+	if (mkdir(p, 0700) == -1 && errno != EEXIST)
+		goto fail;
+	free(p);
+	return 0;
+fail:
+	xasprintf(cause, "mkdir %s: %s", p, strerror(errno));
+	free(p);
+	return -1;
+}
+
+static void
+webhook_drop_oldest(struct receiver *r)
+{
+	struct delivery *dl, *old = TAILQ_FIRST(&r->waiting);
+
+	TAILQ_FOREACH(dl, &r->inflight, entry)
+		if (old == NULL || dl->seq < old->seq)
+			old = dl;
+	if (old == NULL)
+		return;
+	if (old->easy != NULL) {
+		TAILQ_REMOVE(&r->inflight, old, entry);
+		r->ninflight--;
+	} else {
+		TAILQ_REMOVE(&r->waiting, old, entry);
+		r->nwaiting--;
+	}
+	r->dropped++;
+	log_warnx("webhook: queue full, dropped oldest receiver=%s id=%s "
+	    "queue=%u", r->name, old->id, r->queue_max);
+	webhook_unspool(old);
+	webhook_delivery_free(old);
+}
+
+/* Insert by seq so spool loading and re-queued retries keep the order. */
+static void
+webhook_enqueue(struct receiver *r, struct delivery *dl)
+{
+	struct delivery *at;
+
+	while (r->nwaiting + r->ninflight >= r->queue_max &&
+	    r->nwaiting + r->ninflight > 0)
+		webhook_drop_oldest(r);
+	TAILQ_FOREACH(at, &r->waiting, entry)
+		if (at->seq > dl->seq)
+			break;
+	if (at != NULL)
+		TAILQ_INSERT_BEFORE(at, dl, entry);
+	else
+		TAILQ_INSERT_TAIL(&r->waiting, dl, entry);
+	r->nwaiting++;
+}
+
+static size_t
+webhook_reply_cb(char *ptr, size_t size, size_t nmemb, void *arg)
+{
+	struct delivery *dl = arg;
+	size_t n = size * nmemb, room = WEBHOOK_REPLY_MAX - dl->replylen;
+
+	if (room > n)
+		room = n;
+	memcpy(dl->reply + dl->replylen, ptr, room);
+	dl->replylen += room;
+	dl->reply[dl->replylen] = '\0';
+	return n;	/* the rest is read and discarded */
+}
+
+static int
+webhook_start(struct receiver *r, struct delivery *dl, char **cause)
+{
+	struct webhook *w = r->w;
+	char sig[128], *h;
+	long long ts = (long long)daemon_now();
+	CURLMcode mc;
+	CURL *e;
+
+	dl->error[0] = '\0';
+	dl->replylen = 0;
+	dl->reply[0] = '\0';
+	curl_slist_free_all(dl->headers);
+	dl->headers = NULL;
+
+	xasprintf(&h, "webhook-id: %s", dl->id);
+	dl->headers = curl_slist_append(dl->headers, h);
+	free(h);
+	xasprintf(&h, "webhook-timestamp: %lld", ts);
+	dl->headers = curl_slist_append(dl->headers, h);
+	free(h);
+	if (r->sign) {
+		if (webhook_sign(r, dl->id, ts, dl->body, dl->len, sig,
+		    sizeof sig) == -1) {
+			*cause = xstrdup("signing failed");
+			return -1;
+		}
+		xasprintf(&h, "webhook-signature: %s", sig);
+		dl->headers = curl_slist_append(dl->headers, h);
+		free(h);
+	}
+	dl->headers = curl_slist_append(dl->headers,
+	    "Content-Type: application/json");
+	dl->headers = curl_slist_append(dl->headers, "Expect:");
+	if (dl->headers == NULL) {
+		*cause = xstrdup("curl_slist_append failed");
+		return -1;
+	}
+
+	if ((e = curl_easy_init()) == NULL) {
+		*cause = xstrdup("curl_easy_init failed");
+		return -1;
+	}
+	if (curl_easy_setopt(e, CURLOPT_URL, r->url) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_PROTOCOLS_STR, "http,https") !=
+	    CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_NOSIGNAL, 1L) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_POST, 1L) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_POSTFIELDS, dl->body) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_POSTFIELDSIZE_LARGE,
+	    (curl_off_t)dl->len) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_HTTPHEADER, dl->headers) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_USERAGENT, "stopcockd") != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_TIMEOUT_MS,
+	    (long)(r->timeout * 1000)) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_WRITEFUNCTION, webhook_reply_cb) !=
+	    CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_WRITEDATA, dl) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_ERRORBUFFER, dl->error) != CURLE_OK ||
+	    curl_easy_setopt(e, CURLOPT_PRIVATE, dl) != CURLE_OK) {
+		curl_easy_cleanup(e);
+		*cause = xstrdup("curl_easy_setopt failed");
+		return -1;
+	}
+	if ((mc = curl_multi_add_handle(w->multi, e)) != CURLM_OK) {
+		curl_easy_cleanup(e);
+		xasprintf(cause, "curl_multi_add_handle: %s",
+		    curl_multi_strerror(mc));
+		return -1;
+	}
+	dl->easy = e;
+	dl->attempts++;
+	return 0;
+}
+
+/* Try again later: the receiver backs off as a whole. */
+static void
+webhook_retry(struct receiver *r, struct delivery *dl, double retry_after)
+{
+	double delay, now = daemon_now();
+
+	if (r->max_attempts > 0 && dl->attempts >= r->max_attempts) {
+		r->failed++;
+		log_warnx("webhook: giving up receiver=%s id=%s attempts=%d",
+		    r->name, dl->id, dl->attempts);
+		webhook_unspool(dl);
+		webhook_delivery_free(dl);
+		return;
+	}
+	r->retries++;
+	r->failing++;
+	delay = webhook_backoff(r->failing);
+	if (retry_after > delay)
+		delay = retry_after > WEBHOOK_BACKOFF_CAP ?
+		    WEBHOOK_BACKOFF_CAP : retry_after;
+	if (now + delay > r->next_try)
+		r->next_try = now + delay;
+	webhook_enqueue(r, dl);
+}
+
+static void
+webhook_done(struct webhook *w, CURL *e, CURLcode rc)
+{
+	struct delivery *dl = NULL;
+	struct receiver *r;
+	long status = 0;
+	curl_off_t after = -1;
+
+	if (curl_easy_getinfo(e, CURLINFO_PRIVATE, (char **)&dl) != CURLE_OK ||
+	    dl == NULL) {
+		curl_multi_remove_handle(w->multi, e);
+		curl_easy_cleanup(e);
+		return;
+	}
+	r = dl->rcv;
+	(void)curl_easy_getinfo(e, CURLINFO_RESPONSE_CODE, &status);
+	(void)curl_easy_getinfo(e, CURLINFO_RETRY_AFTER, &after);
+	curl_multi_remove_handle(w->multi, e);
+	curl_easy_cleanup(e);
+	dl->easy = NULL;
+	TAILQ_REMOVE(&r->inflight, dl, entry);
+	r->ninflight--;
+
+	if (rc == CURLE_OK && status >= 200 && status <= 299) {
+		r->sent++;
+		r->failing = 0;
+		r->next_try = 0;
+		log_debug("webhook: sent receiver=%s id=%s status=%ld "
+		    "attempts=%d", r->name, dl->id, status, dl->attempts);
+		webhook_unspool(dl);
+		webhook_delivery_free(dl);
+	} else if (rc != CURLE_OK) {
+		log_warnx("webhook: attempt failed receiver=%s id=%s "
+		    "attempt=%d error=\"%s\"", r->name, dl->id, dl->attempts,
+		    dl->error[0] != '\0' ? dl->error : curl_easy_strerror(rc));
+		if (rc == CURLE_URL_MALFORMAT ||
+		    rc == CURLE_UNSUPPORTED_PROTOCOL) {
+			r->failed++;
+			webhook_unspool(dl);
+			webhook_delivery_free(dl);
+		} else
+			webhook_retry(r, dl, 0);
+	} else if (status == 429 || status >= 500) {
+		log_warnx("webhook: attempt failed receiver=%s id=%s "
+		    "attempt=%d status=%ld", r->name, dl->id, dl->attempts,
+		    status);
+		webhook_retry(r, dl, after > 0 ? (double)after : 0);
+	} else {
+		/* The receiver answered and refused: retrying cannot help. */
+		r->failed++;
+		r->failing = 0;
+		r->next_try = 0;
+		log_warnx("webhook: refused receiver=%s id=%s status=%ld "
+		    "reply=\"%.80s\"", r->name, dl->id, status, dl->reply);
+		webhook_unspool(dl);
+		webhook_delivery_free(dl);
+	}
+	webhook_kick(r);
+}
+
+static void
+webhook_check(struct webhook *w)
+{
+	CURLMsg *m;
+	int left;
+
+	while ((m = curl_multi_info_read(w->multi, &left)) != NULL)
+		if (m->msg == CURLMSG_DONE)
+			webhook_done(w, m->easy_handle, m->data.result);
+}
+
+static void
+webhook_socket_event(evutil_socket_t fd, short what, void *arg)
+{
+	struct webhook *w = arg;
+	int action = 0, running;
+	CURLMcode mc;
+
+	if (what & EV_READ)
+		action |= CURL_CSELECT_IN;
+	if (what & EV_WRITE)
+		action |= CURL_CSELECT_OUT;
+	mc = curl_multi_socket_action(w->multi, fd, action, &running);
+	if (mc != CURLM_OK)
+		log_warnx("webhook: curl_multi_socket_action: %s",
+		    curl_multi_strerror(mc));
+	webhook_check(w);
+}
+
+static void
+webhook_timer_event(evutil_socket_t fd, short what, void *arg)
+{
+	struct webhook *w = arg;
+	int running;
+	CURLMcode mc;
+
+	mc = curl_multi_socket_action(w->multi, CURL_SOCKET_TIMEOUT, 0,
+	    &running);
+	if (mc != CURLM_OK)
+		log_warnx("webhook: curl_multi_socket_action: %s",
+		    curl_multi_strerror(mc));
+	webhook_check(w);
+}
+
+/* CURLMOPT_SOCKETFUNCTION: one persistent event per socket curl uses. */
+static int
+webhook_socket_cb(CURL *e, curl_socket_t s, int what, void *arg,
+    void *socketp)
+{
+	struct webhook *w = arg;
+	struct event *ev = socketp;
+	short kind;
+
+	if (what == CURL_POLL_REMOVE) {
+		if (ev != NULL) {
+			event_free(ev);
+			curl_multi_assign(w->multi, s, NULL);
+		}
+		return 0;
+	}
+	kind = EV_PERSIST;
+	if (what & CURL_POLL_IN)
+		kind |= EV_READ;
+	if (what & CURL_POLL_OUT)
+		kind |= EV_WRITE;
+	if (ev != NULL) {
+		event_del(ev);
+		if (event_assign(ev, w->d->base, s, kind, webhook_socket_event,
+		    w) == -1)
+			return -1;
+	} else {
+		ev = event_new(w->d->base, s, kind, webhook_socket_event, w);
+		if (ev == NULL)
+			return -1;
+		if (curl_multi_assign(w->multi, s, ev) != CURLM_OK) {
+			event_free(ev);
+			return -1;
+		}
+	}
+	return event_add(ev, NULL) == -1 ? -1 : 0;
+}
+
+/* CURLMOPT_TIMERFUNCTION: curl's one timeout becomes one loop timer. */
+static int
+webhook_timer_cb(CURLM *multi, long ms, void *arg)
+{
+	struct webhook *w = arg;
+	struct timeval tv;
+
+	if (ms < 0)
+		return event_del(w->timer);
+	tv.tv_sec = ms / 1000;
+	tv.tv_usec = (ms % 1000) * 1000;
+	return evtimer_add(w->timer, &tv);
+}
+
+static void
+webhook_wake_event(evutil_socket_t fd, short what, void *arg)
+{
+	webhook_kick(arg);
+}
+
+/* Start what may start now; otherwise arm the wake timer. */
+static void
+webhook_kick(struct receiver *r)
+{
+	struct delivery *dl;
+	struct timeval tv;
+	double now = daemon_now(), wait;
+	char *cause = NULL;
+
+	while ((dl = TAILQ_FIRST(&r->waiting)) != NULL) {
+		if (now < r->next_try) {
+			wait = r->next_try - now;
+			tv.tv_sec = (time_t)wait;
+			tv.tv_usec = (suseconds_t)((wait - (double)tv.tv_sec) *
+			    1e6);
+			evtimer_add(r->wake, &tv);
+			return;
+		}
+		if (r->ninflight >= (r->failing > 0 ? 1 : WEBHOOK_INFLIGHT_MAX))
+			return;
+		TAILQ_REMOVE(&r->waiting, dl, entry);
+		r->nwaiting--;
+		if (webhook_start(r, dl, &cause) == -1) {
+			log_warnx("webhook: cannot start receiver=%s id=%s: %s",
+			    r->name, dl->id, cause);
+			free(cause);
+			cause = NULL;
+			dl->attempts++;
+			webhook_retry(r, dl, WEBHOOK_BACKOFF_BASE);
+			continue;
+		}
+		TAILQ_INSERT_TAIL(&r->inflight, dl, entry);
+		r->ninflight++;
+	}
+}
+
+static void
+webhook_queue(struct receiver *r, const char *id, const char *body,
+    size_t len)
+{
+	struct delivery *dl;
+
+	dl = xcalloc(1, sizeof *dl);
+	dl->rcv = r;
+	dl->seq = r->w->seq++;
+	dl->id = xstrdup(id);
+	dl->body = xmalloc(len + 1);
+	memcpy(dl->body, body, len);
+	dl->body[len] = '\0';
+	dl->len = len;
+	if (r->spool != NULL && webhook_spool_write(r, dl) == -1)
+		r->spool_errors++;
+	webhook_enqueue(r, dl);
+	webhook_kick(r);
+}
+
+/* Read one spool file back; a damaged file is kept aside, not lost. */
+static void
+webhook_spool_load_one(struct receiver *r, const char *path, uint64_t seq)
+{
+	struct delivery *dl;
+	json_error_t err;
+	json_t *j;
+	const char *id = NULL, *body = NULL;
+	size_t len = 0;
+	char *bad;
+
+	j = json_load_file(path, 0, &err);
+	if (j == NULL || json_unpack(j, "{s:s, s:s%}", "id", &id, "body",
+	    &body, &len) == -1 || strlen(id) == 0 || strlen(id) > 128) {
+		xasprintf(&bad, "%s.bad", path);
+		log_warnx("webhook: damaged spool file %s kept as %s", path,
+		    bad);
+		if (rename(path, bad) == -1)
+			log_warn("webhook: rename %s", path);
+		free(bad);
+		r->spool_errors++;
+		json_decref(j);
+		return;
+	}
+	dl = xcalloc(1, sizeof *dl);
+	dl->rcv = r;
+	dl->seq = seq;
+	dl->id = xstrdup(id);
+	dl->body = xmalloc(len + 1);
+	memcpy(dl->body, body, len);
+	dl->body[len] = '\0';
+	dl->len = len;
+	dl->path = xstrdup(path);
+	json_decref(j);
+	webhook_enqueue(r, dl);
+	if (seq >= r->w->seq)
+		r->w->seq = seq + 1;
+}
+
+static void
+webhook_spool_load(struct receiver *r)
+{
+	DIR *dir;
+	struct dirent *de;
+	struct stat st;
+	char *path, *end;
+	uint64_t seq;
+	size_t n = 0;
+
+	if ((dir = opendir(r->spool)) == NULL) {
+		log_warn("webhook: opendir %s", r->spool);
+		return;
+	}
+	while ((de = readdir(dir)) != NULL) {
+		if (de->d_name[0] == '.')
+			continue;
+		xasprintf(&path, "%s/%s", r->spool, de->d_name);
+		if (strlen(de->d_name) == 16 + 9 &&
+		    strcmp(de->d_name + 16, ".json.tmp") == 0) {
+			/* A write that never completed: nothing was sent. */
+			unlink(path);
+			free(path);
+			continue;
+		}
+		errno = 0;
+		seq = strtoull(de->d_name, &end, 16);
+		if (strlen(de->d_name) != 16 + 5 || end != de->d_name + 16 ||
+		    strcmp(end, ".json") != 0 || errno != 0) {
+			free(path);
+			continue;
+		}
+		if (stat(path, &st) == -1 || !S_ISREG(st.st_mode) ||
+		    st.st_size > WEBHOOK_SPOOL_MAX) {
+			log_warnx("webhook: skipping spool file %s", path);
+			free(path);
+			continue;
+		}
+		webhook_spool_load_one(r, path, seq);
+		n++;
+		free(path);
+	}
+	closedir(dir);
+	if (n > 0)
+		log_info("webhook: loaded spool receiver=%s deliveries=%u",
+		    r->name, r->nwaiting);
+}
+
+static int
+webhook_add(struct webhook *w, const char *name, const char *url,
+    const char *secret, double timeout, int max_attempts, uint32_t queue,
+    int internal, char **cause)
+{
+	struct daemon *d = w->d;
+	struct receiver *r;
+	char *why = NULL;
+
+	if (strcmp(name, ".") == 0 || strcmp(name, "..") == 0 ||
+	    strchr(name, '/') != NULL) {
+		xasprintf(cause, "webhook %s: bad receiver name", name);
+		return -1;
+	}
+	if (url == NULL || *url == '\0') {
+		xasprintf(cause, "webhook %s: no url", name);
+		return -1;
+	}
+	r = xcalloc(1, sizeof *r);
+	r->w = w;
+	TAILQ_INIT(&r->waiting);
+	TAILQ_INIT(&r->inflight);
+	if (secret != NULL && *secret != '\0') {
+		if (webhook_secret_key(secret, r->key, &r->keylen, &why) ==
+		    -1) {
+			xasprintf(cause, "webhook %s: %s", name, why);
+			free(why);
+			free(r);
+			return -1;
+		}
+		r->sign = 1;
+	}
+	r->name = xstrdup(name);
+	r->url = xstrdup(url);
+	r->internal = internal;
+	r->timeout = timeout > 0 ? timeout : WEBHOOK_TIMEOUT;
+	r->max_attempts = max_attempts;
+	r->queue_max = queue > 0 ? queue : WEBHOOK_QUEUE;
+	if ((r->wake = evtimer_new(d->base, webhook_wake_event, r)) == NULL)
+		fatalx("webhook: evtimer_new failed");
+	w->rcv = xreallocarray(w->rcv, (size_t)w->nrcv + 1, sizeof *w->rcv);
+	w->rcv[w->nrcv++] = r;
+
+	if (d->conf->state_dir != NULL) {
+		xasprintf(&r->spool, "%s/spool/%s", d->conf->state_dir, name);
+		if (webhook_mkdirs(r->spool, cause) == -1)
+			return -1;
+		webhook_spool_load(r);
+	} else
+		log_warnx("webhook: no state_dir, receiver=%s is not spooled",
+		    name);
+	if (!r->sign && !internal)
+		log_warnx("webhook: receiver=%s has no secret, requests are "
+		    "not signed", name);
+	return 0;
+}
+
+struct webhook *
+webhook_new(struct daemon *d, char **cause)
+{
+	const struct conf *c = d->conf;
+	const curl_version_info_data *vi;
+	struct webhook *w;
+	int i;
+
+	if (curl_global_init(CURL_GLOBAL_DEFAULT) != CURLE_OK) {
+		*cause = xstrdup("curl_global_init failed");
+		return NULL;
+	}
+	vi = curl_version_info(CURLVERSION_NOW);
+	if (vi == NULL || !(vi->features & CURL_VERSION_SSL))
+		log_warnx("webhook: libcurl without TLS, https URLs fail");
+	w = xcalloc(1, sizeof *w);
+	w->d = d;
+	w->seq = 1;
+	if ((w->multi = curl_multi_init()) == NULL) {
+		*cause = xstrdup("curl_multi_init failed");
+		free(w);
+		curl_global_cleanup();
+		return NULL;
+	}
+	if ((w->timer = evtimer_new(d->base, webhook_timer_event, w)) == NULL)
+		fatalx("webhook: evtimer_new failed");
+	if (curl_multi_setopt(w->multi, CURLMOPT_SOCKETFUNCTION,
+	    webhook_socket_cb) != CURLM_OK ||
+	    curl_multi_setopt(w->multi, CURLMOPT_SOCKETDATA, w) != CURLM_OK ||
+	    curl_multi_setopt(w->multi, CURLMOPT_TIMERFUNCTION,
+	    webhook_timer_cb) != CURLM_OK ||
+	    curl_multi_setopt(w->multi, CURLMOPT_TIMERDATA, w) != CURLM_OK) {
+		*cause = xstrdup("curl_multi_setopt failed");
+		webhook_free(w);
+		return NULL;
+	}
+	for (i = 0; i < c->nwebhooks; i++) {
+		const struct conf_webhook *cw = &c->webhooks[i];
+
+		if (webhook_add(w, cw->name, cw->url, cw->secret, cw->timeout,
+		    cw->max_attempts, cw->queue, 0, cause) == -1) {
+			webhook_free(w);
+			return NULL;
+		}
+	}
+	if (c->pause_url != NULL && *c->pause_url != '\0' &&
+	    webhook_add(w, WEBHOOK_PAUSE, c->pause_url, c->pause_secret, 0, 0,
+	    0, 1, cause) == -1) {
+		webhook_free(w);
+		return NULL;
+	}
+	for (i = 0; i < w->nrcv; i++)
+		webhook_kick(w->rcv[i]);
+	return w;
+}
+
+void
+webhook_free(struct webhook *w)
+{
+	struct receiver *r;
+	struct delivery *dl;
+	int i;
+
+	if (w == NULL)
+		return;
+	/* Spool files stay: what was not sent goes out after a restart. */
+	for (i = 0; i < w->nrcv; i++) {
+		r = w->rcv[i];
+		while ((dl = TAILQ_FIRST(&r->inflight)) != NULL) {
+			TAILQ_REMOVE(&r->inflight, dl, entry);
+			webhook_delivery_free(dl);
+		}
+		while ((dl = TAILQ_FIRST(&r->waiting)) != NULL) {
+			TAILQ_REMOVE(&r->waiting, dl, entry);
+			webhook_delivery_free(dl);
+		}
+		if (r->wake != NULL)
+			event_free(r->wake);
+		free(r->name);
+		free(r->url);
+		free(r->spool);
+		OPENSSL_cleanse(r->key, sizeof r->key);
+		free(r);
+	}
+	free(w->rcv);
+	if (w->multi != NULL)
+		curl_multi_cleanup(w->multi);
+	if (w->timer != NULL)
+		event_free(w->timer);
+	free(w);
+	curl_global_cleanup();
+}
+
+static char *
+webhook_dump(json_t *body, size_t *len)
+{
+	char *text;
+
+	if ((text = json_dumps(body, JSON_COMPACT)) == NULL) {
+		log_warnx("webhook: cannot serialize body");
+		return NULL;
+	}
+	*len = strlen(text);
+	return text;
+}
+
+void
+webhook_send(struct webhook *w, const char *id, json_t *body)
+{
+	char *text;
+	size_t len;
+	int i;
+
+	if (w == NULL || (text = webhook_dump(body, &len)) == NULL)
+		return;
+	for (i = 0; i < w->nrcv; i++)
+		if (!w->rcv[i]->internal)
+			webhook_queue(w->rcv[i], id, text, len);
+	free(text);
+}
+
+int
+webhook_post(struct webhook *w, const char *receiver, const char *id,
+    json_t *body)
+{
+	char *text;
+	size_t len;
+	int i;
+
+	if (w == NULL)
+		return -1;
+	for (i = 0; i < w->nrcv; i++) {
+		if (strcmp(w->rcv[i]->name, receiver) != 0)
+			continue;
+		if ((text = webhook_dump(body, &len)) == NULL)
+			return -1;
+		webhook_queue(w->rcv[i], id, text, len);
+		free(text);
+		return 0;
+	}
+	return -1;
+}
+
+/* Prometheus label value escaping: backslash, quote, newline. */
+static void
+webhook_label(struct evbuffer *b, const char *s)
+{
+	for (; *s != '\0'; s++) {
+		if (*s == '\\' || *s == '"')
+			evbuffer_add_printf(b, "\\%c", *s);
+		else if (*s == '\n')
+			evbuffer_add(b, "\\n", 2);
+		else
+			evbuffer_add(b, s, 1);
+	}
+}
+
+void
+webhook_metrics(struct webhook *w, struct evbuffer *b)
+{
+	static const struct {
+		const char	*name;
+		const char	*type;
+		const char	*help;
+	} m[] = {
+		{ "stopcock_webhook_sent_total", "counter",
+		  "Webhook deliveries answered with 2xx." },
+		{ "stopcock_webhook_failed_total", "counter",
+		  "Webhook deliveries given up (4xx, or attempts exhausted)." },
+		{ "stopcock_webhook_dropped_total", "counter",
+		  "Webhook deliveries dropped because the queue was full." },
+		{ "stopcock_webhook_retries_total", "counter",
+		  "Webhook attempts that failed and were scheduled again." },
+		{ "stopcock_webhook_retrying", "gauge",
+		  "Webhook deliveries waiting for a retry." },
+		{ "stopcock_webhook_queued", "gauge",
+		  "Webhook deliveries not yet settled (spooled)." },
+		{ "stopcock_webhook_spool_errors_total", "counter",
+		  "Webhook spool files that could not be written or read." },
+	};
+	struct receiver *r;
+	struct delivery *dl;
+	uint64_t v;
+	size_t k;
+	int i;
+
+	if (w == NULL || w->nrcv == 0)
+		return;
+	for (k = 0; k < SC_NELEM(m); k++) {
+		evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s %s\n",
+		    m[k].name, m[k].help, m[k].name, m[k].type);
+		for (i = 0; i < w->nrcv; i++) {
+			r = w->rcv[i];
+			switch (k) {
+			case 0: v = r->sent; break;
+			case 1: v = r->failed; break;
+			case 2: v = r->dropped; break;
+			case 3: v = r->retries; break;
+			case 4:
+				v = 0;
+				TAILQ_FOREACH(dl, &r->waiting, entry)
+					if (dl->attempts > 0)
+						v++;
+				break;
+			case 5: v = r->nwaiting + r->ninflight; break;
+			default: v = r->spool_errors; break;
+			}
+			evbuffer_add_printf(b, "%s{receiver=\"", m[k].name);
+			webhook_label(b, r->name);
+			evbuffer_add_printf(b, "\"} %" PRIu64 "\n", v);
+		}
+	}
+}
+
+json_t *
+webhook_json(struct webhook *w)
+{
+	struct receiver *r;
+	json_t *a = json_array();
+	int i;
+
+	if (w == NULL)
+		return a;
+	for (i = 0; i < w->nrcv; i++) {
+		r = w->rcv[i];
+		json_array_append_new(a, json_pack("{s:s, s:b, s:I, s:I, s:I, "
+		    "s:I, s:I, s:I}", "receiver", r->name, "signed", r->sign,
+		    "sent", (json_int_t)r->sent, "failed", (json_int_t)r->failed,
+		    "dropped", (json_int_t)r->dropped, "retries",
+		    (json_int_t)r->retries, "queued",
+		    (json_int_t)(r->nwaiting + r->ninflight), "failing",
+		    (json_int_t)r->failing));
+	}
+	return a;
+}

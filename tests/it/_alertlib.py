@@ -1,0 +1,171 @@
+"""Helpers for the alert, webhook and pause integration tests.
+
+A real HTTP receiver (http.server from the Python standard library) that
+verifies every Standard Webhooks signature itself, with hmac/hashlib/base64
+(an implementation independent of the daemon's OpenSSL code), a real unix
+datagram socket standing in for /dev/log, and generators of record streams
+with a clearly harmful treatment arm. Not a test itself (leading "_").
+"""
+import base64
+import hashlib
+import hmac
+import json
+import os
+import random
+import socket
+import threading
+import time
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+
+# Invented secrets, base64 of 24 random-looking bytes.
+SECRET = "whsec_" + base64.b64encode(b"larder-lane-test-key-001").decode()
+PAUSE_SECRET = "whsec_" + base64.b64encode(b"pause-receiver-key-0002").decode()
+TOLERANCE = 300  # seconds of clock skew a receiver accepts
+
+
+def verify(secret, headers, body):
+    """Standard Webhooks verification, written from the specification:
+    the signed content is id.timestamp.body, the key is the base64 after
+    the whsec_ prefix, the header holds space-separated "v1,<base64>"
+    entries of which one must match. Returns None when valid, else why."""
+    msg_id = headers.get("webhook-id")
+    ts = headers.get("webhook-timestamp")
+    sigs = headers.get("webhook-signature")
+    if not msg_id or not ts or not sigs:
+        return "missing webhook headers"
+    try:
+        t = int(ts)
+    except ValueError:
+        return "bad timestamp %r" % ts
+    if abs(time.time() - t) > TOLERANCE:
+        return "timestamp too far from now"
+    key = base64.b64decode(secret[len("whsec_"):])
+    signed = msg_id.encode() + b"." + ts.encode() + b"." + body
+    want = base64.b64encode(hmac.new(key, signed, hashlib.sha256).digest())
+    for entry in sigs.split(" "):
+        version, _, sig = entry.partition(",")
+        if version == "v1" and hmac.compare_digest(sig.encode(), want):
+            return None
+    return "no signature matches"
+
+
+class Receiver:
+    """An HTTP receiver on a private loopback port. `script` is a list of
+    status codes answered in turn; after it runs out, `default`."""
+
+    def __init__(self, secret=SECRET, script=(), default=200, port=0):
+        self.secret = secret
+        self.script = list(script)
+        self.default = default
+        self.requests = []  # dicts: path, headers, body, json, status, error
+        self.lock = threading.Lock()
+        self.cond = threading.Condition(self.lock)
+        outer = self
+
+        class Handler(BaseHTTPRequestHandler):
+            def do_POST(self):
+                n = int(self.headers.get("Content-Length", "0"))
+                body = self.rfile.read(n)
+                headers = {k.lower(): v for k, v in self.headers.items()}
+                err = verify(outer.secret, headers, body) \
+                    if outer.secret else None
+                with outer.cond:
+                    status = outer.script.pop(0) if outer.script \
+                        else outer.default
+                    try:
+                        doc = json.loads(body)
+                    except ValueError:
+                        doc = None
+                    outer.requests.append({
+                        "path": self.path, "headers": headers, "body": body,
+                        "json": doc, "status": status, "error": err,
+                        "time": time.time()})
+                    outer.cond.notify_all()
+                self.send_response(status)
+                self.send_header("Content-Length", "0")
+                self.end_headers()
+
+            def log_message(self, *args):
+                pass
+
+        self.server = ThreadingHTTPServer(("127.0.0.1", port), Handler)
+        self.server.daemon_threads = True
+        self.port = self.server.server_address[1]
+        self.url = "http://127.0.0.1:%d/hook" % self.port
+        self.thread = threading.Thread(target=self.server.serve_forever,
+                                       daemon=True)
+        self.thread.start()
+
+    def wait(self, pred, timeout):
+        """Wait until pred(requests) is true; returns it (or the last)."""
+        end = time.time() + timeout
+        with self.cond:
+            while True:
+                r = pred(self.requests)
+                if r or time.time() >= end:
+                    return r
+                self.cond.wait(max(0.05, min(0.5, end - time.time())))
+
+    def snapshot(self):
+        with self.lock:
+            return list(self.requests)
+
+    def close(self):
+        self.server.shutdown()
+        self.server.server_close()
+
+
+def free_port():
+    s = socket.socket()
+    s.bind(("127.0.0.1", 0))
+    port = s.getsockname()[1]
+    s.close()
+    return port
+
+
+class SyslogSocket:
+    """A unix datagram socket that receives what syslog(3) sends."""
+
+    def __init__(self, path):
+        self.path = path
+        if os.path.exists(path):
+            os.unlink(path)
+        self.sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
+        self.sock.bind(path)
+        os.chmod(path, 0o666)
+        self.sock.settimeout(0.2)
+        self.lines = []
+
+    def read(self, pred, timeout):
+        end = time.time() + timeout
+        while time.time() < end:
+            hit = [l for l in self.lines if pred(l)]
+            if hit:
+                return hit
+            try:
+                data = self.sock.recv(65536)
+            except socket.timeout:
+                continue
+            self.lines.append(data.decode("utf-8", "replace"))
+        return [l for l in self.lines if pred(l)]
+
+    def close(self):
+        self.sock.close()
+
+
+def harmful_records(exp, metric, n_per_arm, p_control, p_treatment, seed,
+                    weights=(50, 50), exposures=None, ts0=None):
+    """A plan, then per unit one expose and one count record (K of 1), arms
+    interleaved; the treatment's error proportion is clearly higher.
+    exposures=(a, b) overrides how many units of each arm are exposed
+    (to provoke a sample ratio mismatch)."""
+    rng = random.Random(seed)
+    out = ["plan %s control=%d treatment=%d" % (exp, weights[0], weights[1])]
+    na, nb = exposures or (n_per_arm, n_per_arm)
+    arms = [("control", p_control)] * na + [("treatment", p_treatment)] * nb
+    rng.shuffle(arms)
+    for arm, p in arms:
+        out.append("expose %s %s" % (exp, arm))
+        out.append("count %s %s %s %d 1" % (exp, arm, metric,
+                                             1 if rng.random() < p else 0))
+    return out
