@@ -437,6 +437,184 @@ test_rate_edges(void **state)
 	assert_true(lo < 1.0002 && hi > 1.0002 && hi - lo < 1e-3);
 }
 
+/* ---- 10.4 quantiles (Howard & Ramdas 2022) ---- */
+
+/* Blocks for the values off+1 .. off+N, each once. */
+struct seq_blocks {
+	double		*v;
+	uint64_t	*c;
+	struct stats_blocks b;
+};
+
+static void
+seq_make(struct seq_blocks *s, size_t N, double off)
+{
+	size_t i;
+
+	s->v = calloc(N, sizeof *s->v);
+	s->c = calloc(N, sizeof *s->c);
+	assert_non_null(s->v);
+	assert_non_null(s->c);
+	for (i = 0; i < N; i++) {
+		s->v[i] = off + (double)(i + 1);
+		s->c[i] = 1;
+	}
+	s->b.value = s->v;
+	s->b.count = s->c;
+	s->b.n = N;
+	s->b.total = N;
+}
+
+static void
+seq_free(struct seq_blocks *s)
+{
+	free(s->v);
+	free(s->c);
+}
+
+/* Fixed-quantile CS on data 1..N, alpha = alpha_opt = 0.05 [10.4 C]. */
+static const struct {
+	size_t N;
+	double p, t_opt, u_lo, u_up, lo, hi;
+} qcs_rows[] = {
+	{ 1000, 0.5, 100, 51.4665, 51.4665, 449, 552 },
+	{ 1000, 0.9, 100, 32.8105, 29.1763, 868, 930 },
+	{ 10000, 0.99, 10000, 32.0231, 28.3620, 9868, 9929 },
+	{ 100, 0.5, 100, 15.0484, 15.0484, 35, 66 },
+};
+
+static void
+test_quantile_cs(void **state)
+{
+	struct seq_blocks s;
+	double lo, hi, p, v, r;
+	size_t i;
+
+	for (i = 0; i < sizeof qcs_rows / sizeof qcs_rows[0]; i++) {
+		p = qcs_rows[i].p;
+		v = p * (1 - p) * (double)qcs_rows[i].N;
+		r = stats_bb_r(p * (1 - p) * qcs_rows[i].t_opt, p, 1 - p, 0.05,
+		    0);
+		NEAR("quantile u_lo [10.4 C]", stats_bb_bound(v, 1 - p, p, r,
+		    0.05, 0), qcs_rows[i].u_lo, 4);
+		NEAR("quantile u_up [10.4 C]", stats_bb_bound(v, p, 1 - p, r,
+		    0.05, 0), qcs_rows[i].u_up, 4);
+		seq_make(&s, qcs_rows[i].N, 0);
+		assert_int_equal(stats_quantile_cs(&s.b, p, qcs_rows[i].t_opt,
+		    0.05, &lo, &hi), 0);
+		NEAR("quantile CS lo [10.4 C]", lo, qcs_rows[i].lo, 0);
+		NEAR("quantile CS hi [10.4 C]", hi, qcs_rows[i].hi, 0);
+		seq_free(&s);
+	}
+	/* ranks outside the data: infinite ends; empty: error */
+	seq_make(&s, 5, 0);
+	assert_int_equal(stats_quantile_cs(&s.b, 0.5, 100, 0.05, &lo, &hi), 0);
+	assert_true(lo == -INFINITY && hi == INFINITY);
+	s.b.n = 0;
+	assert_int_equal(stats_quantile_cs(&s.b, 0.5, 100, 0.05, &lo, &hi),
+	    -1);
+	seq_free(&s);
+}
+
+/*
+ * Same data as one tie block per value with count 1000 vs 1000 copies:
+ * blocks and raw order statistics must give the same CS.
+ */
+static void
+test_quantile_cs_ties(void **state)
+{
+	double v[3] = { 1, 2, 3 }, lo, hi;
+	uint64_t c[3] = { 3000, 4000, 3000 };
+	struct stats_blocks b = { v, c, 3, 10000 };
+
+	assert_int_equal(stats_quantile_cs(&b, 0.5, 1000, 0.05, &lo, &hi), 0);
+	assert_true(lo == 2 && hi == 2);
+	assert_int_equal(stats_quantile_cs(&b, 0.3, 1000, 0.05, &lo, &hi), 0);
+	assert_true(lo == 1 && hi == 2);
+}
+
+/*
+ * Two-sample p-values, A = 1..1000, B = A + offset, t_opt = 100,
+ * alpha_opt = 0.05. Two-sided [10.4 L=C], one-sided [10.4 C].
+ */
+static const struct {
+	double p, off, p2, p1;
+} q2_rows[] = {
+	{ 0.5, 70, 0.814704, 0.1660327 },
+	{ 0.5, 85, 0.0838055, 0.0168254 },
+	{ 0.5, 100, 0.0054947, 0.0011056 },
+	{ 0.9, 55, 0.0340463, 0.0064739 },
+	{ 0.5, -100, -1, 1.0 },
+};
+
+static void
+test_quantile_two_sample(void **state)
+{
+	struct seq_blocks a, b;
+	size_t i;
+
+	seq_make(&a, 1000, 0);
+	for (i = 0; i < sizeof q2_rows / sizeof q2_rows[0]; i++) {
+		seq_make(&b, 1000, q2_rows[i].off);
+		if (q2_rows[i].p2 >= 0)
+			NEAR("two-sample two-sided p [10.4 L=C]",
+			    stats_p_from_log_e(stats_quantile_log_e2(&a.b, &b.b,
+			    q2_rows[i].p, 100)), q2_rows[i].p2, 7);
+		NEAR("two-sample one-sided p [10.4 C]", stats_p_from_log_e(
+		    stats_quantile_log_e1(&a.b, &b.b, q2_rows[i].p, 100)),
+		    q2_rows[i].p1, 7);
+		seq_free(&b);
+	}
+	seq_free(&a);
+}
+
+static void
+test_quantile_edges(void **state)
+{
+	struct seq_blocks a, b;
+
+	seq_make(&a, 10, 0);
+	seq_make(&b, 10, 0);
+	b.b.n = 0;
+	b.b.total = 0;
+	/* an empty arm: no evidence */
+	assert_true(stats_quantile_log_e2(&a.b, &b.b, 0.5, 100) == 0);
+	assert_true(stats_quantile_log_e1(&a.b, &b.b, 0.5, 100) == 0);
+	assert_true(stats_quantile_log_e1(&b.b, &a.b, 0.5, 100) == 0);
+	/* identical arms: two-sided evidence below 0 (p = 1) */
+	b.b.n = 10;
+	b.b.total = 10;
+	assert_true(stats_quantile_log_e2(&a.b, &b.b, 0.5, 100) <= 0);
+	seq_free(&a);
+	seq_free(&b);
+}
+
+/* Sketch-sized inputs with 10^9 records stay finite. */
+static void
+test_quantile_huge(void **state)
+{
+	double va[500], vb[500], e1, e2, lo, hi;
+	uint64_t ca[500], cb[500];
+	struct stats_blocks a = { va, ca, 500, 0 }, b = { vb, cb, 500, 0 };
+	size_t i;
+
+	for (i = 0; i < 500; i++) {
+		va[i] = vb[i] = 1.02 * (double)(i + 1);
+		ca[i] = 2000000;
+		cb[i] = i < 250 ? 1990000 : 2010000;
+		a.total += ca[i];
+		b.total += cb[i];
+	}
+	e2 = stats_quantile_log_e2(&a, &b, 0.5, 1e6);
+	e1 = stats_quantile_log_e1(&a, &b, 0.5, 1e6);
+	assert_true(isfinite(e1) && isfinite(e2));
+	/* B shifted up by 0.5% of its mass: clear evidence both ways */
+	assert_true(e1 > 10 && e2 > 10 && e1 > e2);
+	assert_true(stats_quantile_log_e1(&b, &a, 0.5, 1e6) < 0);
+	assert_int_equal(stats_quantile_cs(&a, 0.99, 1e6, 0.05, &lo, &hi), 0);
+	assert_true(lo == va[494] && hi == va[495]);
+}
+
 /* ---- special functions ---- */
 static void
 test_special(void **state)
@@ -567,6 +745,11 @@ main(void)
 		cmocka_unit_test(test_bernoulli_cs),
 		cmocka_unit_test(test_rate_table),
 		cmocka_unit_test(test_rate_edges),
+		cmocka_unit_test(test_quantile_cs),
+		cmocka_unit_test(test_quantile_cs_ties),
+		cmocka_unit_test(test_quantile_two_sample),
+		cmocka_unit_test(test_quantile_edges),
+		cmocka_unit_test(test_quantile_huge),
 		cmocka_unit_test(test_special),
 		cmocka_unit_test(test_classical),
 	};
