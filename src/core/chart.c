@@ -499,13 +499,16 @@ chart_hline(struct chart_buf *b, const struct chart_frame *f, double v,
 	double y = chart_y(f, v);
 
 	chart_printf(b, "<line class=\"%s\" x1=\"%.1f\" y1=\"%.1f\" "
-	    "x2=\"%.1f\" y2=\"%.1f\" stroke=\"%s\" stroke-width=\"1.5\"%s%s%s/>\n",
-	    cls, CHART_X0, y, CHART_X1, y, colour, dash ? " stroke-dasharray=\"" :
-	    "", dash ? dash : "", dash ? "\"" : "");
+	    "x2=\"%.1f\" y2=\"%.1f\" stroke=\"%s\" stroke-width=\"1.5\"",
+	    cls, CHART_X0, y, CHART_X1, y, colour);
+	if (dash != NULL)
+		chart_printf(b, " stroke-dasharray=\"%s\"", dash);
+	chart_puts(b, "/>\n");
 	if (label != NULL) {
 		chart_printf(b, "<text class=\"%s-label\" x=\"%.1f\" y=\"%.1f\" "
-		    "text-anchor=\"end\" fill=\"%s\" " CHART_HALO ">", cls, CHART_X1 - 4,
-		    y - 5 < CHART_Y0 + 12 ? y + 15 : y - 5, colour);
+		    "text-anchor=\"end\" fill=\"%s\" " CHART_HALO ">", cls,
+		    CHART_X1 - 4, y - 5 < CHART_Y0 + 12 ? y + 15 : y - 5,
+		    colour);
 		chart_escape_into(b, label);
 		chart_puts(b, "</text>\n");
 	}
@@ -694,11 +697,10 @@ chart_test_svg(const json_t *test)
 	chart_hline(&b, &f, 0, "zero", CHART_INK, NULL, NULL);
 	mlabel = NULL;
 	if (isfinite(mline)) {
-		chart_fmt_value(mnum, sizeof mnum, mline,
-		    chart_nice_step(f.vmax - f.vmin, 5) / 10);
+		snprintf(mnum, sizeof mnum, "%.4g", fabs(mline));
 		xasprintf(&mlabel, "margin %s%s (harm %s)", mline > 0 ? "+" :
-		    "", mnum, strcmp(harm, "decrease") == 0 ? "below" :
-		    "above");
+		    mline < 0 ? "-" : "", mnum, strcmp(harm, "decrease") == 0 ?
+		    "below" : "above");
 		chart_hline(&b, &f, mline, "margin", CHART_HARM, "6 4", mlabel);
 	}
 	chart_line(&b, &f, pts, n, 0, "estimate");

@@ -689,6 +689,7 @@ http_metrics(struct http *h, struct evbuffer *b)
 {
 	struct daemon *d = h->d;
 	struct http_scrape s;
+	struct engine_counters ec;
 	double now = daemon_now();
 	size_t i;
 
@@ -731,6 +732,27 @@ http_metrics(struct http *h, struct evbuffer *b)
 	    "Actions refused for a missing or wrong bearer token.");
 	evbuffer_add_printf(b, "stopcock_http_auth_refused_total %llu\n",
 	    (unsigned long long)h->refused_auth);
+
+	engine_counters(d->engine, &ec);
+	http_family(b, "stopcock_engine_experiments", "gauge",
+	    "Experiments tracked (bounded by max_experiments).");
+	evbuffer_add_printf(b, "stopcock_engine_experiments %u\n",
+	    ec.experiments);
+	http_family(b, "stopcock_engine_series", "gauge",
+	    "Tallies held: experiment x epoch x arm x metric.");
+	evbuffer_add_printf(b, "stopcock_engine_series %llu\n",
+	    (unsigned long long)ec.series);
+	http_family(b, "stopcock_engine_tests", "gauge",
+	    "Live guardrail x arm tests.");
+	evbuffer_add_printf(b, "stopcock_engine_tests %llu\n",
+	    (unsigned long long)ec.tests);
+	http_family(b, "stopcock_engine_memory_bytes", "gauge",
+	    "Memory held by tallies and tests.");
+	evbuffer_add_printf(b, "stopcock_engine_memory_bytes %zu\n", ec.bytes);
+	http_family(b, "stopcock_engine_findings_total", "counter",
+	    "Verdict changes and other findings the engine reported.");
+	evbuffer_add_printf(b, "stopcock_engine_findings_total %llu\n",
+	    (unsigned long long)ec.findings);
 
 	ingest_metrics(d, b);
 	if (d->listen != NULL)
