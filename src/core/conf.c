@@ -506,7 +506,7 @@ conf_check(struct conf_parser *p)
 	struct conf *c = p->conf;
 	const struct conf_guardrail *g, *h, *obs, *cnt;
 	const struct conf_experiment *e;
-	int i, j, pline = 0, clash, distinct = 0;
+	int i, j, pline = 0, clash;
 	const struct conf_option *o;
 
 	for (o = conf_options; o < conf_options + conf_noptions; o++)
@@ -550,12 +550,7 @@ conf_check(struct conf_parser *p)
 			else
 				cnt = cnt != NULL ? cnt : h;
 		}
-		if (obs == NULL && cnt == NULL &&
-		    ++distinct == (int)c->max_metrics + 1)
-			conf_error(p, g->line, "guardrail %s watches metric "
-			    "%s, more distinct metrics than max_metrics (%u)",
-			    g->name, g->metric, c->max_metrics);
-		else if (obs != NULL && cnt != NULL)
+		if (obs != NULL && cnt != NULL)
 			clash = 0;	/* reported at an earlier guardrail */
 		else if (obs != NULL && !conf_observe_test(g->test))
 			clash = 1, cnt = g;

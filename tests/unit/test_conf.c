@@ -470,11 +470,6 @@ static const struct ecase ecases[] = {
 	{ "experiments over cap", "[defaults]\nmax_experiments = 1\n"
 	  "[experiment a]\n[experiment b]\n",
 	  "t.conf:4: more [experiment] sections than max_experiments (1)" },
-	{ "metrics over cap", "[defaults]\nmax_metrics = 1\n"
-	  "[guardrail a]\nmetric = m1\ntest = mean\n"
-	  "[guardrail b]\nmetric = m2\ntest = mean\n",
-	  "t.conf:6: guardrail b watches metric m2, more distinct metrics "
-	  "than max_metrics (1)" },
 };
 
 static void
