@@ -225,16 +225,21 @@ ibeta_log_k(double a, double b)
 
 /*
  * r * [x0 log(x0/x) + y0 log(y0/y)], the scaled Kullback-Leibler distance
- * of x from the beta mean x0, from d = x - x0 without cancellation.
+ * of x from the beta mean x0 = a/(a+b). Near x0 it comes from d = x - x0
+ * through log1pmx, without cancellation; far from x0 from the logs of x
+ * and y themselves, since d/x0 ~ -1 would lose the digits of x.
  */
 static double
-ibeta_rphi(double a, double b, double d, double *phi)
+ibeta_rphi(double a, double b, double x, double y, double *phi)
 {
-	double r = a + b, x0 = a / r, y0 = b / r;
-	double ph;
+	double r = a + b, x0 = a / r, y0 = b / r, d, ph;
 
-	ph = -(x0 * log1pmx(d / x0) + y0 * log1pmx(-d / y0));
-	if (ph < 0)
+	d = x <= 0.5 ? x - x0 : y0 - y;
+	if (fabs(d) < 0.5 * fmin(x0, y0))
+		ph = -(x0 * log1pmx(d / x0) + y0 * log1pmx(-d / y0));
+	else
+		ph = x0 * (log(x0) - log(x)) + y0 * (log(y0) - log(y));
+	if (!(ph > 0))
 		ph = 0;
 	*phi = ph;
 	return r * ph;
@@ -287,10 +292,10 @@ ibeta_cf(double a, double b, double x, double y)
 	if (i > CF_MAXIT || !(h > 0))
 		return NAN;
 	if (a >= 10 && b >= 10) {
-		double phi, dd = x <= 0.5 ? x - a / (a + b) : b / (a + b) - y;
+		double phi;
 
 		/* x^a y^b / B(a,b) = K exp(-r phi): no large cancellation */
-		front = ibeta_log_k(a, b) - ibeta_rphi(a, b, dd, &phi);
+		front = ibeta_log_k(a, b) - ibeta_rphi(a, b, x, y, &phi);
 	} else
 		front = (double)((long double)a * logl(x) + (long double)b *
 		    (x <= 0.5 ? log1pl(-x) : logl(y)) - stats_lbeta_l(a, b));
@@ -320,7 +325,7 @@ ibeta_temme_lower(double a, double b, double x, double y)
 		d = 0;
 	if (x <= 0)
 		return -INFINITY;
-	rphi = ibeta_rphi(a, b, d, &phi);
+	rphi = ibeta_rphi(a, b, x, y, &phi);
 	sigma = sqrt(x0 * y0);
 	eta = -sqrt(2 * phi);
 	w = eta * sqrt(r);
