@@ -377,6 +377,11 @@ conf_handler(void *user, const char *section, const char *key,
 		goto out;
 	}
 	p->keyline[idx] = p->line;
+	if (*value == '\0' && (o->flags & F_EMPTY_OFF)) {
+		free(*(char **)((char *)p->base + o->offset));
+		*(char **)((char *)p->base + o->offset) = NULL;
+		goto out;
+	}
 	if (*value == '\0') {
 		conf_error(p, p->line, "empty value for '%s' in %s (comment "
 		    "the line out to leave it unset)", key, p->label);

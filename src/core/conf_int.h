@@ -51,6 +51,7 @@ enum conf_type {
 #define F_OPEN_MAX	0x02
 #define F_ZERO_OK	0x04	/* 0 means "unset" even outside the range */
 #define F_REQUIRED	0x08
+#define F_EMPTY_OFF	0x10	/* string: an empty value turns it off (NULL) */
 
 struct conf_option {
 	enum conf_section section;

@@ -520,6 +520,12 @@ test_accepted(void **state)
 	assert_string_equal(c->pause_secret, "whsec_YQ==");
 	assert_int_equal(c->pause_on_srm, 1);
 	conf_free(c);
+
+	/* Pause's Redis key and channel can be turned off; nothing else. */
+	c = good("[pause]\nredis_key =\nredis_channel =\n");
+	assert_null(c->pause_redis_key);
+	assert_null(c->pause_redis_channel);
+	conf_free(c);
 }
 
 static void
