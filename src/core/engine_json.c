@@ -343,8 +343,6 @@ hist_load(struct hist *h, const json_t *o, uint32_t cap)
 	}
 	h->stride = (uint32_t)json_integer_value(json_object_get(o,
 	    "stride"));
-	if (h->stride == 0)
-		h->stride = 1;
 	h->skip = (uint32_t)json_integer_value(json_object_get(o, "skip"));
 }
 
