@@ -20,6 +20,7 @@ References used:
 Env STOPCOCK_BUILD is the build directory holding tests/statsprobe.
 Prints TAP; exits 1 on any failure.
 """
+import functools
 import math
 import os
 from decimal import Decimal, getcontext
@@ -27,7 +28,7 @@ import subprocess
 import sys
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import integrate, optimize, special, stats
 
 SEED = 20240918
 build = os.environ.get("STOPCOCK_BUILD", "build")
@@ -468,6 +469,92 @@ got = ask(lines)
 bad = sum(1 for g, lo, hi in zip(got, qlo, qhi) if g[0] != lo or g[1] != hi)
 results.append((bad == 0, "quantile_cs vs brentq + numpy ranks", len(lines),
                 float(bad), 0.0, "mismatches"))
+
+# ---- two-sample quantile tests (METHODS.md sec. 4), brute force ----
+
+
+def log_beta_sf(x, a, b):
+    """log P(Beta(a, b) > x); past scipy's underflow (x far above the
+    mode, a, b >= 1) by quadrature of the density scaled at x: log f is
+    concave, so it falls at least at its slope at x and 60 scale lengths
+    hold all but e^-60 of the mass."""
+    with np.errstate(divide="ignore", under="ignore"):
+        v = stats.beta.sf(x, a, b)
+    if v > 1e-280:
+        return math.log(v)
+    lf = lambda t: (a - 1) * math.log(t) + (b - 1) * math.log1p(-t)
+    m = lf(x)
+    slope = (a - 1) / x - (b - 1) / (1 - x)
+    top = min(1.0, x + 60 / -slope)
+    q, _ = integrate.quad(lambda t: math.exp(lf(t) - m), x, top,
+                          epsabs=0, epsrel=1e-13, limit=200)
+    return m + math.log(q) - float(special.betaln(a, b))
+
+
+@functools.lru_cache(maxsize=None)
+def bbf(c, n, g0, k0, one):
+    """log m for c events of n, null g0: the beta-binomial Bayes factor."""
+    a, b = k0 * g0, k0 * (1 - g0)
+    v = (special.betaln(a + c, b + n - c) - special.betaln(a, b)
+         - special.xlogy(c, g0) - special.xlog1py(n - c, -g0))
+    if one:
+        v += (log_beta_sf(g0, a + c, b + n - c) - log_beta_sf(g0, a, b))
+    return float(v)
+
+
+def two_sample_ref(va, ca, vb, cb, p, t_opt, one):
+    k0 = max(t_opt / denom(0.05 * (2 if one else 1)) - 1, 1e-3)
+    na, nb = float(ca.sum()), float(cb.sum())
+    allv = np.unique(np.concatenate([va, vb]))
+    cand = np.concatenate([allv, (allv[1:] + allv[:-1]) / 2])
+
+    def cstar(n):
+        # stationary point of the two-sided log m in c (digamma condition)
+        fn = lambda c: (special.digamma(k0 * p + c)
+                        - special.digamma(k0 * (1 - p) + n - c)
+                        - math.log(p / (1 - p)))
+        if fn(0) >= 0:
+            return 0.0
+        if fn(n) <= 0:
+            return n
+        return optimize.brentq(fn, 0, n, xtol=1e-12)
+    sa, sb = cstar(na), cstar(nb)
+    best = math.inf
+    for x in cand:
+        lt_a, le_a = float(ca[va < x].sum()), float(ca[va <= x].sum())
+        lt_b, le_b = float(cb[vb < x].sum()), float(cb[vb <= x].sum())
+        if one:
+            val = (bbf(lt_a, na, p, k0, 1)
+                   + bbf(nb - le_b, nb, 1 - p, k0, 1))
+        else:
+            val = (bbf(min(max(sa, lt_a), le_a), na, p, k0, 0)
+                   + bbf(min(max(sb, lt_b), le_b), nb, p, k0, 0))
+        best = min(best, val)
+    return best
+
+
+lines2, refs2, lines1, refs1 = [], [], [], []
+for i in range(40):
+    nba, nbb = rng.integers(1, 60, 2)
+    grid = np.arange(1, 200) * 0.25
+    va = np.sort(rng.choice(grid, nba, replace=False))
+    vb = np.sort(rng.choice(grid, nbb, replace=False))
+    ca = rng.integers(1, 400, nba)
+    cb = rng.integers(1, 400, nbb)
+    p = float(rng.choice([0.5, 0.9, 0.99]))
+    t_opt = float(logspace(50, 1e4, 1)[0])
+    arg = (fmt(p, t_opt) + " %d " % nba
+           + " ".join("%r %d" % (float(x), int(c)) for x, c in zip(va, ca))
+           + " " + " ".join("%r %d" % (float(x), int(c))
+                            for x, c in zip(vb, cb)))
+    lines2.append("quantile_log_e2 " + arg)
+    refs2.append(two_sample_ref(va, ca, vb, cb, p, t_opt, False))
+    lines1.append("quantile_log_e1 " + arg)
+    refs1.append(two_sample_ref(va, ca, vb, cb, p, t_opt, True))
+family("quantile_log_e2 vs brute-force scan (scipy)", lines2, refs2, 1e-8,
+       floor=1.0)
+family("quantile_log_e1 vs brute-force scan (scipy)", lines1, refs1, 2e-6,
+       floor=1.0)
 
 # ---- classical: chi-square SRM, z-test, sample size (METHODS.md sec. 8) ----
 lines, refs = [], []

@@ -14,6 +14,7 @@
  *   bb_logm s v g h r one_sided
  *   bernoulli_cs k n t_opt alpha               -> lo hi
  *   quantile_cs p t_opt alpha v1 c1 v2 c2 ...  -> lo hi
+ *   quantile_log_e2 p t_opt na va1 ca1 .. vb1 cb1 ..  (also _e1)
  *   fixed_n delta var_a var_b alpha power
  *   ztest_prop xa na xb nb                     -> p z
  */
@@ -198,6 +199,50 @@ p_quantile_cs(const double *v, int n)
 	return 0;
 }
 
+/* p t_opt na, then na (value, count) pairs of arm a, the rest arm b. */
+static int
+p_quantile_log_e(const double *v, int n, int two)
+{
+	static double val[PROBE_ARGS_MAX / 2];
+	static uint64_t cnt[PROBE_ARGS_MAX / 2];
+	struct stats_blocks a = { val, cnt, 0, 0 }, b = { NULL, NULL, 0, 0 };
+	int i, na;
+
+	if (n < 3 || (n - 3) % 2 != 0)
+		return -1;
+	na = (int)v[2];
+	if (na < 0 || 3 + 2 * na > n)
+		return -1;
+	for (i = 3; i < n; i += 2) {
+		struct stats_blocks *s = i < 3 + 2 * na ? &a : &b;
+		size_t k = (size_t)(i - 3) / 2;
+
+		val[k] = v[i];
+		cnt[k] = (uint64_t)v[i + 1];
+		if (s == &b && b.n == 0) {
+			b.value = val + k;
+			b.count = cnt + k;
+		}
+		s->n++;
+		s->total += cnt[k];
+	}
+	printf("%.17g\n", two ? stats_quantile_log_e2(&a, &b, v[0], v[1]) :
+	    stats_quantile_log_e1(&a, &b, v[0], v[1]));
+	return 0;
+}
+
+static int
+p_quantile_log_e2(const double *v, int n)
+{
+	return p_quantile_log_e(v, n, 1);
+}
+
+static int
+p_quantile_log_e1(const double *v, int n)
+{
+	return p_quantile_log_e(v, n, 0);
+}
+
 static int
 p_fixed_n(const double *v, int n)
 {
@@ -238,6 +283,8 @@ static const struct {
 	{ "bb_logm", p_bb_logm },
 	{ "bernoulli_cs", p_bernoulli_cs },
 	{ "quantile_cs", p_quantile_cs },
+	{ "quantile_log_e2", p_quantile_log_e2 },
+	{ "quantile_log_e1", p_quantile_log_e1 },
 	{ "fixed_n", p_fixed_n },
 	{ "ztest_prop", p_ztest_prop },
 };

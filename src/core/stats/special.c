@@ -180,6 +180,49 @@ stats_log_beta(double a, double b)
 	return (double)stats_lbeta_l(a, b);
 }
 
+static double
+lgamma_stirling_rem_d(double x)
+{
+	double x2 = 1 / (x * x);
+
+	return (1.0 / 12 - x2 * (1.0 / 360 - x2 * (1.0 / 1260 -
+	    x2 * (1.0 / 1680 - x2 * (1.0 / 1188 - x2 * (691.0 / 360360)))))) /
+	    x;
+}
+
+/*
+ * stats_lbeta_l in double, four times faster, for the quantile scans
+ * where absolute errors of ~1e-16 (a + b) do not matter.
+ */
+double
+stats_lbeta_d(double a, double b)
+{
+	double t, s;
+	int sign;
+
+	if (isnan(a) || isnan(b) || a <= 0 || b <= 0)
+		return NAN;
+	if (isinf(a) || isinf(b))
+		return -INFINITY;
+	if (a > b) {
+		t = a;
+		a = b;
+		b = t;
+	}
+	s = a + b;
+	if (b < 10)
+		return lgamma_r(a, &sign) + lgamma_r(b, &sign) -
+		    lgamma_r(s, &sign);
+	if (a < 10)
+		return lgamma_r(a, &sign) + lgamma_stirling_rem_d(b) -
+		    lgamma_stirling_rem_d(s) - a * log(s) -
+		    (b - 0.5) * log1p(a / b) + a;
+	return (double)LOG_SQRT_2PI - (a - 0.5) * log1p(b / a) -
+	    (b - 0.5) * log1p(a / b) - 0.5 * log(s) +
+	    lgamma_stirling_rem_d(a) + lgamma_stirling_rem_d(b) -
+	    lgamma_stirling_rem_d(s);
+}
+
 long double
 stats_lgamma_diff_l(long double x, long double d)
 {

@@ -8,6 +8,8 @@
 
 /* log B(a, b) in long double, accurate for arguments up to ~1e15. */
 long double	stats_lbeta_l(long double a, long double b);
+/* The same in double: faster, absolute error ~1e-16 (a + b). */
+double		stats_lbeta_d(double a, double b);
 /* lgamma(x + d) - lgamma(x) in long double (x > 0, d >= 0). */
 long double	stats_lgamma_diff_l(long double x, long double d);
 /*
