@@ -41,12 +41,33 @@ struct webhook;
 struct pause;
 struct http;
 
+/*
+ * d->conf is replaced on SIGHUP (all-or-nothing). Read it afresh in each
+ * callback and never keep pointers into it: the old one is freed right
+ * after the swap. What must stay fixed until restart (listen addresses,
+ * the state directory, the Redis stream) is copied at start.
+ */
+
 struct ingest_counters {
 	uint64_t	records[SRC_N];		/* applied */
 	uint64_t	lines[SRC_N];		/* read, including skipped */
 	uint64_t	bytes[SRC_N];
 	uint64_t	proto_rejected[SRC_N][PROTO_NSTATUS];
 	uint64_t	engine_rejected[SRC_N][ENGINE_NREJECT];
+};
+
+/* Rate limit of rejection logging, per source (ingest.c). */
+struct ingest_log {
+	double		window;		/* start of the current minute */
+	unsigned	logged;		/* lines logged in this window */
+	uint64_t	suppressed;	/* not logged in this window */
+};
+
+enum ingest_status {
+	INGEST_OK,		/* applied */
+	INGEST_SKIP,		/* blank or comment line */
+	INGEST_BAD_LINE,	/* the protocol refused it: garbage */
+	INGEST_REFUSED		/* parsed, but the engine refused it */
 };
 
 struct daemon {
@@ -69,16 +90,47 @@ struct daemon {
 	uint64_t		 checkpoints;
 	int			 draining;	/* SIGTERM seen */
 	int			 debug;
+	int			 log_stderr;	/* -d or -f: not syslog */
+
+	/* main.c: fixed at start; see the comment on d->conf. */
+	char			*state_dir;
+	char			*restored_redis_id;	/* from the checkpoint */
+	char			*restored_redis_stream;
+	int			 exit_code;
+	uint64_t		 seq;		/* engine event numbers */
+	struct ingest_log	 ingest_log[SRC_N];
+	struct event		*ev_signal[5];
+	struct event		*ev_tick;
+	struct event		*ev_checkpoint;
+	struct event		*ev_status;
+	struct event		*ev_watchdog;
+	uint64_t		 status_records;	/* for the ingest rate */
+	double			 status_time;
+	double			 ingest_rate;	/* records/s, last status period */
 };
 
 const char	*source_name(enum source);
 double		 daemon_now(void);	/* wall clock, seconds */
+/* Number of record inputs configured (tcp, udp, unix, redis). */
+int		 daemon_inputs(const struct conf *);
 
 /* ingest.c: every input hands complete lines here. 0 applied or skipped,
  * -1 rejected (counted and, for the first few, logged). */
 int		 ingest_line(struct daemon *, enum source, const char *line,
 		    size_t len);
+/* The same, telling garbage (which may get a client cut off) from
+ * records the engine refused (unplanned experiment, caps...). */
+enum ingest_status ingest_line_status(struct daemon *, enum source,
+		    const char *line, size_t len);
+/* Count (and maybe log) a line refused before parsing, e.g. too_long;
+ * sample is a prefix of it for the log, may be NULL. */
+void		 ingest_reject(struct daemon *, enum source, enum proto_status,
+		    size_t len, const char *sample, size_t samplelen);
 void		 ingest_metrics(struct daemon *, struct evbuffer *);
+/* The counters as JSON (kept in the checkpoint) and back. */
+json_t		*ingest_json(struct daemon *);
+void		 ingest_restore(struct daemon *, const json_t *);
+uint64_t	 ingest_records_total(struct daemon *);
 
 /* ckpt.c */
 int		 ckpt_write(struct daemon *, char **cause);
@@ -88,6 +140,10 @@ int		 ckpt_restore(struct daemon *, char **cause);
 struct listen	*listen_new(struct daemon *, char **cause);
 void		 listen_free(struct listen *);
 void		 listen_metrics(struct listen *, struct evbuffer *);
+json_t		*listen_json(struct listen *);
+/* Shutdown: stop accepting, read what the kernel already holds for each
+ * client and the UDP socket, apply it, close every client. */
+void		 listen_drain(struct listen *);
 
 /* redis_in.c: last_id is the last entry applied (restored from the
  * checkpoint); redis_in_covered() is called after each checkpoint so the
@@ -97,6 +153,11 @@ struct redis_in	*redis_in_new(struct daemon *, const char *last_id,
 void		 redis_in_free(struct redis_in *);
 const char	*redis_in_last_id(struct redis_in *);
 void		 redis_in_covered(struct redis_in *);
+/* Shutdown: drop the connection and stop reconnecting. Delivered but
+ * unapplied entries stay pending in Redis for the next start. */
+void		 redis_in_stop(struct redis_in *);
+/* Entries not yet delivered to the group, -1 when unknown. */
+int64_t		 redis_in_lag(struct redis_in *);
 void		 redis_in_metrics(struct redis_in *, struct evbuffer *);
 json_t		*redis_in_json(struct redis_in *);
 

@@ -1,0 +1,794 @@
+/*
+ * listen.c: the socket inputs. TCP and Unix stream clients send records
+ * one per line (plain or JSON lines); UDP datagrams carry one or more
+ * lines each, up to 64 KiB. Every complete line goes to ingest.c.
+ *
+ * Stream clients are bufferevents with a read watermark of
+ * conf->client_buffer, so a client that sends faster than we parse is
+ * throttled by TCP itself. Each read callback makes the input contiguous
+ * once, walks every complete line with memchr and drains them in one go:
+ * no per-line allocation or libevent call, which keeps the hot path at
+ * millions of lines a second.
+ *
+ * A slow or hostile client costs only its own connection: a line over
+ * PROTO_LINE_MAX is skipped up to its newline and counted as too_long;
+ * a client is cut off when it has sent more than LISTEN_BAD_MAX bad lines
+ * and more bad lines than good ones ("garbage"), or when one over-long
+ * line runs past client_buffer bytes without a newline ("line_flood").
+ * Connections beyond conf->max_clients are closed at once; when accept
+ * fails for lack of descriptors the listeners pause for a second.
+ *
+ * A client is never freed inside its own callbacks: it moves to the dead
+ * list and a deferred event reaps it.
+ */
+#include <sys/types.h>
+#include <sys/queue.h>
+#include <sys/socket.h>
+#include <sys/stat.h>
+#include <sys/un.h>
+
+#include <errno.h>
+#include <inttypes.h>
+#include <netdb.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include <event2/buffer.h>
+#include <event2/bufferevent.h>
+#include <event2/event.h>
+#include <event2/listener.h>
+
+#include "stopcock/log.h"
+#include "daemon.h"
+
+#define LISTEN_BACKLOG 512
+#define LISTEN_BAD_MAX 100	/* bad lines before "garbage" may cut */
+#define LISTEN_UDP_MAX 65536	/* bytes in one datagram */
+#define LISTEN_UDP_BURST 512	/* datagrams per callback, then yield */
+#define LISTEN_READ_MAX (1024 * 1024)	/* bytes per read call */
+#define LISTEN_DRAIN_MAX (16 * 1024 * 1024)	/* per client at shutdown */
+#define LISTEN_BACKOFF 1	/* seconds without accept after EMFILE */
+
+enum client_state {
+	CLIENT_READING,		/* lines flow */
+	CLIENT_DISCARDING,	/* skipping the rest of an over-long line */
+	CLIENT_DEAD		/* closed or cut off; waiting to be reaped */
+};
+
+enum listen_cut { CUT_GARBAGE, CUT_FLOOD, CUT_N };
+
+static const char *listen_cut_names[CUT_N] = { "garbage", "line_flood" };
+
+struct listen_sock {
+	struct listen		*l;
+	enum source		 src;
+	struct evconnlistener	*evl;
+	char			*name;		/* address as configured */
+};
+
+struct client {
+	struct listen		*l;
+	enum source		 src;
+	enum client_state	 state;
+	struct bufferevent	*bev;
+	uint64_t		 id;
+	uint64_t		 good, bad;
+	size_t			 discarded;	/* of the current long line */
+	TAILQ_ENTRY(client)	 entry;
+};
+
+TAILQ_HEAD(clients, client);
+
+struct listen {
+	struct daemon		*d;
+	struct listen_sock	 tcp, unix_sock;
+	char			*unix_path;	/* we unlink it at exit */
+	ino_t			 unix_ino;
+	int			 udp_fd;
+	struct event		*udp_ev;
+	char			*udp_name;
+	char			*udp_buf;
+	struct event		*backoff_ev;
+	struct event		*reap_ev;
+	struct clients		 clients;
+	struct clients		 dead;
+	uint32_t		 nclients;
+	uint32_t		 nby[SRC_N];
+	uint64_t		 next_id;
+	int			 draining;
+
+	uint64_t		 accepted[SRC_N];
+	uint64_t		 refused;	/* at max_clients */
+	uint64_t		 backoffs;
+	uint64_t		 cut[SRC_N][CUT_N];
+	uint64_t		 udp_datagrams;
+};
+
+static const char *
+client_state_name(enum client_state s)
+{
+	switch (s) {
+	case CLIENT_READING:
+		return "reading";
+	case CLIENT_DISCARDING:
+		return "discarding";
+	case CLIENT_DEAD:
+		return "dead";
+	}
+	return "?";
+}
+
+/* The one place a client changes state. */
+static void
+client_set_state(struct client *c, enum client_state new)
+{
+	struct listen *l = c->l;
+
+	if (c->state == new)
+		return;
+	log_debug("listen: client %s -> %s client=%" PRIu64 " source=%s",
+	    client_state_name(c->state), client_state_name(new), c->id,
+	    source_name(c->src));
+	if (new == CLIENT_DEAD) {
+		bufferevent_disable(c->bev, EV_READ | EV_WRITE);
+		TAILQ_REMOVE(&l->clients, c, entry);
+		TAILQ_INSERT_TAIL(&l->dead, c, entry);
+		l->nclients--;
+		l->nby[c->src]--;
+		event_active(l->reap_ev, EV_TIMEOUT, 0);
+	}
+	c->state = new;
+}
+
+static void
+client_free(struct client *c)
+{
+	bufferevent_free(c->bev);
+	free(c);
+}
+
+/* Deferred: frees the clients that died in their own callbacks. */
+static void
+listen_reap_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct listen *l = arg;
+	struct client *c;
+
+	while ((c = TAILQ_FIRST(&l->dead)) != NULL) {
+		TAILQ_REMOVE(&l->dead, c, entry);
+		client_free(c);
+	}
+}
+
+static size_t
+listen_buffer(struct listen *l)
+{
+	size_t b = l->d->conf->client_buffer;
+
+	/* A line at the limit plus its newline must always fit. */
+	if (b < 2 * (PROTO_LINE_MAX + 1))
+		b = 2 * (PROTO_LINE_MAX + 1);
+	return b;
+}
+
+static void
+client_cut(struct client *c, enum listen_cut why)
+{
+	struct listen *l = c->l;
+
+	l->cut[c->src][why]++;
+	log_warnx("listen: client cut off: %s client=%" PRIu64 " source=%s "
+	    "good=%" PRIu64 " bad=%" PRIu64, listen_cut_names[why], c->id,
+	    source_name(c->src), c->good, c->bad);
+	client_set_state(c, CLIENT_DEAD);
+}
+
+static void
+client_line(struct client *c, const char *p, size_t n)
+{
+	switch (ingest_line_status(c->l->d, c->src, p, n)) {
+	case INGEST_OK:
+		c->good++;
+		break;
+	case INGEST_BAD_LINE:
+		c->bad++;
+		break;
+	default:
+		break;
+	}
+}
+
+static void
+client_too_long(struct client *c, const char *p, size_t n)
+{
+	ingest_reject(c->l->d, c->src, PROTO_E_LONG, n, p, n);
+	c->bad++;
+}
+
+/*
+ * Consume every complete line in the input. At eof a last line without
+ * its newline still counts. Lines are parsed in place: the buffer is made
+ * contiguous once per call and drained once at the end.
+ */
+static void
+client_input(struct client *c, int eof)
+{
+	struct evbuffer *in = bufferevent_get_input(c->bev);
+	size_t len = evbuffer_get_length(in), off = 0, n, limit;
+	const char *p, *nl;
+
+	if (len == 0 || c->state == CLIENT_DEAD) {
+		evbuffer_drain(in, len);
+		return;
+	}
+	limit = listen_buffer(c->l);
+	p = (const char *)evbuffer_pullup(in, -1);
+	while (off < len && c->state != CLIENT_DEAD) {
+		nl = memchr(p + off, '\n', len - off);
+		n = nl != NULL ? (size_t)(nl - (p + off)) : len - off;
+		if (c->state == CLIENT_DISCARDING) {
+			c->discarded += n;
+			if (nl == NULL) {
+				off = len;
+				if (c->discarded > limit)
+					client_cut(c, CUT_FLOOD);
+				break;
+			}
+			off += n + 1;
+			client_set_state(c, CLIENT_READING);
+			continue;
+		}
+		if (nl == NULL) {
+			if (eof) {
+				if (n > PROTO_LINE_MAX)
+					client_too_long(c, p + off, n);
+				else
+					client_line(c, p + off, n);
+				off = len;
+			} else if (n > PROTO_LINE_MAX) {
+				client_too_long(c, p + off, n);
+				c->discarded = n;
+				off = len;
+				client_set_state(c, CLIENT_DISCARDING);
+			}
+			break;
+		}
+		if (n > PROTO_LINE_MAX)
+			client_too_long(c, p + off, n);
+		else
+			client_line(c, p + off, n);
+		off += n + 1;
+	}
+	evbuffer_drain(in, off);
+	if (c->state != CLIENT_DEAD && c->bad > LISTEN_BAD_MAX &&
+	    c->bad > c->good)
+		client_cut(c, CUT_GARBAGE);
+}
+
+static void
+client_read_cb(struct bufferevent *bev, void *arg)
+{
+	struct client *c = arg;
+
+	client_input(c, 0);
+}
+
+static void
+client_event_cb(struct bufferevent *bev, short what, void *arg)
+{
+	struct client *c = arg;
+
+	if (what & BEV_EVENT_EOF) {
+		client_input(c, 1);
+		log_debug("listen: client closed client=%" PRIu64 " source=%s "
+		    "good=%" PRIu64 " bad=%" PRIu64, c->id, source_name(c->src),
+		    c->good, c->bad);
+	} else if (what & BEV_EVENT_ERROR) {
+		log_debug("listen: client error: %s client=%" PRIu64
+		    " source=%s", evutil_socket_error_to_string(
+		    EVUTIL_SOCKET_ERROR()), c->id, source_name(c->src));
+	}
+	if (what & (BEV_EVENT_EOF | BEV_EVENT_ERROR))
+		client_set_state(c, CLIENT_DEAD);
+}
+
+static void
+listen_accept_cb(struct evconnlistener *evl, evutil_socket_t fd,
+    struct sockaddr *sa, int salen, void *arg)
+{
+	struct listen_sock *ls = arg;
+	struct listen *l = ls->l;
+	struct client *c;
+	struct bufferevent *bev;
+	size_t buf;
+
+	if (l->draining) {
+		evutil_closesocket(fd);
+		return;
+	}
+	if (l->nclients >= l->d->conf->max_clients) {
+		if (l->refused++ % 1000 == 0)
+			log_warnx("listen: connection refused: max_clients "
+			    "reached source=%s clients=%u refused=%" PRIu64,
+			    source_name(ls->src), l->nclients, l->refused);
+		evutil_closesocket(fd);
+		return;
+	}
+	bev = bufferevent_socket_new(l->d->base, fd, BEV_OPT_CLOSE_ON_FREE);
+	if (bev == NULL) {
+		log_warnx("listen: bufferevent_socket_new failed source=%s",
+		    source_name(ls->src));
+		evutil_closesocket(fd);
+		return;
+	}
+	c = xcalloc(1, sizeof *c);
+	c->l = l;
+	c->src = ls->src;
+	c->state = CLIENT_READING;
+	c->bev = bev;
+	c->id = ++l->next_id;
+	buf = listen_buffer(l);
+	bufferevent_setwatermark(bev, EV_READ, 0, buf);
+	bufferevent_set_max_single_read(bev,
+	    buf < LISTEN_READ_MAX ? buf : LISTEN_READ_MAX);
+	bufferevent_setcb(bev, client_read_cb, NULL, client_event_cb, c);
+	if (bufferevent_enable(bev, EV_READ) != 0) {
+		log_warnx("listen: cannot enable reading source=%s",
+		    source_name(ls->src));
+		client_free(c);
+		return;
+	}
+	TAILQ_INSERT_TAIL(&l->clients, c, entry);
+	l->nclients++;
+	l->nby[c->src]++;
+	l->accepted[c->src]++;
+	log_debug("listen: client connected client=%" PRIu64 " source=%s "
+	    "clients=%u", c->id, source_name(c->src), l->nclients);
+}
+
+static void
+listen_set_accept(struct listen *l, int on)
+{
+	struct listen_sock *socks[] = { &l->tcp, &l->unix_sock };
+	size_t i;
+
+	for (i = 0; i < SC_NELEM(socks); i++) {
+		if (socks[i]->evl == NULL)
+			continue;
+		if (on)
+			evconnlistener_enable(socks[i]->evl);
+		else
+			evconnlistener_disable(socks[i]->evl);
+	}
+}
+
+static void
+listen_backoff_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct listen *l = arg;
+
+	if (l->draining)
+		return;
+	log_info("listen: accepting again after backoff");
+	listen_set_accept(l, 1);
+}
+
+/* Out of descriptors: stop accepting for a while rather than spin. */
+static void
+listen_accept_error_cb(struct evconnlistener *evl, void *arg)
+{
+	struct listen_sock *ls = arg;
+	struct listen *l = ls->l;
+	int err = EVUTIL_SOCKET_ERROR();
+	struct timeval tv = { LISTEN_BACKOFF, 0 };
+
+	if (err == EMFILE || err == ENFILE || err == ENOBUFS || err == ENOMEM) {
+		l->backoffs++;
+		log_warnx("listen: accept: %s; pausing accept for %ds "
+		    "source=%s clients=%u", strerror(err), LISTEN_BACKOFF,
+		    source_name(ls->src), l->nclients);
+		listen_set_accept(l, 0);
+		event_add(l->backoff_ev, &tv);
+		return;
+	}
+	log_warnx("listen: accept: %s source=%s", strerror(err),
+	    source_name(ls->src));
+}
+
+/* "host:port" or "[v6]:port" to an address; 0 or -1 with *cause. */
+static int
+listen_resolve(const char *spec, int socktype, struct sockaddr_storage *ss,
+    socklen_t *sslen, char **cause)
+{
+	struct addrinfo hints, *res;
+	char *host, *port, *copy;
+	int rc;
+
+	copy = xstrdup(spec);
+	port = strrchr(copy, ':');
+	if (port == NULL || port[1] == '\0') {
+		xasprintf(cause, "%s: expected host:port", spec);
+		free(copy);
+		return -1;
+	}
+	*port++ = '\0';
+	host = copy;
+	if (host[0] == '[' && host[strlen(host) - 1] == ']') {
+		host[strlen(host) - 1] = '\0';
+		host++;
+	}
+	memset(&hints, 0, sizeof hints);
+	hints.ai_family = AF_UNSPEC;
+	hints.ai_socktype = socktype;
+	hints.ai_flags = AI_PASSIVE | AI_NUMERICSERV;
+	rc = getaddrinfo(*host != '\0' ? host : NULL, port, &hints, &res);
+	if (rc != 0) {
+		xasprintf(cause, "%s: %s", spec, gai_strerror(rc));
+		free(copy);
+		return -1;
+	}
+	memcpy(ss, res->ai_addr, res->ai_addrlen);
+	*sslen = res->ai_addrlen;
+	freeaddrinfo(res);
+	free(copy);
+	return 0;
+}
+
+static int
+listen_stream(struct listen *l, struct listen_sock *ls, enum source src,
+    const struct sockaddr *sa, socklen_t salen, unsigned flags,
+    const char *name, char **cause)
+{
+	ls->l = l;
+	ls->src = src;
+	ls->name = xstrdup(name);
+	ls->evl = evconnlistener_new_bind(l->d->base, listen_accept_cb, ls,
+	    LEV_OPT_CLOSE_ON_FREE | LEV_OPT_CLOSE_ON_EXEC | flags,
+	    LISTEN_BACKLOG, sa, (int)salen);
+	if (ls->evl == NULL) {
+		xasprintf(cause, "%s %s: %s", source_name(src), name,
+		    strerror(errno));
+		return -1;
+	}
+	evconnlistener_set_error_cb(ls->evl, listen_accept_error_cb);
+	log_info("listen: accepting source=%s address=%s", source_name(src),
+	    name);
+	return 0;
+}
+
+static int
+listen_tcp(struct listen *l, const char *spec, char **cause)
+{
+	struct sockaddr_storage ss;
+	socklen_t sslen;
+
+	if (listen_resolve(spec, SOCK_STREAM, &ss, &sslen, cause) != 0)
+		return -1;
+	return listen_stream(l, &l->tcp, SRC_TCP, (struct sockaddr *)&ss,
+	    sslen, LEV_OPT_REUSEABLE, spec, cause);
+}
+
+/* Bind the Unix socket, replacing a stale one but never a live one. */
+static int
+listen_unix(struct listen *l, const char *path, char **cause)
+{
+	struct sockaddr_un sun;
+	struct stat st;
+	int fd;
+
+	memset(&sun, 0, sizeof sun);
+	sun.sun_family = AF_UNIX;
+	if (strlen(path) >= sizeof sun.sun_path) {
+		xasprintf(cause, "unix %s: path too long", path);
+		return -1;
+	}
+	strcpy(sun.sun_path, path);
+	if (lstat(path, &st) == 0) {
+		if (!S_ISSOCK(st.st_mode)) {
+			xasprintf(cause, "unix %s: exists and is not a socket",
+			    path);
+			return -1;
+		}
+		fd = socket(AF_UNIX, SOCK_STREAM | SOCK_CLOEXEC, 0);
+		if (fd != -1 && connect(fd, (struct sockaddr *)&sun,
+		    sizeof sun) == 0) {
+			close(fd);
+			xasprintf(cause, "unix %s: in use by another process",
+			    path);
+			return -1;
+		}
+		if (fd != -1)
+			close(fd);
+		if (unlink(path) != 0) {
+			xasprintf(cause, "unix %s: cannot remove stale socket: "
+			    "%s", path, strerror(errno));
+			return -1;
+		}
+		log_info("listen: removed stale socket path=%s", path);
+	}
+	if (listen_stream(l, &l->unix_sock, SRC_UNIX, (struct sockaddr *)&sun,
+	    sizeof sun, 0, path, cause) != 0)
+		return -1;
+	if (chmod(path, 0660) != 0 || lstat(path, &st) != 0) {
+		xasprintf(cause, "unix %s: %s", path, strerror(errno));
+		return -1;
+	}
+	l->unix_path = xstrdup(path);
+	l->unix_ino = st.st_ino;
+	return 0;
+}
+
+/* One datagram: one or more lines; a final newline is optional. */
+static void
+listen_datagram(struct listen *l, const char *p, size_t len)
+{
+	const char *nl;
+	size_t n;
+
+	while (len > 0) {
+		nl = memchr(p, '\n', len);
+		n = nl != NULL ? (size_t)(nl - p) : len;
+		if (n > PROTO_LINE_MAX)
+			ingest_reject(l->d, SRC_UDP, PROTO_E_LONG, n, p, n);
+		else
+			ingest_line(l->d, SRC_UDP, p, n);
+		if (nl == NULL)
+			break;
+		p += n + 1;
+		len -= n + 1;
+	}
+}
+
+/* Read up to burst datagrams (0: until the socket is empty). */
+static void
+listen_udp_read(struct listen *l, int burst)
+{
+	ssize_t n;
+	int i;
+
+	for (i = 0; burst == 0 || i < burst; i++) {
+		n = recv(l->udp_fd, l->udp_buf, LISTEN_UDP_MAX, MSG_TRUNC);
+		if (n == -1) {
+			if (errno == EINTR)
+				continue;
+			if (errno != EAGAIN && errno != EWOULDBLOCK)
+				log_warn("listen: udp recv");
+			return;
+		}
+		l->udp_datagrams++;
+		if ((size_t)n > LISTEN_UDP_MAX) {
+			ingest_reject(l->d, SRC_UDP, PROTO_E_LONG, (size_t)n,
+			    l->udp_buf, 80);
+			continue;
+		}
+		listen_datagram(l, l->udp_buf, (size_t)n);
+	}
+}
+
+static void
+listen_udp_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct listen *l = arg;
+
+	listen_udp_read(l, LISTEN_UDP_BURST);
+}
+
+static int
+listen_udp(struct listen *l, const char *spec, char **cause)
+{
+	struct sockaddr_storage ss;
+	socklen_t sslen;
+	int size = 4 * 1024 * 1024;
+
+	if (listen_resolve(spec, SOCK_DGRAM, &ss, &sslen, cause) != 0)
+		return -1;
+	l->udp_fd = socket(ss.ss_family, SOCK_DGRAM | SOCK_NONBLOCK |
+	    SOCK_CLOEXEC, 0);
+	if (l->udp_fd == -1) {
+		xasprintf(cause, "udp %s: socket: %s", spec, strerror(errno));
+		return -1;
+	}
+	/* Best effort: a deeper queue rides out bursts; the kernel caps it
+	 * at net.core.rmem_max. */
+	(void)setsockopt(l->udp_fd, SOL_SOCKET, SO_RCVBUF, &size, sizeof size);
+	if (bind(l->udp_fd, (struct sockaddr *)&ss, sslen) != 0) {
+		xasprintf(cause, "udp %s: %s", spec, strerror(errno));
+		return -1;
+	}
+	l->udp_buf = xmalloc(LISTEN_UDP_MAX);
+	l->udp_name = xstrdup(spec);
+	l->udp_ev = event_new(l->d->base, l->udp_fd, EV_READ | EV_PERSIST,
+	    listen_udp_cb, l);
+	if (l->udp_ev == NULL || event_add(l->udp_ev, NULL) != 0) {
+		xasprintf(cause, "udp %s: cannot add event", spec);
+		return -1;
+	}
+	log_info("listen: accepting source=udp address=%s", spec);
+	return 0;
+}
+
+struct listen *
+listen_new(struct daemon *d, char **cause)
+{
+	struct listen *l;
+	const struct conf *conf = d->conf;
+
+	l = xcalloc(1, sizeof *l);
+	l->d = d;
+	l->udp_fd = -1;
+	TAILQ_INIT(&l->clients);
+	TAILQ_INIT(&l->dead);
+	l->reap_ev = event_new(d->base, -1, 0, listen_reap_cb, l);
+	l->backoff_ev = evtimer_new(d->base, listen_backoff_cb, l);
+	if (l->reap_ev == NULL || l->backoff_ev == NULL) {
+		*cause = xstrdup("cannot create listener events");
+		listen_free(l);
+		return NULL;
+	}
+	if ((conf->tcp != NULL && listen_tcp(l, conf->tcp, cause) != 0) ||
+	    (conf->udp != NULL && listen_udp(l, conf->udp, cause) != 0) ||
+	    (conf->unix_path != NULL &&
+	    listen_unix(l, conf->unix_path, cause) != 0)) {
+		listen_free(l);
+		return NULL;
+	}
+	return l;
+}
+
+void
+listen_free(struct listen *l)
+{
+	struct client *c;
+	struct stat st;
+
+	if (l == NULL)
+		return;
+	while ((c = TAILQ_FIRST(&l->clients)) != NULL) {
+		TAILQ_REMOVE(&l->clients, c, entry);
+		client_free(c);
+	}
+	while ((c = TAILQ_FIRST(&l->dead)) != NULL) {
+		TAILQ_REMOVE(&l->dead, c, entry);
+		client_free(c);
+	}
+	if (l->tcp.evl != NULL)
+		evconnlistener_free(l->tcp.evl);
+	if (l->unix_sock.evl != NULL)
+		evconnlistener_free(l->unix_sock.evl);
+	/* Remove the socket file only if it is still the one we bound. */
+	if (l->unix_path != NULL && lstat(l->unix_path, &st) == 0 &&
+	    st.st_ino == l->unix_ino)
+		unlink(l->unix_path);
+	if (l->udp_ev != NULL)
+		event_free(l->udp_ev);
+	if (l->udp_fd != -1)
+		close(l->udp_fd);
+	if (l->reap_ev != NULL)
+		event_free(l->reap_ev);
+	if (l->backoff_ev != NULL)
+		event_free(l->backoff_ev);
+	free(l->tcp.name);
+	free(l->unix_sock.name);
+	free(l->unix_path);
+	free(l->udp_name);
+	free(l->udp_buf);
+	free(l);
+}
+
+/*
+ * Shutdown: no new connections; what the kernel already holds for each
+ * client (bounded) and for the UDP socket is applied; then every client
+ * is closed. Called from the signal handler, not a client callback, so
+ * clients are freed right here.
+ */
+void
+listen_drain(struct listen *l)
+{
+	struct client *c;
+	struct evbuffer *in;
+	size_t got;
+	int n, fd;
+
+	l->draining = 1;
+	listen_set_accept(l, 0);
+	if (l->udp_ev != NULL) {
+		event_del(l->udp_ev);
+		listen_udp_read(l, 0);
+	}
+	while ((c = TAILQ_FIRST(&l->clients)) != NULL) {
+		in = bufferevent_get_input(c->bev);
+		fd = bufferevent_getfd(c->bev);
+		for (got = 0, n = 1; fd != -1 && got < LISTEN_DRAIN_MAX &&
+		    c->state != CLIENT_DEAD; got += (size_t)n) {
+			n = evbuffer_read(in, fd, 65536);
+			if (n <= 0)
+				break;
+			client_input(c, 0);
+		}
+		if (c->state != CLIENT_DEAD) {
+			/* A last line without its newline counts only when
+			 * the client has closed; otherwise it is unfinished
+			 * and dropped (sockets are at-most-once). */
+			client_input(c, n == 0);
+			client_set_state(c, CLIENT_DEAD);
+		}
+	}
+	listen_reap_cb(-1, 0, l);
+}
+
+void
+listen_metrics(struct listen *l, struct evbuffer *b)
+{
+	static const enum source stream[] = { SRC_TCP, SRC_UNIX };
+	size_t i;
+	int r;
+
+	evbuffer_add_printf(b, "# HELP stopcock_clients Connected stream "
+	    "clients.\n# TYPE stopcock_clients gauge\n");
+	for (i = 0; i < SC_NELEM(stream); i++)
+		evbuffer_add_printf(b, "stopcock_clients{source=\"%s\"} %u\n",
+		    source_name(stream[i]), l->nby[stream[i]]);
+	evbuffer_add_printf(b, "# HELP stopcock_clients_accepted_total "
+	    "Stream connections accepted.\n# TYPE "
+	    "stopcock_clients_accepted_total counter\n");
+	for (i = 0; i < SC_NELEM(stream); i++)
+		evbuffer_add_printf(b, "stopcock_clients_accepted_total{source="
+		    "\"%s\"} %" PRIu64 "\n", source_name(stream[i]),
+		    l->accepted[stream[i]]);
+	evbuffer_add_printf(b, "# HELP stopcock_clients_refused_total "
+	    "Connections closed at once because max_clients was reached.\n"
+	    "# TYPE stopcock_clients_refused_total counter\n"
+	    "stopcock_clients_refused_total %" PRIu64 "\n", l->refused);
+	evbuffer_add_printf(b, "# HELP stopcock_clients_cut_total Clients cut "
+	    "off for garbage or an endless line.\n# TYPE "
+	    "stopcock_clients_cut_total counter\n");
+	for (i = 0; i < SC_NELEM(stream); i++)
+		for (r = 0; r < CUT_N; r++)
+			evbuffer_add_printf(b, "stopcock_clients_cut_total{"
+			    "source=\"%s\",reason=\"%s\"} %" PRIu64 "\n",
+			    source_name(stream[i]), listen_cut_names[r],
+			    l->cut[stream[i]][r]);
+	evbuffer_add_printf(b, "# HELP stopcock_accept_backoffs_total Times "
+	    "accepting paused for lack of file descriptors.\n# TYPE "
+	    "stopcock_accept_backoffs_total counter\n"
+	    "stopcock_accept_backoffs_total %" PRIu64 "\n", l->backoffs);
+	evbuffer_add_printf(b, "# HELP stopcock_udp_datagrams_total UDP "
+	    "datagrams received.\n# TYPE stopcock_udp_datagrams_total "
+	    "counter\nstopcock_udp_datagrams_total %" PRIu64 "\n",
+	    l->udp_datagrams);
+}
+
+json_t *
+listen_json(struct listen *l)
+{
+	static const enum source stream[] = { SRC_TCP, SRC_UNIX };
+	json_t *o = json_object(), *clients = json_object();
+	json_t *accepted = json_object(), *cut = json_object(), *cs;
+	size_t i;
+	int r;
+
+	for (i = 0; i < SC_NELEM(stream); i++) {
+		const char *name = source_name(stream[i]);
+
+		json_object_set_new(clients, name,
+		    json_integer(l->nby[stream[i]]));
+		json_object_set_new(accepted, name,
+		    json_integer((json_int_t)l->accepted[stream[i]]));
+		cs = json_object();
+		for (r = 0; r < CUT_N; r++)
+			json_object_set_new(cs, listen_cut_names[r],
+			    json_integer((json_int_t)l->cut[stream[i]][r]));
+		json_object_set_new(cut, name, cs);
+	}
+	json_object_set_new(o, "clients", clients);
+	json_object_set_new(o, "accepted", accepted);
+	json_object_set_new(o, "cut", cut);
+	json_object_set_new(o, "refused", json_integer((json_int_t)l->refused));
+	json_object_set_new(o, "accept_backoffs",
+	    json_integer((json_int_t)l->backoffs));
+	json_object_set_new(o, "udp_datagrams",
+	    json_integer((json_int_t)l->udp_datagrams));
+	return o;
+}

@@ -1,0 +1,578 @@
+/*
+ * main.c: stopcockd's start-up, signals and loop. One struct daemon owns
+ * every subsystem; this file builds them in dependency order (outputs
+ * first, then the engine restored from the checkpoint with its sink, then
+ * the inputs) so that nothing flows before the state it lands in exists,
+ * and tells systemd READY=1 only then.
+ *
+ * The daemon runs in the foreground as systemd expects. Signals are loop
+ * events handled in one switch: TERM and INT drain the inputs, write a
+ * last checkpoint and leave the loop; HUP reloads the configuration all
+ * or nothing; USR1 writes a checkpoint now; PIPE is ignored. Timers drive
+ * the engine's tick, periodic checkpoints, the systemd watchdog and the
+ * STATUS= line.
+ */
+#include <sys/random.h>
+#include <sys/stat.h>
+#include <sys/time.h>
+
+#include <errno.h>
+#include <inttypes.h>
+#include <signal.h>
+#include <stddef.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <time.h>
+#include <unistd.h>
+
+#include <event2/event.h>
+#include <systemd/sd-daemon.h>
+
+#include "stopcock/log.h"
+#include "daemon.h"
+
+#define DAEMON_CONF "/etc/stopcock/stopcock.conf"
+#define DAEMON_STATUS_EVERY 5	/* seconds between STATUS= lines */
+
+static const int daemon_signals[] = { SIGTERM, SIGINT, SIGHUP, SIGUSR1 };
+
+const char *
+source_name(enum source s)
+{
+	switch (s) {
+	case SRC_TCP:
+		return "tcp";
+	case SRC_UDP:
+		return "udp";
+	case SRC_UNIX:
+		return "unix";
+	case SRC_REDIS:
+		return "redis";
+	case SRC_HTTP:
+		return "http";
+	case SRC_N:
+		break;
+	}
+	return "?";
+}
+
+double
+daemon_now(void)
+{
+	struct timespec ts;
+
+	clock_gettime(CLOCK_REALTIME, &ts);
+	return ts.tv_sec + ts.tv_nsec / 1e9;
+}
+
+int
+daemon_inputs(const struct conf *conf)
+{
+	return (conf->tcp != NULL) + (conf->udp != NULL) +
+	    (conf->unix_path != NULL) + (conf->redis_address != NULL);
+}
+
+static void SC_NORETURN
+usage(void)
+{
+	fprintf(stderr, "usage: stopcockd [-dfht] [-c file]\n"
+	    "  -c file  configuration (default " DAEMON_CONF ")\n"
+	    "  -d       log to stderr, debug lines included\n"
+	    "  -f       log to stderr instead of syslog\n"
+	    "  -h       this help and every configuration key\n"
+	    "  -t       check the configuration and exit\n");
+	exit(SC_EX_USAGE);
+}
+
+/* Start-up failure: to the log and, when that is syslog, to stderr. */
+static void SC_NORETURN SC_PRINTF(3, 4)
+daemon_fatal(struct daemon *d, int code, const char *fmt, ...)
+{
+	va_list ap;
+	char *msg;
+
+	va_start(ap, fmt);
+	if (vasprintf(&msg, fmt, ap) == -1)
+		msg = NULL;
+	va_end(ap);
+	log_crit("%s", msg != NULL ? msg : fmt);
+	if (!d->log_stderr)
+		fprintf(stderr, "stopcockd: %s\n", msg != NULL ? msg : fmt);
+	free(msg);
+	exit(code);
+}
+
+/* What the daemon needs beyond what conf_load checks. */
+static int
+daemon_check(const struct conf *conf, char **cause)
+{
+	if (daemon_inputs(conf) == 0) {
+		xasprintf(cause, "%s: no input: set at least one of [daemon] "
+		    "tcp, udp, unix or [redis] address",
+		    conf->path != NULL ? conf->path : "configuration");
+		return -1;
+	}
+	if (conf->state_dir == NULL || *conf->state_dir == '\0') {
+		xasprintf(cause, "%s: [daemon] state is required",
+		    conf->path != NULL ? conf->path : "configuration");
+		return -1;
+	}
+	return 0;
+}
+
+/* Log a multi-line cause one line at a time. */
+static void
+daemon_log_lines(const char *prefix, const char *text)
+{
+	const char *p = text, *nl;
+
+	while (*p != '\0') {
+		nl = strchr(p, '\n');
+		log_warnx("%s%.*s", prefix, nl != NULL ? (int)(nl - p) :
+		    (int)strlen(p), p);
+		if (nl == NULL)
+			break;
+		p = nl + 1;
+	}
+}
+
+static void
+daemon_timer(struct event *ev, double seconds)
+{
+	struct timeval tv;
+
+	if (seconds < 0.001)
+		seconds = 0.001;
+	tv.tv_sec = (time_t)seconds;
+	tv.tv_usec = (suseconds_t)((seconds - tv.tv_sec) * 1e6);
+	event_add(ev, &tv);
+}
+
+static void
+daemon_checkpoint(struct daemon *d, const char *why)
+{
+	char *cause = NULL;
+
+	if (ckpt_write(d, &cause) != 0) {
+		log_warnx("checkpoint failed (%s): %s", why, cause);
+		free(cause);
+		return;
+	}
+	log_debug("checkpoint done reason=%s count=%" PRIu64, why,
+	    d->checkpoints);
+}
+
+static int
+daemon_differs(const char *a, const char *b)
+{
+	if (a == NULL || b == NULL)
+		return a != b;
+	return strcmp(a, b) != 0;
+}
+
+/* Settings copied at start: say which changes wait for a restart. */
+static void
+daemon_reload_notes(const struct conf *old, const struct conf *new)
+{
+	static const struct {
+		const char	*name;
+		size_t		 off;
+	} fixed[] = {
+		{ "[daemon] tcp", offsetof(struct conf, tcp) },
+		{ "[daemon] udp", offsetof(struct conf, udp) },
+		{ "[daemon] unix", offsetof(struct conf, unix_path) },
+		{ "[daemon] http", offsetof(struct conf, http) },
+		{ "[daemon] state", offsetof(struct conf, state_dir) },
+		{ "[redis] address", offsetof(struct conf, redis_address) },
+		{ "[redis] stream", offsetof(struct conf, redis_stream) },
+		{ "[redis] group", offsetof(struct conf, redis_group) },
+		{ "[redis] consumer", offsetof(struct conf, redis_consumer) },
+		{ "[redis] dead_letter",
+		    offsetof(struct conf, redis_dead_letter) },
+		{ "[syslog] ident", offsetof(struct conf, syslog_ident) },
+		{ "[syslog] facility", offsetof(struct conf, syslog_facility) },
+	};
+	size_t i;
+
+	for (i = 0; i < SC_NELEM(fixed); i++) {
+		const char *a = *(char *const *)((const char *)old +
+		    fixed[i].off);
+		const char *b = *(char *const *)((const char *)new +
+		    fixed[i].off);
+
+		if (daemon_differs(a, b))
+			log_warnx("reload: %s changed; it takes effect at the "
+			    "next restart", fixed[i].name);
+	}
+}
+
+/* SIGHUP: the new file replaces the old one entirely or not at all. */
+static void
+daemon_reload(struct daemon *d)
+{
+	struct conf *nc = NULL, *old;
+	char *cause = NULL;
+	double tick, every;
+
+	sd_notify(0, "RELOADING=1");
+	log_info("reload: reading path=%s", d->conf_path);
+	if (conf_load(d->conf_path, &nc, &cause) != 0 ||
+	    daemon_check(nc, &cause) != 0) {
+		daemon_log_lines("reload: ", cause);
+		log_warnx("reload: failed; keeping the running configuration");
+		goto done;
+	}
+	if (engine_reconfigure(d->engine, nc, &cause) != 0) {
+		daemon_log_lines("reload: engine: ", cause);
+		log_warnx("reload: failed; keeping the running configuration");
+		goto done;
+	}
+	daemon_reload_notes(d->conf, nc);
+	tick = d->conf->tick;
+	every = d->conf->checkpoint_every;
+	old = d->conf;
+	d->conf = nc;
+	nc = NULL;
+	conf_free(old);
+	if (d->conf->tick != tick)
+		daemon_timer(d->ev_tick, d->conf->tick);
+	if (d->conf->checkpoint_every != every)
+		daemon_timer(d->ev_checkpoint, d->conf->checkpoint_every);
+	log_info("reload: configuration in force path=%s guardrails=%d "
+	    "experiments=%d", d->conf_path, d->conf->nguardrails,
+	    d->conf->nexperiments);
+done:
+	if (nc != NULL)
+		conf_free(nc);
+	free(cause);
+	sd_notify(0, "READY=1");
+}
+
+/* SIGTERM/SIGINT: stop the inputs, apply what they hold, save, leave. */
+static void
+daemon_shutdown(struct daemon *d, int sig)
+{
+	char *cause = NULL;
+
+	if (d->draining) {
+		log_info("shutdown already under way");
+		return;
+	}
+	d->draining = 1;
+	sd_notify(0, "STOPPING=1");
+	log_info("shutting down signal=%s", strsignal(sig));
+	if (d->redis != NULL)
+		redis_in_stop(d->redis);
+	if (d->listen != NULL)
+		listen_drain(d->listen);
+	if (ckpt_write(d, &cause) != 0) {
+		log_crit("final checkpoint failed: %s", cause);
+		free(cause);
+		d->exit_code = SC_EX_IOERR;
+	} else
+		log_info("final checkpoint written records=%" PRIu64,
+		    ingest_records_total(d));
+	event_base_loopexit(d->base, NULL);
+}
+
+static void
+daemon_signal_cb(evutil_socket_t sig, short what, void *arg)
+{
+	struct daemon *d = arg;
+
+	switch (sig) {
+	case SIGTERM:
+	case SIGINT:
+		daemon_shutdown(d, (int)sig);
+		break;
+	case SIGHUP:
+		daemon_reload(d);
+		break;
+	case SIGUSR1:
+		daemon_checkpoint(d, "signal");
+		break;
+	default:
+		log_warnx("unexpected signal %d", (int)sig);
+		break;
+	}
+}
+
+static void
+daemon_tick_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct daemon *d = arg;
+
+	engine_tick(d->engine, daemon_now());
+}
+
+static void
+daemon_checkpoint_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct daemon *d = arg;
+
+	if (!d->draining)
+		daemon_checkpoint(d, "timer");
+}
+
+static void
+daemon_watchdog_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct daemon *d = arg;
+
+	(void)d;
+	sd_notify(0, "WATCHDOG=1");
+}
+
+/* STATUS= for systemctl status: ingest rate and Redis lag. */
+static void
+daemon_status_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct daemon *d = arg;
+	struct engine_counters ec;
+	uint64_t total = ingest_records_total(d);
+	double now = daemon_now(), dt = now - d->status_time;
+	int64_t lag = d->redis != NULL ? redis_in_lag(d->redis) : -1;
+	char lagbuf[32];
+
+	if (dt > 0)
+		d->ingest_rate = (double)(total - d->status_records) / dt;
+	d->status_records = total;
+	d->status_time = now;
+	engine_counters(d->engine, &ec);
+	if (d->redis == NULL)
+		strcpy(lagbuf, "no redis");
+	else if (lag < 0)
+		strcpy(lagbuf, "redis lag unknown");
+	else
+		snprintf(lagbuf, sizeof lagbuf, "redis lag %" PRId64, lag);
+	sd_notifyf(0, "STATUS=%.0f records/s, %s, %u experiments, "
+	    "%" PRIu64 " records", d->ingest_rate, lagbuf, ec.experiments,
+	    total);
+}
+
+static struct event *
+daemon_every(struct daemon *d, event_callback_fn cb, double seconds)
+{
+	struct event *ev;
+
+	ev = event_new(d->base, -1, EV_PERSIST, cb, d);
+	if (ev == NULL)
+		daemon_fatal(d, SC_EX_OSERR, "cannot create a timer");
+	daemon_timer(ev, seconds);
+	return ev;
+}
+
+static void
+daemon_hashkey(struct daemon *d)
+{
+	size_t got = 0;
+	ssize_t n;
+
+	while (got < sizeof d->hashkey) {
+		n = getrandom(d->hashkey + got, sizeof d->hashkey - got, 0);
+		if (n == -1) {
+			if (errno == EINTR)
+				continue;
+			daemon_fatal(d, SC_EX_OSERR, "getrandom: %s",
+			    strerror(errno));
+		}
+		got += (size_t)n;
+	}
+}
+
+static void
+daemon_state_dir(struct daemon *d)
+{
+	struct stat st;
+
+	if (stat(d->state_dir, &st) != 0) {
+		if (errno != ENOENT || mkdir(d->state_dir, 0750) != 0)
+			daemon_fatal(d, SC_EX_OSERR, "state directory %s: %s",
+			    d->state_dir, strerror(errno));
+		log_info("created the state directory path=%s", d->state_dir);
+	} else if (!S_ISDIR(st.st_mode))
+		daemon_fatal(d, SC_EX_OSERR, "state directory %s: not a "
+		    "directory", d->state_dir);
+	if (access(d->state_dir, W_OK | X_OK) != 0)
+		daemon_fatal(d, SC_EX_OSERR, "state directory %s: %s",
+		    d->state_dir, strerror(errno));
+}
+
+/*
+ * Outputs first (alerts need webhooks and pause), then the state from the
+ * checkpoint, then the inputs. A NULL without a cause is a subsystem
+ * not built yet.
+ */
+static void
+daemon_start(struct daemon *d)
+{
+	char *cause = NULL;
+	uint64_t usec;
+	size_t i;
+
+	d->webhook = webhook_new(d, &cause);
+	if (d->webhook == NULL && cause != NULL)
+		daemon_fatal(d, SC_EX_CONFIG, "webhooks: %s", cause);
+	d->pause = pause_new(d, &cause);
+	if (d->pause == NULL && cause != NULL)
+		daemon_fatal(d, SC_EX_CONFIG, "pause: %s", cause);
+	d->alert = alert_new(d, &cause);
+	if (d->alert == NULL && cause != NULL)
+		daemon_fatal(d, SC_EX_CONFIG, "alerts: %s", cause);
+
+	if (ckpt_restore(d, &cause) != 0)
+		daemon_fatal(d, SC_EX_DATAERR, "%s; refusing to start (move "
+		    "the file away to start afresh)", cause);
+	if (d->engine == NULL)
+		d->engine = engine_new(d->conf, d->hashkey);
+	engine_set_sink(d->engine, alert_finding, d->alert);
+
+	d->http = http_new(d, &cause);
+	if (d->http == NULL && cause != NULL)
+		daemon_fatal(d, SC_EX_OSERR, "http: %s", cause);
+	if (d->conf->tcp != NULL || d->conf->udp != NULL ||
+	    d->conf->unix_path != NULL) {
+		d->listen = listen_new(d, &cause);
+		if (d->listen == NULL)
+			daemon_fatal(d, SC_EX_OSERR, "listen: %s", cause);
+	}
+	if (d->conf->redis_address != NULL) {
+		d->redis = redis_in_new(d, d->restored_redis_id, &cause);
+		if (d->redis == NULL)
+			daemon_fatal(d, SC_EX_CONFIG, "redis: %s", cause);
+	}
+
+	for (i = 0; i < SC_NELEM(daemon_signals); i++) {
+		d->ev_signal[i] = evsignal_new(d->base, daemon_signals[i],
+		    daemon_signal_cb, d);
+		if (d->ev_signal[i] == NULL ||
+		    event_add(d->ev_signal[i], NULL) != 0)
+			daemon_fatal(d, SC_EX_OSERR, "cannot watch signal %d",
+			    daemon_signals[i]);
+	}
+	d->ev_tick = daemon_every(d, daemon_tick_cb, d->conf->tick);
+	d->ev_checkpoint = daemon_every(d, daemon_checkpoint_cb,
+	    d->conf->checkpoint_every);
+	d->status_time = daemon_now();
+	d->status_records = ingest_records_total(d);
+	d->ev_status = daemon_every(d, daemon_status_cb, DAEMON_STATUS_EVERY);
+	if (sd_watchdog_enabled(0, &usec) > 0) {
+		d->ev_watchdog = daemon_every(d, daemon_watchdog_cb,
+		    usec / 2e6);
+		log_info("systemd watchdog every %.1fs", usec / 2e6);
+	}
+}
+
+static void
+daemon_stop(struct daemon *d)
+{
+	size_t i;
+
+	for (i = 0; i < SC_NELEM(d->ev_signal); i++)
+		if (d->ev_signal[i] != NULL)
+			event_free(d->ev_signal[i]);
+	if (d->ev_tick != NULL)
+		event_free(d->ev_tick);
+	if (d->ev_checkpoint != NULL)
+		event_free(d->ev_checkpoint);
+	if (d->ev_status != NULL)
+		event_free(d->ev_status);
+	if (d->ev_watchdog != NULL)
+		event_free(d->ev_watchdog);
+	redis_in_free(d->redis);
+	listen_free(d->listen);
+	http_free(d->http);
+	alert_free(d->alert);
+	pause_free(d->pause);
+	webhook_free(d->webhook);
+	engine_free(d->engine);
+	conf_free(d->conf);
+	event_base_free(d->base);
+	free(d->conf_path);
+	free(d->state_dir);
+	free(d->restored_redis_id);
+	free(d->restored_redis_stream);
+}
+
+int
+main(int argc, char **argv)
+{
+	struct daemon daemon, *d = &daemon;
+	const char *path = DAEMON_CONF;
+	char *cause = NULL;
+	int ch, check = 0, code;
+
+	memset(d, 0, sizeof *d);
+	while ((ch = getopt(argc, argv, "c:dfht")) != -1) {
+		switch (ch) {
+		case 'c':
+			path = optarg;
+			break;
+		case 'd':
+			d->debug = 1;
+			d->log_stderr = 1;
+			break;
+		case 'f':
+			/* Always in the foreground; -f only keeps the log
+			 * on stderr (journald reads it there too). */
+			d->log_stderr = 1;
+			break;
+		case 'h':
+			printf("usage: stopcockd [-dfht] [-c file]\n\n"
+			    "configuration keys:\n");
+			conf_help(stdout);
+			return SC_EX_OK;
+		case 't':
+			check = 1;
+			break;
+		default:
+			usage();
+		}
+	}
+	if (optind != argc)
+		usage();
+
+	if (conf_load(path, &d->conf, &cause) != 0 ||
+	    daemon_check(d->conf, &cause) != 0) {
+		fprintf(stderr, "%s\n", cause);
+		if (check)
+			fprintf(stderr, "configuration has errors\n");
+		return SC_EX_CONFIG;
+	}
+	if (check) {
+		printf("configuration OK\n");
+		conf_free(d->conf);
+		return SC_EX_OK;
+	}
+	if (log_init(d->conf->syslog_ident != NULL ? d->conf->syslog_ident :
+	    "stopcockd", d->conf->syslog_facility, d->log_stderr, d->debug) != 0) {
+		fprintf(stderr, "stopcockd: unknown syslog facility %s\n",
+		    d->conf->syslog_facility);
+		return SC_EX_CONFIG;
+	}
+	/* A peer that goes away must cost an EPIPE, not the process. */
+	signal(SIGPIPE, SIG_IGN);
+
+	d->conf_path = xstrdup(path);
+	d->state_dir = xstrdup(d->conf->state_dir);
+	d->started = daemon_now();
+	daemon_hashkey(d);
+	if ((d->base = event_base_new()) == NULL)
+		daemon_fatal(d, SC_EX_OSERR, "cannot create the event loop");
+	daemon_state_dir(d);
+	daemon_start(d);
+
+	log_info("stopcockd ready pid=%ld config=%s state=%s records=%" PRIu64,
+	    (long)getpid(), d->conf_path, d->state_dir,
+	    ingest_records_total(d));
+	sd_notify(0, "READY=1\nSTATUS=running");
+
+	if (event_base_dispatch(d->base) == -1)
+		daemon_fatal(d, SC_EX_SOFTWARE, "event loop failed");
+	code = d->exit_code;
+	log_info("stopcockd exiting code=%d", code);
+	daemon_stop(d);
+	return code;
+}

@@ -1,0 +1,1484 @@
+/*
+ * redis_in.c: the Redis stream consumer, on hiredis's async API attached
+ * to the daemon's event base. Each stream entry carries a field `records`
+ * with one or more protocol lines separated by '\n' (producers batch);
+ * the lines go to ingest.c like any other input.
+ *
+ * Exactly once across crashes rests on three rules:
+ *  - entries are applied in ID order and the checkpoint stores the last
+ *    applied ID together with the engine state it produced;
+ *  - an entry is acknowledged (XACK) only once a checkpoint covers it, so
+ *    anything applied after the last checkpoint is still pending in Redis
+ *    when we die;
+ *  - at start we first read back this consumer's own pending entries: the
+ *    ones with an ID at or below the checkpoint's are already in the
+ *    restored state and are only acknowledged, the later ones are applied.
+ * The rules assume one logical consumer per group (one daemon, whose
+ * consumer name may change): entries reclaimed from other consumers obey
+ * the same ID rule.
+ *
+ * One connection carries everything. Between two blocking reads the
+ * consumer runs its housekeeping, one step at a time: acknowledging what
+ * the last checkpoint covers (XPENDING - <covered> for our consumer, then
+ * XACK), moving entries delivered more than max_deliveries times to the
+ * dead-letter stream (XPENDING IDLE, XCLAIM, XADD, XACK), reclaiming
+ * entries idle on dead consumers (XAUTOCLAIM) and refreshing lag and
+ * pending counts (XINFO GROUPS, XPENDING). Entries without `records` are
+ * poison and go to the dead-letter stream at once.
+ *
+ * The connection comes back after any failure with exponential backoff
+ * (100 ms doubling to 10 s); a watchdog drops it when an answer is late
+ * (a blocking read gets block + 5 s). Freeing the hiredis context never
+ * happens inside its own callbacks: failures found there are handed to a
+ * deferred event.
+ */
+#include <errno.h>
+#include <inttypes.h>
+#include <limits.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include <event2/event.h>
+#include <hiredis/hiredis.h>
+#include <hiredis/async.h>
+#include <hiredis/adapters/libevent.h>
+
+#include "stopcock/log.h"
+#include "daemon.h"
+
+#define REDIS_IN_ANSWER 5.0	/* seconds for any answer beyond a block */
+#define REDIS_IN_BACKOFF_MIN 0.1
+#define REDIS_IN_BACKOFF_MAX 10.0
+#define REDIS_IN_INFO_EVERY 5.0	/* lag and pending refresh, seconds */
+#define REDIS_IN_ACK_BATCH 1000	/* IDs per XPENDING/XACK round */
+#define REDIS_IN_LAG_SCAN 10000	/* entries counted when Redis gives no lag */
+
+enum redis_in_state {
+	RS_IDLE,	/* not connected; a retry is scheduled */
+	RS_CONNECTING,
+	RS_SETUP,	/* XGROUP CREATE in flight */
+	RS_PENDING,	/* reading back our own pending entries */
+	RS_STEADY,	/* new entries, housekeeping between reads */
+	RS_STOPPED	/* shutting down: never reconnect */
+};
+
+enum redis_in_dead { DEAD_NO_RECORDS, DEAD_MAX_DELIVERIES, DEAD_N };
+
+static const char *redis_in_dead_names[DEAD_N] = {
+	"no_records", "max_deliveries"
+};
+
+/* A stream entry ID. 0-0 is below every real entry. */
+struct sid {
+	uint64_t	ms;
+	uint64_t	seq;
+};
+
+#define SID_BUF 48
+
+struct redis_in {
+	struct daemon		*d;
+	enum redis_in_state	 state;
+	redisAsyncContext	*ac;
+
+	/* Fixed at start (a reload does not move the consumer). */
+	char			*address;
+	char			*host;
+	int			 port;
+	char			*unix_path;
+	char			*stream;
+	char			*group;
+	char			*consumer;
+	char			*dead;
+
+	struct sid		 last;		/* last applied */
+	struct sid		 covered;	/* by the last checkpoint */
+	uint64_t		 covered_gen;
+	uint64_t		 sweep_gen;
+	int			 ack_due;
+	struct sid		 pel_cursor;
+	struct sid		 claim_cursor;
+	struct sid		*poison;	/* this PEL batch, > max_deliveries */
+	size_t			 npoison;
+
+	struct event		*retry_ev;
+	struct event		*watchdog_ev;
+	struct event		*fail_ev;	/* deferred drop */
+	double			 backoff;
+	double			 connect_since;
+	unsigned		 outstanding;	/* commands without answer */
+	double			 wait_since;
+	int			 reading;	/* blocking XREADGROUP out */
+	unsigned		 ops;		/* housekeeping commands out */
+	double			 next_claim;
+	double			 next_info;
+	int			 no_idle_filter;	/* Redis < 6.2 */
+	char			 last_str[SID_BUF];
+
+	int64_t			 lag;		/* -1: unknown */
+	int			 lag_capped;
+	int64_t			 pending;
+	int64_t			 pending_own;
+	uint64_t		 entries;	/* applied */
+	uint64_t		 skipped;	/* at or below the checkpoint */
+	uint64_t		 deleted;	/* pending but gone from the stream */
+	uint64_t		 dead_count[DEAD_N];
+	uint64_t		 dead_failed;
+	uint64_t		 claimed;
+	uint64_t		 acked;
+	uint64_t		 reconnects;
+	uint64_t		 errors;
+};
+
+/* Context of one dead-letter move (XADD then XACK). */
+struct redis_in_dl {
+	struct sid		 id;
+	enum redis_in_dead	 reason;
+};
+
+static void	redis_in_next(struct redis_in *);
+static void	redis_in_connect(struct redis_in *);
+
+static int
+sid_parse(const char *s, size_t len, struct sid *out)
+{
+	char buf[SID_BUF], *dash, *end;
+
+	if (len == 0 || len >= sizeof buf)
+		return -1;
+	memcpy(buf, s, len);
+	buf[len] = '\0';
+	if (buf[0] < '0' || buf[0] > '9')
+		return -1;
+	errno = 0;
+	out->ms = strtoull(buf, &dash, 10);
+	if (errno != 0 || *dash != '-' || dash[1] < '0' || dash[1] > '9')
+		return -1;
+	out->seq = strtoull(dash + 1, &end, 10);
+	if (errno != 0 || *end != '\0')
+		return -1;
+	return 0;
+}
+
+static const char *
+sid_fmt(struct sid id, char *buf)
+{
+	snprintf(buf, SID_BUF, "%" PRIu64 "-%" PRIu64, id.ms, id.seq);
+	return buf;
+}
+
+static int
+sid_cmp(struct sid a, struct sid b)
+{
+	if (a.ms != b.ms)
+		return a.ms < b.ms ? -1 : 1;
+	if (a.seq != b.seq)
+		return a.seq < b.seq ? -1 : 1;
+	return 0;
+}
+
+/* The smallest ID after id (for inclusive ranges on old servers). */
+static struct sid
+sid_next(struct sid id)
+{
+	if (id.seq == UINT64_MAX) {
+		id.ms++;
+		id.seq = 0;
+	} else
+		id.seq++;
+	return id;
+}
+
+static int
+sid_reply(const redisReply *r, struct sid *out)
+{
+	if (r == NULL || (r->type != REDIS_REPLY_STRING &&
+	    r->type != REDIS_REPLY_STATUS))
+		return -1;
+	return sid_parse(r->str, r->len, out);
+}
+
+static const char *
+redis_in_state_name(enum redis_in_state s)
+{
+	switch (s) {
+	case RS_IDLE:
+		return "idle";
+	case RS_CONNECTING:
+		return "connecting";
+	case RS_SETUP:
+		return "setup";
+	case RS_PENDING:
+		return "pending";
+	case RS_STEADY:
+		return "steady";
+	case RS_STOPPED:
+		return "stopped";
+	}
+	return "?";
+}
+
+/* The one place the consumer changes state. */
+static void
+redis_in_set_state(struct redis_in *r, enum redis_in_state new)
+{
+	if (r->state == new)
+		return;
+	if (new == RS_STEADY || r->state == RS_STEADY || new == RS_IDLE)
+		log_info("redis: %s -> %s stream=%s consumer=%s last=%s",
+		    redis_in_state_name(r->state), redis_in_state_name(new),
+		    r->stream, r->consumer, redis_in_last_id(r));
+	else
+		log_debug("redis: %s -> %s stream=%s",
+		    redis_in_state_name(r->state), redis_in_state_name(new),
+		    r->stream);
+	r->state = new;
+}
+
+/* Schedule a reconnection after the current backoff, then double it. */
+static void
+redis_in_retry(struct redis_in *r)
+{
+	struct timeval tv;
+
+	if (r->state == RS_STOPPED || evtimer_pending(r->retry_ev, NULL))
+		return;
+	redis_in_set_state(r, RS_IDLE);
+	tv.tv_sec = (time_t)r->backoff;
+	tv.tv_usec = (suseconds_t)((r->backoff - tv.tv_sec) * 1e6);
+	evtimer_add(r->retry_ev, &tv);
+	r->backoff *= 2;
+	if (r->backoff > REDIS_IN_BACKOFF_MAX)
+		r->backoff = REDIS_IN_BACKOFF_MAX;
+}
+
+/* Drop the connection now. Never from inside a hiredis callback. */
+static void
+redis_in_drop(struct redis_in *r, const char *why)
+{
+	redisAsyncContext *ac = r->ac;
+
+	if (ac == NULL)
+		return;
+	log_warnx("redis: dropping the connection: %s address=%s", why,
+	    r->address);
+	redisAsyncFree(ac);	/* runs pending callbacks with NULL replies */
+	r->ac = NULL;
+	r->outstanding = 0;
+	r->reading = 0;
+	r->ops = 0;
+	redis_in_retry(r);
+}
+
+static void
+redis_in_fail_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct redis_in *r = arg;
+
+	redis_in_drop(r, "protocol error");
+}
+
+/* From inside a callback: log now, drop the connection just after. */
+static void
+redis_in_fail(struct redis_in *r, const char *cmd, const redisReply *reply)
+{
+	r->errors++;
+	log_warnx("redis: %s failed: %.*s stream=%s", cmd,
+	    reply != NULL && reply->str != NULL ? (int)reply->len : 7,
+	    reply != NULL && reply->str != NULL ? reply->str : "no data",
+	    r->stream);
+	event_active(r->fail_ev, EV_TIMEOUT, 0);
+}
+
+/* Every callback starts here: the answer arrived (or the link died). */
+static int
+redis_in_answer(struct redis_in *r, const redisReply *reply)
+{
+	if (r->outstanding > 0)
+		r->outstanding--;
+	if (reply == NULL || r->ac == NULL || r->state == RS_STOPPED)
+		return -1;
+	r->wait_since = daemon_now();
+	return 0;
+}
+
+static int
+redis_in_sent(struct redis_in *r, int rc, const char *what)
+{
+	if (rc != REDIS_OK) {
+		r->errors++;
+		log_warnx("redis: cannot send %s stream=%s", what, r->stream);
+		event_active(r->fail_ev, EV_TIMEOUT, 0);
+		return -1;
+	}
+	if (r->outstanding++ == 0)
+		r->wait_since = daemon_now();
+	return 0;
+}
+
+static int
+redis_in_cmd(struct redis_in *r, redisCallbackFn *fn, void *priv,
+    const char *fmt, ...)
+{
+	va_list ap;
+	int rc;
+
+	if (r->ac == NULL)
+		return -1;
+	va_start(ap, fmt);
+	rc = redisvAsyncCommand(r->ac, fn, priv, fmt, ap);
+	va_end(ap);
+	return redis_in_sent(r, rc, fmt);
+}
+
+static int
+redis_in_argv(struct redis_in *r, redisCallbackFn *fn, void *priv, int argc,
+    const char **argv, const size_t *lens)
+{
+	if (r->ac == NULL)
+		return -1;
+	return redis_in_sent(r, redisAsyncCommandArgv(r->ac, fn, priv, argc,
+	    argv, lens), argv[0]);
+}
+
+/* A housekeeping step ended: maybe the next one, or the next read. */
+static void
+redis_in_op_done(struct redis_in *r)
+{
+	if (r->ops > 0)
+		r->ops--;
+	redis_in_next(r);
+}
+
+static void
+redis_in_ack_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type == REDIS_REPLY_INTEGER)
+		r->acked += (uint64_t)rep->integer;
+	else
+		log_warnx("redis: XACK failed: %.*s", (int)rep->len,
+		    rep->str != NULL ? rep->str : "");
+	redis_in_op_done(r);
+}
+
+/* XACK the IDs in elements [0, n) of an array of entries or IDs. */
+static void
+redis_in_ack_ids(struct redis_in *r, const char **ids, const size_t *lens,
+    size_t n)
+{
+	const char **argv;
+	size_t *alen, i;
+
+	if (n == 0)
+		return;
+	argv = xreallocarray(NULL, n + 3, sizeof *argv);
+	alen = xreallocarray(NULL, n + 3, sizeof *alen);
+	argv[0] = "XACK";
+	argv[1] = r->stream;
+	argv[2] = r->group;
+	for (i = 0; i < 3; i++)
+		alen[i] = strlen(argv[i]);
+	for (i = 0; i < n; i++) {
+		argv[i + 3] = ids[i];
+		alen[i + 3] = lens[i];
+	}
+	if (redis_in_argv(r, redis_in_ack_cb, NULL, (int)(n + 3), argv,
+	    alen) == 0)
+		r->ops++;
+	free(argv);
+	free(alen);
+}
+
+static void
+redis_in_ack_one(struct redis_in *r, struct sid id)
+{
+	char buf[SID_BUF];
+	const char *p = sid_fmt(id, buf);
+	size_t len = strlen(p);
+
+	redis_in_ack_ids(r, &p, &len, 1);
+}
+
+static void
+redis_in_dead_added_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	struct redis_in_dl *dl = priv;
+	redisReply *rep = reply;
+	char buf[SID_BUF];
+
+	if (redis_in_answer(r, rep) != 0) {
+		free(dl);
+		return;
+	}
+	if (rep->type == REDIS_REPLY_ERROR) {
+		r->dead_failed++;
+		log_warnx("redis: dead-letter XADD failed: %.*s entry=%s "
+		    "dead_letter=%s", (int)rep->len, rep->str,
+		    sid_fmt(dl->id, buf), r->dead);
+	} else {
+		r->dead_count[dl->reason]++;
+		log_warnx("redis: entry moved to the dead-letter stream: %s "
+		    "entry=%s dead_letter=%s", redis_in_dead_names[dl->reason],
+		    sid_fmt(dl->id, buf), r->dead);
+		redis_in_ack_one(r, dl->id);
+	}
+	free(dl);
+	redis_in_op_done(r);
+}
+
+/*
+ * Copy an entry to the dead-letter stream with its original fields plus
+ * origin (its ID) and reason, then XACK it once the copy is stored.
+ */
+static void
+redis_in_dead_letter(struct redis_in *r, struct sid id,
+    const redisReply *fields, enum redis_in_dead reason)
+{
+	struct redis_in_dl *dl;
+	const char **argv;
+	size_t *alen, n = 0, i, nf;
+	char buf[SID_BUF];
+
+	nf = fields != NULL && fields->type == REDIS_REPLY_ARRAY ?
+	    fields->elements : 0;
+	argv = xreallocarray(NULL, nf + 7, sizeof *argv);
+	alen = xreallocarray(NULL, nf + 7, sizeof *alen);
+	argv[n] = "XADD"; alen[n] = 4; n++;
+	argv[n] = r->dead; alen[n] = strlen(r->dead); n++;
+	argv[n] = "*"; alen[n] = 1; n++;
+	for (i = 0; i + 1 < nf; i += 2) {
+		const redisReply *f = fields->element[i];
+		const redisReply *v = fields->element[i + 1];
+
+		if (f->type != REDIS_REPLY_STRING ||
+		    v->type != REDIS_REPLY_STRING)
+			continue;
+		argv[n] = f->str; alen[n] = f->len; n++;
+		argv[n] = v->str; alen[n] = v->len; n++;
+	}
+	argv[n] = "origin"; alen[n] = 6; n++;
+	argv[n] = sid_fmt(id, buf); alen[n] = strlen(buf); n++;
+	argv[n] = "reason"; alen[n] = 6; n++;
+	argv[n] = redis_in_dead_names[reason];
+	alen[n] = strlen(argv[n]); n++;
+	dl = xcalloc(1, sizeof *dl);
+	dl->id = id;
+	dl->reason = reason;
+	/* XADD wants field/value pairs: with no fields at all the origin and
+	 * reason pairs alone keep it well formed. */
+	if (redis_in_argv(r, redis_in_dead_added_cb, dl, (int)n, argv,
+	    alen) == 0)
+		r->ops++;
+	else
+		free(dl);
+	free(argv);
+	free(alen);
+}
+
+/* Apply the lines of one entry's `records` field. */
+static void
+redis_in_apply(struct redis_in *r, const char *p, size_t len)
+{
+	const char *nl;
+	size_t n;
+
+	while (len > 0) {
+		nl = memchr(p, '\n', len);
+		n = nl != NULL ? (size_t)(nl - p) : len;
+		if (n > PROTO_LINE_MAX)
+			ingest_reject(r->d, SRC_REDIS, PROTO_E_LONG, n, p, n);
+		else
+			ingest_line(r->d, SRC_REDIS, p, n);
+		if (nl == NULL)
+			break;
+		p += n + 1;
+		len -= n + 1;
+	}
+}
+
+static int
+redis_in_is_poison(struct redis_in *r, struct sid id)
+{
+	size_t i;
+
+	for (i = 0; i < r->npoison; i++)
+		if (sid_cmp(r->poison[i], id) == 0)
+			return 1;
+	return 0;
+}
+
+/*
+ * One delivered entry [id, [field, value, ...]] (or [id, nil] when it
+ * was deleted after delivery). Returns -1 on a malformed reply.
+ */
+static int
+redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
+{
+	const redisReply *fields, *f, *v;
+	struct sid id;
+	size_t i;
+
+	if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
+	    sid_reply(e->element[0], &id) != 0)
+		return -1;
+	fields = e->element[1];
+	if (fields->type == REDIS_REPLY_NIL) {
+		/* Trimmed or deleted while pending: nothing to apply. */
+		r->deleted++;
+		redis_in_ack_one(r, id);
+		return 0;
+	}
+	if (fields->type != REDIS_REPLY_ARRAY)
+		return -1;
+	if (sid_cmp(id, r->last) <= 0) {
+		/* Already in the restored state; XACKed by the sweep
+		 * once a checkpoint covers it. */
+		r->skipped++;
+		r->ack_due = 1;
+		return 0;
+	}
+	if (check_poison && redis_in_is_poison(r, id)) {
+		redis_in_dead_letter(r, id, fields, DEAD_MAX_DELIVERIES);
+		return 0;
+	}
+	for (i = 0; i + 1 < fields->elements; i += 2) {
+		f = fields->element[i];
+		v = fields->element[i + 1];
+		if (f->type == REDIS_REPLY_STRING && f->len == 7 &&
+		    memcmp(f->str, "records", 7) == 0 &&
+		    v->type == REDIS_REPLY_STRING) {
+			redis_in_apply(r, v->str, v->len);
+			r->last = id;
+			r->entries++;
+			return 0;
+		}
+	}
+	redis_in_dead_letter(r, id, fields, DEAD_NO_RECORDS);
+	return 0;
+}
+
+/* Entries of an XREADGROUP answer: [[stream, [entry, ...]]] or nil. */
+static int
+redis_in_entries(struct redis_in *r, const redisReply *rep, int check_poison,
+    size_t *count, struct sid *lastseen)
+{
+	const redisReply *s, *list;
+	size_t i, j;
+
+	*count = 0;
+	if (rep->type == REDIS_REPLY_NIL)
+		return 0;
+	if (rep->type != REDIS_REPLY_ARRAY)
+		return -1;
+	for (i = 0; i < rep->elements; i++) {
+		s = rep->element[i];
+		if (s->type != REDIS_REPLY_ARRAY || s->elements != 2 ||
+		    s->element[1]->type != REDIS_REPLY_ARRAY)
+			return -1;
+		list = s->element[1];
+		for (j = 0; j < list->elements; j++) {
+			if (redis_in_entry(r, list->element[j],
+			    check_poison) != 0)
+				return -1;
+			if (lastseen != NULL)
+				sid_reply(list->element[j]->element[0],
+				    lastseen);
+			(*count)++;
+		}
+	}
+	return 0;
+}
+
+static void
+redis_in_read_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	size_t n;
+
+	r->reading = 0;
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type == REDIS_REPLY_ERROR) {
+		if (strncmp(rep->str, "NOGROUP", 7) == 0) {
+			/* The stream or group was deleted under us. */
+			log_warnx("redis: group gone, creating it again "
+			    "stream=%s group=%s", r->stream, r->group);
+			event_active(r->fail_ev, EV_TIMEOUT, 0);
+			return;
+		}
+		redis_in_fail(r, "XREADGROUP", rep);
+		return;
+	}
+	if (redis_in_entries(r, rep, 0, &n, NULL) != 0) {
+		redis_in_fail(r, "XREADGROUP (unexpected answer)", NULL);
+		return;
+	}
+	redis_in_next(r);
+}
+
+static void
+redis_in_pel_next(struct redis_in *r);
+
+static void
+redis_in_pel_read_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	size_t n;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type == REDIS_REPLY_ERROR) {
+		redis_in_fail(r, "XREADGROUP (pending)", rep);
+		return;
+	}
+	if (redis_in_entries(r, rep, 1, &n, &r->pel_cursor) != 0) {
+		redis_in_fail(r, "XREADGROUP (unexpected answer)", NULL);
+		return;
+	}
+	r->npoison = 0;
+	if (n < r->d->conf->redis_batch || n == 0) {
+		log_info("redis: own pending entries read back stream=%s "
+		    "applied=%" PRIu64 " skipped=%" PRIu64, r->stream,
+		    r->entries, r->skipped);
+		redis_in_set_state(r, RS_STEADY);
+		r->ack_due = 1;
+		r->next_claim = 0;
+		r->next_info = 0;
+		redis_in_next(r);
+		return;
+	}
+	redis_in_pel_next(r);
+}
+
+/* Delivery counts of the next batch of our own pending entries. */
+static void
+redis_in_pel_count_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *e;
+	struct sid id;
+	size_t i;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type != REDIS_REPLY_ARRAY) {
+		redis_in_fail(r, "XPENDING (own)", rep);
+		return;
+	}
+	r->npoison = 0;
+	r->poison = xreallocarray(r->poison, rep->elements + 1,
+	    sizeof *r->poison);
+	for (i = 0; i < rep->elements; i++) {
+		e = rep->element[i];
+		if (e->type != REDIS_REPLY_ARRAY || e->elements < 4 ||
+		    sid_reply(e->element[0], &id) != 0 ||
+		    e->element[3]->type != REDIS_REPLY_INTEGER)
+			continue;
+		/* The read after this one delivers it once more. */
+		if (e->element[3]->integer >=
+		    (long long)r->d->conf->redis_max_deliveries &&
+		    sid_cmp(id, r->last) > 0)
+			r->poison[r->npoison++] = id;
+	}
+}
+
+/*
+ * Next batch of our own pending entries (those delivered to us before a
+ * crash or a lost connection): their delivery counts first, then the
+ * entries, pipelined so both see the same batch.
+ */
+static void
+redis_in_pel_next(struct redis_in *r)
+{
+	char cur[SID_BUF], from[SID_BUF];
+	long long batch = r->d->conf->redis_batch;
+
+	sid_fmt(r->pel_cursor, cur);
+	if (r->pel_cursor.ms == 0 && r->pel_cursor.seq == 0)
+		strcpy(from, "-");
+	else
+		sid_fmt(sid_next(r->pel_cursor), from);
+	if (redis_in_cmd(r, redis_in_pel_count_cb, NULL,
+	    "XPENDING %s %s %s + %lld %s", r->stream, r->group, from, batch,
+	    r->consumer) != 0)
+		return;
+	redis_in_cmd(r, redis_in_pel_read_cb, NULL,
+	    "XREADGROUP GROUP %s %s COUNT %lld STREAMS %s %s", r->group,
+	    r->consumer, batch, r->stream, cur);
+}
+
+static void
+redis_in_group_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type == REDIS_REPLY_ERROR &&
+	    strncmp(rep->str, "BUSYGROUP", 9) != 0) {
+		redis_in_fail(r, "XGROUP CREATE", rep);
+		return;
+	}
+	r->backoff = REDIS_IN_BACKOFF_MIN;
+	r->pel_cursor.ms = r->pel_cursor.seq = 0;
+	r->npoison = 0;
+	redis_in_set_state(r, RS_PENDING);
+	redis_in_pel_next(r);
+}
+
+static void
+redis_in_connect_cb(const redisAsyncContext *cac, int status)
+{
+	struct redis_in *r = cac->data;
+
+	if (status != REDIS_OK) {
+		/* hiredis frees the context after this callback. */
+		log_warnx("redis: cannot connect: %s address=%s", cac->errstr,
+		    r->address);
+		r->ac = NULL;
+		r->outstanding = 0;
+		redis_in_retry(r);
+		return;
+	}
+	log_info("redis: connected address=%s", r->address);
+	redis_in_set_state(r, RS_SETUP);
+	redis_in_cmd(r, redis_in_group_cb, NULL,
+	    "XGROUP CREATE %s %s $ MKSTREAM", r->stream, r->group);
+}
+
+static void
+redis_in_disconnect_cb(const redisAsyncContext *cac, int status)
+{
+	struct redis_in *r = cac->data;
+
+	r->ac = NULL;
+	r->outstanding = 0;
+	r->reading = 0;
+	r->ops = 0;
+	if (r->state == RS_STOPPED)
+		return;
+	if (status != REDIS_OK)
+		log_warnx("redis: connection lost: %s address=%s",
+		    cac->errstr, r->address);
+	redis_in_retry(r);
+}
+
+static void
+redis_in_connect(struct redis_in *r)
+{
+	redisAsyncContext *ac;
+
+	if (r->state == RS_STOPPED || r->ac != NULL)
+		return;
+	if (r->unix_path != NULL)
+		ac = redisAsyncConnectUnix(r->unix_path);
+	else
+		ac = redisAsyncConnect(r->host, r->port);
+	if (ac == NULL || ac->err) {
+		log_warnx("redis: cannot connect: %s address=%s",
+		    ac != NULL ? ac->errstr : "out of memory", r->address);
+		if (ac != NULL)
+			redisAsyncFree(ac);
+		redis_in_retry(r);
+		return;
+	}
+	ac->data = r;
+	if (redisLibeventAttach(ac, r->d->base) != REDIS_OK) {
+		log_warnx("redis: cannot attach to the event loop");
+		redisAsyncFree(ac);
+		redis_in_retry(r);
+		return;
+	}
+	redisAsyncSetConnectCallback(ac, redis_in_connect_cb);
+	redisAsyncSetDisconnectCallback(ac, redis_in_disconnect_cb);
+	r->ac = ac;
+	r->connect_since = daemon_now();
+	redis_in_set_state(r, RS_CONNECTING);
+}
+
+static void
+redis_in_retry_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct redis_in *r = arg;
+
+	r->reconnects++;
+	redis_in_connect(r);
+}
+
+static void
+redis_in_watchdog_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct redis_in *r = arg;
+	double now = daemon_now(), limit;
+	char why[96];
+
+	if (r->ac == NULL)
+		return;
+	if (r->state == RS_CONNECTING) {
+		if (now - r->connect_since > REDIS_IN_ANSWER)
+			redis_in_drop(r, "connect timed out");
+		return;
+	}
+	limit = REDIS_IN_ANSWER + (r->reading ? r->d->conf->redis_block : 0);
+	if (r->outstanding > 0 && now - r->wait_since > limit) {
+		snprintf(why, sizeof why, "no answer in %.1fs", limit);
+		redis_in_drop(r, why);
+	}
+}
+
+/* Acknowledge our pending entries at or below the covered ID. */
+static void
+redis_in_sweep_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const char **ids;
+	size_t *lens, i, n = 0;
+	const redisReply *e;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type != REDIS_REPLY_ARRAY) {
+		log_warnx("redis: XPENDING (ack sweep) failed: %.*s",
+		    (int)rep->len, rep->str != NULL ? rep->str : "");
+		r->errors++;
+		r->ack_due = 0;
+		redis_in_op_done(r);
+		return;
+	}
+	ids = xreallocarray(NULL, rep->elements + 1, sizeof *ids);
+	lens = xreallocarray(NULL, rep->elements + 1, sizeof *lens);
+	for (i = 0; i < rep->elements; i++) {
+		e = rep->element[i];
+		if (e->type != REDIS_REPLY_ARRAY || e->elements < 1 ||
+		    e->element[0]->type != REDIS_REPLY_STRING)
+			continue;
+		ids[n] = e->element[0]->str;
+		lens[n++] = e->element[0]->len;
+	}
+	redis_in_ack_ids(r, ids, lens, n);
+	free(ids);
+	free(lens);
+	/* A full page may hide more; a newer checkpoint needs another. */
+	if (rep->elements < REDIS_IN_ACK_BATCH && r->covered_gen == r->sweep_gen)
+		r->ack_due = 0;
+	redis_in_op_done(r);
+}
+
+static void
+redis_in_sweep(struct redis_in *r)
+{
+	char cov[SID_BUF];
+
+	if (r->covered.ms == 0 && r->covered.seq == 0) {
+		r->ack_due = 0;
+		redis_in_next(r);
+		return;
+	}
+	r->sweep_gen = r->covered_gen;
+	if (redis_in_cmd(r, redis_in_sweep_cb, NULL,
+	    "XPENDING %s %s - %s %d %s", r->stream, r->group,
+	    sid_fmt(r->covered, cov), REDIS_IN_ACK_BATCH, r->consumer) == 0)
+		r->ops++;
+}
+
+static void
+redis_in_autoclaim_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *list;
+	struct sid next;
+	size_t i;
+	double every;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	every = r->d->conf->redis_claim_idle / 2;
+	every = every < 1 ? 1 : every > 30 ? 30 : every;
+	r->next_claim = daemon_now() + every;
+	if (rep->type != REDIS_REPLY_ARRAY || rep->elements < 2 ||
+	    sid_reply(rep->element[0], &next) != 0 ||
+	    rep->element[1]->type != REDIS_REPLY_ARRAY) {
+		r->errors++;
+		log_warnx("redis: XAUTOCLAIM failed: %.*s", rep->str != NULL ?
+		    (int)rep->len : 0, rep->str != NULL ? rep->str : "");
+		redis_in_op_done(r);
+		return;
+	}
+	list = rep->element[1];
+	for (i = 0; i < list->elements; i++) {
+		/* Redis 6.2 answers nil for entries deleted meanwhile. */
+		if (list->element[i]->type == REDIS_REPLY_NIL)
+			continue;
+		r->claimed++;
+		if (redis_in_entry(r, list->element[i], 0) != 0) {
+			redis_in_fail(r, "XAUTOCLAIM (unexpected answer)",
+			    NULL);
+			return;
+		}
+	}
+	if (list->elements > 0)
+		log_info("redis: reclaimed idle entries count=%zu stream=%s",
+		    list->elements, r->stream);
+	r->claim_cursor = next;
+	if (next.ms != 0 || next.seq != 0)
+		r->next_claim = 0;	/* more to scan: go on soon */
+	redis_in_op_done(r);
+}
+
+static void
+redis_in_autoclaim(struct redis_in *r)
+{
+	char cur[SID_BUF];
+
+	if (redis_in_cmd(r, redis_in_autoclaim_cb, NULL,
+	    "XAUTOCLAIM %s %s %s %lld %s COUNT %lld", r->stream, r->group,
+	    r->consumer, (long long)(r->d->conf->redis_claim_idle * 1000),
+	    sid_fmt(r->claim_cursor, cur),
+	    (long long)r->d->conf->redis_batch) == 0)
+		r->ops++;
+}
+
+/* XCLAIM answer for entries over max_deliveries: dead-letter them. */
+static void
+redis_in_poison_claim_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *e;
+	struct sid id;
+	size_t i;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type != REDIS_REPLY_ARRAY) {
+		r->errors++;
+		log_warnx("redis: XCLAIM failed: %.*s", rep->str != NULL ?
+		    (int)rep->len : 0, rep->str != NULL ? rep->str : "");
+		redis_in_op_done(r);
+		return;
+	}
+	for (i = 0; i < rep->elements; i++) {
+		e = rep->element[i];
+		if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
+		    sid_reply(e->element[0], &id) != 0)
+			continue;
+		if (e->element[1]->type == REDIS_REPLY_NIL) {
+			r->deleted++;
+			redis_in_ack_one(r, id);
+		} else
+			redis_in_dead_letter(r, id, e->element[1],
+			    DEAD_MAX_DELIVERIES);
+	}
+	redis_in_op_done(r);
+}
+
+/* Idle entries of every consumer with their delivery counts. */
+static void
+redis_in_idle_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *e;
+	const char **argv;
+	size_t *alen, i, n = 0;
+	struct sid id;
+	char idle[32];
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type != REDIS_REPLY_ARRAY) {
+		/* Servers before 6.2 have no IDLE filter: skip the poison
+		 * check there, reclaiming still works. */
+		if (!r->no_idle_filter)
+			log_warnx("redis: XPENDING IDLE failed (%.*s); no "
+			    "delivery-count check", rep->str != NULL ?
+			    (int)rep->len : 0, rep->str != NULL ? rep->str :
+			    "");
+		r->no_idle_filter = 1;
+		redis_in_autoclaim(r);
+		redis_in_op_done(r);
+		return;
+	}
+	argv = xreallocarray(NULL, rep->elements + 5, sizeof *argv);
+	alen = xreallocarray(NULL, rep->elements + 5, sizeof *alen);
+	snprintf(idle, sizeof idle, "%lld",
+	    (long long)(r->d->conf->redis_claim_idle * 1000));
+	argv[n++] = "XCLAIM";
+	argv[n++] = r->stream;
+	argv[n++] = r->group;
+	argv[n++] = r->consumer;
+	argv[n++] = idle;
+	for (i = 0; i < n; i++)
+		alen[i] = strlen(argv[i]);
+	for (i = 0; i < rep->elements; i++) {
+		e = rep->element[i];
+		if (e->type != REDIS_REPLY_ARRAY || e->elements < 4 ||
+		    sid_reply(e->element[0], &id) != 0 ||
+		    e->element[3]->type != REDIS_REPLY_INTEGER)
+			continue;
+		/* Claiming delivers it once more. Entries at or below our
+		 * last applied one are done, not poison. */
+		if (e->element[3]->integer <
+		    (long long)r->d->conf->redis_max_deliveries ||
+		    sid_cmp(id, r->last) <= 0)
+			continue;
+		argv[n] = e->element[0]->str;
+		alen[n++] = e->element[0]->len;
+	}
+	if (n > 5 && redis_in_argv(r, redis_in_poison_claim_cb, NULL, (int)n,
+	    argv, alen) == 0)
+		r->ops++;
+	free(argv);
+	free(alen);
+	redis_in_autoclaim(r);
+	redis_in_op_done(r);
+}
+
+static void
+redis_in_claim(struct redis_in *r)
+{
+	if (r->no_idle_filter) {
+		redis_in_autoclaim(r);
+		return;
+	}
+	if (redis_in_cmd(r, redis_in_idle_cb, NULL,
+	    "XPENDING %s %s IDLE %lld - + %lld", r->stream, r->group,
+	    (long long)(r->d->conf->redis_claim_idle * 1000),
+	    (long long)r->d->conf->redis_batch) == 0)
+		r->ops++;
+}
+
+static void
+redis_in_lagscan_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type == REDIS_REPLY_ARRAY) {
+		r->lag = (int64_t)rep->elements;
+		r->lag_capped = rep->elements >= REDIS_IN_LAG_SCAN;
+	}
+	redis_in_op_done(r);
+}
+
+static const redisReply *
+redis_in_field(const redisReply *map, const char *name)
+{
+	size_t i;
+
+	if (map == NULL || map->type != REDIS_REPLY_ARRAY)
+		return NULL;
+	for (i = 0; i + 1 < map->elements; i += 2)
+		if (map->element[i]->type == REDIS_REPLY_STRING &&
+		    strcmp(map->element[i]->str, name) == 0)
+			return map->element[i + 1];
+	return NULL;
+}
+
+/* XINFO GROUPS: lag when Redis 7 knows it, else count what is left. */
+static void
+redis_in_info_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *g, *name, *lag, *ld;
+	struct sid last;
+	char from[SID_BUF];
+	size_t i;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	r->next_info = daemon_now() + REDIS_IN_INFO_EVERY;
+	if (rep->type != REDIS_REPLY_ARRAY) {
+		redis_in_op_done(r);
+		return;
+	}
+	for (i = 0; i < rep->elements; i++) {
+		g = rep->element[i];
+		name = redis_in_field(g, "name");
+		if (name == NULL || name->type != REDIS_REPLY_STRING ||
+		    strcmp(name->str, r->group) != 0)
+			continue;
+		lag = redis_in_field(g, "lag");
+		if (lag != NULL && lag->type == REDIS_REPLY_INTEGER) {
+			r->lag = lag->integer;
+			r->lag_capped = 0;
+			break;
+		}
+		ld = redis_in_field(g, "last-delivered-id");
+		if (sid_reply(ld, &last) == 0 && redis_in_cmd(r,
+		    redis_in_lagscan_cb, NULL, "XRANGE %s %s + COUNT %d",
+		    r->stream, sid_fmt(sid_next(last), from),
+		    REDIS_IN_LAG_SCAN) == 0)
+			r->ops++;
+		break;
+	}
+	redis_in_op_done(r);
+}
+
+/* XPENDING summary: [count, min, max, [[consumer, count], ...]]. */
+static void
+redis_in_summary_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *list, *c;
+	size_t i;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type == REDIS_REPLY_ARRAY && rep->elements == 4 &&
+	    rep->element[0]->type == REDIS_REPLY_INTEGER) {
+		r->pending = rep->element[0]->integer;
+		r->pending_own = 0;
+		list = rep->element[3];
+		for (i = 0; list->type == REDIS_REPLY_ARRAY &&
+		    i < list->elements; i++) {
+			c = list->element[i];
+			if (c->type == REDIS_REPLY_ARRAY && c->elements == 2 &&
+			    c->element[0]->type == REDIS_REPLY_STRING &&
+			    c->element[1]->type == REDIS_REPLY_STRING &&
+			    strcmp(c->element[0]->str, r->consumer) == 0)
+				r->pending_own = strtoll(c->element[1]->str,
+				    NULL, 10);
+		}
+	}
+	redis_in_op_done(r);
+}
+
+static void
+redis_in_info(struct redis_in *r)
+{
+	if (redis_in_cmd(r, redis_in_info_cb, NULL, "XINFO GROUPS %s",
+	    r->stream) == 0)
+		r->ops++;
+	if (redis_in_cmd(r, redis_in_summary_cb, NULL, "XPENDING %s %s",
+	    r->stream, r->group) == 0)
+		r->ops++;
+}
+
+/*
+ * The steady loop: one housekeeping step when one is due, else the next
+ * blocking read. Nothing is sent while a read or a step is out, so the
+ * steps never queue behind a block.
+ */
+static void
+redis_in_next(struct redis_in *r)
+{
+	double now;
+
+	if (r->state != RS_STEADY || r->ac == NULL || r->reading ||
+	    r->ops > 0 || r->d->draining)
+		return;
+	now = daemon_now();
+	if (r->ack_due) {
+		redis_in_sweep(r);
+		return;
+	}
+	if (now >= r->next_claim) {
+		r->next_claim = now + 1;	/* until the answer sets it */
+		redis_in_claim(r);
+		return;
+	}
+	if (now >= r->next_info) {
+		r->next_info = now + REDIS_IN_INFO_EVERY;
+		redis_in_info(r);
+		return;
+	}
+	if (redis_in_cmd(r, redis_in_read_cb, NULL,
+	    "XREADGROUP GROUP %s %s COUNT %lld BLOCK %lld STREAMS %s >",
+	    r->group, r->consumer, (long long)r->d->conf->redis_batch,
+	    (long long)(r->d->conf->redis_block * 1000), r->stream) == 0)
+		r->reading = 1;
+}
+
+/* "host:port", "host" (port 6379), "/path" or "unix:/path". */
+static int
+redis_in_address(struct redis_in *r, const char *a, char **cause)
+{
+	const char *colon;
+	uint64_t port;
+
+	if (strncmp(a, "unix:", 5) == 0)
+		a += 5;
+	if (a[0] == '/') {
+		r->unix_path = xstrdup(a);
+		return 0;
+	}
+	colon = strrchr(a, ':');
+	if (colon == NULL) {
+		r->host = xstrdup(a);
+		r->port = 6379;
+		return 0;
+	}
+	if (parse_u64(colon + 1, 65535, &port) != 0 || port == 0 ||
+	    colon == a) {
+		xasprintf(cause, "redis address %s: expected host:port", a);
+		return -1;
+	}
+	r->host = xstrndup(a, (size_t)(colon - a));
+	if (r->host[0] == '[' && r->host[strlen(r->host) - 1] == ']') {
+		memmove(r->host, r->host + 1, strlen(r->host) - 2);
+		r->host[strlen(r->host) - 2] = '\0';
+	}
+	r->port = (int)port;
+	return 0;
+}
+
+/* The consumer name with %h as the host name and %% as %. */
+static char *
+redis_in_consumer(const char *tmpl)
+{
+	char host[HOST_NAME_MAX + 1], *out, *o;
+	const char *p;
+	size_t size;
+
+	if (gethostname(host, sizeof host) != 0)
+		strcpy(host, "localhost");
+	host[sizeof host - 1] = '\0';
+	size = strlen(tmpl) * (strlen(host) + 1) + 1;
+	out = o = xmalloc(size);
+	for (p = tmpl; *p != '\0'; p++) {
+		if (p[0] == '%' && p[1] == 'h') {
+			strcpy(o, host);
+			o += strlen(host);
+			p++;
+		} else if (p[0] == '%' && p[1] == '%') {
+			*o++ = '%';
+			p++;
+		} else
+			*o++ = *p;
+	}
+	*o = '\0';
+	return out;
+}
+
+struct redis_in *
+redis_in_new(struct daemon *d, const char *last_id, char **cause)
+{
+	const struct conf *conf = d->conf;
+	struct redis_in *r;
+	struct timeval second = { 1, 0 };
+
+	r = xcalloc(1, sizeof *r);
+	r->d = d;
+	r->state = RS_IDLE;
+	r->lag = -1;
+	r->pending = -1;
+	r->pending_own = -1;
+	r->backoff = REDIS_IN_BACKOFF_MIN;
+	r->address = xstrdup(conf->redis_address);
+	r->stream = xstrdup(conf->redis_stream);
+	r->group = xstrdup(conf->redis_group);
+	r->consumer = redis_in_consumer(conf->redis_consumer);
+	r->dead = xstrdup(conf->redis_dead_letter);
+	if (redis_in_address(r, conf->redis_address, cause) != 0) {
+		redis_in_free(r);
+		return NULL;
+	}
+	if (last_id != NULL && *last_id != '\0' &&
+	    sid_parse(last_id, strlen(last_id), &r->last) != 0) {
+		xasprintf(cause, "bad Redis entry ID in the checkpoint: %s",
+		    last_id);
+		redis_in_free(r);
+		return NULL;
+	}
+	/* The restored state covers everything up to its last ID. */
+	r->covered = r->last;
+	r->retry_ev = evtimer_new(d->base, redis_in_retry_cb, r);
+	r->fail_ev = event_new(d->base, -1, 0, redis_in_fail_cb, r);
+	r->watchdog_ev = event_new(d->base, -1, EV_PERSIST,
+	    redis_in_watchdog_cb, r);
+	if (r->retry_ev == NULL || r->fail_ev == NULL ||
+	    r->watchdog_ev == NULL || event_add(r->watchdog_ev, &second)) {
+		*cause = xstrdup("cannot create Redis events");
+		redis_in_free(r);
+		return NULL;
+	}
+	log_info("redis: consuming stream=%s group=%s consumer=%s "
+	    "address=%s after=%s", r->stream, r->group, r->consumer,
+	    r->address, redis_in_last_id(r));
+	redis_in_connect(r);
+	return r;
+}
+
+void
+redis_in_stop(struct redis_in *r)
+{
+	if (r == NULL || r->state == RS_STOPPED)
+		return;
+	redis_in_set_state(r, RS_STOPPED);
+	if (r->retry_ev != NULL)
+		evtimer_del(r->retry_ev);
+	if (r->ac != NULL) {
+		redisAsyncFree(r->ac);
+		r->ac = NULL;
+	}
+}
+
+void
+redis_in_free(struct redis_in *r)
+{
+	if (r == NULL)
+		return;
+	redis_in_stop(r);
+	if (r->retry_ev != NULL)
+		event_free(r->retry_ev);
+	if (r->fail_ev != NULL)
+		event_free(r->fail_ev);
+	if (r->watchdog_ev != NULL)
+		event_free(r->watchdog_ev);
+	free(r->address);
+	free(r->host);
+	free(r->unix_path);
+	free(r->stream);
+	free(r->group);
+	free(r->consumer);
+	free(r->dead);
+	free(r->poison);
+	free(r);
+}
+
+/* "" before the first entry. */
+const char *
+redis_in_last_id(struct redis_in *r)
+{
+	if (r->last.ms == 0 && r->last.seq == 0)
+		r->last_str[0] = '\0';
+	else
+		sid_fmt(r->last, r->last_str);
+	return r->last_str;
+}
+
+void
+redis_in_covered(struct redis_in *r)
+{
+	if (r == NULL || sid_cmp(r->last, r->covered) == 0)
+		return;
+	r->covered = r->last;
+	r->covered_gen++;
+	r->ack_due = 1;
+	redis_in_next(r);
+}
+
+int64_t
+redis_in_lag(struct redis_in *r)
+{
+	return r->lag;
+}
+
+static void
+redis_in_gauge(struct evbuffer *b, const char *name, const char *help,
+    int64_t v)
+{
+	evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s gauge\n", name, help,
+	    name);
+	if (v < 0)
+		evbuffer_add_printf(b, "%s NaN\n", name);
+	else
+		evbuffer_add_printf(b, "%s %" PRId64 "\n", name, v);
+}
+
+static void
+redis_in_counter(struct evbuffer *b, const char *name, const char *help,
+    uint64_t v)
+{
+	evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s counter\n%s %" PRIu64
+	    "\n", name, help, name, name, v);
+}
+
+void
+redis_in_metrics(struct redis_in *r, struct evbuffer *b)
+{
+	int i;
+
+	redis_in_gauge(b, "stopcock_redis_up", "1 when the stream consumer is "
+	    "connected and reading.", r->state == RS_PENDING ||
+	    r->state == RS_STEADY);
+	redis_in_gauge(b, "stopcock_redis_lag", "Stream entries not yet "
+	    "delivered to the group (NaN when unknown).", r->lag);
+	redis_in_gauge(b, "stopcock_redis_pending", "Entries delivered to the "
+	    "group but not acknowledged.", r->pending);
+	redis_in_gauge(b, "stopcock_redis_pending_own", "Entries pending on "
+	    "this consumer.", r->pending_own);
+	redis_in_counter(b, "stopcock_redis_entries_total", "Stream entries "
+	    "applied.", r->entries);
+	redis_in_counter(b, "stopcock_redis_skipped_total", "Entries read "
+	    "back that the checkpoint already covered.", r->skipped);
+	redis_in_counter(b, "stopcock_redis_claimed_total", "Entries "
+	    "reclaimed from idle consumers.", r->claimed);
+	redis_in_counter(b, "stopcock_redis_acked_total", "Entries "
+	    "acknowledged.", r->acked);
+	redis_in_counter(b, "stopcock_redis_reconnects_total", "Connection "
+	    "attempts after the first.", r->reconnects);
+	redis_in_counter(b, "stopcock_redis_errors_total", "Commands that "
+	    "failed.", r->errors);
+	evbuffer_add_printf(b, "# HELP stopcock_redis_dead_letter_total "
+	    "Entries moved to the dead-letter stream.\n# TYPE "
+	    "stopcock_redis_dead_letter_total counter\n");
+	for (i = 0; i < DEAD_N; i++)
+		evbuffer_add_printf(b, "stopcock_redis_dead_letter_total{"
+		    "reason=\"%s\"} %" PRIu64 "\n", redis_in_dead_names[i],
+		    r->dead_count[i]);
+	redis_in_counter(b, "stopcock_redis_dead_letter_failed_total",
+	    "Dead-letter moves that Redis refused.", r->dead_failed);
+}
+
+json_t *
+redis_in_json(struct redis_in *r)
+{
+	json_t *o = json_object(), *dead = json_object();
+	char buf[SID_BUF];
+	int i;
+
+	json_object_set_new(o, "state", json_string(
+	    redis_in_state_name(r->state)));
+	json_object_set_new(o, "address", json_string(r->address));
+	json_object_set_new(o, "stream", json_string(r->stream));
+	json_object_set_new(o, "group", json_string(r->group));
+	json_object_set_new(o, "consumer", json_string(r->consumer));
+	json_object_set_new(o, "dead_letter_stream", json_string(r->dead));
+	json_object_set_new(o, "last_applied",
+	    json_string(redis_in_last_id(r)));
+	json_object_set_new(o, "covered", json_string(
+	    r->covered.ms == 0 && r->covered.seq == 0 ? "" :
+	    sid_fmt(r->covered, buf)));
+	json_object_set_new(o, "lag", r->lag < 0 ? json_null() :
+	    json_integer(r->lag));
+	json_object_set_new(o, "lag_capped", json_boolean(r->lag_capped));
+	json_object_set_new(o, "pending", r->pending < 0 ? json_null() :
+	    json_integer(r->pending));
+	json_object_set_new(o, "pending_own", r->pending_own < 0 ?
+	    json_null() : json_integer(r->pending_own));
+	json_object_set_new(o, "entries", json_integer((json_int_t)r->entries));
+	json_object_set_new(o, "skipped", json_integer((json_int_t)r->skipped));
+	json_object_set_new(o, "deleted", json_integer((json_int_t)r->deleted));
+	json_object_set_new(o, "claimed", json_integer((json_int_t)r->claimed));
+	json_object_set_new(o, "acked", json_integer((json_int_t)r->acked));
+	json_object_set_new(o, "reconnects",
+	    json_integer((json_int_t)r->reconnects));
+	json_object_set_new(o, "errors", json_integer((json_int_t)r->errors));
+	for (i = 0; i < DEAD_N; i++)
+		json_object_set_new(dead, redis_in_dead_names[i],
+		    json_integer((json_int_t)r->dead_count[i]));
+	json_object_set_new(o, "dead_lettered", dead);
+	json_object_set_new(o, "dead_letter_failed",
+	    json_integer((json_int_t)r->dead_failed));
+	return o;
+}
