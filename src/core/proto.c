@@ -41,6 +41,7 @@
 struct tok {
 	const char	*p;
 	size_t		 n;
+	int		 name;		/* every byte in [A-Za-z0-9._:-] */
 };
 
 static const char *const proto_reasons[PROTO_NSTATUS] = {
@@ -94,16 +95,30 @@ proto_describe(enum proto_status st)
 	return proto_sentences[st];
 }
 
-/* Bit c set when byte c may appear in a name: [A-Za-z0-9._:-]. */
-static const uint64_t proto_namebits[4] = {
-	0x07ff600000000000ULL, 0x07fffffe87fffffeULL, 0, 0
-};
+/* Byte classes: one table look-up per byte splits, screens and checks. */
+#define PC_BLANK 1		/* space, tab: separates tokens */
+#define PC_BAD 2		/* NUL, other controls, DEL */
+#define PC_NAME 4		/* [A-Za-z0-9._:-] */
 
-static inline int
-proto_namech(unsigned char c)
-{
-	return (proto_namebits[c >> 6] >> (c & 63)) & 1;
-}
+static const uint8_t proto_class[256] = {
+	2, 2, 2, 2, 2, 2, 2, 2, 2, 1, 2, 2, 2, 2, 2, 2,
+	2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2,
+	1, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 4, 4, 0,
+	4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 0, 0, 0, 0, 0,
+	0, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4,
+	4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 0, 0, 0, 0, 4,
+	0, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4,
+	4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 0, 0, 0, 0, 2,
+	/* 0x80..0xff: allowed in comments and JSON strings, not in names */
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
+};
 
 int
 proto_name_ok(const char *s, size_t len)
@@ -113,7 +128,7 @@ proto_name_ok(const char *s, size_t len)
 	if (len == 0 || len > PROTO_NAME_MAX)
 		return 0;
 	for (i = 0; i < len; i++) {
-		if (!proto_namech((unsigned char)s[i]))
+		if (!(proto_class[(unsigned char)s[i]] & PC_NAME))
 			return 0;
 	}
 	return 1;
@@ -126,6 +141,17 @@ proto_name(char *dst, const char *s, size_t len)
 		return -1;
 	memcpy(dst, s, len);
 	dst[len] = '\0';
+	return 0;
+}
+
+/* A whole token as a name: its characters were classed while splitting. */
+static inline int
+proto_tokname(char *dst, const struct tok *t)
+{
+	if (!t->name || t->n > PROTO_NAME_MAX)
+		return -1;
+	memcpy(dst, t->p, t->n);
+	dst[t->n] = '\0';
 	return 0;
 }
 
@@ -313,7 +339,7 @@ proto_plain_plan(const struct tok *t, int nt, struct record *r)
 
 	if (nt < 1)
 		return PROTO_E_FIELDS;
-	if (proto_name(r->experiment, t[0].p, t[0].n) != 0)
+	if (proto_tokname(r->experiment, &t[0]) != 0)
 		return PROTO_E_NAME;
 	if (nt - 1 < 2 || nt - 1 > PROTO_PLAN_MAX)
 		return PROTO_E_PLAN;
@@ -386,8 +412,8 @@ proto_plain(const struct tok *t, int nt, struct record *r)
 	default:
 		return PROTO_E_KIND;
 	}
-	if (proto_name(r->experiment, t[1].p, t[1].n) != 0 ||
-	    proto_name(r->variant, t[2].p, t[2].n) != 0)
+	if (proto_tokname(r->experiment, &t[1]) != 0 ||
+	    proto_tokname(r->variant, &t[2]) != 0)
 		return PROTO_E_NAME;
 	switch (r->kind) {
 	case PROTO_EXPOSE:
@@ -396,13 +422,13 @@ proto_plain(const struct tok *t, int nt, struct record *r)
 			return proto_units(t[3].p, t[3].n, &r->units);
 		return PROTO_OK;
 	case PROTO_OBSERVE:
-		if (proto_name(r->metric, t[3].p, t[3].n) != 0)
+		if (proto_tokname(r->metric, &t[3]) != 0)
 			return PROTO_E_NAME;
 		if (proto_number(t[4].p, t[4].n, 1, &r->value) != 0)
 			return PROTO_E_NUMBER;
 		return PROTO_OK;
 	case PROTO_COUNT:
-		if (proto_name(r->metric, t[3].p, t[3].n) != 0)
+		if (proto_tokname(r->metric, &t[3]) != 0)
 			return PROTO_E_NAME;
 		if (proto_number(t[4].p, t[4].n, 1, &r->k) != 0 ||
 		    proto_number(t[5].p, t[5].n, 1, &r->n) != 0)
@@ -612,7 +638,7 @@ proto_parse(const char *line, size_t len, struct record *r)
 	struct tok t[PROTO_TOKENS];
 	int nt = 0;
 	size_t i, start;
-	unsigned char c;
+	unsigned cl, all;
 
 	if (len > 0 && line[len - 1] == '\r')
 		len--;
@@ -620,25 +646,30 @@ proto_parse(const char *line, size_t len, struct record *r)
 		return PROTO_E_LONG;
 	proto_clear(r);
 
-	/* One pass: split on blanks and refuse control bytes anywhere. */
+	/*
+	 * One pass: split on blanks, refuse control bytes anywhere, and note
+	 * which tokens are all name characters (an empty token cannot occur).
+	 */
 	for (i = 0; i < len;) {
-		c = (unsigned char)line[i];
-		if (c == ' ' || c == '\t') {
+		cl = proto_class[(unsigned char)line[i]];
+		if (cl & PC_BLANK) {
 			i++;
 			continue;
 		}
 		start = i;
+		all = PC_NAME;
 		for (; i < len; i++) {
-			c = (unsigned char)line[i];
-			if (c <= ' ' || c == 0x7f) {
-				if (c == ' ' || c == '\t')
-					break;
-				return PROTO_E_BYTES;
-			}
+			cl = proto_class[(unsigned char)line[i]];
+			if (cl & (PC_BLANK | PC_BAD))
+				break;
+			all &= cl;
 		}
+		if (cl & PC_BAD && i < len)
+			return PROTO_E_BYTES;
 		if (nt < PROTO_TOKENS) {
 			t[nt].p = line + start;
 			t[nt].n = i - start;
+			t[nt].name = all != 0;
 		}
 		nt++;
 	}

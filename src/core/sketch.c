@@ -46,7 +46,7 @@ struct sketch {
 	double		 lng;		/* log gamma */
 	double		 inv_lng;
 	double		 lrep;		/* log(2 / (gamma + 1)) */
-	int64_t		 kmax;		/* |key| bound for any finite double */
+	int64_t		 kmin, kmax;	/* keys of DBL_TRUE_MIN and DBL_MAX */
 	uint32_t	 max_buckets;
 	uint64_t	 zero;
 	uint64_t	 count;
@@ -70,8 +70,9 @@ sketch_new(double accuracy, uint32_t max_buckets)
 	s->lng = log1p(2 * accuracy / (1 - accuracy));
 	s->inv_lng = 1 / s->lng;
 	s->lrep = log(2 / (gamma + 1));
-	/* log(DBL_TRUE_MIN) = -744.4, log(DBL_MAX) = 709.8. */
-	s->kmax = (int64_t)ceil(745.2 * s->inv_lng) + 2;
+	/* The keys any finite double can reach, for checking decoded input. */
+	s->kmin = (int64_t)ceil(log(DBL_TRUE_MIN) * s->inv_lng);
+	s->kmax = (int64_t)ceil(log(DBL_MAX) * s->inv_lng);
 	s->max_buckets = max_buckets;
 	return s;
 }
@@ -450,11 +451,11 @@ sketch_encode(const struct sketch *s, uint8_t *buf, size_t size)
 
 /* Read one store; -1 on anything a correct encoder could not write. */
 static int
-sketch_store_get(struct sketch *s, struct sketch_store *st,
+sketch_store_get(struct sketch *s, struct sketch_store *st, int negative,
     const uint8_t **pp, const uint8_t *end, uint64_t *total)
 {
 	const uint8_t *p = *pp;
-	int64_t lo;
+	int64_t lo, kmin = s->kmin, kmax = s->kmax;
 	uint64_t span, i, c, sum = 0;
 
 	if (end - p < SKETCH_STORE_HEADER)
@@ -466,8 +467,12 @@ sketch_store_get(struct sketch *s, struct sketch_store *st,
 		*pp = p;
 		return lo == 0 ? 0 : -1;
 	}
-	if (span > s->max_buckets || lo < -s->kmax ||
-	    lo + (int64_t)span - 1 > s->kmax ||
+	if (negative) {
+		kmin = -s->kmax;
+		kmax = -s->kmin;
+	}
+	if (span > s->max_buckets || lo < kmin ||
+	    lo + (int64_t)span - 1 > kmax ||
 	    (uint64_t)(end - p) / 8 < span)
 		return -1;
 	if (sketch_get(p, 8) == 0 || sketch_get(p + 8 * (span - 1), 8) == 0)
@@ -510,8 +515,8 @@ sketch_decode(const uint8_t *buf, size_t size)
 		return NULL;
 	total = s->zero = sketch_get(buf + 24, 8);
 	p += SKETCH_HEADER;
-	if (sketch_store_get(s, &s->pos, &p, end, &total) != 0 ||
-	    sketch_store_get(s, &s->neg, &p, end, &total) != 0 ||
+	if (sketch_store_get(s, &s->pos, 0, &p, end, &total) != 0 ||
+	    sketch_store_get(s, &s->neg, 1, &p, end, &total) != 0 ||
 	    p != end) {
 		sketch_free(s);
 		return NULL;
