@@ -17,7 +17,7 @@
 
 struct sketch;
 
-/* accuracy in (0, 0.5], max_buckets >= 16. */
+/* accuracy in [1e-6, 0.5], max_buckets in [16, 2^24]; NULL otherwise. */
 struct sketch	*sketch_new(double accuracy, uint32_t max_buckets);
 void		 sketch_free(struct sketch *);
 void		 sketch_reset(struct sketch *);
