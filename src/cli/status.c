@@ -168,12 +168,32 @@ status_time(char *buf, size_t size, double t)
 		strftime(buf, size, "%Y-%m-%d %H:%M UTC", &tm);
 }
 
+/* "+1.2 [+0.3, +2.1]" from three fields, n/a for missing numbers. */
+static void
+status_interval(char *buf, size_t size, const json_t *t, const char *k0,
+    const char *k1, const char *k2, double scale, const char *unit)
+{
+	const char *keys[3] = { k0, k1, k2 };
+	char part[3][40];
+	double v;
+	int i;
+
+	for (i = 0; i < 3; i++) {
+		v = status_num(t, keys[i]) * scale;
+		if (isfinite(v))
+			snprintf(part[i], sizeof part[i], "%+.4g%s", v, unit);
+		else
+			snprintf(part[i], sizeof part[i], "n/a");
+	}
+	snprintf(buf, size, "%s [%s, %s]", part[0], part[1], part[2]);
+}
+
 static void
 status_list(const json_t *root, const struct status_style *st)
 {
 	const json_t *xs = json_object_get(root, "experiments"), *x, *g, *a;
 	const char *v;
-	char p[32];
+	char p[32], name[160];
 	size_t i, j;
 
 	if (json_array_size(xs) == 0) {
@@ -205,12 +225,12 @@ status_list(const json_t *root, const struct status_style *st)
 
 			v = status_str(e, "verdict");
 			status_p(p, sizeof p, status_num(e, "p"));
+			snprintf(name, sizeof name, "%s / %s",
+			    status_str(e, "name"), status_str(e, "variant"));
 			printf("  %s%-10s%s ", status_verdict_colour(st, v), v,
 			    st->off);
-			status_name(status_str(e, "name"), 0);
-			printf(" / ");
-			status_name(status_str(e, "variant"), 0);
-			printf("  p=%s\n", p);
+			status_name(name, 32);
+			printf(" p=%s\n", p);
 		}
 		if (json_array_size(g) == 0)
 			printf("  %s(no guardrail data yet)%s\n", st->dim,
@@ -222,7 +242,7 @@ static void
 status_experiment(const json_t *x, const struct status_style *st)
 {
 	const json_t *tests = json_object_get(x, "tests"), *t, *srm;
-	char p[32], since[40], est[96], rel[96];
+	char p[32], since[40], est[160], rel[160];
 	const char *v;
 	size_t i;
 
@@ -239,7 +259,7 @@ status_experiment(const json_t *x, const struct status_style *st)
 		    "(p=%s)%s\n", st->warn, since, p, st->off);
 	} else
 		printf("sample ratio: no mismatch found (p=%s)\n", p);
-	printf("\n%-10s %-28s %-34s %-24s %-8s %s\n", "VERDICT",
+	printf("\n%-10s %-28s %-34s %-26s %-8s %s\n", "VERDICT",
 	    "GUARDRAIL / VARIANT", "EFFECT [BOUNDS]", "RELATIVE", "P",
 	    "SINCE");
 	for (i = 0; i < json_array_size(tests); i++) {
@@ -249,13 +269,10 @@ status_experiment(const json_t *x, const struct status_style *st)
 		v = status_str(t, "verdict");
 		snprintf(name, sizeof name, "%s / %s",
 		    status_str(t, "guardrail"), status_str(t, "variant"));
-		snprintf(est, sizeof est, "%+.4g [%+.4g, %+.4g]",
-		    status_num(t, "estimate"), status_num(t, "lower"),
-		    status_num(t, "upper"));
-		snprintf(rel, sizeof rel, "%+.3g%% [%+.3g%%, %+.3g%%]",
-		    100 * status_num(t, "rel_estimate"),
-		    100 * status_num(t, "rel_lower"),
-		    100 * status_num(t, "rel_upper"));
+		status_interval(est, sizeof est, t, "estimate", "lower",
+		    "upper", 1, "");
+		status_interval(rel, sizeof rel, t, "rel_estimate",
+		    "rel_lower", "rel_upper", 100, "%");
 		status_p(p, sizeof p, status_num(t, "p"));
 		if (strcmp(v, "undecided") != 0)
 			status_time(since, sizeof since,
@@ -264,7 +281,7 @@ status_experiment(const json_t *x, const struct status_style *st)
 			snprintf(since, sizeof since, "-");
 		printf("%s%-10s%s ", status_verdict_colour(st, v), v, st->off);
 		status_name(name, 28);
-		printf(" %-34s %-24s %-8s %s\n", est, rel, p, since);
+		printf(" %-34s %-26s %-8s %s\n", est, rel, p, since);
 	}
 	if (json_array_size(tests) == 0)
 		printf("%s(no guardrail data in this epoch yet)%s\n", st->dim,
