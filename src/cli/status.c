@@ -349,7 +349,8 @@ cmd_status(int argc, char **argv)
 
 		if (e == NULL || (esc = curl_easy_escape(e, exp, 0)) == NULL)
 			fatal("status: cannot escape the experiment name");
-		xasprintf(&url, "%.*s/api/experiments/%s", (int)blen, base, esc);
+		xasprintf(&url, "%.*s/api/experiments/%s", (int)blen, base,
+		    esc);
 		curl_free(esc);
 		curl_easy_cleanup(e);
 	} else
@@ -364,8 +365,8 @@ cmd_status(int argc, char **argv)
 	root = body.p != NULL ? json_loadb(body.p, body.len, 0, &jerr) : NULL;
 	if (code != 200) {
 		msg = json_string_value(json_object_get(root, "error"));
-		fprintf(stderr, "stopcock status: %s: HTTP %ld%s%s\n", url, code,
-		    msg != NULL ? ": " : "", msg != NULL ? msg : "");
+		fprintf(stderr, "stopcock status: %s: HTTP %ld%s%s\n", url,
+		    code, msg != NULL ? ": " : "", msg != NULL ? msg : "");
 		rc = code == 404 ? SC_EX_NOINPUT : SC_EX_IOERR;
 	} else if (raw)
 		fwrite(body.p, 1, body.len, stdout);

@@ -357,7 +357,7 @@ chart_open(struct chart_buf *b, const char *label)
 	    "viewBox=\"0 0 %d %d\" width=\"%d\" height=\"%d\" role=\"img\" "
 	    "aria-label=\"", CHART_W, CHART_H, CHART_W, CHART_H);
 	chart_escape_into(b, label);
-	chart_printf(b, "\" " CHART_FONT " font-size=\"12\">\n<title>");
+	chart_printf(b, "\" " CHART_FONT " font-size=\"13\">\n<title>");
 	chart_escape_into(b, label);
 	chart_printf(b, "</title>\n<rect class=\"bg\" x=\"0\" y=\"0\" "
 	    "width=\"%d\" height=\"%d\" fill=\"#ffffff\"/>\n", CHART_W,
@@ -505,7 +505,8 @@ chart_hline(struct chart_buf *b, const struct chart_frame *f, double v,
 		chart_printf(b, " stroke-dasharray=\"%s\"", dash);
 	chart_puts(b, "/>\n");
 	if (label != NULL) {
-		chart_printf(b, "<text class=\"%s-label\" x=\"%.1f\" y=\"%.1f\" "
+		chart_printf(b, "<text class=\"%s-label\" x=\"%.1f\" "
+		    "y=\"%.1f\" "
 		    "text-anchor=\"end\" fill=\"%s\" " CHART_HALO ">", cls,
 		    CHART_X1 - 4, y - 5 < CHART_Y0 + 12 ? y + 15 : y - 5,
 		    colour);
@@ -567,7 +568,8 @@ chart_legend(struct chart_buf *b, const char *const *items, int n)
 			    "stroke-width=\"2\"/>", x, y - 4, x + 18, y - 4);
 		else if (strcmp(kind, "band") == 0)
 			chart_printf(b, "<rect x=\"%.1f\" y=\"%.1f\" "
-			    "width=\"18\" height=\"10\" fill=\"" CHART_BAND "\" "
+			    "width=\"18\" height=\"10\" "
+			    "fill=\"" CHART_BAND "\" "
 			    "fill-opacity=\"0.45\" stroke=\"" CHART_BAND "\"/>",
 			    x, y - 9);
 		else if (strcmp(kind, "dash") == 0)
@@ -577,18 +579,21 @@ chart_legend(struct chart_buf *b, const char *const *items, int n)
 			    x, y - 4, x + 18, y - 4);
 		else if (strcmp(kind, "dot") == 0)
 			chart_printf(b, "<line x1=\"%.1f\" y1=\"%.1f\" "
-			    "x2=\"%.1f\" y2=\"%.1f\" stroke=\"" CHART_MUTED "\" "
+			    "x2=\"%.1f\" y2=\"%.1f\" "
+			    "stroke=\"" CHART_MUTED "\" "
 			    "stroke-width=\"1.5\" stroke-dasharray=\"2 3\"/>",
 			    x, y - 4, x + 18, y - 4);
 		else
 			chart_printf(b, "<line x1=\"%.1f\" y1=\"%.1f\" "
-			    "x2=\"%.1f\" y2=\"%.1f\" stroke=\"" CHART_MUTED "\" "
-			    "stroke-width=\"1.5\"/>", x + 9, y - 10, x + 9, y + 2);
+			    "x2=\"%.1f\" y2=\"%.1f\" "
+			    "stroke=\"" CHART_MUTED "\" "
+			    "stroke-width=\"1.5\"/>", x + 9, y - 10, x + 9,
+			    y + 2);
 		chart_printf(b, "<text x=\"%.1f\" y=\"%.1f\" fill=\"" CHART_INK
 		    "\">", x + 23, y);
 		chart_escape_into(b, text);
 		chart_puts(b, "</text>\n");
-		x += 23 + 6.6 * (double)strlen(text) + 16;
+		x += 23 + 7.2 * (double)strlen(text) + 16;
 	}
 	chart_puts(b, "</g>\n");
 }

@@ -711,7 +711,8 @@ http_metrics(struct http *h, struct evbuffer *b)
 		evbuffer_add_printf(b, "stopcock_checkpoint_age_seconds %.3f\n",
 		    now - d->last_checkpoint);
 	else
-		evbuffer_add_printf(b, "stopcock_checkpoint_age_seconds +Inf\n");
+		evbuffer_add_printf(b,
+		    "stopcock_checkpoint_age_seconds +Inf\n");
 	http_family(b, "stopcock_http_responses_total", "counter",
 	    "HTTP responses by status code.");
 	for (i = 0; i <= HTTP_NCODES; i++) {

@@ -18,6 +18,14 @@
 
 #include "stopcock/chart.h"
 
+static int
+xml_entity(const char *p)
+{
+	return strncmp(p, "&amp;", 5) == 0 || strncmp(p, "&lt;", 4) == 0 ||
+	    strncmp(p, "&gt;", 4) == 0 || strncmp(p, "&quot;", 6) == 0 ||
+	    strncmp(p, "&#", 2) == 0;
+}
+
 /* 0 when s is one element with balanced tags, quoted attributes and only
  * the five predefined or numeric entities; else -1 and a reason. */
 static int
@@ -30,9 +38,7 @@ xml_check(const char *s, const char **why)
 
 	while (*p != '\0') {
 		if (*p == '&') {
-			if (strncmp(p, "&amp;", 5) && strncmp(p, "&lt;", 4) &&
-			    strncmp(p, "&gt;", 4) && strncmp(p, "&quot;", 6) &&
-			    strncmp(p, "&#", 2)) {
+			if (!xml_entity(p)) {
 				*why = "bad entity";
 				return -1;
 			}
@@ -96,10 +102,8 @@ xml_check(const char *s, const char **why)
 			}
 			q += len + 2;
 			while (*q != '"' && *q != '\0') {
-				if (*q == '<' || (*q == '&' &&
-				    strncmp(q, "&amp;", 5) && strncmp(q, "&lt;", 4) &&
-				    strncmp(q, "&gt;", 4) && strncmp(q, "&quot;", 6) &&
-				    strncmp(q, "&#", 2))) {
+				if (*q == '<' ||
+				    (*q == '&' && !xml_entity(q))) {
 					*why = "bad attribute value";
 					return -1;
 				}
@@ -311,7 +315,8 @@ test_wrong_types(void **state)
 	    " \"margin\": \"wide\", \"first_ts\": \"soon\"}");
 	cases[3] = NULL;
 	for (i = 0; i < 4; i++) {
-		char *a = chart_test_svg(cases[i]), *b = chart_srm_svg(cases[i]);
+		char *a = chart_test_svg(cases[i]);
+		char *b = chart_srm_svg(cases[i]);
 
 		assert_xml(a);
 		assert_xml(b);
