@@ -113,11 +113,15 @@ def main():
         t.ok(got is not None, "daemon found the harm and the mismatch")
 
         url = "http://127.0.0.1:%d/?experiment=%s" % (d.http, EXP)
-        rc, dom, err = run_chromium(["--dump-dom"], url)
+        rc, dom, err = run_chromium(["--dump-dom", "--enable-logging=stderr",
+                                     "--log-level=0"], url)
         with open(os.path.join(OUT, "page-dom.html"), "w") as f:
             f.write(dom)
         t.ok(rc == 0 and "<main" in dom, "chromium dumped the DOM",
              err[-2000:])
+        js = [l for l in err.splitlines() if "CONSOLE" in l and (
+            "Uncaught" in l or "Error" in l)]
+        t.ok(not js, "the page's script ran without errors", "\n".join(js))
         p = Cards()
         p.feed(dom)
         harm = [c for c in p.cards if "harm" in c["cls"]]
