@@ -28,6 +28,8 @@
  * the continued fraction, whose iteration count grows like sqrt(a + b).
  */
 #define IBETA_ASYM_MIN	4000.0
+/* The power series serves (a + b) x up to this (a few hundred terms). */
+#define IBETA_SERIES_MAX	200.0
 
 double
 stats_log_inv_alpha(double alpha)
@@ -268,9 +270,11 @@ ibeta_log_k(double a, double b)
 
 /*
  * r * [x0 log(x0/x) + y0 log(y0/y)], the scaled Kullback-Leibler distance
- * of x from the beta mean x0 = a/(a+b). Near x0 it comes from d = x - x0
- * through log1pmx, without cancellation; far from x0 from the logs of x
- * and y themselves, since d/x0 ~ -1 would lose the digits of x.
+ * of x from the beta mean x0 = a/(a+b), from d = x - x0 (taken on the
+ * side of 0 or 1 where it keeps its digits). Near x0 through log1pmx,
+ * without cancellation; far from x0 through log1p of d/x and d/y, never
+ * through log(1 + d/x0) (x near 0 would lose its digits) nor log(y0/y)
+ * (y0 near 1 would).
  */
 static double
 ibeta_rphi(double a, double b, double x, double y, double *phi)
@@ -280,8 +284,8 @@ ibeta_rphi(double a, double b, double x, double y, double *phi)
 	d = x <= 0.5 ? x - x0 : y0 - y;
 	if (fabs(d) < 0.5 * fmin(x0, y0))
 		ph = -(x0 * log1pmx(d / x0) + y0 * log1pmx(-d / y0));
-	else
-		ph = x0 * (log(x0) - log(x)) + y0 * (log(y0) - log(y));
+	else	/* x0/x = 1 - d/x, y0/y = 1 + d/y: no log of a number ~1 */
+		ph = x0 * log1p(-d / x) + y0 * log1p(d / y);
 	if (!(ph > 0))
 		ph = 0;
 	*phi = ph;
@@ -343,6 +347,35 @@ ibeta_cf(double a, double b, double x, double y)
 		front = (double)((long double)a * logl(x) + (long double)b *
 		    (x <= 0.5 ? log1pl(-x) : logl(y)) - stats_lbeta_l(a, b));
 	return front - log(a) + log(h);
+}
+
+/*
+ * The hypergeometric series I_x(a, b) = x^a y^b / (a B(a, b)) *
+ * sum_n (a+b)_n / (a+1)_n x^n (Abramowitz & Stegun 26.5.4 with 15.1.1).
+ * All terms are positive, so it is exact in floating point whenever it is
+ * short: the terms grow while (a+b+n) x > a+1+n, i.e. for about (a+b) x
+ * steps, then shrink at least by x per step. Used when x <= 1/2 and
+ * (a+b) x <= IBETA_SERIES_MAX, where the continued
+ * fraction can stall (one parameter huge, x within a few 1/(a+b) of 0).
+ */
+static double
+ibeta_series(double a, double b, double x, double y)
+{
+	double sum = 1, term = 1, front, phi;
+	int n;
+
+	for (n = 0; n < CF_MAXIT; n++) {
+		term *= (a + b + n) / (a + 1 + n) * x;
+		sum += term;
+		if (term < 1e-17 * sum)
+			break;
+	}
+	if (a >= 10 && b >= 10)
+		front = ibeta_log_k(a, b) - ibeta_rphi(a, b, x, y, &phi);
+	else
+		front = (double)((long double)a * logl(x) + (long double)b *
+		    (x <= 0.5 ? log1pl(-x) : logl(y)) - stats_lbeta_l(a, b));
+	return front - log(a) + log(sum);
 }
 
 /*
@@ -424,6 +457,20 @@ stats_log_ibeta_xy(double a, double b, double x, double y)
 	if (y <= 0)
 		return 0;
 	big = a >= IBETA_ASYM_MIN && b >= IBETA_ASYM_MIN;
+	if (!big && x <= 0.5 && (a + b) * x <= IBETA_SERIES_MAX)
+		return ibeta_series(a, b, x, y);
+	if (!big && y <= 0.5 && (a + b) * y <= IBETA_SERIES_MAX) {
+		/*
+		 * Reflect unless I_y(b, a) is within 1e-8 of 1 (the complement
+		 * keeps all but 8 digits). Past that, x lies below the mean and
+		 * the fraction takes over; with x near 1 it is conditioned like
+		 * eps max(a, b) / ((a+b) y - b), so ~1e-7 relative at 1e9.
+		 */
+		double q = ibeta_series(b, a, y, x);
+
+		if (q < log1p(-1e-8))
+			return log1mexp(q);
+	}
 	/*
 	 * Compute the smaller tail directly and reflect the other through
 	 * I_x(a, b) = 1 - I_y(b, a) (METHODS.md sec. 9): the switch is the
