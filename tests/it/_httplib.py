@@ -1,8 +1,8 @@
-"""Helpers for the HTTP, metrics and page integration tests: start a real
-stopcockd on private loopback ports with a configuration of our own, feed
-it records over its TCP listener, and talk HTTP to it with the standard
-library (http.client, so status codes and headers are seen as sent).
-Not a test itself (leading "_").
+"""Helpers for the HTTP, metrics and page integration tests, on top of
+_lib.py: a stopcockd (started and awaited by _lib.Daemon, readiness via
+sd_notify) with its HTTP server and a bearer token, HTTP requests with the
+standard library (http.client, so status codes and headers are seen as
+sent), and a live record feed over TCP. Not a test itself (leading "_").
 
 The scenario is invented: a meal-kit shop tests a new checkout ("one_page")
 whose pages render about 10% slower than the control's; the margin is 3%.
@@ -11,48 +11,14 @@ import http.client
 import json
 import os
 import random
-import socket
-import subprocess
 import sys
-import tempfile
 import time
 
-BUILD = os.environ.get("STOPCOCK_BUILD", "build")
-OUT = os.environ.get("STOPCOCK_TEST_OUT", os.path.join(BUILD, "test-output"))
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+import _lib  # noqa: E402
+from _lib import BUILD, OUT, Tap  # noqa: E402,F401
+
 TOKEN = "it-token-0123456789abcdef"
-
-
-class Tap:
-    """Minimal TAP printer; exit status 1 when any check failed."""
-
-    def __init__(self):
-        self.n = 0
-        self.failed = 0
-
-    def ok(self, cond, name, detail=None):
-        self.n += 1
-        if cond:
-            print("ok %d %s" % (self.n, name))
-        else:
-            self.failed += 1
-            print("not ok %d %s" % (self.n, name))
-            if detail is not None:
-                for line in str(detail).splitlines()[:20]:
-                    print("# " + line)
-        sys.stdout.flush()
-        return cond
-
-    def done(self):
-        print("1..%d" % self.n)
-        sys.exit(1 if self.failed else 0)
-
-
-def free_port():
-    s = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
-    s.bind(("127.0.0.1", 0))
-    port = s.getsockname()[1]
-    s.close()
-    return port
 
 
 GUARDRAILS = """
@@ -70,53 +36,19 @@ margin = 0
 """
 
 
-class Daemon:
-    """A stopcockd with its own state directory, TCP and HTTP ports."""
+class Daemon(_lib.Daemon):
+    """_lib's stopcockd with TCP in, HTTP on, and (unless token=None) an
+    http_token for the actions."""
 
     def __init__(self, name, token=TOKEN, guardrails=GUARDRAILS, extra=""):
-        self.dir = tempfile.mkdtemp(prefix="stopcock-%s-" % name)
-        self.tcp = free_port()
-        self.http = free_port()
-        self.name = name
-        conf = os.path.join(self.dir, "stopcock.conf")
-        with open(conf, "w") as f:
-            f.write("[defaults]\nalpha = 0.05\nsrm_alpha = 0.001\n"
-                    "plan_units = 2000\n")
-            f.write(guardrails)
-            f.write("\n[daemon]\ntcp = 127.0.0.1:%d\nhttp = 127.0.0.1:%d\n"
-                    "state = %s\ntick = 200ms\n"
-                    % (self.tcp, self.http, self.dir))
-            if token:
-                f.write("http_token = %s\n" % token)
-            f.write(extra)
-        self.log = open(os.path.join(OUT, "%s-stopcockd.log" % name), "w")
-        self.proc = subprocess.Popen(
-            [os.path.join(BUILD, "stopcockd"), "-f", "-c", conf],
-            stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
-        deadline = time.time() + 15
-        while time.time() < deadline:
-            if self.proc.poll() is not None:
-                raise RuntimeError("stopcockd exited with %d; see %s"
-                                   % (self.proc.returncode, self.log.name))
-            try:
-                status, _, _ = self.get("/api/health")
-                if status == 200:
-                    return
-            except OSError:
-                pass
-            time.sleep(0.1)
-        self.stop()
-        raise RuntimeError("stopcockd did not answer on HTTP in time")
+        keys = {"http_token": token} if token else {}
+        super().__init__(name, guardrails=guardrails, extra=extra,
+                         udp=False, unix=False, http=True, daemon_keys=keys)
 
-    def stop(self):
-        if self.proc.poll() is None:
-            self.proc.terminate()
-            try:
-                self.proc.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                self.proc.kill()
-                self.proc.wait()
-        self.log.close()
+    def stop(self, timeout=20):
+        code = super().stop(timeout)
+        self.close()
+        return code
 
     def request(self, method, path, body=None, headers=None):
         c = http.client.HTTPConnection("127.0.0.1", self.http, timeout=10)
@@ -152,8 +84,7 @@ class Daemon:
         return status, h, j
 
     def send(self, lines):
-        with socket.create_connection(("127.0.0.1", self.tcp), timeout=10) as s:
-            s.sendall(("\n".join(lines) + "\n").encode())
+        self.send_tcp(lines)
 
     def wait_for(self, pred, timeout=20):
         """Poll /api/experiments until pred(list) is true."""
