@@ -49,6 +49,7 @@
 #define LISTEN_UDP_BURST 512	/* datagrams per callback, then yield */
 #define LISTEN_READ_MAX (1024 * 1024)	/* bytes per read call */
 #define LISTEN_DRAIN_MAX (16 * 1024 * 1024)	/* per client at shutdown */
+#define LISTEN_UDP_DRAIN 65536	/* datagrams read at shutdown, at most */
 #define LISTEN_BACKOFF 1	/* seconds without accept after EMFILE */
 
 enum client_state {
@@ -541,14 +542,14 @@ listen_datagram(struct listen *l, const char *p, size_t len)
 	}
 }
 
-/* Read up to burst datagrams (0: until the socket is empty). */
+/* Read up to burst datagrams, fewer when the socket runs dry. */
 static void
 listen_udp_read(struct listen *l, int burst)
 {
 	ssize_t n;
 	int i;
 
-	for (i = 0; burst == 0 || i < burst; i++) {
+	for (i = 0; i < burst; i++) {
 		n = recv(l->udp_fd, l->udp_buf, LISTEN_UDP_MAX, MSG_TRUNC);
 		if (n == -1) {
 			if (errno == EINTR)
@@ -695,7 +696,7 @@ listen_drain(struct listen *l)
 	listen_set_accept(l, 0);
 	if (l->udp_ev != NULL) {
 		event_del(l->udp_ev);
-		listen_udp_read(l, 0);
+		listen_udp_read(l, LISTEN_UDP_DRAIN);
 	}
 	while ((c = TAILQ_FIRST(&l->clients)) != NULL) {
 		in = bufferevent_get_input(c->bev);

@@ -539,6 +539,8 @@ main(int argc, char **argv)
 		fprintf(stderr, "%s\n", cause);
 		if (check)
 			fprintf(stderr, "configuration has errors\n");
+		free(cause);
+		conf_free(d->conf);
 		return SC_EX_CONFIG;
 	}
 	if (check) {

@@ -360,7 +360,7 @@ class Daemon:
     def __init__(self, name, redis=None, guardrails="", extra="",
                  tcp=True, udp=True, unix=True, http=False,
                  daemon_keys=None, redis_keys=None, conf=None, start=True,
-                 env=None, args=("-d",)):
+                 env=None, args=("-d",), preexec_fn=None):
         self.name = name
         self.dir = tempfile.mkdtemp(prefix="stopcock-%s-" % name)
         self.state = os.path.join(self.dir, "state")
@@ -375,6 +375,7 @@ class Daemon:
         self.consumer = "it-%s" % name
         self.dead = "stopcock:%s:dead" % name
         self.env = env or {}
+        self.preexec_fn = preexec_fn	# e.g. to set resource limits
         self.args = list(args)
         self.proc = None
         self.notices = []
@@ -445,7 +446,7 @@ class Daemon:
         self.proc = subprocess.Popen(
             [STOPCOCKD] + self.args + ["-c", self.conf_path],
             stdin=subprocess.DEVNULL, stdout=self.log, stderr=self.log,
-            env=env)
+            env=env, preexec_fn=self.preexec_fn)
         if wait and not self.wait_notice("READY=1", timeout):
             code = self.proc.poll()
             self.kill9()

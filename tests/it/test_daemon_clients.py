@@ -9,13 +9,16 @@ control. While one well-behaved client streams records over TCP:
     (counted as too_long) and stays connected;
   - a last line without a newline counts when the client closes;
   - connections beyond max_clients are closed at once and counted;
+  - when descriptors run out (RLIMIT_NOFILE), accepting pauses and
+    resumes by itself;
 and every record of the good client is applied.
 """
+import resource
 import socket
 import threading
 import time
 
-from _lib import Tap, Daemon
+from _lib import Tap, Daemon, wait_for
 
 EXP = "radar_map"
 
@@ -138,7 +141,36 @@ def main():
                "client cut off: line_flood" in d.log_text(),
                "cut-offs logged with their reason")
         tap.ok(d.stop() == 0, "clean exit")
+    emfile(tap)
     tap.done()
+
+
+def emfile(tap):
+    """Out of descriptors: accepting pauses, then resumes by itself."""
+    def low_nofile():
+        resource.setrlimit(resource.RLIMIT_NOFILE, (40, 40))
+    with Daemon("emfile", udp=False, unix=False, preexec_fn=low_nofile,
+                daemon_keys={"max_clients": "1000",
+                             "checkpoint_every": "1h"}) as d:
+        d.send_tcp(["plan %s control=50 radar=50" % EXP])
+        held = []
+        try:
+            for _ in range(60):
+                held.append(d.connect_tcp())
+        except OSError:
+            pass
+        paused = wait_for(lambda: "pausing accept" in d.log_text(), 5)
+        tap.ok(paused, "accept pauses when descriptors run out (%d "
+               "connections open)" % len(held))
+        for s in held:
+            s.close()
+        time.sleep(0.2)
+        d.send_tcp(["expose %s radar" % EXP])
+        ck = d.wait_checkpoint(lambda c: Daemon.records(c, "tcp") == 2, 10)
+        tap.ok(ck is not None and ck["counters"]["listen"]
+               ["accept_backoffs"] >= 1, "accepting resumed; backoffs "
+               "counted", ck and ck["counters"]["listen"])
+        tap.ok(d.stop() == 0, "clean exit")
 
 
 if __name__ == "__main__":
