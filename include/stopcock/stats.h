@@ -85,6 +85,16 @@ double	stats_rate_log_bf(double n_a, double n_b, double theta0, double k,
  */
 int	stats_rate_ratio_cs(double n_a, double e_a, double n_b, double e_b,
 	    double k, double alpha, double *lo, double *hi);
+/*
+ * One-sided confidence bound for the rate ratio at level alpha, by
+ * inverting the one-sided test: the lower bound (upper = 0) is the
+ * smallest r whose "ratio <= r" null the one-sided factor does not
+ * reject; the upper bound the largest r whose "ratio >= r" null it does
+ * not reject. A harm verdict from the one-sided test at r0 holds exactly
+ * when the lower bound exceeds r0. Returns 0 (bound may be 0 or inf).
+ */
+int	stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
+	    double k, double alpha, int upper, double *bound);
 /* Beta-binomial mixture (HRMS Props 6/7) with increments in {-g, +h}. */
 double	stats_bb_r(double v_opt, double g, double h, double alpha,
 	    int one_sided);

@@ -179,8 +179,14 @@ eval_rate(struct experiment *e, struct test *t,
 		t->log_e = stats_rate_log_bf(ka, kb, th0, k, 1);
 	else
 		t->log_e = stats_rate_log_bf(kb, ka, 1 - th0, k, 1);
-	if (costly && stats_rate_ratio_cs(ka, ea, kb, eb, k, level, &rlo,
-	    &rhi) == 0) {
+	/*
+	 * Bounds from inverting the same one-sided factors the verdict uses,
+	 * so a harm alert's bound always lies beyond the margin (each side
+	 * at the test's level; together a two-sided 2 x level interval).
+	 */
+	if (costly &&
+	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level, 0, &rlo) == 0 &&
+	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level, 1, &rhi) == 0) {
 		/* reported on the rate-difference scale at the current
 		 * control rate; the ratio itself is rel + 1 */
 		t->lo = (rlo - 1) * ra;

@@ -369,6 +369,51 @@ worst = max(0.0 if g[1] == h else abs(g[1] - h) / h
 results.append((worst <= 1e-8, "rate_ratio_cs upper end vs brentq on scipy "
                 "BF", len(lines), worst, 1e-8, ""))
 
+# one-sided rate-ratio bounds: invert the one-sided BF (scipy betaln +
+# beta.sf) with brentq, independently of the C bisection
+
+
+def ratio_bound_ref(na, ea, nb, eb, k, alpha, upper):
+    sa, sb = ea / (ea + eb), eb / (ea + eb)
+
+    def f(lr):
+        lt = lr + math.log(sb / sa)
+        th, th1 = special.expit(lt), special.expit(-lt)
+        if upper:
+            v = rate_ref(nb, na, th1, k, 1, th)
+        else:
+            v = rate_ref(na, nb, th, k, 1, th1)
+        return v - math.log(1 / alpha)
+    l0 = math.log((nb / eb) / (na / ea))
+    if upper:
+        b = l0 + 1
+        while f(b) < 0 and b < 60:
+            b += 1
+        return math.inf if f(b) < 0 else math.exp(
+            optimize.brentq(f, l0, b, xtol=1e-13))
+    b = l0 - 1
+    while f(b) < 0 and b > -60:
+        b -= 1
+    return 0.0 if f(b) < 0 else math.exp(
+        optimize.brentq(f, b, l0, xtol=1e-13))
+
+
+# a stream of its own, so the draws of the checks below stay as they were
+brng = np.random.default_rng(SEED + 1)
+for upper in (0, 1):
+    lines, refs = [], []
+    for i in range(60):
+        ea, eb = np.exp(brng.uniform(math.log(100), math.log(1e5), 2))
+        lam = math.exp(brng.uniform(math.log(1e-2), math.log(0.3)))
+        na = float(brng.poisson(lam * ea)) + 1
+        nb = float(brng.poisson(lam * eb * brng.choice([1.0, 1.5]))) + 1
+        k = math.exp(brng.uniform(math.log(2), math.log(1e3)))
+        lines.append("rate_ratio_bound " + fmt(na, ea, nb, eb, k, 0.05,
+                                               upper))
+        refs.append(ratio_bound_ref(na, ea, nb, eb, k, 0.05, upper))
+    family("rate_ratio_bound %s vs brentq on scipy one-sided BF"
+           % ("upper" if upper else "lower"), lines, refs, 1e-7)
+
 # ---- beta-binomial mixture and Bernoulli CS (METHODS.md sec. 4) ----
 
 

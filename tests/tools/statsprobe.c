@@ -11,6 +11,7 @@
  *   srm_chi2 K c[K] theta0[K]                  -> p x2
  *   rate_log_bf na nb theta0 k one_sided
  *   rate_ratio_cs na ea nb eb k alpha          -> lo hi
+ *   rate_ratio_bound na ea nb eb k alpha upper -> bound
  *   bb_logm s v g h r one_sided
  *   bernoulli_cs k n t_opt alpha               -> lo hi
  *   quantile_cs p t_opt alpha v1 c1 v2 c2 ...  -> lo hi
@@ -153,6 +154,21 @@ p_rate_ratio_cs(const double *v, int n)
 }
 
 static int
+p_rate_ratio_bound(const double *v, int n)
+{
+	double b;
+
+	if (n != 7)
+		return -1;
+	if (stats_rate_ratio_bound(v[0], v[1], v[2], v[3], v[4], v[5],
+	    (int)v[6], &b) != 0)
+		printf("error: rate_ratio_bound refused its input\n");
+	else
+		printf("%.17g\n", b);
+	return 0;
+}
+
+static int
 p_bb_logm(const double *v, int n)
 {
 	if (n != 6)
@@ -280,6 +296,7 @@ static const struct {
 	{ "srm_chi2", p_srm_chi2 },
 	{ "rate_log_bf", p_rate_log_bf },
 	{ "rate_ratio_cs", p_rate_ratio_cs },
+	{ "rate_ratio_bound", p_rate_ratio_bound },
 	{ "bb_logm", p_bb_logm },
 	{ "bernoulli_cs", p_bernoulli_cs },
 	{ "quantile_cs", p_quantile_cs },

@@ -312,6 +312,73 @@ stats_rate_ratio_cs(double n_a, double e_a, double n_b, double e_b,
 	return 0;
 }
 
+/*
+ * One-sided bounds for the rate ratio (our inversion of the one-sided
+ * factor of METHODS.md sec. 5, Lindon & Malek 2022). With theta(r) the
+ * treatment's share of events under ratio r, the factor for "treatment
+ * rate higher" falls as r grows and the factor for "lower" rises, so
+ * each bound is one root, found by bisection in log r.
+ */
+#define DIR_BOUND_LOGR 60.0	/* |log r| searched: r in [e^-60, e^60] */
+
+static double
+dir_rate_one_sided(double n_a, double n_b, double e_a, double e_b, double k,
+    double lr, int upper)
+{
+	/* theta(r) = s_b r / (s_b r + s_a), formed on the logit scale so
+	 * neither theta nor 1 - theta loses digits */
+	double lt = lr + log(e_b) - log(e_a);
+	double th = 1 / (1 + exp(-lt)), th1 = 1 / (1 + exp(lt));
+
+	if (!upper)
+		return stats_rate_log_bf(n_a, n_b, th, k, 1);
+	return stats_rate_log_bf(n_b, n_a, th1, k, 1);
+}
+
+int
+stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
+    double k, double alpha, int upper, double *bound)
+{
+	double target, lo = -DIR_BOUND_LOGR, hi = DIR_BOUND_LOGR, mid, f;
+	int i;
+
+	*bound = upper ? INFINITY : 0;
+	if (!(n_a >= 0) || !(n_b >= 0) || !isfinite(n_a) || !isfinite(n_b) ||
+	    !(e_a > 0) || !(e_b > 0) || !isfinite(e_a) || !isfinite(e_b) ||
+	    !(k > 0) || !isfinite(k) || !(alpha > 0) || !(alpha < 1))
+		return -1;
+	target = stats_log_inv_alpha(alpha);
+	if (!upper) {
+		/* no rejection even at the smallest ratio: bound is 0 */
+		if (!(dir_rate_one_sided(n_a, n_b, e_a, e_b, k, lo, 0) >=
+		    target))
+			return 0;
+		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, hi, 0) >= target) {
+			*bound = INFINITY;
+			return 0;
+		}
+	} else {
+		if (!(dir_rate_one_sided(n_a, n_b, e_a, e_b, k, hi, 1) >=
+		    target))
+			return 0;
+		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, lo, 1) >= target) {
+			*bound = 0;
+			return 0;
+		}
+	}
+	for (i = 0; i < 200 && hi - lo > 1e-12; i++) {
+		mid = 0.5 * (lo + hi);
+		f = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, mid, upper);
+		/* lower bound: rejecting at mid means the bound lies above */
+		if ((f >= target) == !upper)
+			lo = mid;
+		else
+			hi = mid;
+	}
+	*bound = exp(0.5 * (lo + hi));
+	return 0;
+}
+
 /* HRMS 2021 Sec. 3.5 as applied in METHODS.md sec. 4: r = max(rho - g h, 1e-3 g h). */
 double
 stats_bb_r(double v_opt, double g, double h, double alpha, int one_sided)
