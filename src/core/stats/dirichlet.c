@@ -319,7 +319,7 @@ stats_rate_ratio_cs(double n_a, double e_a, double n_b, double e_b,
  * rate higher" falls as r grows and the factor for "lower" rises, so
  * each bound is one root, found by bisection in log r.
  */
-#define DIR_BOUND_LOGR 60.0	/* |log r| searched: r in [e^-60, e^60] */
+#define DIR_BOUND_LOGR 40.0	/* |log r| searched from the estimate */
 
 static double
 dir_rate_one_sided(double n_a, double n_b, double e_a, double e_b, double k,
@@ -339,7 +339,7 @@ int
 stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
     double k, double alpha, int upper, double *bound)
 {
-	double target, lo = -DIR_BOUND_LOGR, hi = DIR_BOUND_LOGR, mid, f;
+	double target, l0, in, out, mid, step;
 	int i;
 
 	*bound = upper ? INFINITY : 0;
@@ -348,34 +348,30 @@ stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
 	    !(k > 0) || !isfinite(k) || !(alpha > 0) || !(alpha < 1))
 		return -1;
 	target = stats_log_inv_alpha(alpha);
-	if (!upper) {
-		/* no rejection even at the smallest ratio: bound is 0 */
-		if (!(dir_rate_one_sided(n_a, n_b, e_a, e_b, k, lo, 0) >=
-		    target))
-			return 0;
-		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, hi, 0) >= target) {
-			*bound = INFINITY;
-			return 0;
-		}
-	} else {
-		if (!(dir_rate_one_sided(n_a, n_b, e_a, e_b, k, hi, 1) >=
-		    target))
-			return 0;
-		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, lo, 1) >= target) {
-			*bound = 0;
-			return 0;
-		}
+	/* start inside the set, near the point estimate (a half event
+	 * keeps empty arms finite), and walk outward until rejection */
+	l0 = log((n_b + 0.5) / e_b) - log((n_a + 0.5) / e_a);
+	step = upper ? 1 : -1;
+	in = l0;
+	if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper) >= target)
+		return 0;	/* degenerate: keep the trivial bound */
+	for (out = in + step;; out += step) {
+		if (fabs(out - l0) > DIR_BOUND_LOGR)
+			return 0;	/* never rejected: 0 or inf */
+		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out, upper) >=
+		    target)
+			break;
+		in = out;
 	}
-	for (i = 0; i < 200 && hi - lo > 1e-12; i++) {
-		mid = 0.5 * (lo + hi);
-		f = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, mid, upper);
-		/* lower bound: rejecting at mid means the bound lies above */
-		if ((f >= target) == !upper)
-			lo = mid;
+	for (i = 0; i < 200 && fabs(out - in) > 1e-13; i++) {
+		mid = 0.5 * (in + out);
+		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, mid, upper) >=
+		    target)
+			out = mid;
 		else
-			hi = mid;
+			in = mid;
 	}
-	*bound = exp(0.5 * (lo + hi));
+	*bound = exp(0.5 * (in + out));
 	return 0;
 }
 
