@@ -8,9 +8,12 @@ tallies must equal `stopcock replay` over the same records (records
 applied, rejections by reason, experiments, final verdicts) and the
 exposures counted straight from the text in Python.
 """
+import http.client
 import json
 import random
 import time
+
+from prometheus_client.parser import text_string_to_metric_families
 
 from _lib import Tap, Redis, Daemon, replay, final_verdicts, exposures, \
     summary_exposures, summary_verdicts
@@ -62,6 +65,36 @@ def as_json(line):
     return json.dumps(o)
 
 
+def check_metrics(tap, d, want_applied, want):
+    """The ingest, listener and Redis counters on /metrics, parsed by the
+    Prometheus project's own Python parser."""
+    c = http.client.HTTPConnection("127.0.0.1", d.http, timeout=10)
+    c.request("GET", "/metrics")
+    text = c.getresponse().read().decode()
+    c.close()
+    samples = {}
+    try:
+        for fam in text_string_to_metric_families(text):
+            for s in fam.samples:
+                samples[(s.name, tuple(sorted(s.labels.items())))] = s.value
+    except Exception as e:	# the parser's own errors
+        tap.ok(False, "prometheus_client parses /metrics", repr(e))
+        return
+    tap.ok(True, "prometheus_client parses /metrics")
+    for src, n in want_applied.items():
+        tap.eq(samples.get(("stopcock_records_total",
+                            (("source", src),))), n,
+               "stopcock_records_total{source=%s}" % src)
+    tap.eq(samples.get(("stopcock_rejected_total", (("reason", "bad_name"),
+                                                     ("source", "tcp")))), 1,
+           "stopcock_rejected_total{source=tcp,reason=bad_name}")
+    tap.eq(samples.get(("stopcock_redis_up", ())), 1, "stopcock_redis_up")
+    tap.eq(samples.get(("stopcock_redis_entries_total", ())),
+           want["redis_entries"], "stopcock_redis_entries_total")
+    tap.eq(samples.get(("stopcock_udp_datagrams_total", ())),
+           want["udp_datagrams"], "stopcock_udp_datagrams_total")
+
+
 def main():
     tap = Tap()
     rng = random.Random(20240611)
@@ -86,7 +119,8 @@ def main():
     sent["tcp"] = [plan, unplanned] + sent["tcp"]
 
     with Redis("inputs") as redis, \
-            Daemon("inputs", redis=redis, guardrails=GUARDRAILS) as d:
+            Daemon("inputs", redis=redis, guardrails=GUARDRAILS,
+                   http=True) as d:
         tap.ok(d.wait_notice("READY=1", 0) is not None,
                "READY=1 reached the notify socket")
         d.send_tcp(sent["tcp"])
@@ -108,6 +142,10 @@ def main():
         if not tap.ok(ck is not None, "every source's records applied"):
             ck = d.checkpoint()
             tap.diag(json.dumps(ck["counters"]["ingest"]))
+        n_udp = (len(sent["udp"]) // 2 + 39) // 40 + 1
+        check_metrics(tap, d, want_applied, {
+            "redis_entries": (len(sent["redis"]) + 24) // 25,
+            "udp_datagrams": n_udp})
         tap.ok(d.stop() == 0, "SIGTERM: clean exit")
         tap.ok("STOPPING=1" in d.notices, "STOPPING=1 sent on shutdown",
                d.notices)
@@ -155,8 +193,8 @@ def main():
         lines = final["counters"]["ingest"]["lines"]
         tap.eq(lines["redis"], len(sent["redis"]),
                "redis: every line of every entry read")
-        tap.eq(final["counters"]["listen"]["udp_datagrams"],
-               (len(sent["udp"]) // 2 + 39) // 40 + 1, "udp: datagrams")
+        tap.eq(final["counters"]["listen"]["udp_datagrams"], n_udp,
+               "udp: datagrams")
     tap.done()
 
 
