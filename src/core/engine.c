@@ -798,27 +798,33 @@ engine_tick(struct engine *eng, double now)
 	uint32_t i, cap = eng->conf->history_points;
 	int j;
 
-	eng->now = now;
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
+		/*
+		 * Evidence is stamped with the time of the latest record it
+		 * reflects, not the tick's clock, so a backlog replayed late
+		 * charts (and fires) at the time the data describe.
+		 */
+		eng->now = e->last_ts > 0 ? e->last_ts : now;
 		for (j = 0; j < e->ntests; j++) {
 			t = &e->tests[j];
 			if (t->dirty)
 				verdict_evaluate(eng, e, t, 1);
 			if (t->hist_dirty) {
-				hist_offer(&t->hist, cap, now, t->est,
+				hist_offer(&t->hist, cap, eng->now, t->est,
 				    t->cs_lo, t->cs_hi,
 				    stats_p_from_log_e(t->max_log_e));
 				t->hist_dirty = 0;
 			}
 		}
 		if (e->srm_dirty) {
-			hist_offer(&e->srm_hist, cap, now, e->srm_log_e,
+			hist_offer(&e->srm_hist, cap, eng->now, e->srm_log_e,
 			    log(1 / e->srm_alpha), 0,
 			    stats_p_from_log_e(e->srm_max_log_e));
 			e->srm_dirty = 0;
 		}
 	}
+	eng->now = now;
 }
 
 int
