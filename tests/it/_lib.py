@@ -52,7 +52,8 @@ import tempfile
 import time
 
 BUILD = os.environ.get("STOPCOCK_BUILD", "build")
-OUT = os.environ.get("STOPCOCK_TEST_OUT", os.path.join(BUILD, "test-output"))
+OUT = os.path.abspath(os.environ.get("STOPCOCK_TEST_OUT",
+                                   os.path.join(BUILD, "test-output")))
 STOPCOCKD = os.path.join(BUILD, "stopcockd")
 STOPCOCK = os.path.join(BUILD, "stopcock")
 REDIS_SERVER = shutil.which("redis-server") or "/usr/bin/redis-server"
