@@ -368,7 +368,8 @@ ckpt_restore(struct daemon *d, char **cause)
 	}
 	v = json_object_get(root, "redis_last_id");
 	if (v != NULL) {
-		if (!json_is_string(v) || !ckpt_entry_id(json_string_value(v))) {
+		if (!json_is_string(v) ||
+		    !ckpt_entry_id(json_string_value(v))) {
 			xasprintf(cause, "%s: bad redis_last_id", path);
 			goto out;
 		}
@@ -405,8 +406,8 @@ ckpt_restore(struct daemon *d, char **cause)
 	if (*last_id != '\0' && stream != NULL &&
 	    d->conf->redis_stream != NULL && d->conf->redis_address != NULL &&
 	    strcmp(stream, d->conf->redis_stream) != 0) {
-		log_warnx("checkpoint: its Redis position belongs to stream %s, "
-		    "not %s: reading %s from the group's position", stream,
+		log_warnx("checkpoint: its Redis position belongs to stream "
+		    "%s, not %s: reading %s from the group's position", stream,
 		    d->conf->redis_stream, d->conf->redis_stream);
 		last_id = "";
 	}

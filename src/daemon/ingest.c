@@ -32,7 +32,8 @@ ingest_now(struct daemon *d)
 
 	/* The loop caches the time once per iteration: a syscall-free
 	 * clock read per line matters at millions of lines a second. */
-	if (d->base != NULL && event_base_gettimeofday_cached(d->base, &tv) == 0)
+	if (d->base != NULL &&
+	    event_base_gettimeofday_cached(d->base, &tv) == 0)
 		return tv.tv_sec + tv.tv_usec / 1e6;
 	return daemon_now();
 }
@@ -200,7 +201,7 @@ ingest_metrics(struct daemon *d, struct evbuffer *b)
 		evbuffer_add_printf(b, "stopcock_records_total{source=\"%s\"} %"
 		    PRIu64 "\n", source_name(s), c->records[s]);
 	ingest_metric_head(b, "stopcock_rejected_total",
-	    "Lines refused, by the protocol or by the engine, with the reason.");
+	    "Lines refused by the protocol or the engine, by reason.");
 	for (s = 0; s < SRC_N; s++) {
 		for (r = PROTO_SKIP + 1; r < PROTO_NSTATUS; r++)
 			evbuffer_add_printf(b, "stopcock_rejected_total{source="

@@ -108,7 +108,7 @@ struct listen {
 };
 
 static const char *
-client_state_name(enum client_state s)
+listen_client_state_name(enum client_state s)
 {
 	switch (s) {
 	case CLIENT_READING:
@@ -123,15 +123,15 @@ client_state_name(enum client_state s)
 
 /* The one place a client changes state. */
 static void
-client_set_state(struct client *c, enum client_state new)
+listen_client_set_state(struct client *c, enum client_state new)
 {
 	struct listen *l = c->l;
 
 	if (c->state == new)
 		return;
 	log_debug("listen: client %s -> %s client=%" PRIu64 " source=%s",
-	    client_state_name(c->state), client_state_name(new), c->id,
-	    source_name(c->src));
+	    listen_client_state_name(c->state), listen_client_state_name(new),
+	    c->id, source_name(c->src));
 	if (new == CLIENT_DEAD) {
 		bufferevent_disable(c->bev, EV_READ | EV_WRITE);
 		TAILQ_REMOVE(&l->clients, c, entry);
@@ -144,7 +144,7 @@ client_set_state(struct client *c, enum client_state new)
 }
 
 static void
-client_free(struct client *c)
+listen_client_free(struct client *c)
 {
 	bufferevent_free(c->bev);
 	free(c);
@@ -159,7 +159,7 @@ listen_reap_cb(evutil_socket_t fd, short what, void *arg)
 
 	while ((c = TAILQ_FIRST(&l->dead)) != NULL) {
 		TAILQ_REMOVE(&l->dead, c, entry);
-		client_free(c);
+		listen_client_free(c);
 	}
 }
 
@@ -175,7 +175,7 @@ listen_buffer(struct listen *l)
 }
 
 static void
-client_cut(struct client *c, enum listen_cut why)
+listen_client_cut(struct client *c, enum listen_cut why)
 {
 	struct listen *l = c->l;
 
@@ -183,11 +183,11 @@ client_cut(struct client *c, enum listen_cut why)
 	log_warnx("listen: client cut off: %s client=%" PRIu64 " source=%s "
 	    "good=%" PRIu64 " bad=%" PRIu64, listen_cut_names[why], c->id,
 	    source_name(c->src), c->good, c->bad);
-	client_set_state(c, CLIENT_DEAD);
+	listen_client_set_state(c, CLIENT_DEAD);
 }
 
 static void
-client_line(struct client *c, const char *p, size_t n)
+listen_client_line(struct client *c, const char *p, size_t n)
 {
 	switch (ingest_line_status(c->l->d, c->src, p, n)) {
 	case INGEST_OK:
@@ -202,7 +202,7 @@ client_line(struct client *c, const char *p, size_t n)
 }
 
 static void
-client_too_long(struct client *c, const char *p, size_t n)
+listen_client_too_long(struct client *c, const char *p, size_t n)
 {
 	ingest_reject(c->l->d, c->src, PROTO_E_LONG, n, p, n);
 	c->bad++;
@@ -214,7 +214,7 @@ client_too_long(struct client *c, const char *p, size_t n)
  * contiguous once per call and drained once at the end.
  */
 static void
-client_input(struct client *c, int eof)
+listen_client_input(struct client *c, int eof)
 {
 	struct evbuffer *in = bufferevent_get_input(c->bev);
 	size_t len = evbuffer_get_length(in), off = 0, n, limit;
@@ -234,55 +234,55 @@ client_input(struct client *c, int eof)
 			if (nl == NULL) {
 				off = len;
 				if (c->discarded > limit)
-					client_cut(c, CUT_FLOOD);
+					listen_client_cut(c, CUT_FLOOD);
 				break;
 			}
 			off += n + 1;
-			client_set_state(c, CLIENT_READING);
+			listen_client_set_state(c, CLIENT_READING);
 			continue;
 		}
 		if (nl == NULL) {
 			if (eof) {
 				if (n > PROTO_LINE_MAX)
-					client_too_long(c, p + off, n);
+					listen_client_too_long(c, p + off, n);
 				else
-					client_line(c, p + off, n);
+					listen_client_line(c, p + off, n);
 				off = len;
 			} else if (n > PROTO_LINE_MAX) {
-				client_too_long(c, p + off, n);
+				listen_client_too_long(c, p + off, n);
 				c->discarded = n;
 				off = len;
-				client_set_state(c, CLIENT_DISCARDING);
+				listen_client_set_state(c, CLIENT_DISCARDING);
 			}
 			break;
 		}
 		if (n > PROTO_LINE_MAX)
-			client_too_long(c, p + off, n);
+			listen_client_too_long(c, p + off, n);
 		else
-			client_line(c, p + off, n);
+			listen_client_line(c, p + off, n);
 		off += n + 1;
 	}
 	evbuffer_drain(in, off);
 	if (c->state != CLIENT_DEAD && c->bad > LISTEN_BAD_MAX &&
 	    c->bad > c->good)
-		client_cut(c, CUT_GARBAGE);
+		listen_client_cut(c, CUT_GARBAGE);
 }
 
 static void
-client_read_cb(struct bufferevent *bev, void *arg)
+listen_client_read_cb(struct bufferevent *bev, void *arg)
 {
 	struct client *c = arg;
 
-	client_input(c, 0);
+	listen_client_input(c, 0);
 }
 
 static void
-client_event_cb(struct bufferevent *bev, short what, void *arg)
+listen_client_event_cb(struct bufferevent *bev, short what, void *arg)
 {
 	struct client *c = arg;
 
 	if (what & BEV_EVENT_EOF) {
-		client_input(c, 1);
+		listen_client_input(c, 1);
 		log_debug("listen: client closed client=%" PRIu64 " source=%s "
 		    "good=%" PRIu64 " bad=%" PRIu64, c->id, source_name(c->src),
 		    c->good, c->bad);
@@ -292,7 +292,7 @@ client_event_cb(struct bufferevent *bev, short what, void *arg)
 		    EVUTIL_SOCKET_ERROR()), c->id, source_name(c->src));
 	}
 	if (what & (BEV_EVENT_EOF | BEV_EVENT_ERROR))
-		client_set_state(c, CLIENT_DEAD);
+		listen_client_set_state(c, CLIENT_DEAD);
 }
 
 static void
@@ -334,11 +334,12 @@ listen_accept_cb(struct evconnlistener *evl, evutil_socket_t fd,
 	bufferevent_setwatermark(bev, EV_READ, 0, buf);
 	bufferevent_set_max_single_read(bev,
 	    buf < LISTEN_READ_MAX ? buf : LISTEN_READ_MAX);
-	bufferevent_setcb(bev, client_read_cb, NULL, client_event_cb, c);
+	bufferevent_setcb(bev, listen_client_read_cb, NULL,
+	    listen_client_event_cb, c);
 	if (bufferevent_enable(bev, EV_READ) != 0) {
 		log_warnx("listen: cannot enable reading source=%s",
 		    source_name(ls->src));
-		client_free(c);
+		listen_client_free(c);
 		return;
 	}
 	TAILQ_INSERT_TAIL(&l->clients, c, entry);
@@ -648,11 +649,11 @@ listen_free(struct listen *l)
 		return;
 	while ((c = TAILQ_FIRST(&l->clients)) != NULL) {
 		TAILQ_REMOVE(&l->clients, c, entry);
-		client_free(c);
+		listen_client_free(c);
 	}
 	while ((c = TAILQ_FIRST(&l->dead)) != NULL) {
 		TAILQ_REMOVE(&l->dead, c, entry);
-		client_free(c);
+		listen_client_free(c);
 	}
 	if (l->tcp.evl != NULL)
 		evconnlistener_free(l->tcp.evl);
@@ -706,14 +707,14 @@ listen_drain(struct listen *l)
 			n = evbuffer_read(in, fd, 65536);
 			if (n <= 0)
 				break;
-			client_input(c, 0);
+			listen_client_input(c, 0);
 		}
 		if (c->state != CLIENT_DEAD) {
 			/* A last line without its newline counts only when
 			 * the client has closed; otherwise it is unfinished
 			 * and dropped (sockets are at-most-once). */
-			client_input(c, n == 0);
-			client_set_state(c, CLIENT_DEAD);
+			listen_client_input(c, n == 0);
+			listen_client_set_state(c, CLIENT_DEAD);
 		}
 	}
 	listen_reap_cb(-1, 0, l);

@@ -75,7 +75,7 @@ daemon_inputs(const struct conf *conf)
 }
 
 static void SC_NORETURN
-usage(void)
+daemon_usage(void)
 {
 	fprintf(stderr, "usage: stopcockd [-dfht] [-c file]\n"
 	    "  -c file  configuration (default " DAEMON_CONF ")\n"
@@ -528,11 +528,11 @@ main(int argc, char **argv)
 			check = 1;
 			break;
 		default:
-			usage();
+			daemon_usage();
 		}
 	}
 	if (optind != argc)
-		usage();
+		daemon_usage();
 
 	if (conf_load(path, &d->conf, &cause) != 0 ||
 	    daemon_check(d->conf, &cause) != 0) {
@@ -549,7 +549,8 @@ main(int argc, char **argv)
 		return SC_EX_OK;
 	}
 	if (log_init(d->conf->syslog_ident != NULL ? d->conf->syslog_ident :
-	    "stopcockd", d->conf->syslog_facility, d->log_stderr, d->debug) != 0) {
+	    "stopcockd", d->conf->syslog_facility, d->log_stderr,
+	    d->debug) != 0) {
 		fprintf(stderr, "stopcockd: unknown syslog facility %s\n",
 		    d->conf->syslog_facility);
 		return SC_EX_CONFIG;

@@ -18,13 +18,10 @@
  * the same ID rule.
  *
  * One connection carries everything. Between two blocking reads the
- * consumer runs its housekeeping, one step at a time: acknowledging what
- * the last checkpoint covers (XPENDING - <covered> for our consumer, then
- * XACK), moving entries delivered more than max_deliveries times to the
- * dead-letter stream (XPENDING IDLE, XCLAIM, XADD, XACK), reclaiming
- * entries idle on dead consumers (XAUTOCLAIM) and refreshing lag and
- * pending counts (XINFO GROUPS, XPENDING). Entries without `records` are
- * poison and go to the dead-letter stream at once.
+ * consumer runs its housekeeping (redis_house.c), one step at a time:
+ * acknowledgements, dead letters, reclaiming idle entries, lag and
+ * pending counts. Entries without `records` are poison and go to the
+ * dead-letter stream at once.
  *
  * The connection comes back after any failure with exponential backoff
  * (100 ms doubling to 10 s); a watchdog drops it when an answer is late
@@ -35,6 +32,7 @@
 #include <errno.h>
 #include <inttypes.h>
 #include <limits.h>
+#include <stdarg.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -46,103 +44,12 @@
 #include <hiredis/adapters/libevent.h>
 
 #include "stopcock/log.h"
-#include "daemon.h"
+#include "redis_in_int.h"
 
-#define REDIS_IN_ANSWER 5.0	/* seconds for any answer beyond a block */
-#define REDIS_IN_BACKOFF_MIN 0.1
-#define REDIS_IN_BACKOFF_MAX 10.0
-#define REDIS_IN_INFO_EVERY 5.0	/* lag and pending refresh, seconds */
-#define REDIS_IN_ACK_BATCH 1000	/* IDs per XPENDING/XACK round */
-#define REDIS_IN_LAG_SCAN 10000	/* entries counted when Redis gives no lag */
-
-enum redis_in_state {
-	RS_IDLE,	/* not connected; a retry is scheduled */
-	RS_CONNECTING,
-	RS_SETUP,	/* XGROUP CREATE in flight */
-	RS_PENDING,	/* reading back our own pending entries */
-	RS_STEADY,	/* new entries, housekeeping between reads */
-	RS_STOPPED	/* shutting down: never reconnect */
-};
-
-enum redis_in_dead { DEAD_NO_RECORDS, DEAD_MAX_DELIVERIES, DEAD_N };
-
-static const char *redis_in_dead_names[DEAD_N] = {
-	"no_records", "max_deliveries"
-};
-
-/* A stream entry ID. 0-0 is below every real entry. */
-struct sid {
-	uint64_t	ms;
-	uint64_t	seq;
-};
-
-#define SID_BUF 48
-
-struct redis_in {
-	struct daemon		*d;
-	enum redis_in_state	 state;
-	redisAsyncContext	*ac;
-
-	/* Fixed at start (a reload does not move the consumer). */
-	char			*address;
-	char			*host;
-	int			 port;
-	char			*unix_path;
-	char			*stream;
-	char			*group;
-	char			*consumer;
-	char			*dead;
-
-	struct sid		 last;		/* last applied */
-	struct sid		 covered;	/* by the last checkpoint */
-	uint64_t		 covered_gen;
-	uint64_t		 sweep_gen;
-	int			 ack_due;
-	struct sid		 pel_cursor;
-	struct sid		 claim_cursor;
-	struct sid		*poison;	/* this PEL batch, > max_deliveries */
-	size_t			 npoison;
-
-	struct event		*retry_ev;
-	struct event		*watchdog_ev;
-	struct event		*fail_ev;	/* deferred drop */
-	double			 backoff;
-	double			 connect_since;
-	unsigned		 outstanding;	/* commands without answer */
-	double			 wait_since;
-	int			 reading;	/* blocking XREADGROUP out */
-	unsigned		 ops;		/* housekeeping commands out */
-	double			 next_claim;
-	double			 next_info;
-	int			 no_idle_filter;	/* Redis < 6.2 */
-	char			 last_str[SID_BUF];
-
-	int64_t			 lag;		/* -1: unknown */
-	int			 lag_capped;
-	int64_t			 pending;
-	int64_t			 pending_own;
-	uint64_t		 entries;	/* applied */
-	uint64_t		 skipped;	/* at or below the checkpoint */
-	uint64_t		 deleted;	/* pending but gone from the stream */
-	uint64_t		 dead_count[DEAD_N];
-	uint64_t		 dead_failed;
-	uint64_t		 claimed;
-	uint64_t		 acked;
-	uint64_t		 reconnects;
-	uint64_t		 errors;
-};
-
-/* Context of one dead-letter move (XADD then XACK). */
-struct redis_in_dl {
-	struct sid		 id;
-	enum redis_in_dead	 reason;
-};
-
-static void	redis_in_next(struct redis_in *);
 static void	redis_in_connect(struct redis_in *);
 
-static int
-sid_parse(const char *s, size_t len, struct sid *out)
+int
+redis_in_sid_parse(const char *s, size_t len, struct sid *out)
 {
 	char buf[SID_BUF], *dash, *end;
 
@@ -162,15 +69,15 @@ sid_parse(const char *s, size_t len, struct sid *out)
 	return 0;
 }
 
-static const char *
-sid_fmt(struct sid id, char *buf)
+const char *
+redis_in_sid_fmt(struct sid id, char *buf)
 {
 	snprintf(buf, SID_BUF, "%" PRIu64 "-%" PRIu64, id.ms, id.seq);
 	return buf;
 }
 
-static int
-sid_cmp(struct sid a, struct sid b)
+int
+redis_in_sid_cmp(struct sid a, struct sid b)
 {
 	if (a.ms != b.ms)
 		return a.ms < b.ms ? -1 : 1;
@@ -180,8 +87,8 @@ sid_cmp(struct sid a, struct sid b)
 }
 
 /* The smallest ID after id (for inclusive ranges on old servers). */
-static struct sid
-sid_next(struct sid id)
+struct sid
+redis_in_sid_next(struct sid id)
 {
 	if (id.seq == UINT64_MAX) {
 		id.ms++;
@@ -191,13 +98,13 @@ sid_next(struct sid id)
 	return id;
 }
 
-static int
-sid_reply(const redisReply *r, struct sid *out)
+int
+redis_in_sid_reply(const redisReply *r, struct sid *out)
 {
 	if (r == NULL || (r->type != REDIS_REPLY_STRING &&
 	    r->type != REDIS_REPLY_STATUS))
 		return -1;
-	return sid_parse(r->str, r->len, out);
+	return redis_in_sid_parse(r->str, r->len, out);
 }
 
 static const char *
@@ -281,7 +188,7 @@ redis_in_fail_cb(evutil_socket_t fd, short what, void *arg)
 }
 
 /* From inside a callback: log now, drop the connection just after. */
-static void
+void
 redis_in_fail(struct redis_in *r, const char *cmd, const redisReply *reply)
 {
 	r->errors++;
@@ -293,7 +200,7 @@ redis_in_fail(struct redis_in *r, const char *cmd, const redisReply *reply)
 }
 
 /* Every callback starts here: the answer arrived (or the link died). */
-static int
+int
 redis_in_answer(struct redis_in *r, const redisReply *reply)
 {
 	if (r->outstanding > 0)
@@ -318,7 +225,7 @@ redis_in_sent(struct redis_in *r, int rc, const char *what)
 	return 0;
 }
 
-static int
+int
 redis_in_cmd(struct redis_in *r, redisCallbackFn *fn, void *priv,
     const char *fmt, ...)
 {
@@ -333,7 +240,7 @@ redis_in_cmd(struct redis_in *r, redisCallbackFn *fn, void *priv,
 	return redis_in_sent(r, rc, fmt);
 }
 
-static int
+int
 redis_in_argv(struct redis_in *r, redisCallbackFn *fn, void *priv, int argc,
     const char **argv, const size_t *lens)
 {
@@ -344,7 +251,7 @@ redis_in_argv(struct redis_in *r, redisCallbackFn *fn, void *priv, int argc,
 }
 
 /* A housekeeping step ended: maybe the next one, or the next read. */
-static void
+void
 redis_in_op_done(struct redis_in *r)
 {
 	if (r->ops > 0)
@@ -352,138 +259,6 @@ redis_in_op_done(struct redis_in *r)
 	redis_in_next(r);
 }
 
-static void
-redis_in_ack_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type == REDIS_REPLY_INTEGER)
-		r->acked += (uint64_t)rep->integer;
-	else
-		log_warnx("redis: XACK failed: %.*s", (int)rep->len,
-		    rep->str != NULL ? rep->str : "");
-	redis_in_op_done(r);
-}
-
-/* XACK the IDs in elements [0, n) of an array of entries or IDs. */
-static void
-redis_in_ack_ids(struct redis_in *r, const char **ids, const size_t *lens,
-    size_t n)
-{
-	const char **argv;
-	size_t *alen, i;
-
-	if (n == 0)
-		return;
-	argv = xreallocarray(NULL, n + 3, sizeof *argv);
-	alen = xreallocarray(NULL, n + 3, sizeof *alen);
-	argv[0] = "XACK";
-	argv[1] = r->stream;
-	argv[2] = r->group;
-	for (i = 0; i < 3; i++)
-		alen[i] = strlen(argv[i]);
-	for (i = 0; i < n; i++) {
-		argv[i + 3] = ids[i];
-		alen[i + 3] = lens[i];
-	}
-	if (redis_in_argv(r, redis_in_ack_cb, NULL, (int)(n + 3), argv,
-	    alen) == 0)
-		r->ops++;
-	free(argv);
-	free(alen);
-}
-
-static void
-redis_in_ack_one(struct redis_in *r, struct sid id)
-{
-	char buf[SID_BUF];
-	const char *p = sid_fmt(id, buf);
-	size_t len = strlen(p);
-
-	redis_in_ack_ids(r, &p, &len, 1);
-}
-
-static void
-redis_in_dead_added_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	struct redis_in_dl *dl = priv;
-	redisReply *rep = reply;
-	char buf[SID_BUF];
-
-	if (redis_in_answer(r, rep) != 0) {
-		free(dl);
-		return;
-	}
-	if (rep->type == REDIS_REPLY_ERROR) {
-		r->dead_failed++;
-		log_warnx("redis: dead-letter XADD failed: %.*s entry=%s "
-		    "dead_letter=%s", (int)rep->len, rep->str,
-		    sid_fmt(dl->id, buf), r->dead);
-	} else {
-		r->dead_count[dl->reason]++;
-		log_warnx("redis: entry moved to the dead-letter stream: %s "
-		    "entry=%s dead_letter=%s", redis_in_dead_names[dl->reason],
-		    sid_fmt(dl->id, buf), r->dead);
-		redis_in_ack_one(r, dl->id);
-	}
-	free(dl);
-	redis_in_op_done(r);
-}
-
-/*
- * Copy an entry to the dead-letter stream with its original fields plus
- * origin (its ID) and reason, then XACK it once the copy is stored.
- */
-static void
-redis_in_dead_letter(struct redis_in *r, struct sid id,
-    const redisReply *fields, enum redis_in_dead reason)
-{
-	struct redis_in_dl *dl;
-	const char **argv;
-	size_t *alen, n = 0, i, nf;
-	char buf[SID_BUF];
-
-	nf = fields != NULL && fields->type == REDIS_REPLY_ARRAY ?
-	    fields->elements : 0;
-	argv = xreallocarray(NULL, nf + 7, sizeof *argv);
-	alen = xreallocarray(NULL, nf + 7, sizeof *alen);
-	argv[n] = "XADD"; alen[n] = 4; n++;
-	argv[n] = r->dead; alen[n] = strlen(r->dead); n++;
-	argv[n] = "*"; alen[n] = 1; n++;
-	for (i = 0; i + 1 < nf; i += 2) {
-		const redisReply *f = fields->element[i];
-		const redisReply *v = fields->element[i + 1];
-
-		if (f->type != REDIS_REPLY_STRING ||
-		    v->type != REDIS_REPLY_STRING)
-			continue;
-		argv[n] = f->str; alen[n] = f->len; n++;
-		argv[n] = v->str; alen[n] = v->len; n++;
-	}
-	argv[n] = "origin"; alen[n] = 6; n++;
-	argv[n] = sid_fmt(id, buf); alen[n] = strlen(buf); n++;
-	argv[n] = "reason"; alen[n] = 6; n++;
-	argv[n] = redis_in_dead_names[reason];
-	alen[n] = strlen(argv[n]); n++;
-	dl = xcalloc(1, sizeof *dl);
-	dl->id = id;
-	dl->reason = reason;
-	/* XADD wants field/value pairs: with no fields at all the origin and
-	 * reason pairs alone keep it well formed. */
-	if (redis_in_argv(r, redis_in_dead_added_cb, dl, (int)n, argv,
-	    alen) == 0)
-		r->ops++;
-	else
-		free(dl);
-	free(argv);
-	free(alen);
-}
-
-/* Apply the lines of one entry's `records` field. */
 static void
 redis_in_apply(struct redis_in *r, const char *p, size_t len)
 {
@@ -510,7 +285,7 @@ redis_in_is_poison(struct redis_in *r, struct sid id)
 	size_t i;
 
 	for (i = 0; i < r->npoison; i++)
-		if (sid_cmp(r->poison[i], id) == 0)
+		if (redis_in_sid_cmp(r->poison[i], id) == 0)
 			return 1;
 	return 0;
 }
@@ -519,7 +294,7 @@ redis_in_is_poison(struct redis_in *r, struct sid id)
  * One delivered entry [id, [field, value, ...]] (or [id, nil] when it
  * was deleted after delivery). Returns -1 on a malformed reply.
  */
-static int
+int
 redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 {
 	const redisReply *fields, *f, *v;
@@ -527,18 +302,18 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 	size_t i;
 
 	if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
-	    sid_reply(e->element[0], &id) != 0)
+	    redis_in_sid_reply(e->element[0], &id) != 0)
 		return -1;
 	fields = e->element[1];
 	if (fields->type == REDIS_REPLY_NIL) {
 		/* Trimmed or deleted while pending: nothing to apply. */
 		r->deleted++;
-		redis_in_ack_one(r, id);
+		redis_house_ack_one(r, id);
 		return 0;
 	}
 	if (fields->type != REDIS_REPLY_ARRAY)
 		return -1;
-	if (sid_cmp(id, r->last) <= 0) {
+	if (redis_in_sid_cmp(id, r->last) <= 0) {
 		/* Already in the restored state; XACKed by the sweep
 		 * once a checkpoint covers it. */
 		r->skipped++;
@@ -546,7 +321,7 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 		return 0;
 	}
 	if (check_poison && redis_in_is_poison(r, id)) {
-		redis_in_dead_letter(r, id, fields, DEAD_MAX_DELIVERIES);
+		redis_house_dead_letter(r, id, fields, DEAD_MAX_DELIVERIES);
 		return 0;
 	}
 	for (i = 0; i + 1 < fields->elements; i += 2) {
@@ -561,7 +336,7 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 			return 0;
 		}
 	}
-	redis_in_dead_letter(r, id, fields, DEAD_NO_RECORDS);
+	redis_house_dead_letter(r, id, fields, DEAD_NO_RECORDS);
 	return 0;
 }
 
@@ -589,7 +364,7 @@ redis_in_entries(struct redis_in *r, const redisReply *rep, int check_poison,
 			    check_poison) != 0)
 				return -1;
 			if (lastseen != NULL)
-				sid_reply(list->element[j]->element[0],
+				redis_in_sid_reply(list->element[j]->element[0],
 				    lastseen);
 			(*count)++;
 		}
@@ -682,13 +457,13 @@ redis_in_pel_count_cb(redisAsyncContext *ac, void *reply, void *priv)
 	for (i = 0; i < rep->elements; i++) {
 		e = rep->element[i];
 		if (e->type != REDIS_REPLY_ARRAY || e->elements < 4 ||
-		    sid_reply(e->element[0], &id) != 0 ||
+		    redis_in_sid_reply(e->element[0], &id) != 0 ||
 		    e->element[3]->type != REDIS_REPLY_INTEGER)
 			continue;
 		/* The read after this one delivers it once more. */
 		if (e->element[3]->integer >=
 		    (long long)r->d->conf->redis_max_deliveries &&
-		    sid_cmp(id, r->last) > 0)
+		    redis_in_sid_cmp(id, r->last) > 0)
 			r->poison[r->npoison++] = id;
 	}
 }
@@ -704,11 +479,11 @@ redis_in_pel_next(struct redis_in *r)
 	char cur[SID_BUF], from[SID_BUF];
 	long long batch = r->d->conf->redis_batch;
 
-	sid_fmt(r->pel_cursor, cur);
+	redis_in_sid_fmt(r->pel_cursor, cur);
 	if (r->pel_cursor.ms == 0 && r->pel_cursor.seq == 0)
 		strcpy(from, "-");
 	else
-		sid_fmt(sid_next(r->pel_cursor), from);
+		redis_in_sid_fmt(redis_in_sid_next(r->pel_cursor), from);
 	if (redis_in_cmd(r, redis_in_pel_count_cb, NULL,
 	    "XPENDING %s %s %s + %lld %s", r->stream, r->group, from, batch,
 	    r->consumer) != 0)
@@ -839,346 +614,7 @@ redis_in_watchdog_cb(evutil_socket_t fd, short what, void *arg)
 }
 
 /* Acknowledge our pending entries at or below the covered ID. */
-static void
-redis_in_sweep_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const char **ids;
-	size_t *lens, i, n = 0;
-	const redisReply *e;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type != REDIS_REPLY_ARRAY) {
-		log_warnx("redis: XPENDING (ack sweep) failed: %.*s",
-		    (int)rep->len, rep->str != NULL ? rep->str : "");
-		r->errors++;
-		r->ack_due = 0;
-		redis_in_op_done(r);
-		return;
-	}
-	ids = xreallocarray(NULL, rep->elements + 1, sizeof *ids);
-	lens = xreallocarray(NULL, rep->elements + 1, sizeof *lens);
-	for (i = 0; i < rep->elements; i++) {
-		e = rep->element[i];
-		if (e->type != REDIS_REPLY_ARRAY || e->elements < 1 ||
-		    e->element[0]->type != REDIS_REPLY_STRING)
-			continue;
-		ids[n] = e->element[0]->str;
-		lens[n++] = e->element[0]->len;
-	}
-	redis_in_ack_ids(r, ids, lens, n);
-	free(ids);
-	free(lens);
-	/* A full page may hide more; a newer checkpoint needs another. */
-	if (rep->elements < REDIS_IN_ACK_BATCH && r->covered_gen == r->sweep_gen)
-		r->ack_due = 0;
-	redis_in_op_done(r);
-}
-
-static void
-redis_in_sweep(struct redis_in *r)
-{
-	char cov[SID_BUF];
-
-	if (r->covered.ms == 0 && r->covered.seq == 0) {
-		r->ack_due = 0;
-		redis_in_next(r);
-		return;
-	}
-	r->sweep_gen = r->covered_gen;
-	if (redis_in_cmd(r, redis_in_sweep_cb, NULL,
-	    "XPENDING %s %s - %s %d %s", r->stream, r->group,
-	    sid_fmt(r->covered, cov), REDIS_IN_ACK_BATCH, r->consumer) == 0)
-		r->ops++;
-}
-
-static void
-redis_in_autoclaim_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const redisReply *list;
-	struct sid next;
-	size_t i;
-	double every;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	every = r->d->conf->redis_claim_idle / 2;
-	every = every < 1 ? 1 : every > 30 ? 30 : every;
-	r->next_claim = daemon_now() + every;
-	if (rep->type != REDIS_REPLY_ARRAY || rep->elements < 2 ||
-	    sid_reply(rep->element[0], &next) != 0 ||
-	    rep->element[1]->type != REDIS_REPLY_ARRAY) {
-		r->errors++;
-		log_warnx("redis: XAUTOCLAIM failed: %.*s", rep->str != NULL ?
-		    (int)rep->len : 0, rep->str != NULL ? rep->str : "");
-		redis_in_op_done(r);
-		return;
-	}
-	list = rep->element[1];
-	for (i = 0; i < list->elements; i++) {
-		/* Redis 6.2 answers nil for entries deleted meanwhile. */
-		if (list->element[i]->type == REDIS_REPLY_NIL)
-			continue;
-		r->claimed++;
-		if (redis_in_entry(r, list->element[i], 0) != 0) {
-			redis_in_fail(r, "XAUTOCLAIM (unexpected answer)",
-			    NULL);
-			return;
-		}
-	}
-	if (list->elements > 0)
-		log_info("redis: reclaimed idle entries count=%zu stream=%s",
-		    list->elements, r->stream);
-	r->claim_cursor = next;
-	if (next.ms != 0 || next.seq != 0)
-		r->next_claim = 0;	/* more to scan: go on soon */
-	redis_in_op_done(r);
-}
-
-static void
-redis_in_autoclaim(struct redis_in *r)
-{
-	char cur[SID_BUF];
-
-	if (redis_in_cmd(r, redis_in_autoclaim_cb, NULL,
-	    "XAUTOCLAIM %s %s %s %lld %s COUNT %lld", r->stream, r->group,
-	    r->consumer, (long long)(r->d->conf->redis_claim_idle * 1000),
-	    sid_fmt(r->claim_cursor, cur),
-	    (long long)r->d->conf->redis_batch) == 0)
-		r->ops++;
-}
-
-/* XCLAIM answer for entries over max_deliveries: dead-letter them. */
-static void
-redis_in_poison_claim_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const redisReply *e;
-	struct sid id;
-	size_t i;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type != REDIS_REPLY_ARRAY) {
-		r->errors++;
-		log_warnx("redis: XCLAIM failed: %.*s", rep->str != NULL ?
-		    (int)rep->len : 0, rep->str != NULL ? rep->str : "");
-		redis_in_op_done(r);
-		return;
-	}
-	for (i = 0; i < rep->elements; i++) {
-		e = rep->element[i];
-		if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
-		    sid_reply(e->element[0], &id) != 0)
-			continue;
-		if (e->element[1]->type == REDIS_REPLY_NIL) {
-			r->deleted++;
-			redis_in_ack_one(r, id);
-		} else
-			redis_in_dead_letter(r, id, e->element[1],
-			    DEAD_MAX_DELIVERIES);
-	}
-	redis_in_op_done(r);
-}
-
-/* Idle entries of every consumer with their delivery counts. */
-static void
-redis_in_idle_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const redisReply *e;
-	const char **argv;
-	size_t *alen, i, n = 0;
-	struct sid id;
-	char idle[32];
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type != REDIS_REPLY_ARRAY) {
-		/* Servers before 6.2 have no IDLE filter: skip the poison
-		 * check there, reclaiming still works. */
-		if (!r->no_idle_filter)
-			log_warnx("redis: XPENDING IDLE failed (%.*s); no "
-			    "delivery-count check", rep->str != NULL ?
-			    (int)rep->len : 0, rep->str != NULL ? rep->str :
-			    "");
-		r->no_idle_filter = 1;
-		redis_in_autoclaim(r);
-		redis_in_op_done(r);
-		return;
-	}
-	argv = xreallocarray(NULL, rep->elements + 5, sizeof *argv);
-	alen = xreallocarray(NULL, rep->elements + 5, sizeof *alen);
-	snprintf(idle, sizeof idle, "%lld",
-	    (long long)(r->d->conf->redis_claim_idle * 1000));
-	argv[n++] = "XCLAIM";
-	argv[n++] = r->stream;
-	argv[n++] = r->group;
-	argv[n++] = r->consumer;
-	argv[n++] = idle;
-	for (i = 0; i < n; i++)
-		alen[i] = strlen(argv[i]);
-	for (i = 0; i < rep->elements; i++) {
-		e = rep->element[i];
-		if (e->type != REDIS_REPLY_ARRAY || e->elements < 4 ||
-		    sid_reply(e->element[0], &id) != 0 ||
-		    e->element[3]->type != REDIS_REPLY_INTEGER)
-			continue;
-		/* Claiming delivers it once more. Entries at or below our
-		 * last applied one are done, not poison. */
-		if (e->element[3]->integer <
-		    (long long)r->d->conf->redis_max_deliveries ||
-		    sid_cmp(id, r->last) <= 0)
-			continue;
-		argv[n] = e->element[0]->str;
-		alen[n++] = e->element[0]->len;
-	}
-	if (n > 5 && redis_in_argv(r, redis_in_poison_claim_cb, NULL, (int)n,
-	    argv, alen) == 0)
-		r->ops++;
-	free(argv);
-	free(alen);
-	redis_in_autoclaim(r);
-	redis_in_op_done(r);
-}
-
-static void
-redis_in_claim(struct redis_in *r)
-{
-	if (r->no_idle_filter) {
-		redis_in_autoclaim(r);
-		return;
-	}
-	if (redis_in_cmd(r, redis_in_idle_cb, NULL,
-	    "XPENDING %s %s IDLE %lld - + %lld", r->stream, r->group,
-	    (long long)(r->d->conf->redis_claim_idle * 1000),
-	    (long long)r->d->conf->redis_batch) == 0)
-		r->ops++;
-}
-
-static void
-redis_in_lagscan_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type == REDIS_REPLY_ARRAY) {
-		r->lag = (int64_t)rep->elements;
-		r->lag_capped = rep->elements >= REDIS_IN_LAG_SCAN;
-	}
-	redis_in_op_done(r);
-}
-
-static const redisReply *
-redis_in_field(const redisReply *map, const char *name)
-{
-	size_t i;
-
-	if (map == NULL || map->type != REDIS_REPLY_ARRAY)
-		return NULL;
-	for (i = 0; i + 1 < map->elements; i += 2)
-		if (map->element[i]->type == REDIS_REPLY_STRING &&
-		    strcmp(map->element[i]->str, name) == 0)
-			return map->element[i + 1];
-	return NULL;
-}
-
-/* XINFO GROUPS: lag when Redis 7 knows it, else count what is left. */
-static void
-redis_in_info_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const redisReply *g, *name, *lag, *ld;
-	struct sid last;
-	char from[SID_BUF];
-	size_t i;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	r->next_info = daemon_now() + REDIS_IN_INFO_EVERY;
-	if (rep->type != REDIS_REPLY_ARRAY) {
-		redis_in_op_done(r);
-		return;
-	}
-	for (i = 0; i < rep->elements; i++) {
-		g = rep->element[i];
-		name = redis_in_field(g, "name");
-		if (name == NULL || name->type != REDIS_REPLY_STRING ||
-		    strcmp(name->str, r->group) != 0)
-			continue;
-		lag = redis_in_field(g, "lag");
-		if (lag != NULL && lag->type == REDIS_REPLY_INTEGER) {
-			r->lag = lag->integer;
-			r->lag_capped = 0;
-			break;
-		}
-		ld = redis_in_field(g, "last-delivered-id");
-		if (sid_reply(ld, &last) == 0 && redis_in_cmd(r,
-		    redis_in_lagscan_cb, NULL, "XRANGE %s %s + COUNT %d",
-		    r->stream, sid_fmt(sid_next(last), from),
-		    REDIS_IN_LAG_SCAN) == 0)
-			r->ops++;
-		break;
-	}
-	redis_in_op_done(r);
-}
-
-/* XPENDING summary: [count, min, max, [[consumer, count], ...]]. */
-static void
-redis_in_summary_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const redisReply *list, *c;
-	size_t i;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type == REDIS_REPLY_ARRAY && rep->elements == 4 &&
-	    rep->element[0]->type == REDIS_REPLY_INTEGER) {
-		r->pending = rep->element[0]->integer;
-		r->pending_own = 0;
-		list = rep->element[3];
-		for (i = 0; list->type == REDIS_REPLY_ARRAY &&
-		    i < list->elements; i++) {
-			c = list->element[i];
-			if (c->type == REDIS_REPLY_ARRAY && c->elements == 2 &&
-			    c->element[0]->type == REDIS_REPLY_STRING &&
-			    c->element[1]->type == REDIS_REPLY_STRING &&
-			    strcmp(c->element[0]->str, r->consumer) == 0)
-				r->pending_own = strtoll(c->element[1]->str,
-				    NULL, 10);
-		}
-	}
-	redis_in_op_done(r);
-}
-
-static void
-redis_in_info(struct redis_in *r)
-{
-	if (redis_in_cmd(r, redis_in_info_cb, NULL, "XINFO GROUPS %s",
-	    r->stream) == 0)
-		r->ops++;
-	if (redis_in_cmd(r, redis_in_summary_cb, NULL, "XPENDING %s %s",
-	    r->stream, r->group) == 0)
-		r->ops++;
-}
-
-/*
- * The steady loop: one housekeeping step when one is due, else the next
- * blocking read. Nothing is sent while a read or a step is out, so the
- * steps never queue behind a block.
- */
-static void
+void
 redis_in_next(struct redis_in *r)
 {
 	double now;
@@ -1188,17 +624,17 @@ redis_in_next(struct redis_in *r)
 		return;
 	now = daemon_now();
 	if (r->ack_due) {
-		redis_in_sweep(r);
+		redis_house_sweep(r);
 		return;
 	}
 	if (now >= r->next_claim) {
 		r->next_claim = now + 1;	/* until the answer sets it */
-		redis_in_claim(r);
+		redis_house_claim(r);
 		return;
 	}
 	if (now >= r->next_info) {
 		r->next_info = now + REDIS_IN_INFO_EVERY;
-		redis_in_info(r);
+		redis_house_info(r);
 		return;
 	}
 	if (redis_in_cmd(r, redis_in_read_cb, NULL,
@@ -1293,7 +729,7 @@ redis_in_new(struct daemon *d, const char *last_id, char **cause)
 		return NULL;
 	}
 	if (last_id != NULL && *last_id != '\0' &&
-	    sid_parse(last_id, strlen(last_id), &r->last) != 0) {
+	    redis_in_sid_parse(last_id, strlen(last_id), &r->last) != 0) {
 		xasprintf(cause, "bad Redis entry ID in the checkpoint: %s",
 		    last_id);
 		redis_in_free(r);
@@ -1362,14 +798,14 @@ redis_in_last_id(struct redis_in *r)
 	if (r->last.ms == 0 && r->last.seq == 0)
 		r->last_str[0] = '\0';
 	else
-		sid_fmt(r->last, r->last_str);
+		redis_in_sid_fmt(r->last, r->last_str);
 	return r->last_str;
 }
 
 void
 redis_in_covered(struct redis_in *r)
 {
-	if (r == NULL || sid_cmp(r->last, r->covered) == 0)
+	if (r == NULL || redis_in_sid_cmp(r->last, r->covered) == 0)
 		return;
 	r->covered = r->last;
 	r->covered_gen++;
@@ -1458,7 +894,7 @@ redis_in_json(struct redis_in *r)
 	    json_string(redis_in_last_id(r)));
 	json_object_set_new(o, "covered", json_string(
 	    r->covered.ms == 0 && r->covered.seq == 0 ? "" :
-	    sid_fmt(r->covered, buf)));
+	    redis_in_sid_fmt(r->covered, buf)));
 	json_object_set_new(o, "lag", r->lag < 0 ? json_null() :
 	    json_integer(r->lag));
 	json_object_set_new(o, "lag_capped", json_boolean(r->lag_capped));

@@ -1,0 +1,129 @@
+/*
+ * redis_in_int.h: what redis_in.c (the consumer's connection, reads and
+ * state machine) and redis_house.c (its housekeeping between reads:
+ * acknowledgements, dead letters, reclaiming, lag) share. Internal to
+ * the Redis consumer; the rest of the daemon sees daemon.h only.
+ */
+#ifndef STOPCOCK_REDIS_IN_INT_H
+#define STOPCOCK_REDIS_IN_INT_H
+
+#include <stdint.h>
+
+#include <event2/event.h>
+#include <hiredis/hiredis.h>
+#include <hiredis/async.h>
+
+#include "daemon.h"
+
+#define REDIS_IN_ANSWER 5.0	/* seconds for any answer beyond a block */
+#define REDIS_IN_BACKOFF_MIN 0.1
+#define REDIS_IN_BACKOFF_MAX 10.0
+#define REDIS_IN_INFO_EVERY 5.0	/* lag and pending refresh, seconds */
+#define REDIS_IN_ACK_BATCH 1000	/* IDs per XPENDING/XACK round */
+#define REDIS_IN_LAG_SCAN 10000	/* entries counted when Redis gives no lag */
+
+enum redis_in_state {
+	RS_IDLE,	/* not connected; a retry is scheduled */
+	RS_CONNECTING,
+	RS_SETUP,	/* XGROUP CREATE in flight */
+	RS_PENDING,	/* reading back our own pending entries */
+	RS_STEADY,	/* new entries, housekeeping between reads */
+	RS_STOPPED	/* shutting down: never reconnect */
+};
+
+enum redis_in_dead { DEAD_NO_RECORDS, DEAD_MAX_DELIVERIES, DEAD_N };
+
+/* A stream entry ID. 0-0 is below every real entry. */
+struct sid {
+	uint64_t	ms;
+	uint64_t	seq;
+};
+
+#define SID_BUF 48
+
+struct redis_in {
+	struct daemon		*d;
+	enum redis_in_state	 state;
+	redisAsyncContext	*ac;
+
+	/* Fixed at start (a reload does not move the consumer). */
+	char			*address;
+	char			*host;
+	int			 port;
+	char			*unix_path;
+	char			*stream;
+	char			*group;
+	char			*consumer;
+	char			*dead;
+
+	struct sid		 last;		/* last applied */
+	struct sid		 covered;	/* by the last checkpoint */
+	uint64_t		 covered_gen;
+	uint64_t		 sweep_gen;
+	int			 ack_due;
+	struct sid		 pel_cursor;
+	struct sid		 claim_cursor;
+	struct sid		*poison;	/* over max_deliveries */
+	size_t			 npoison;
+
+	struct event		*retry_ev;
+	struct event		*watchdog_ev;
+	struct event		*fail_ev;	/* deferred drop */
+	double			 backoff;
+	double			 connect_since;
+	unsigned		 outstanding;	/* commands without answer */
+	double			 wait_since;
+	int			 reading;	/* blocking XREADGROUP out */
+	unsigned		 ops;		/* housekeeping commands out */
+	double			 next_claim;
+	double			 next_info;
+	int			 no_idle_filter;	/* Redis < 6.2 */
+	char			 last_str[SID_BUF];
+
+	int64_t			 lag;		/* -1: unknown */
+	int			 lag_capped;
+	int64_t			 pending;
+	int64_t			 pending_own;
+	uint64_t		 entries;	/* applied */
+	uint64_t		 skipped;	/* at or below the checkpoint */
+	uint64_t		 deleted;	/* pending, gone from stream */
+	uint64_t		 dead_count[DEAD_N];
+	uint64_t		 dead_failed;
+	uint64_t		 claimed;
+	uint64_t		 acked;
+	uint64_t		 reconnects;
+	uint64_t		 errors;
+};
+
+/* Context of one dead-letter move (XADD then XACK). */
+extern const char *const redis_in_dead_names[DEAD_N];
+
+/* redis_in.c */
+int		 redis_in_sid_parse(const char *, size_t, struct sid *);
+const char	*redis_in_sid_fmt(struct sid, char *);
+int		 redis_in_sid_cmp(struct sid, struct sid);
+struct sid	 redis_in_sid_next(struct sid);
+int		 redis_in_sid_reply(const redisReply *, struct sid *);
+void		 redis_in_fail(struct redis_in *, const char *cmd,
+		    const redisReply *);
+int		 redis_in_answer(struct redis_in *, const redisReply *);
+int		 redis_in_cmd(struct redis_in *, redisCallbackFn *, void *,
+		    const char *fmt, ...);
+int		 redis_in_argv(struct redis_in *, redisCallbackFn *, void *,
+		    int argc, const char **argv, const size_t *lens);
+void		 redis_in_op_done(struct redis_in *);
+int		 redis_in_entry(struct redis_in *, const redisReply *,
+		    int check_poison);
+void		 redis_in_next(struct redis_in *);
+
+/* redis_house.c */
+void		 redis_house_ack_ids(struct redis_in *, const char **ids,
+		    const size_t *lens, size_t n);
+void		 redis_house_ack_one(struct redis_in *, struct sid);
+void		 redis_house_dead_letter(struct redis_in *, struct sid,
+		    const redisReply *fields, enum redis_in_dead);
+void		 redis_house_sweep(struct redis_in *);
+void		 redis_house_claim(struct redis_in *);
+void		 redis_house_info(struct redis_in *);
+
+#endif
