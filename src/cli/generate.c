@@ -27,11 +27,6 @@ generate_usage(FILE *fp)
 	fprintf(fp, "usage: stopcock generate [options] > FILE\n"
 	    "  -c CONF              give every metric of CONF's guardrails a "
 	    "baseline\n"
-	    "  --scenario NAME      start from a preset: demo (Larder & Lane "
-	    "ramps\n"
-	    "                       checkout-v2 90/10 -> 50/50; its p99 "
-	    "checkout latency\n"
-	    "                       grows 15%%) or plain (the default)\n"
 	    "  --seed S             random seed (default 1)\n"
 	    "%s", scenario_help);
 }
@@ -41,7 +36,6 @@ cmd_generate(int argc, char **argv)
 {
 	static const struct option longopts[] = {
 		SCENARIO_LONGOPTS,
-		{ "scenario", required_argument, NULL, 's' },
 		{ "seed", required_argument, NULL, 'S' },
 		{ "config", required_argument, NULL, 'c' },
 		{ "help", no_argument, NULL, 'h' },
@@ -56,28 +50,16 @@ cmd_generate(int argc, char **argv)
 	static char obuf[GENERATE_BUF];
 	char *cause = NULL, line[PROTO_LINE_MAX + 2];
 	uint64_t seed = 1;
-	int ch, n, i, rc = SC_EX_OK;
+	int ch, n, rc = SC_EX_OK;
 
 	scenario_init(&s);
 	memset(&o, 0, sizeof o);
-	/* a preset first, so the other options refine it in any order */
-	for (i = 1; i + 1 < argc; i++)
-		if (strcmp(argv[i], "--scenario") == 0 &&
-		    strcmp(argv[i + 1], "demo") == 0)
-			scenario_demo(&s);
+	scenario_preset(&s, argc, argv);
 	optind = 1;
 	while ((ch = getopt_long(argc, argv, "c:h", longopts, NULL)) != -1) {
 		switch (ch) {
 		case 'c':
 			confpath = optarg;
-			break;
-		case 's':
-			if (strcmp(optarg, "demo") != 0 &&
-			    strcmp(optarg, "plain") != 0) {
-				fprintf(stderr, "stopcock generate: no scenario "
-				    "'%s' (demo or plain)\n", optarg);
-				return SC_EX_USAGE;
-			}
 			break;
 		case 'S':
 			if (parse_u64(optarg, UINT64_MAX, &seed) != 0) {

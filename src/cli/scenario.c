@@ -167,6 +167,17 @@ scenario_demo(struct scenario *s)
 	scenario_metric_add(s, "basket_gbp", SCEN_LOGNORMAL, 34, 0.45, 0);
 }
 
+void
+scenario_preset(struct scenario *s, int argc, char **argv)
+{
+	int i;
+
+	for (i = 1; i + 1 < argc; i++)
+		if (strcmp(argv[i], "--scenario") == 0 &&
+		    strcmp(argv[i + 1], "demo") == 0)
+			scenario_demo(s);
+}
+
 /* ---- option parsing ---- */
 
 int
@@ -735,6 +746,10 @@ scenario_finish(struct scenario *s, const struct conf *conf,
 }
 
 const char scenario_help[] =
+"  --scenario NAME      start from a preset: demo (Larder & Lane ramps\n"
+"                       checkout-v2 90/10 -> 50/50; the slowest 5% of\n"
+"                       checkouts get 15% slower, so p99 latency grows\n"
+"                       15%) or plain (the default)\n"
 "  --records N          records in the stream (plans included)\n"
 "  --experiments N      experiments sharing the traffic (ids ID-000001..)\n"
 "  --experiment ID      experiment id, or the prefix of the ids\n"
@@ -796,6 +811,14 @@ scenario_option(struct scenario *s, struct scenario_opts *o, int code,
 	case SOPT_START:
 		if (parse_double(arg, 0, 1e11, &s->start) != 0)
 			goto bad;
+		return 0;
+	case SOPT_SCENARIO:
+		/* applied by scenario_preset */
+		if (strcmp(arg, "demo") != 0 && strcmp(arg, "plain") != 0) {
+			xasprintf(cause, "no scenario '%s' (demo or plain)",
+			    arg);
+			return -1;
+		}
 		return 0;
 	case SOPT_RECORDS:
 		if (parse_u64(arg, UINT64_C(1) << 50, &u) != 0 || u == 0)

@@ -75,6 +75,9 @@ void	scenario_init(struct scenario *);
 int	scenario_from_conf(struct scenario *, const struct conf *);
 /* The invented demo: see scenario.c. */
 void	scenario_demo(struct scenario *);
+/* Apply a "--scenario NAME" preset found in argv before the other
+ * options, so they refine it in any order. */
+void	scenario_preset(struct scenario *, int argc, char **argv);
 
 /*
  * Option parsers shared by generate and simulate; 0 or -1 with *cause.
@@ -113,7 +116,7 @@ struct scenario_opts {
 enum {
 	SOPT_EXPERIMENTS = 0x100, SOPT_EXPERIMENT, SOPT_ARMS, SOPT_RAMP,
 	SOPT_BASELINE, SOPT_EFFECT, SOPT_EFFECT_ARM, SOPT_SRM_LOSS, SOPT_RATE,
-	SOPT_START, SOPT_RECORDS, SOPT_LAST
+	SOPT_START, SOPT_RECORDS, SOPT_SCENARIO, SOPT_LAST
 };
 #define SCENARIO_LONGOPTS \
 	{ "experiments", required_argument, NULL, SOPT_EXPERIMENTS }, \
@@ -126,7 +129,8 @@ enum {
 	{ "srm-loss", required_argument, NULL, SOPT_SRM_LOSS }, \
 	{ "rate", required_argument, NULL, SOPT_RATE }, \
 	{ "start", required_argument, NULL, SOPT_START }, \
-	{ "records", required_argument, NULL, SOPT_RECORDS }
+	{ "records", required_argument, NULL, SOPT_RECORDS }, \
+	{ "scenario", required_argument, NULL, SOPT_SCENARIO }
 /* Help lines for the shared options. */
 extern const char scenario_help[];
 int	scenario_option(struct scenario *, struct scenario_opts *, int code,

@@ -449,8 +449,13 @@ sim_fixed(struct sim *sim)
 		if (d > 0)
 			t->fixed_units = stats_fixed_n(d, va / share[0],
 			    vb / share[t->arm], 2 * t->level, sim->power);
-		else
+		else {
+			/* no harm beyond the margin: a harm verdict here
+			 * would be a false alarm (the truth is not 0, so
+			 * coverage stays unchecked) */
 			t->fixed_units = INFINITY;
+			t->effect = 0;
+		}
 	}
 	sim->srm_fixed_units = NAN;
 	if (sim->s.srm_loss > 0) {
@@ -816,7 +821,9 @@ sim_json(const struct sim *sim, double alpha_total)
 		json_object_set_new(o, "variant",
 		    json_string(sim->s.arms[sim->t[i].arm].name));
 		json_object_set_new(o, "level", json_real(sim->t[i].level));
-		if (sim->t[i].effect) {
+		if (m->effect != 0 && sim->t[i].arm == sim->s.effect_arm) {
+			/* the metric's effect; "false_alarm" above when it
+			 * stays inside the margin */
 			e = json_object();
 			json_object_set_new(e, "value", json_real(m->effect));
 			json_object_set_new(e, "relative",
@@ -1077,6 +1084,7 @@ cmd_simulate(int argc, char **argv)
 	memset(&o, 0, sizeof o);
 	scenario_init(&sim.s);
 	snprintf(sim.s.experiment, sizeof sim.s.experiment, "sim");
+	scenario_preset(&sim.s, argc, argv);
 	sim.s.records = 0;
 	sim.seed = 1;
 	sim.runs = 200;
