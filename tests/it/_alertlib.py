@@ -115,14 +115,6 @@ class Receiver:
         self.server.server_close()
 
 
-def free_port():
-    s = socket.socket()
-    s.bind(("127.0.0.1", 0))
-    port = s.getsockname()[1]
-    s.close()
-    return port
-
-
 class SyslogSocket:
     """A unix datagram socket that receives what syslog(3) sends."""
 
@@ -153,19 +145,28 @@ class SyslogSocket:
         self.sock.close()
 
 
-def harmful_records(exp, metric, n_per_arm, p_control, p_treatment, seed,
-                    weights=(50, 50), exposures=None, ts0=None):
-    """A plan, then per unit one expose and one count record (K of 1), arms
-    interleaved; the treatment's error proportion is clearly higher.
-    exposures=(a, b) overrides how many units of each arm are exposed
-    (to provoke a sample ratio mismatch)."""
+def unit_records(exp, metric, arms, seed, skew=None):
+    """A plan with equal weights for arms [(variant, units, error share)],
+    control first; then per unit one expose and one count record (K of 1),
+    arms shuffled together. skew={variant: units} first adds exposures
+    only, in those numbers, to provoke a sample ratio mismatch."""
     rng = random.Random(seed)
-    out = ["plan %s control=%d treatment=%d" % (exp, weights[0], weights[1])]
-    na, nb = exposures or (n_per_arm, n_per_arm)
-    arms = [("control", p_control)] * na + [("treatment", p_treatment)] * nb
-    rng.shuffle(arms)
-    for arm, p in arms:
+    out = ["plan %s %s" % (exp, " ".join("%s=50" % a[0] for a in arms))]
+    if skew:
+        pre = [v for v, n in skew.items() for _ in range(n)]
+        rng.shuffle(pre)
+        out += ["expose %s %s" % (exp, v) for v in pre]
+    units = [(v, p) for v, n, p in arms for _ in range(n)]
+    rng.shuffle(units)
+    for arm, p in units:
         out.append("expose %s %s" % (exp, arm))
         out.append("count %s %s %s %d 1" % (exp, arm, metric,
                                              1 if rng.random() < p else 0))
     return out
+
+
+def harmful_records(exp, metric, n_per_arm, p_control, p_treatment, seed):
+    """Two arms; the treatment's error share is clearly higher."""
+    return unit_records(exp, metric, [("control", n_per_arm, p_control),
+                                      ("treatment", n_per_arm, p_treatment)],
+                        seed)

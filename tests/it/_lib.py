@@ -361,7 +361,7 @@ class Daemon:
     def __init__(self, name, redis=None, guardrails="", extra="",
                  tcp=True, udp=True, unix=True, http=False,
                  daemon_keys=None, redis_keys=None, conf=None, start=True,
-                 env=None, args=("-d",), preexec_fn=None):
+                 env=None, args=("-d",), preexec_fn=None, wrap=()):
         self.name = name
         self.dir = tempfile.mkdtemp(prefix="stopcock-%s-" % name)
         self.state = os.path.join(self.dir, "state")
@@ -377,6 +377,9 @@ class Daemon:
         self.dead = "stopcock:%s:dead" % name
         self.env = env or {}
         self.preexec_fn = preexec_fn	# e.g. to set resource limits
+        # A command the daemon runs under (it must exec it in the same
+        # process, so the pid stays the daemon's): e.g. unshare -m ...
+        self.wrap = list(wrap)
         self.args = list(args)
         self.proc = None
         self.notices = []
@@ -445,7 +448,7 @@ class Daemon:
         self.log.write("=== start %s\n" % time.strftime("%H:%M:%S"))
         self.log.flush()
         self.proc = subprocess.Popen(
-            [STOPCOCKD] + self.args + ["-c", self.conf_path],
+            self.wrap + [STOPCOCKD] + self.args + ["-c", self.conf_path],
             stdin=subprocess.DEVNULL, stdout=self.log, stderr=self.log,
             env=env, preexec_fn=self.preexec_fn)
         if wait and not self.wait_notice("READY=1", timeout):
