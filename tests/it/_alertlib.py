@@ -13,6 +13,8 @@ import json
 import os
 import random
 import socket
+import ssl
+import subprocess
 import threading
 import time
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -53,7 +55,8 @@ class Receiver:
     """An HTTP receiver on a private loopback port. `script` is a list of
     status codes answered in turn; after it runs out, `default`."""
 
-    def __init__(self, secret=SECRET, script=(), default=200, port=0):
+    def __init__(self, secret=SECRET, script=(), default=200, port=0,
+                 tls=None):
         self.secret = secret
         self.script = list(script)
         self.default = default
@@ -92,6 +95,13 @@ class Receiver:
         self.server.daemon_threads = True
         self.port = self.server.server_address[1]
         self.url = "http://127.0.0.1:%d/hook" % self.port
+        if tls is not None:
+            # tls = (certfile, keyfile): HTTPS with that certificate.
+            ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
+            ctx.load_cert_chain(*tls)
+            self.server.socket = ctx.wrap_socket(self.server.socket,
+                                                 server_side=True)
+            self.url = "https://127.0.0.1:%d/hook" % self.port
         self.thread = threading.Thread(target=self.server.serve_forever,
                                        daemon=True)
         self.thread.start()
@@ -113,6 +123,81 @@ class Receiver:
     def close(self):
         self.server.shutdown()
         self.server.server_close()
+
+
+def unshare_ok():
+    """True when this process may make a private mount namespace."""
+    try:
+        return subprocess.run(["unshare", "-m", "true"],
+                              capture_output=True, timeout=10
+                              ).returncode == 0
+    except (OSError, subprocess.TimeoutExpired):
+        return False
+
+
+# Run as: sh WRAP DIR SYSLOG_SOCKET CA_BUNDLE cmd... inside unshare -m:
+# /dev is replaced by DIR (bind mounts of the usual device nodes plus a
+# "log" symlink to the test's socket) and, when given, the system CA
+# bundle by the test's. Only the daemon's namespace sees either.
+_WRAP = r"""set -e
+D=$1; S=$2; CA=$3; shift 3
+if [ -n "$S" ]; then
+	for n in null zero full random urandom; do
+		: > "$D/$n"
+		mount --bind "/dev/$n" "$D/$n"
+	done
+	ln -sf /proc/self/fd "$D/fd"
+	ln -sf "$S" "$D/log"
+	mount --rbind "$D" /dev
+fi
+if [ -n "$CA" ]; then
+	mount --bind "$CA" /etc/ssl/certs/ca-certificates.crt
+fi
+exec "$@"
+"""
+SYSTEM_CA = "/etc/ssl/certs/ca-certificates.crt"	# libcurl's bundle
+
+
+def namespace_wrap(d, syslog_socket="", ca_bundle=""):
+    """Set _lib.Daemon d to run in its own mount namespace (see _WRAP)."""
+    devdir = os.path.join(d.dir, "dev")
+    os.makedirs(devdir, exist_ok=True)
+    wrap = os.path.join(d.dir, "wrap.sh")
+    with open(wrap, "w") as f:
+        f.write(_WRAP)
+    d.wrap = ["unshare", "-m", "--propagation", "private", "sh", wrap,
+              devdir, syslog_socket, ca_bundle]
+
+
+def make_certs(directory):
+    """A test CA and a server certificate for 127.0.0.1 signed by it, plus
+    a self-signed certificate for 127.0.0.1 that no CA vouches for
+    (openssl command line). Returns paths in a dict."""
+    p = {k: os.path.join(directory, k) for k in (
+        "ca.pem", "ca.key", "srv.pem", "srv.key", "srv.csr", "ext.cnf",
+        "self.pem", "self.key")}
+
+    def run(*args):
+        subprocess.run(["openssl"] + list(args), check=True,
+                       capture_output=True, timeout=60)
+    ec = ["-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1",
+          "-nodes"]
+    run("req", "-x509", *ec, "-keyout", p["ca.key"], "-out", p["ca.pem"],
+        "-days", "2", "-subj", "/CN=stopcock-it-ca", "-addext",
+        "basicConstraints=critical,CA:TRUE", "-addext",
+        "keyUsage=critical,keyCertSign,cRLSign")
+    run("req", *ec, "-keyout", p["srv.key"], "-out", p["srv.csr"], "-subj",
+        "/CN=127.0.0.1")
+    with open(p["ext.cnf"], "w") as f:
+        f.write("subjectAltName=IP:127.0.0.1\nbasicConstraints=CA:FALSE\n"
+                "extendedKeyUsage=serverAuth\n")
+    run("x509", "-req", "-in", p["srv.csr"], "-CA", p["ca.pem"], "-CAkey",
+        p["ca.key"], "-CAcreateserial", "-out", p["srv.pem"], "-days", "2",
+        "-extfile", p["ext.cnf"])
+    run("req", "-x509", *ec, "-keyout", p["self.key"], "-out", p["self.pem"],
+        "-days", "2", "-subj", "/CN=127.0.0.1", "-addext",
+        "subjectAltName=IP:127.0.0.1")
+    return p
 
 
 class SyslogSocket:

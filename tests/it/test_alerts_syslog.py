@@ -24,14 +24,13 @@ import http.client
 import json
 import os
 import re
-import subprocess
 import sys
 import time
 import random
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _lib import Daemon, Tap, exposures  # noqa: E402
-from _alertlib import SyslogSocket  # noqa: E402
+from _alertlib import SyslogSocket, namespace_wrap, unshare_ok  # noqa
 
 TOKEN = "it-syslog-token-0123456789"
 EXP = "menu_v2"
@@ -69,18 +68,6 @@ facility = local3
 LOCAL3 = 19
 SEV = {"crit": 2, "err": 3, "warning": 4, "notice": 5}
 
-# Run as: sh WRAP DEVDIR SOCKET stopcockd ARGS... inside unshare -m.
-WRAP = r"""set -e
-D=$1; S=$2; shift 2
-for n in null zero full random urandom; do
-	: > "$D/$n"
-	mount --bind "/dev/$n" "$D/$n"
-done
-ln -sf /proc/self/fd "$D/fd"
-ln -sf "$S" "$D/log"
-mount --rbind "$D" /dev
-exec "$@"
-"""
 LINE_RE = re.compile(r"^<(\d+)>([A-Z][a-z]{2} [ \d]\d \d\d:\d\d:\d\d) "
                      r"([^\[\s]+)\[(\d+)\]: (.*)$", re.S)
 
@@ -127,8 +114,7 @@ def post(d, path, body):
 
 def main():
     tap = Tap()
-    if subprocess.run(["unshare", "-m", "true"], capture_output=True,
-                      timeout=10).returncode != 0:
+    if not unshare_ok():
         print("ok 1 # SKIP unshare -m not permitted here "
               "(needs root with CAP_SYS_ADMIN)")
         print("1..1")
@@ -136,14 +122,8 @@ def main():
     d = Daemon("alerts-syslog", guardrails=GUARDRAILS, extra=EXTRA,
                udp=False, unix=False, http=True, start=False,
                daemon_keys={"http_token": TOKEN})
-    devdir = os.path.join(d.dir, "dev")
-    os.mkdir(devdir)
-    wrap = os.path.join(d.dir, "wrap.sh")
-    with open(wrap, "w") as f:
-        f.write(WRAP)
     log = SyslogSocket(os.path.join(d.dir, "log.sock"))
-    d.wrap = ["unshare", "-m", "--propagation", "private", "sh", wrap,
-              devdir, log.path]
+    namespace_wrap(d, syslog_socket=log.path)
     lines = records(21, 3000)
     sent = exposures(lines)
     with d:
