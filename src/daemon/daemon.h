@@ -8,6 +8,8 @@
  *   ingest.c    one line from any source -> proto -> engine (ingest_*)
  *   listen.c    TCP, UDP and Unix stream listeners          (listen_*)
  *   redis_in.c  the Redis stream consumer (hiredis async)    (redis_in_*)
+ *   redis_house.c  its housekeeping: acks, dead letters, reclaiming,
+ *               lag (redis_house_*; shares redis_in_int.h)
  *   ckpt.c      checkpoint write/restore, atomic and checksummed (ckpt_*)
  *   alert.c     verdict findings -> alerts: identity, dedupe, syslog (alert_*)
  *   webhook.c   signed webhooks over libcurl multi, spooled (webhook_*)
@@ -189,14 +191,12 @@ void		 webhook_send(struct webhook *, const char *id, json_t *body);
 int		 webhook_post(struct webhook *, const char *receiver,
 		    const char *id, json_t *body);
 void		 webhook_metrics(struct webhook *, struct evbuffer *);
-json_t		*webhook_json(struct webhook *);	/* receivers, counters */
 
 /* pause.c */
 struct pause	*pause_new(struct daemon *, char **cause);
 void		 pause_free(struct pause *);
 void		 pause_finding(struct pause *, const struct finding *);
 void		 pause_metrics(struct pause *, struct evbuffer *);
-json_t		*pause_json(struct pause *);	/* counters, recent decisions */
 
 /* http.c */
 struct http	*http_new(struct daemon *, char **cause);
