@@ -191,14 +191,12 @@ void		 webhook_send(struct webhook *, const char *id, json_t *body);
 int		 webhook_post(struct webhook *, const char *receiver,
 		    const char *id, json_t *body);
 void		 webhook_metrics(struct webhook *, struct evbuffer *);
-json_t		*webhook_json(struct webhook *);	/* receivers, counters */
 
 /* pause.c */
 struct pause	*pause_new(struct daemon *, char **cause);
 void		 pause_free(struct pause *);
 void		 pause_finding(struct pause *, const struct finding *);
 void		 pause_metrics(struct pause *, struct evbuffer *);
-json_t		*pause_json(struct pause *);	/* counters, recent decisions */
 
 /* http.c */
 struct http	*http_new(struct daemon *, char **cause);

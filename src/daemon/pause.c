@@ -204,7 +204,9 @@ pause_audit(struct pause *p, const struct finding *f,
 	    "time", now, "experiment", f->experiment, "epoch",
 	    (json_int_t)f->epoch, "guardrail", f->guardrail, "variant",
 	    f->variant, "decision", pause_names[dec].decision, "reason",
-	    pause_names[dec].reason, "srm", pause_is_srm(f), "evidence",
+	    dec == PAUSE_PAUSED && pause_is_srm(f) ?
+	    "sample ratio mismatch (allow_srm)" : pause_names[dec].reason,
+	    "srm", pause_is_srm(f), "evidence",
 	    pause_evidence(p, f));
 	if (j == NULL || (text = json_dumps(j, JSON_COMPACT)) == NULL) {
 		json_decref(j);
@@ -808,24 +810,4 @@ pause_metrics(struct pause *p, struct evbuffer *b)
 	    (unsigned long long)p->redis_dropped, p->nqueue,
 	    p->state == REDIS_UP, (unsigned long long)p->http_queued,
 	    (unsigned long long)p->audit_errors);
-}
-
-json_t *
-pause_json(struct pause *p)
-{
-	json_t *o, *dec;
-	int i;
-
-	if (p == NULL)
-		return json_object();
-	dec = json_object();
-	for (i = 0; i < PAUSE_NDECISIONS; i++)
-		json_object_set_new(dec, i == PAUSE_PAUSED ? "paused" :
-		    i == PAUSE_DRY_RUN ? "dry_run" : pause_names[i].reason,
-		    json_integer((json_int_t)p->decisions[i]));
-	o = json_pack("{s:b, s:o, s:b, s:I, s:I}", "dry_run",
-	    p->d->conf->pause_dry_run, "decisions", dec, "redis_up",
-	    p->state == REDIS_UP, "redis_pending", (json_int_t)p->nqueue,
-	    "redis_errors", (json_int_t)p->redis_errors);
-	return o;
 }

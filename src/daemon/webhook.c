@@ -1038,25 +1038,3 @@ webhook_metrics(struct webhook *w, struct evbuffer *b)
 		}
 	}
 }
-
-json_t *
-webhook_json(struct webhook *w)
-{
-	struct receiver *r;
-	json_t *a = json_array();
-	int i;
-
-	if (w == NULL)
-		return a;
-	for (i = 0; i < w->nrcv; i++) {
-		r = w->rcv[i];
-		json_array_append_new(a, json_pack("{s:s, s:b, s:I, s:I, s:I, "
-		    "s:I, s:I, s:I}", "receiver", r->name, "signed", r->sign,
-		    "sent", (json_int_t)r->sent, "failed", (json_int_t)r->failed,
-		    "dropped", (json_int_t)r->dropped, "retries",
-		    (json_int_t)r->retries, "queued",
-		    (json_int_t)(r->nwaiting + r->ninflight), "failing",
-		    (json_int_t)r->failing));
-	}
-	return a;
-}

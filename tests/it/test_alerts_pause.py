@@ -14,9 +14,10 @@ at its default (a tenth of alpha), max_per_hour = 1. Fed in order:
               because SRM made the data untrustworthy; no Redis key.
   basket_b    harmful, but the hourly limit (1) is spent: refused.
 
-Then a second daemon with dry_run = yes on a harmful basket_dry: the audit
-log says dry_run, an alert says what would have been paused, and nothing
-reaches Redis or the pause URL.
+Then a second daemon with dry_run = yes and allow_srm = yes: on a harmful
+basket_dry the audit log says dry_run, an alert says what would have been
+paused, and nothing reaches Redis or the pause URL; on basket_dry_srm the
+SRM itself is the (dry-run) pause reason.
 
 Every audit line is parsed as JSON; the pause POST's signature is checked
 with Python's hmac/hashlib/base64 (_alertlib.verify), and the pause level
@@ -58,7 +59,9 @@ redis_key = it:paused:%%e
 redis_channel = it:pauses
 max_per_hour = 1
 dry_run = %s
-""" % (ops.url, SECRET, prcv.url, PAUSE_SECRET, "yes" if dry_run else "no")
+allow_srm = %s
+""" % (ops.url, SECRET, prcv.url, PAUSE_SECRET, "yes" if dry_run else "no",
+       "yes" if dry_run else "no")
 
 
 def audit(d):
@@ -211,6 +214,18 @@ def main():
             tap.eq(redis.cmd("EXISTS", "it:paused:basket_dry"), 0,
                    "dry run: no Redis pause key")
             tap.eq(messages(sub, 0.5), [], "dry run: nothing published")
+            # allow_srm = yes here: the SRM itself is a pause reason (dry
+            # run again), the guardrail's later pause is still refused.
+            d.send_tcp(unit_records("basket_dry_srm", "errors", [
+                ("control", 2500, 0.02), ("treatment", 2500, 0.09)], 15,
+                skew={"control": 120, "treatment": 280}))
+            ds = wait_for(lambda: (lambda x: x if len(x) >= 2 else None)(
+                [a for a in audit(d) if a["experiment"] ==
+                 "basket_dry_srm"]), 20) or []
+            tap.eq([(a["decision"], a["reason"], a["srm"]) for a in ds],
+                   [("dry_run", "dry run: would have paused", True),
+                    ("refused", "untrusted", False)],
+                   "allow_srm: SRM would pause; the guardrail is refused")
             tap.eq(len(prcv.snapshot()), 1, "dry run: no pause POST")
         sub.close()
     ops.close()
