@@ -273,8 +273,10 @@ alert_fields(const struct finding *f, const char *id, const char *what,
 		alert_num(&l, "rel_estimate", f->rel_estimate);
 		alert_num(&l, "rel_lower", f->rel_lower);
 		alert_num(&l, "rel_upper", f->rel_upper);
-	} else
+	} else {
 		alert_printf(&l, " verdict=srm");
+		alert_num(&l, "chi2_p", f->chi2_p);
+	}
 	alert_num(&l, "p", f->p);
 	alert_num(&l, "alpha", f->alpha);
 	alert_printf(&l, " family=%d untrusted=%s", f->family,
