@@ -137,6 +137,15 @@ install: all
 	sed 's|@SBINDIR@|$(PREFIX)/sbin|g' systemd/stopcockd.service > \
 	    $(DESTDIR)$(PREFIX)/lib/systemd/system/stopcockd.service
 	chmod 644 $(DESTDIR)$(PREFIX)/lib/systemd/system/stopcockd.service
+	install -d $(DESTDIR)$(PREFIX)/lib/sysusers.d
+	install -m 644 systemd/stopcock.sysusers \
+	    $(DESTDIR)$(PREFIX)/lib/sysusers.d/stopcock.conf
+	# on a live system: create the user and let it read the config
+	if [ -z "$(DESTDIR)" ] && [ "$$(id -u)" = 0 ] && \
+	    command -v systemd-sysusers >/dev/null; then \
+		systemd-sysusers $(PREFIX)/lib/sysusers.d/stopcock.conf && \
+		chgrp stopcock /etc/stopcock/stopcock.conf; \
+	fi
 
 clean:
 	rm -rf build

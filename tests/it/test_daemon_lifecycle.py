@@ -211,7 +211,7 @@ def systemd_unit(tap):
     unit = os.path.join(os.path.dirname(__file__), "..", "..", "systemd",
                         "stopcockd.service")
     text = open(unit).read()
-    for key in ("Type=notify", "WatchdogSec=", "DynamicUser=yes",
+    for key in ("Type=notify", "WatchdogSec=", "User=stopcock",
                 "ProtectSystem=strict", "StateDirectory=stopcock",
                 "RuntimeDirectory=stopcock", "NoNewPrivileges=yes",
                 "PrivateTmp=yes", "RestrictAddressFamilies=AF_INET AF_INET6 "
