@@ -128,6 +128,9 @@ enum ingest_status ingest_line_status(struct daemon *, enum source,
  * sample is a prefix of it for the log, may be NULL. */
 void		 ingest_reject(struct daemon *, enum source, enum proto_status,
 		    size_t len, const char *sample, size_t samplelen);
+/* Several lines in one block (a datagram, a Redis entry). */
+void		 ingest_lines(struct daemon *, enum source, const char *,
+		    size_t);
 void		 ingest_metrics(struct daemon *, struct evbuffer *);
 /* The counters as JSON (kept in the checkpoint) and back. */
 json_t		*ingest_json(struct daemon *);

@@ -149,6 +149,31 @@ ingest_line_status(struct daemon *d, enum source src, const char *line,
 	return INGEST_OK;
 }
 
+/*
+ * A block holding one or more lines (a datagram, a Redis entry's records
+ * field); a final newline is optional. Over-long lines cost only
+ * themselves.
+ */
+void
+ingest_lines(struct daemon *d, enum source src, const char *p, size_t len)
+{
+	const char *nl;
+	size_t n;
+
+	while (len > 0) {
+		nl = memchr(p, '\n', len);
+		n = nl != NULL ? (size_t)(nl - p) : len;
+		if (n > PROTO_LINE_MAX)
+			ingest_reject(d, src, PROTO_E_LONG, n, p, n);
+		else
+			ingest_line(d, src, p, n);
+		if (nl == NULL)
+			break;
+		p += n + 1;
+		len -= n + 1;
+	}
+}
+
 int
 ingest_line(struct daemon *d, enum source src, const char *line, size_t len)
 {

@@ -522,27 +522,6 @@ listen_unix(struct listen *l, const char *path, char **cause)
 	return 0;
 }
 
-/* One datagram: one or more lines; a final newline is optional. */
-static void
-listen_datagram(struct listen *l, const char *p, size_t len)
-{
-	const char *nl;
-	size_t n;
-
-	while (len > 0) {
-		nl = memchr(p, '\n', len);
-		n = nl != NULL ? (size_t)(nl - p) : len;
-		if (n > PROTO_LINE_MAX)
-			ingest_reject(l->d, SRC_UDP, PROTO_E_LONG, n, p, n);
-		else
-			ingest_line(l->d, SRC_UDP, p, n);
-		if (nl == NULL)
-			break;
-		p += n + 1;
-		len -= n + 1;
-	}
-}
-
 /* Read up to burst datagrams, fewer when the socket runs dry. */
 static void
 listen_udp_read(struct listen *l, int burst)
@@ -565,7 +544,7 @@ listen_udp_read(struct listen *l, int burst)
 			    l->udp_buf, 80);
 			continue;
 		}
-		listen_datagram(l, l->udp_buf, (size_t)n);
+		ingest_lines(l->d, SRC_UDP, l->udp_buf, (size_t)n);
 	}
 }
 

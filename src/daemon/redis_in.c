@@ -259,26 +259,6 @@ redis_in_op_done(struct redis_in *r)
 	redis_in_next(r);
 }
 
-static void
-redis_in_apply(struct redis_in *r, const char *p, size_t len)
-{
-	const char *nl;
-	size_t n;
-
-	while (len > 0) {
-		nl = memchr(p, '\n', len);
-		n = nl != NULL ? (size_t)(nl - p) : len;
-		if (n > PROTO_LINE_MAX)
-			ingest_reject(r->d, SRC_REDIS, PROTO_E_LONG, n, p, n);
-		else
-			ingest_line(r->d, SRC_REDIS, p, n);
-		if (nl == NULL)
-			break;
-		p += n + 1;
-		len -= n + 1;
-	}
-}
-
 static int
 redis_in_is_poison(struct redis_in *r, struct sid id)
 {
@@ -330,7 +310,7 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 		if (f->type == REDIS_REPLY_STRING && f->len == 7 &&
 		    memcmp(f->str, "records", 7) == 0 &&
 		    v->type == REDIS_REPLY_STRING) {
-			redis_in_apply(r, v->str, v->len);
+			ingest_lines(r->d, SRC_REDIS, v->str, v->len);
 			r->last = id;
 			r->entries++;
 			return 0;
