@@ -395,13 +395,16 @@ sim_fixed(struct sim *sim)
 		if (!t->effect)
 			continue;
 		g = &sim->conf->guardrails[t->g];
-		gen = scenario_gen_new(&sim->s, scenario_mix(sim->seed ^
-		    0x5eed0f1a2b3c4d5eULL));
 		memset(mm, 0, sizeof mm);
 		memset(rr, 0, sizeof rr);
 		sk[0] = sketch_new(sim->conf->sketch_accuracy, 1 << 16);
 		sk[1] = sketch_new(sim->conf->sketch_accuracy, 1 << 16);
-		for (arm = 0; arm < 2; arm++)
+		for (arm = 0; arm < 2; arm++) {
+			/* common random numbers: both arms draw the same
+			 * stream, so the pilot's effect is the model's, not
+			 * the model's plus sampling noise */
+			gen = scenario_gen_new(&sim->s, scenario_mix(sim->seed ^
+			    0x5eed0f1a2b3c4d5eULL));
 			for (j = 0; j < SIM_PILOT; j++) {
 				scenario_draw(gen, t->metric, arm, &x, &k, &n);
 				if (g->test == TEST_MEAN ||
@@ -411,7 +414,8 @@ sim_fixed(struct sim *sim)
 				} else
 					tally_ratio_add(&rr[arm], k, n);
 			}
-		scenario_gen_free(gen);
+			scenario_gen_free(gen);
+		}
 		s = g->harm == HARM_INCREASE ? 1 : -1;
 		if (g->test == TEST_MEAN) {
 			ma = mm[0].mean;
