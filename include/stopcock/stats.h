@@ -139,6 +139,9 @@ double	stats_quantile_log_e1(const struct stats_blocks *a,
 /* Two-proportion z-test; returns two-sided p, sets *z. */
 double	stats_ztest_prop(double x_a, double n_a, double x_b, double n_b,
 	    double *z);
+/* Two-sided Wald z-test of H0: effect = 0 for an estimate with variance
+ * var; returns p, sets *z. The naive analyst's test in the simulator. */
+double	stats_ztest(double est, double var, double *z);
 /* Per-arm n for a two-sided level-alpha z-test with the given power to
  * detect a difference delta with per-observation variances var_a, var_b
  * (equal allocation). */

@@ -182,18 +182,6 @@ sim_cover_cb(void *arg, const struct finding *f)
 		sim->cur->t[i].cov_miss = 1;
 }
 
-/*
- * Two-sided Wald z-test of est against 0 with variance V, the naive
- * analyst's one-look test; the normal tail comes from the stats module.
- */
-static double
-sim_wald_p(double est, double V)
-{
-	if (!(V > 0) || !isfinite(est))
-		return 1;
-	return 2 * stats_norm_sf(fabs(est) / sqrt(V));
-}
-
 /* Share of a sketch's mass strictly above x. */
 static double
 sim_above(const struct sketch *sk, double x, double *n)
@@ -237,7 +225,7 @@ sim_naive_look(struct sim *sim)
 			    (double)nv->m[mi][0].n +
 			    tally_moments_var(&nv->m[mi][b]) /
 			    (double)nv->m[mi][b].n;
-			p = sim_wald_p(est, V);
+			p = stats_ztest(est, V, NULL);
 			break;
 		case TEST_PROPORTION:
 		case TEST_RATE:
@@ -249,7 +237,7 @@ sim_naive_look(struct sim *sim)
 			    tally_ratio_rate(&nv->r[mi][0]);
 			V = tally_ratio_var(&nv->r[mi][0]) +
 			    tally_ratio_var(&nv->r[mi][b]);
-			p = sim_wald_p(est, V);
+			p = stats_ztest(est, V, NULL);
 			break;
 		case TEST_QUANTILE:
 			/* two-proportion z-test of the shares above the

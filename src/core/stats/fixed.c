@@ -43,6 +43,28 @@ stats_ztest_prop(double x_a, double n_a, double x_b, double n_b, double *z)
 }
 
 /*
+ * Wald test (e.g. Casella & Berger, Statistical Inference, 2nd ed. 2002,
+ * sec. 10.3.2): z = est / sqrt(var), two-sided P = 2(1 - Phi(|z|)).
+ * A variance that is not positive (no information yet) or a non-finite
+ * estimate gives z = 0, P = 1.
+ */
+double
+stats_ztest(double est, double var, double *z)
+{
+	double zz;
+
+	if (!(var > 0) || !isfinite(var) || !isfinite(est)) {
+		if (z != NULL)
+			*z = 0;
+		return 1;
+	}
+	zz = est / sqrt(var);
+	if (z != NULL)
+		*z = zz;
+	return erfc(fabs(zz) / M_SQRT2);
+}
+
+/*
  * Normal-approximation sample size per arm for a two-sided level-alpha
  * test with the given power (e.g. Chow, Shao & Wang, Sample Size
  * Calculations in Clinical Research, 2008, sec. 3.2):
