@@ -121,8 +121,13 @@ int		 engine_reconfigure(struct engine *, const struct conf *,
  */
 enum engine_reject engine_apply(struct engine *, const struct record *,
 		    double now, uint64_t event);
-/* Run costly tests (quantiles) and take chart history points. */
+/*
+ * Run costly tests (quantiles, rates) whose data grew enough since their
+ * last look, and take chart history points. engine_finish looks at every
+ * test regardless (end of a replay or simulation).
+ */
 void		 engine_tick(struct engine *, double now);
+void		 engine_finish(struct engine *, double now);
 const char	*engine_reason(enum engine_reject);
 
 /* Operator actions (from the HTTP API). 0 or -1 with *cause. */

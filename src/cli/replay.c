@@ -315,7 +315,7 @@ cmd_replay(int argc, char **argv)
 	r.tty = isatty(STDERR_FILENO);
 	engine_set_sink(r.engine, replay_sink, &r);
 	rc = replay_read(&r, in);
-	engine_tick(r.engine, r.now);
+	engine_finish(r.engine, r.now);
 	fflush(stdout);
 	replay_summary(&r);
 	if (rc != 0)

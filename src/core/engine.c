@@ -184,6 +184,7 @@ test_reset_epoch(struct test *t)
 	t->first_ts = NAN;
 	t->first_event = 0;
 	t->pause_sent = 0;
+	t->cs_n = t->ev_n = 0;
 	t->dirty = t->hist_dirty = 0;
 }
 
@@ -825,6 +826,14 @@ engine_tick(struct engine *eng, double now)
 		}
 	}
 	eng->now = now;
+}
+
+void
+engine_finish(struct engine *eng, double now)
+{
+	eng->force = 1;
+	engine_tick(eng, now);
+	eng->force = 0;
 }
 
 int

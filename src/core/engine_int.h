@@ -71,6 +71,8 @@ struct test {
 	double		 first_ts;
 	uint64_t	 first_event;
 	int		 pause_sent;	/* FINDING_PAUSE emitted this epoch */
+	double		 cs_n;		/* samples at the last costly CS */
+	double		 ev_n;		/* samples at the last costly look */
 	int		 dirty;		/* data changed since last evaluation */
 	int		 hist_dirty;
 	struct hist	 hist;
@@ -127,6 +129,7 @@ struct engine {
 	struct engine_counters counters;
 	double		 now;
 	uint64_t	 event;
+	int		 force;		/* engine_finish: every costly look */
 	/* Scratch for quantile tests, grown once, reused every tick. */
 	double		*scratch_v;
 	uint64_t	*scratch_c;

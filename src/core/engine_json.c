@@ -505,6 +505,8 @@ exp_save(const struct experiment *e, const struct conf *conf)
 		json_object_set_new(to, "pause_sent",
 		    json_boolean(t->pause_sent));
 		json_object_set_new(to, "dirty", json_boolean(t->dirty));
+		json_object_set_new(to, "cs_n", sreal(t->cs_n));
+		json_object_set_new(to, "ev_n", sreal(t->ev_n));
 		json_object_set_new(to, "hist", hist_save(&t->hist));
 		json_array_append_new(tests, to);
 	}
@@ -718,6 +720,10 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 		    json_object_get(v, "first_event"));
 		t->pause_sent = json_is_true(json_object_get(v, "pause_sent"));
 		t->dirty = json_is_true(json_object_get(v, "dirty"));
+		if (get_real(v, "cs_n", &t->cs_n) != 0 || isnan(t->cs_n))
+			t->cs_n = 0;
+		if (get_real(v, "ev_n", &t->ev_n) != 0 || isnan(t->ev_n))
+			t->ev_n = 0;
 		hist_load(&t->hist, json_object_get(v, "hist"), cap);
 	}
 	get_real(o, "last_ts", &e->last_ts);

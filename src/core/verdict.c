@@ -152,7 +152,7 @@ eval_normal(struct experiment *e, struct test *t,
 static int
 eval_rate(struct experiment *e, struct test *t,
     const struct conf_guardrail *g, const struct series *a,
-    const struct series *b, double level, double k, int costly)
+    const struct series *b, double level, double k, int want_cs)
 {
 	double ka = (double)a->r.k, ea = (double)a->r.n;
 	double kb = (double)b->r.k, eb = (double)b->r.n;
@@ -184,7 +184,7 @@ eval_rate(struct experiment *e, struct test *t,
 	 * so a harm alert's bound always lies beyond the margin (each side
 	 * at the test's level; together a two-sided 2 x level interval).
 	 */
-	if (costly &&
+	if (want_cs &&
 	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level, 0, &rlo) == 0 &&
 	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level, 1, &rhi) == 0) {
 		/* reported on the rate-difference scale at the current
@@ -194,6 +194,34 @@ eval_rate(struct experiment *e, struct test *t,
 		cs_intersect(t, t->lo, t->hi);
 	}
 	return 0;
+}
+
+/*
+ * The costly kinds (quantile, rate) are evaluated on the tick, and only
+ * once their data grew since the last look: the evidence when the sample
+ * count grew by 2% (at least 32 samples), the confidence sequences, which
+ * are bisections over many incomplete betas and serve the charts, the
+ * reported bounds and the safe verdict, when it grew by 25% (at least 64)
+ * and at every verdict. Looking on a subsequence keeps Ville's bound and
+ * the running intersection valid; what it costs is a verdict up to 2%
+ * (harm) or 25% (safe) of the samples late, in exchange for a tick whose
+ * cost does not grow with the tick rate. engine_finish looks at
+ * everything.
+ */
+#define VERDICT_EV_GROWTH 1.02
+#define VERDICT_EV_MIN_STEP 32
+#define VERDICT_CS_GROWTH 1.25
+#define VERDICT_CS_MIN_STEP 64
+
+static int
+grown(const struct engine *eng, double *last, double n, double growth,
+    double step)
+{
+	if (n <= *last || (!eng->force && n < *last * growth &&
+	    n < *last + step))
+		return 0;
+	*last = n;
+	return 1;
 }
 
 /* Fill the engine's scratch with a sketch's blocks, values scaled. */
@@ -239,7 +267,7 @@ scratch_reserve(struct engine *eng, size_t need)
 static int
 eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
     const struct conf_guardrail *g, const struct series *a,
-    const struct series *b, double level)
+    const struct series *b, double level, int want_cs)
 {
 	struct stats_blocks ba, bb, ca, cb;
 	double q = g->quantile, scale, shift, m;
@@ -269,6 +297,8 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
 		t->log_e = stats_quantile_log_e1(&bb, &ba, q, e->plan_units);
 	}
+	if (!want_cs)
+		return 0;
 	/* Per-arm CSs at level/2 each: the difference's bounds hold
 	 * jointly by a union bound. */
 	blocks_of(eng, a->sk, 0, 1, 0, &ca);
@@ -346,9 +376,9 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	const struct metric *m;
 	const struct series *a, *b;
 	struct finding f;
-	double level = verdict_level(e), s, p;
+	double level = verdict_level(e), s, p, n;
 	enum verdict old = t->verdict, nv;
-	int rc;
+	int rc, want_cs = 1;
 
 	if (t->metric < 0 || t->arm <= 0)
 		return;
@@ -365,15 +395,25 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	case TEST_RATE:
 		/* an incomplete beta per record is too dear for the hot
 		 * path; a subsequence of looks keeps Ville's bound */
-		if (!costly)
+		n = (double)(a->r.records + b->r.records);
+		if (!costly || !grown(eng, &t->ev_n, n, VERDICT_EV_GROWTH,
+		    VERDICT_EV_MIN_STEP))
 			return;
+		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
+		    VERDICT_CS_MIN_STEP);
 		rc = eval_rate(e, t, g, a, b, level, rate_concentration(eng),
-		    costly);
+		    want_cs);
 		break;
 	case TEST_QUANTILE:
-		if (!costly)
+		if (!costly || a->sk == NULL || b->sk == NULL)
 			return;
-		rc = eval_quantile(eng, e, t, g, a, b, level);
+		n = (double)(sketch_count(a->sk) + sketch_count(b->sk));
+		if (!grown(eng, &t->ev_n, n, VERDICT_EV_GROWTH,
+		    VERDICT_EV_MIN_STEP))
+			return;
+		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
+		    VERDICT_CS_MIN_STEP);
+		rc = eval_quantile(eng, e, t, g, a, b, level, want_cs);
 		break;
 	default:
 		return;
@@ -398,8 +438,15 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 			nv = VERDICT_SAFE;
 	}
 	if (nv != old) {
+		/* an alert carries fresh bounds, whatever the schedule */
+		if (!want_cs && g->test == TEST_QUANTILE)
+			(void)eval_quantile(eng, e, t, g, a, b, level, 1);
+		else if (!want_cs && g->test == TEST_RATE)
+			(void)eval_rate(e, t, g, a, b, level,
+			    rate_concentration(eng), 1);
 		if (nv == VERDICT_HARM && g->test == TEST_QUANTILE)
 			quantile_harm_bound(eng, e, t, g, a, b, level);
+		set_relative(t);
 		t->verdict = nv;
 		t->first_ts = eng->now;
 		t->first_event = eng->event;
