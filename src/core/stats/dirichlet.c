@@ -115,8 +115,24 @@ stats_dm_update(int K, double *a, const double *x, const double *theta0)
 	long double inc;
 	int i;
 
+	int j = -1;
+	long double A = 0;
+
 	if (!dir_valid(K, x, theta0))
 		return NAN;
+	/* One unit in arm j, the common case of a per-unit stream:
+	 * log BF += log(a_j / A) - log theta0_j (METHODS.md sec. 3). */
+	for (i = 0; i < K; i++) {
+		A += a[i];
+		if (x[i] == 0)
+			continue;
+		j = j == -1 && x[i] == 1 ? i : -2;
+	}
+	if (j >= 0 && a[j] > 0) {
+		inc = logl(a[j] / A) - logl(theta0[j]);
+		a[j] += 1;
+		return (double)inc;
+	}
 	inc = dir_update_l(K, a, x, theta0);
 	if (isnan(inc))
 		return NAN;
