@@ -1,0 +1,146 @@
+"""Daemon ingest rates for `make bench` (called by bench/run.sh).
+
+    /usr/bin/python3 bench/ingest.py BUILD RECORDS_FILE CONF REDIS_RECORDS
+
+Prints one JSON object:
+  tcp:   stopcockd reading RECORDS_FILE from one TCP connection on
+         loopback (the client uses sendfile, so it is not the bottleneck);
+         the clock runs from the first byte sent until the daemon's
+         /metrics counts every line.
+  redis: redis-benchmark's XADD rate on the same redis-server, with
+         entries of BATCH records each (so records/s = entries/s x BATCH);
+         then the first REDIS_RECORDS records preloaded as such entries
+         into the stream behind a consumer group, and stopcockd started
+         on it: the clock runs from the daemon's start until /metrics
+         counts every line.
+Everything runs on private loopback ports in temporary directories
+(tests/it/_lib.py starts and stops redis-server and stopcockd).
+"""
+import csv
+import io
+import json
+import os
+import re
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+BUILD, RECORDS, CONF = sys.argv[1], sys.argv[2], sys.argv[3]
+REDIS_RECORDS = int(sys.argv[4])
+os.environ["STOPCOCK_BUILD"] = BUILD
+os.environ.setdefault("STOPCOCK_TEST_OUT", os.path.join(BUILD, "bench-out"))
+sys.path.insert(0, os.path.join(ROOT, "tests", "it"))
+from _lib import Daemon, Redis, _Resp  # noqa: E402
+
+BATCH = 100		# records per Redis stream entry
+TIMEOUT = 600
+
+with open(CONF) as f:
+    base_conf = f.read()
+
+
+def metric(port, name, source):
+    body = urllib.request.urlopen("http://127.0.0.1:%d/metrics" % port,
+                                  timeout=10).read().decode()
+    m = re.search(r'^%s\{source="%s"\} (\d+)' % (name, source), body, re.M)
+    return int(m.group(1)) if m else 0
+
+
+def wait_lines(d, source, want, t0):
+    """Seconds from t0 until the daemon has read want lines."""
+    deadline = time.time() + TIMEOUT
+    while time.time() < deadline:
+        if d.proc.poll() is not None:
+            raise RuntimeError("stopcockd exited; see %s" % d.logpath)
+        if metric(d.http, "stopcock_lines_total", source) >= want:
+            return time.time() - t0
+        time.sleep(0.02)
+    raise RuntimeError("stopcockd did not read %d lines in %ds"
+                       % (want, TIMEOUT))
+
+
+def daemon_conf(d, extra):
+    return (base_conf + "\n[daemon]\nhttp = 127.0.0.1:%d\nstate = %s\n"
+            "tick = 1s\ncheckpoint_every = 5s\n%s" % (d.http, d.state, extra))
+
+
+out = {}
+
+# --- TCP -------------------------------------------------------------------
+lines = sum(1 for _ in open(RECORDS, "rb"))
+d = Daemon("bench-tcp", tcp=True, udp=False, unix=False, http=True,
+           conf="", start=False, args=())
+d.write_conf(daemon_conf(d, "tcp = 127.0.0.1:%d\n" % d.tcp))
+d.start()
+try:
+    s = socket.create_connection(("127.0.0.1", d.tcp))
+    t0 = time.time()
+    with open(RECORDS, "rb") as f:
+        s.sendfile(f)
+    s.shutdown(socket.SHUT_WR)
+    secs = wait_lines(d, "tcp", lines, t0)
+    applied = metric(d.http, "stopcock_records_total", "tcp")
+    s.close()
+finally:
+    d.stop()
+out["tcp"] = {"lines": lines, "records_applied": applied,
+              "seconds": round(secs, 3),
+              "records_per_second": round(lines / secs)}
+
+# --- Redis -----------------------------------------------------------------
+with open(RECORDS, "rb") as f:
+    head = [next(f).rstrip(b"\n") for _ in range(REDIS_RECORDS)]
+entries = [b"\n".join(head[i:i + BATCH]) for i in range(0, len(head), BATCH)]
+with Redis("bench") as r:
+    # redis-server's own rate for entries like ours (several clients,
+    # pipelined, the best case for the server)
+    n_bench = 50000
+    p = subprocess.run(["redis-benchmark", "-h", "127.0.0.1", "-p",
+                        str(r.port), "-n", str(n_bench), "-c", "8", "-P",
+                        "16", "--csv", "XADD", "bench:xadd", "*", "records",
+                        entries[1].decode()], capture_output=True,
+                       timeout=TIMEOUT)
+    rows = list(csv.reader(io.StringIO(p.stdout.decode())))
+    xadd_rps = float(rows[-1][1])
+    r.cmd("DEL", "bench:xadd")
+
+    d = Daemon("bench-redis", redis=r, tcp=False, udp=False, unix=False,
+               http=True, conf="", start=False, args=())
+    d.write_conf(daemon_conf(d, "\n[redis]\naddress = 127.0.0.1:%d\n"
+                             "stream = %s\ngroup = %s\nconsumer = %s\n"
+                             "dead_letter = %s\nblock = 200ms\n"
+                             % (r.port, d.stream, d.group, d.consumer,
+                                d.dead)))
+    # preload behind a consumer group created at the start of the stream,
+    # so the daemon finds the whole backlog waiting
+    r.cmd("XGROUP", "CREATE", d.stream, d.group, "0", "MKSTREAM")
+    conn = _Resp(r.port, timeout=60)
+    for i in range(0, len(entries), 500):
+        chunk = entries[i:i + 500]
+        buf = []
+        for e in chunk:
+            buf.append(b"*5\r\n$4\r\nXADD\r\n$%d\r\n%s\r\n$1\r\n*\r\n"
+                       b"$7\r\nrecords\r\n$%d\r\n%s\r\n"
+                       % (len(d.stream), d.stream.encode(), len(e), e))
+        conn.sock.sendall(b"".join(buf))
+        for _ in chunk:
+            conn.reply()
+    conn.close()
+    t0 = time.time()
+    d.start()
+    try:
+        secs = wait_lines(d, "redis", len(head), t0)
+        applied = metric(d.http, "stopcock_records_total", "redis")
+    finally:
+        d.stop()
+out["redis"] = {"records": len(head), "records_per_entry": BATCH,
+                "entries": len(entries), "records_applied": applied,
+                "seconds": round(secs, 3),
+                "records_per_second": round(len(head) / secs),
+                "redis_xadd_entries_per_second": xadd_rps,
+                "redis_xadd_records_per_second": round(xadd_rps * BATCH),
+                "ratio": round(len(head) / secs / (xadd_rps * BATCH), 3)}
+print(json.dumps(out))
