@@ -68,6 +68,7 @@ struct conf {
 	double		sketch_accuracy;
 	uint32_t	sketch_buckets;
 	uint32_t	history_points;	/* chart points kept per test */
+	uint32_t	tick_budget;	/* costly looks per tick, 0: no limit */
 	/* [defaults]: caps (hostile cardinality) */
 	uint32_t	max_experiments;
 	uint32_t	max_variants;

@@ -61,8 +61,7 @@ const struct conf_option conf_options[] = {
 	  "10000", NULL, "planned units per arm; tunes every test's mixture" },
 	{ S_DEFAULTS, "rate_concentration", T_DOUBLE, C(rate_concentration),
 	  0, 1e12, F_OPEN_MIN | F_ZERO_OK, "0", NULL,
-	  "mixture concentration of rate tests; 0 derives it from "
-	  "plan_units" },
+	  "mixture concentration of rate tests; 0 uses 100" },
 	{ S_DEFAULTS, "sketch_accuracy", T_DOUBLE, C(sketch_accuracy),
 	  0.0001, 0.5, 0, "0.01", NULL,
 	  "relative accuracy of the quantile sketches" },
@@ -70,6 +69,9 @@ const struct conf_option conf_options[] = {
 	  "512", NULL, "bucket cap per quantile sketch (bounds memory)" },
 	{ S_DEFAULTS, "history_points", T_U32, C(history_points), 8, 2000, 0,
 	  "120", NULL, "chart points kept per test" },
+	{ S_DEFAULTS, "tick_budget", T_U32, C(tick_budget), 0, 100000000,
+	  F_ZERO_OK, "500", NULL, "costly test looks per tick, taken in turn "
+	  "across experiments (bounds a tick's time); 0: no limit" },
 	{ S_DEFAULTS, "max_experiments", T_U32, C(max_experiments), 1, 1e6, 0,
 	  "10000", NULL, "experiments tracked at once; records beyond are "
 	  "refused and counted" },

@@ -791,38 +791,72 @@ done:
 	return rc;
 }
 
+/* Costly tests and chart points of one experiment; returns the number
+ * of costly looks taken. */
+static uint32_t
+tick_experiment(struct engine *eng, struct experiment *e, double now)
+{
+	struct test *t;
+	uint32_t looks = 0, cap = eng->conf->history_points;
+	enum conf_test kind;
+	int j;
+
+	/*
+	 * Evidence is stamped with the time of the latest record it
+	 * reflects, not the tick's clock, so a backlog replayed late charts
+	 * (and fires) at the time the data describe.
+	 */
+	eng->now = e->last_ts > 0 ? e->last_ts : now;
+	for (j = 0; j < e->ntests; j++) {
+		t = &e->tests[j];
+		kind = eng->conf->guardrails[t->g].test;
+		if (t->dirty) {
+			/* mean and proportion were evaluated on apply */
+			if (kind == TEST_QUANTILE || kind == TEST_RATE) {
+				verdict_evaluate(eng, e, t, 1);
+				looks++;
+			}
+			t->dirty = 0;
+		}
+		if (t->hist_dirty) {
+			hist_offer(&t->hist, cap, eng->now, t->est, t->cs_lo,
+			    t->cs_hi, stats_p_from_log_e(t->max_log_e));
+			t->hist_dirty = 0;
+		}
+	}
+	if (e->srm_dirty) {
+		hist_offer(&e->srm_hist, cap, eng->now, e->srm_log_e,
+		    log(1 / e->srm_alpha), 0,
+		    stats_p_from_log_e(e->srm_max_log_e));
+		e->srm_dirty = 0;
+	}
+	return looks;
+}
+
+/*
+ * One tick. Experiments are visited in turn from where the previous tick
+ * stopped; once tick_budget costly looks were taken the tick ends, so its
+ * cost stays bounded however many experiments are busy. Deferred tests
+ * keep their dirty mark and are looked at on a later tick; looking on a
+ * subsequence keeps every guarantee.
+ */
 void
 engine_tick(struct engine *eng, double now)
 {
-	struct experiment *e;
-	struct test *t;
-	uint32_t i, cap = eng->conf->history_points;
-	int j;
+	uint32_t i, k, looks = 0, budget = eng->conf->tick_budget;
 
-	for (i = 0; i < eng->nexps; i++) {
-		e = eng->exps[i];
-		/*
-		 * Evidence is stamped with the time of the latest record it
-		 * reflects, not the tick's clock, so a backlog replayed late
-		 * charts (and fires) at the time the data describe.
-		 */
-		eng->now = e->last_ts > 0 ? e->last_ts : now;
-		for (j = 0; j < e->ntests; j++) {
-			t = &e->tests[j];
-			if (t->dirty)
-				verdict_evaluate(eng, e, t, 1);
-			if (t->hist_dirty) {
-				hist_offer(&t->hist, cap, eng->now, t->est,
-				    t->cs_lo, t->cs_hi,
-				    stats_p_from_log_e(t->max_log_e));
-				t->hist_dirty = 0;
-			}
-		}
-		if (e->srm_dirty) {
-			hist_offer(&e->srm_hist, cap, eng->now, e->srm_log_e,
-			    log(1 / e->srm_alpha), 0,
-			    stats_p_from_log_e(e->srm_max_log_e));
-			e->srm_dirty = 0;
+	if (eng->nexps == 0) {
+		eng->now = now;
+		return;
+	}
+	if (eng->cursor >= eng->nexps)
+		eng->cursor = 0;
+	for (k = 0; k < eng->nexps; k++) {
+		i = (eng->cursor + k) % eng->nexps;
+		looks += tick_experiment(eng, eng->exps[i], now);
+		if (!eng->force && budget > 0 && looks >= budget) {
+			eng->cursor = (i + 1) % eng->nexps;
+			break;
 		}
 	}
 	eng->now = now;

@@ -148,6 +148,7 @@ check_defaults(const struct conf *c)
 	assert_true(c->sketch_accuracy == 0.01);
 	assert_int_equal(c->sketch_buckets, 512);
 	assert_int_equal(c->history_points, 120);
+	assert_int_equal(c->tick_budget, 500);
 	assert_int_equal(c->max_experiments, 10000);
 	assert_int_equal(c->max_variants, 8);
 	assert_int_equal(c->max_metrics, 16);
