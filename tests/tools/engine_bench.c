@@ -213,7 +213,7 @@ main(int argc, char **argv)
 	    " \"rss_bytes_per_series\": %.1f, \"engine_bytes\": %zu,"
 	    " \"engine_bytes_per_series\": %.1f,"
 	    " \"tick_all_dirty_ms\": %.3f, \"tick_idle_ms\": %.3f,"
-	    " \"tick_forced_ms\": %.3f,"
+	    " \"tick_forced_ms\": %.3f, \"tick_budget\": %u,"
 	    " \"touched_metrics\": %zu}\n",
 	    (unsigned long long)records, (unsigned long long)bad, apply_s,
 	    c.experiments, (unsigned long long)c.series,
@@ -221,7 +221,7 @@ main(int argc, char **argv)
 	    c.series ? (double)(rss1 - rss0) * 1024 / (double)c.series : NAN,
 	    c.bytes, c.series ? (double)c.bytes / (double)c.series : NAN,
 	    full[BENCH_TICKS / 2] * 1e3, idle[BENCH_TICKS / 2] * 1e3,
-	    forced[BENCH_TICKS / 2] * 1e3, b.n);
+	    forced[BENCH_TICKS / 2] * 1e3, conf->tick_budget, b.n);
 	free(b.t);
 	engine_free(eng);
 	conf_free(conf);
