@@ -180,13 +180,16 @@ eval_rate(struct experiment *e, struct test *t,
 	else
 		t->log_e = stats_rate_log_bf(kb, ka, 1 - th0, k, 1);
 	/*
-	 * Bounds from inverting the same one-sided factors the verdict uses,
-	 * so a harm alert's bound always lies beyond the margin (each side
-	 * at the test's level; together a two-sided 2 x level interval).
+	 * Bounds from inverting the one-sided factors, each side at half the
+	 * level so the pair is a two-sided confidence sequence at the level.
+	 * At a harm verdict rate_harm_bound tightens the harmful side to the
+	 * verdict's own (one-sided, full-level) bound.
 	 */
 	if (want_cs &&
-	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level, 0, &rlo) == 0 &&
-	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level, 1, &rhi) == 0) {
+	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level / 2, 0,
+	    &rlo) == 0 &&
+	    stats_rate_ratio_bound(ka, ea, kb, eb, k, level / 2, 1,
+	    &rhi) == 0) {
 		/* reported on the rate-difference scale at the current
 		 * control rate; the ratio itself is rel + 1 */
 		t->lo = (rlo - 1) * ra;
@@ -359,6 +362,30 @@ quantile_harm_bound(struct engine *eng, struct experiment *e, struct test *t,
 	set_relative(t);
 }
 
+/*
+ * At a rate harm verdict: the bound on the harmful side from the same
+ * one-sided test at the same level, so the alert's bound lies beyond the
+ * margin exactly when the verdict does.
+ */
+static void
+rate_harm_bound(struct test *t, const struct conf_guardrail *g,
+    const struct series *a, const struct series *b, double level, double k)
+{
+	double ka = (double)a->r.k, ea = (double)a->r.n;
+	double kb = (double)b->r.k, eb = (double)b->r.n, r, ra;
+
+	if (!(ea > 0) || !(eb > 0) || !(ka > 0))
+		return;
+	ra = ka / ea;
+	if (stats_rate_ratio_bound(ka, ea, kb, eb, k, level,
+	    g->harm == HARM_DECREASE, &r) != 0 || !isfinite(r))
+		return;
+	if (g->harm == HARM_INCREASE && (r - 1) * ra > t->cs_lo)
+		t->cs_lo = (r - 1) * ra;
+	else if (g->harm == HARM_DECREASE && (r - 1) * ra < t->cs_hi)
+		t->cs_hi = (r - 1) * ra;
+}
+
 static double
 rate_concentration(const struct engine *eng)
 {
@@ -446,6 +473,9 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 			    rate_concentration(eng), 1);
 		if (nv == VERDICT_HARM && g->test == TEST_QUANTILE)
 			quantile_harm_bound(eng, e, t, g, a, b, level);
+		if (nv == VERDICT_HARM && g->test == TEST_RATE)
+			rate_harm_bound(t, g, a, b, level,
+			    rate_concentration(eng));
 		set_relative(t);
 		t->verdict = nv;
 		t->first_ts = eng->now;
