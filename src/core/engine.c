@@ -386,7 +386,7 @@ exp_new_epoch(struct engine *eng, struct experiment *e,
 	exp_srm_start(e);
 	exp_push_epoch(e, now);
 	exp_ensure_tests(eng, e);
-	engine_fill_srm(eng, e, FINDING_EPOCH, &f);
+	finding_fill_srm(eng, e, FINDING_EPOCH, &f);
 	engine_emit(eng, &f);
 }
 
@@ -432,129 +432,6 @@ engine_emit(struct engine *eng, const struct finding *f)
 	eng->counters.findings++;
 	if (eng->sink != NULL)
 		eng->sink(eng->sink_arg, f);
-}
-
-static void
-fill_arms(const struct engine *eng, const struct experiment *e,
-    const struct test *t, const struct metric *m, struct finding *f)
-{
-	const struct conf_guardrail *g = t ? &eng->conf->guardrails[t->g] :
-	    NULL;
-	const struct series *s;
-	struct finding_arm *fa;
-	int i;
-
-	f->narms = e->narms;
-	for (i = 0; i < e->narms; i++) {
-		fa = &f->arms[i];
-		fa->variant = e->arms[i].name;
-		fa->weight = e->arms[i].weight;
-		fa->exposures = e->exposures[i];
-		fa->n = fa->k = fa->value = NAN;
-		fa->lower = fa->upper = NAN;
-		if (m == NULL || m->arm == NULL)
-			continue;
-		s = &m->arm[i];
-		if (m->kind == METRIC_OBSERVE) {
-			fa->n = (double)s->m.n;
-			fa->value = s->m.n ? s->m.mean : NAN;
-			if (g && g->test == TEST_QUANTILE && s->sk)
-				fa->value = sketch_quantile(s->sk, g->quantile);
-		} else if (m->kind == METRIC_COUNT) {
-			fa->n = (double)s->r.n;
-			fa->k = (double)s->r.k;
-			fa->value = tally_ratio_rate(&s->r);
-		}
-		if (g && g->test == TEST_QUANTILE && t) {
-			if (i == 0) {
-				fa->lower = t->ctl_lo;
-				fa->upper = t->ctl_hi;
-			} else if (i == t->arm) {
-				fa->lower = t->trt_lo;
-				fa->upper = t->trt_hi;
-			}
-		}
-	}
-}
-
-void
-engine_fill_finding(const struct engine *eng, const struct experiment *e,
-    const struct test *t, enum finding_kind kind, struct finding *f)
-{
-	const struct conf_guardrail *g = &eng->conf->guardrails[t->g];
-
-	memset(f, 0, sizeof *f);
-	f->kind = kind;
-	f->experiment = e->id;
-	f->epoch = e->epoch;
-	f->guardrail = g->name;
-	f->metric = g->metric;
-	f->test = conf_test_name(g->test);
-	f->quantile = g->test == TEST_QUANTILE ? g->quantile : 0;
-	f->variant = t->variant;
-	f->control = e->arms[0].name;
-	f->harm = g->harm == HARM_INCREASE ? "increase" : "decrease";
-	f->verdict = t->verdict;
-	f->previous = t->verdict;
-	f->action_pause = g->action == ACTION_PAUSE;
-	f->p = stats_p_from_log_e(t->max_log_e);
-	f->log_e = t->closed_log_e + t->log_e;
-	f->alpha = verdict_level(e);
-	f->alpha_total = e->alpha;
-	f->family = e->family;
-	f->estimate = t->est;
-	f->lower = t->cs_lo;
-	f->upper = t->cs_hi;
-	f->rel_estimate = t->rel;
-	f->rel_lower = t->rel_lo;
-	f->rel_upper = t->rel_hi;
-	f->margin = t->margin_abs;
-	f->chi2_p = NAN;
-	f->sketch_accuracy = g->test == TEST_QUANTILE ?
-	    eng->conf->sketch_accuracy : NAN;
-	f->untrusted = e->srm_fired;
-	f->ts = eng->now;
-	f->first_ts = t->first_ts;
-	f->event = t->first_event ? t->first_event : eng->event;
-	fill_arms(eng, e, t, t->metric >= 0 ? &e->metrics[t->metric] : NULL,
-	    f);
-}
-
-void
-engine_fill_srm(const struct engine *eng, const struct experiment *e,
-    enum finding_kind kind, struct finding *f)
-{
-	double counts[PROTO_PLAN_MAX], x2;
-	int i;
-
-	memset(f, 0, sizeof *f);
-	f->kind = kind;
-	f->experiment = e->id;
-	f->epoch = e->epoch;
-	f->guardrail = "srm";
-	f->test = "srm";
-	f->control = e->arms[0].name;
-	f->harm = "mismatch";
-	f->verdict = e->srm_fired ? VERDICT_HARM : VERDICT_UNDECIDED;
-	f->previous = VERDICT_UNDECIDED;
-	f->p = stats_p_from_log_e(e->srm_max_log_e);
-	f->log_e = e->srm_log_e;
-	f->alpha = e->srm_alpha;
-	f->alpha_total = e->srm_alpha;
-	f->family = 1;
-	f->estimate = f->lower = f->upper = NAN;
-	f->rel_estimate = f->rel_lower = f->rel_upper = NAN;
-	f->margin = NAN;
-	f->sketch_accuracy = NAN;
-	for (i = 0; i < e->narms; i++)
-		counts[i] = (double)e->exposures[i];
-	/* The classic chi-square, shown as a one-look figure only. */
-	f->chi2_p = stats_srm_chi2(e->narms, counts, e->theta0, &x2);
-	f->untrusted = e->srm_fired;
-	f->ts = eng->now;
-	f->first_ts = e->srm_first_ts;
-	f->event = e->srm_first_event ? e->srm_first_event : eng->event;
-	fill_arms(eng, e, NULL, NULL, f);
 }
 
 /* ---- the engine ---- */
@@ -983,12 +860,12 @@ foreach_exp(const struct engine *eng, const struct experiment *e,
 	struct finding f;
 	int j;
 
-	engine_fill_srm(eng, e, FINDING_SRM, &f);
+	finding_fill_srm(eng, e, FINDING_SRM, &f);
 	cb(arg, &f);
 	for (j = 0; j < e->ntests; j++) {
 		if (e->tests[j].arm <= 0)
 			continue;
-		engine_fill_finding(eng, e, &e->tests[j], FINDING_VERDICT, &f);
+		finding_fill(eng, e, &e->tests[j], FINDING_VERDICT, &f);
 		cb(arg, &f);
 	}
 }

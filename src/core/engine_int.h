@@ -141,10 +141,11 @@ struct engine {
 struct experiment *engine_exp_new(struct engine *, const char *id,
 		    const struct proto_arm *, int narms, double now);
 void		 engine_exp_free(struct experiment *);
-void		 engine_fill_finding(const struct engine *,
+json_t		*finding_num(double);
+void		 finding_fill(const struct engine *,
 		    const struct experiment *, const struct test *,
 		    enum finding_kind, struct finding *);
-void		 engine_fill_srm(const struct engine *,
+void		 finding_fill_srm(const struct engine *,
 		    const struct experiment *, enum finding_kind,
 		    struct finding *);
 void		 engine_emit(struct engine *, const struct finding *);

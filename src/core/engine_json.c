@@ -22,97 +22,6 @@
 
 /* ---- views ---- */
 
-static json_t *
-jnum(double x)
-{
-	return isfinite(x) ? json_real(x) : json_null();
-}
-
-static const char *
-finding_kind_name(enum finding_kind k)
-{
-	switch (k) {
-	case FINDING_VERDICT:
-		return "verdict";
-	case FINDING_SRM:
-		return "srm";
-	case FINDING_UNTRUSTED:
-		return "untrusted";
-	case FINDING_PAUSE:
-		return "pause";
-	case FINDING_EPOCH:
-		return "epoch";
-	}
-	return "unknown";
-}
-
-static json_t *
-arms_json(const struct finding *f)
-{
-	json_t *a = json_array(), *o;
-	int i;
-
-	for (i = 0; i < f->narms; i++) {
-		const struct finding_arm *fa = &f->arms[i];
-		o = json_pack("{s:s, s:o, s:I}", "variant", fa->variant,
-		    "weight", jnum(fa->weight), "exposures",
-		    (json_int_t)fa->exposures);
-		json_object_set_new(o, "n", jnum(fa->n));
-		json_object_set_new(o, "k", jnum(fa->k));
-		json_object_set_new(o, "value", jnum(fa->value));
-		json_object_set_new(o, "lower", jnum(fa->lower));
-		json_object_set_new(o, "upper", jnum(fa->upper));
-		json_array_append_new(a, o);
-	}
-	return a;
-}
-
-static void
-set_str(json_t *o, const char *k, const char *v)
-{
-	json_object_set_new(o, k, v ? json_string(v) : json_null());
-}
-
-json_t *
-finding_json(const struct finding *f)
-{
-	json_t *o = json_object();
-
-	set_str(o, "kind", finding_kind_name(f->kind));
-	set_str(o, "experiment", f->experiment);
-	json_object_set_new(o, "epoch", json_integer(f->epoch));
-	set_str(o, "guardrail", f->guardrail);
-	set_str(o, "metric", f->metric);
-	set_str(o, "test", f->test);
-	json_object_set_new(o, "quantile", f->quantile > 0 ?
-	    json_real(f->quantile) : json_null());
-	set_str(o, "variant", f->variant);
-	set_str(o, "control", f->control);
-	set_str(o, "harm", f->harm);
-	set_str(o, "action", f->action_pause ? "pause" : "alert");
-	set_str(o, "verdict", verdict_name(f->verdict));
-	set_str(o, "previous", verdict_name(f->previous));
-	json_object_set_new(o, "p", jnum(f->p));
-	json_object_set_new(o, "log_e", jnum(f->log_e));
-	json_object_set_new(o, "alpha", jnum(f->alpha));
-	json_object_set_new(o, "alpha_total", jnum(f->alpha_total));
-	json_object_set_new(o, "family", json_integer(f->family));
-	json_object_set_new(o, "estimate", jnum(f->estimate));
-	json_object_set_new(o, "lower", jnum(f->lower));
-	json_object_set_new(o, "upper", jnum(f->upper));
-	json_object_set_new(o, "rel_estimate", jnum(f->rel_estimate));
-	json_object_set_new(o, "rel_lower", jnum(f->rel_lower));
-	json_object_set_new(o, "rel_upper", jnum(f->rel_upper));
-	json_object_set_new(o, "margin", jnum(f->margin));
-	json_object_set_new(o, "chi2_p", jnum(f->chi2_p));
-	json_object_set_new(o, "sketch_accuracy", jnum(f->sketch_accuracy));
-	json_object_set_new(o, "untrusted", json_boolean(f->untrusted));
-	json_object_set_new(o, "ts", jnum(f->ts));
-	json_object_set_new(o, "first_ts", jnum(f->first_ts));
-	json_object_set_new(o, "event", json_integer((json_int_t)f->event));
-	json_object_set_new(o, "arms", arms_json(f));
-	return o;
-}
 
 struct list_ctx {
 	json_t	*guardrails;
@@ -126,14 +35,14 @@ list_cb(void *arg, const struct finding *f)
 
 	if (f->kind == FINDING_SRM) {
 		c->srm = json_pack("{s:s, s:o, s:o}", "verdict",
-		    verdict_name(f->verdict), "p", jnum(f->p), "chi2_p",
-		    jnum(f->chi2_p));
+		    verdict_name(f->verdict), "p", finding_num(f->p), "chi2_p",
+		    finding_num(f->chi2_p));
 		return;
 	}
 	json_array_append_new(c->guardrails, json_pack(
 	    "{s:s, s:s, s:s, s:s, s:o, s:b}", "name", f->guardrail,
 	    "variant", f->variant, "metric", f->metric, "verdict",
-	    verdict_name(f->verdict), "p", jnum(f->p), "untrusted",
+	    verdict_name(f->verdict), "p", finding_num(f->p), "untrusted",
 	    f->untrusted));
 }
 
@@ -147,7 +56,7 @@ exp_summary(const struct engine *eng, const struct experiment *e)
 	for (i = 0; i < e->narms; i++)
 		json_array_append_new(arms, json_pack("{s:s, s:o, s:I}",
 		    "variant", e->arms[i].name, "weight",
-		    jnum(e->arms[i].weight), "exposures",
+		    finding_num(e->arms[i].weight), "exposures",
 		    (json_int_t)e->exposures[i]));
 	c.guardrails = json_array();
 	c.srm = NULL;
@@ -155,7 +64,7 @@ exp_summary(const struct engine *eng, const struct experiment *e)
 	o = json_pack("{s:s, s:i, s:b, s:o, s:o, s:o}", "id", e->id, "epoch",
 	    (int)e->epoch, "untrusted", e->srm_fired, "arms", arms,
 	    "guardrails", c.guardrails, "srm", c.srm ? c.srm : json_null());
-	json_object_set_new(o, "last_ts", jnum(e->last_ts));
+	json_object_set_new(o, "last_ts", finding_num(e->last_ts));
 	return o;
 }
 
@@ -180,11 +89,13 @@ hist_json(const struct hist *h, int srm)
 		const struct hist_point *p = &h->pt[i];
 		if (srm)
 			json_array_append_new(a, json_pack("[o, o, o]",
-			    jnum(p->t), jnum(p->a), jnum(p->p)));
+			    finding_num(p->t), finding_num(p->a),
+			    finding_num(p->p)));
 		else
 			json_array_append_new(a, json_pack("[o, o, o, o, o]",
-			    jnum(p->t), jnum(p->a), jnum(p->b), jnum(p->c),
-			    jnum(p->p)));
+			    finding_num(p->t), finding_num(p->a),
+			    finding_num(p->b), finding_num(p->c),
+			    finding_num(p->p)));
 	}
 	return a;
 }
@@ -241,21 +152,21 @@ engine_json_experiment(const struct engine *eng, const char *id)
 	json_object_set_new(o, "tests", c.tests);
 	if (c.srm)
 		json_object_set_new(o, "srm", c.srm);
-	set_str(o, "control", e->arms[0].name);
-	json_object_set_new(o, "alpha", jnum(e->alpha));
-	json_object_set_new(o, "srm_alpha", jnum(e->srm_alpha));
+	json_object_set_new(o, "control", json_string(e->arms[0].name));
+	json_object_set_new(o, "alpha", finding_num(e->alpha));
+	json_object_set_new(o, "srm_alpha", finding_num(e->srm_alpha));
 	json_object_set_new(o, "family", json_integer(e->family));
-	json_object_set_new(o, "plan_units", jnum(e->plan_units));
+	json_object_set_new(o, "plan_units", finding_num(e->plan_units));
 	ep = json_array();
 	for (i = 0; i < e->nepochs; i++) {
 		arms = json_array();
 		for (j = 0; j < e->epochs[i].narms; j++)
 			json_array_append_new(arms, json_pack("{s:s, s:o}",
 			    "variant", e->epochs[i].arms[j].name, "weight",
-			    jnum(e->epochs[i].arms[j].weight)));
+			    finding_num(e->epochs[i].arms[j].weight)));
 		json_array_append_new(ep, json_pack("{s:i, s:o, s:o}",
 		    "epoch", (int)e->epochs[i].epoch, "started",
-		    jnum(e->epochs[i].started), "arms", arms));
+		    finding_num(e->epochs[i].started), "arms", arms));
 	}
 	json_object_set_new(o, "epochs", ep);
 	return o;

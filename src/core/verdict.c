@@ -480,14 +480,14 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 		t->verdict = nv;
 		t->first_ts = eng->now;
 		t->first_event = eng->event;
-		engine_fill_finding(eng, e, t, FINDING_VERDICT, &f);
+		finding_fill(eng, e, t, FINDING_VERDICT, &f);
 		f.previous = old;
 		engine_emit(eng, &f);
 	}
 	if (t->verdict == VERDICT_HARM && g->action == ACTION_PAUSE &&
 	    !t->pause_sent && p <= pause_level(eng, e)) {
 		t->pause_sent = 1;
-		engine_fill_finding(eng, e, t, FINDING_PAUSE, &f);
+		finding_fill(eng, e, t, FINDING_PAUSE, &f);
 		engine_emit(eng, &f);
 	}
 }
@@ -511,8 +511,8 @@ verdict_srm(struct engine *eng, struct experiment *e)
 	e->srm_fired = 1;
 	e->srm_first_ts = eng->now;
 	e->srm_first_event = eng->event;
-	engine_fill_srm(eng, e, FINDING_SRM, &f);
+	finding_fill_srm(eng, e, FINDING_SRM, &f);
 	engine_emit(eng, &f);
-	engine_fill_srm(eng, e, FINDING_UNTRUSTED, &f);
+	finding_fill_srm(eng, e, FINDING_UNTRUSTED, &f);
 	engine_emit(eng, &f);
 }
