@@ -355,8 +355,8 @@ int
 stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
     double k, double alpha, int upper, double *bound)
 {
-	double target, l0, in, out, mid, step;
-	int i;
+	double target, l0, in, out, mid, step, fin, fout, fm;
+	int i, side = 0;
 
 	*bound = upper ? INFINITY : 0;
 	if (!(n_a >= 0) || !(n_b >= 0) || !isfinite(n_a) || !isfinite(n_b) ||
@@ -379,13 +379,33 @@ stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
 			break;
 		in = out;
 	}
+	/* Illinois regula falsi on log r, as in stats_bb_bound */
+	fin = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper) - target;
+	fout = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out, upper) - target;
 	for (i = 0; i < 200 && fabs(out - in) > 1e-13; i++) {
-		mid = 0.5 * (in + out);
-		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, mid, upper) >=
-		    target)
+		mid = isfinite(fout) && isfinite(fin) ?
+		    (in * fout - out * fin) / (fout - fin) : 0.5 * (in + out);
+		if (!(mid > fmin(in, out) && mid < fmax(in, out)))
+			mid = 0.5 * (in + out);
+		fm = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, mid, upper) -
+		    target;
+		if (fabs(fm) < 1e-12) {
+			*bound = exp(mid);
+			return 0;
+		}
+		if (fm >= 0) {
 			out = mid;
-		else
+			fout = fm;
+			if (side == 1)
+				fin *= 0.5;
+			side = 1;
+		} else {
 			in = mid;
+			fin = fm;
+			if (side == -1)
+				fout *= 0.5;
+			side = -1;
+		}
 	}
 	*bound = exp(0.5 * (in + out));
 	return 0;
@@ -442,29 +462,51 @@ stats_bb_logm(double s, double v, double g, double h, double r,
 }
 
 /*
- * Bound: the s in [0, v/g] where log m crosses log(1/alpha), by bisection
- * (METHODS.md sec. 9); v/g, the largest possible sum, when it never does.
+ * Bound: the s in [0, v/g] where log m crosses log(1/alpha) (METHODS.md
+ * sec. 9); v/g, the largest possible sum, when it never does. log m is
+ * smooth and increasing in s there, so the root is bracketed and found by
+ * the Illinois variant of regula falsi (Dowell & Jarratt 1971), which
+ * converges superlinearly; a step that leaves the bracket, or an infinite
+ * end value, falls back to bisection. Bounds are recomputed for every
+ * confidence sequence, so the iteration count matters.
  */
 double
 stats_bb_bound(double v, double g, double h, double r, double alpha,
     int one_sided)
 {
-	double lo = 0, hi, mid, target = stats_log_inv_alpha(alpha);
-	int i;
+	double lo = 0, hi, mid, flo, fhi, fm, target;
+	int i, side = 0;
 
 	if (!(g > 0) || !(h > 0) || !(r > 0) || !(v >= 0))
 		return NAN;
+	target = stats_log_inv_alpha(alpha);
 	hi = v / g;
-	if (v == 0 || stats_bb_logm(hi, v, g, h, r, one_sided) < target)
+	if (v == 0 || (fhi = stats_bb_logm(hi, v, g, h, r, one_sided) -
+	    target) < 0)
 		return hi;
-	if (!(stats_bb_logm(0, v, g, h, r, one_sided) < target))
+	if (!((flo = stats_bb_logm(0, v, g, h, r, one_sided) - target) < 0))
 		return 0;
 	for (i = 0; i < DIR_BISECT_MAX && hi - lo > 1e-14 * hi; i++) {
-		mid = 0.5 * (lo + hi);
-		if (stats_bb_logm(mid, v, g, h, r, one_sided) < target)
+		mid = isfinite(fhi) ? (lo * fhi - hi * flo) / (fhi - flo) :
+		    0.5 * (lo + hi);
+		if (!(mid > lo && mid < hi))
+			mid = 0.5 * (lo + hi);
+		fm = stats_bb_logm(mid, v, g, h, r, one_sided) - target;
+		if (fabs(fm) < 1e-13)
+			return mid;
+		if (fm < 0) {
 			lo = mid;
-		else
+			flo = fm;
+			if (side == -1)
+				fhi *= 0.5;
+			side = -1;
+		} else {
 			hi = mid;
+			fhi = fm;
+			if (side == 1)
+				flo *= 0.5;
+			side = 1;
+		}
 	}
 	return 0.5 * (lo + hi);
 }
