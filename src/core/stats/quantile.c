@@ -293,33 +293,50 @@ struct quant_bb {
 	struct quant_arm	 qa, qb;
 	const double		*aless;		/* #A < x_i */
 	const double		*bmore;		/* #B > x_i */
+	double			*fv, *gv;	/* memo of f_i, g_i (NAN: not yet) */
 	double			 best;
 };
+
+static double
+quant_bb_f(struct quant_bb *s, size_t i)
+{
+	if (isnan(s->fv[i]))
+		s->fv[i] = quant_arm_logm(&s->qa, s->aless[i]);
+	return s->fv[i];
+}
+
+static double
+quant_bb_g(struct quant_bb *s, size_t i)
+{
+	if (isnan(s->gv[i]))
+		s->gv[i] = quant_arm_logm(&s->qb, s->bmore[i]);
+	return s->gv[i];
+}
+
+static void
+quant_bb_at(struct quant_bb *s, size_t i)
+{
+	double v = quant_bb_f(s, i) + quant_bb_g(s, i);
+
+	if (v < s->best)
+		s->best = v;
+}
 
 static void
 quant_bb_range(struct quant_bb *s, size_t l, size_t r)
 {
 	size_t m, i;
-	double v;
 
 	while (l <= r) {
-		if (quant_arm_logm(&s->qa, s->aless[l]) +
-		    quant_arm_logm(&s->qb, s->bmore[r]) >= s->best)
+		if (quant_bb_f(s, l) + quant_bb_g(s, r) >= s->best)
 			return;
 		if (r - l < 3) {
-			for (i = l; i <= r; i++) {
-				v = quant_arm_logm(&s->qa, s->aless[i]) +
-				    quant_arm_logm(&s->qb, s->bmore[i]);
-				if (v < s->best)
-					s->best = v;
-			}
+			for (i = l; i <= r; i++)
+				quant_bb_at(s, i);
 			return;
 		}
 		m = l + (r - l) / 2;
-		v = quant_arm_logm(&s->qa, s->aless[m]) +
-		    quant_arm_logm(&s->qb, s->bmore[m]);
-		if (v < s->best)
-			s->best = v;
+		quant_bb_at(s, m);
 		quant_bb_range(s, l, m - 1);
 		l = m + 1;
 	}
@@ -330,8 +347,8 @@ quant_scan1(const struct stats_blocks *a, const struct stats_blocks *b,
     double p, double t_opt)
 {
 	struct quant_bb s;
-	double Na, Nb, ca = 0, cb = 0, x, *aless, *bmore;
-	size_t i = 0, j = 0, n = 0;
+	double Na, Nb, ca = 0, cb = 0, x, *buf;
+	size_t i = 0, j = 0, n = 0, lo, hi, mid, cap;
 
 	if (a == NULL || b == NULL || !(p > 0) || !(p < 1) || !(t_opt > 0))
 		return 0;
@@ -341,25 +358,46 @@ quant_scan1(const struct stats_blocks *a, const struct stats_blocks *b,
 		return 0;
 	quant_arm_init(&s.qa, Na, p, t_opt, 1);
 	quant_arm_init(&s.qb, Nb, 1 - p, t_opt, 1);
-	aless = xreallocarray(NULL, a->n + b->n, 2 * sizeof *aless);
-	bmore = aless + a->n + b->n;
+	cap = a->n + b->n;
+	buf = xreallocarray(NULL, cap, 4 * sizeof *buf);
+	s.aless = buf;
+	s.bmore = buf + cap;
+	s.fv = buf + 2 * cap;
+	s.gv = buf + 3 * cap;
 	while (i < a->n || j < b->n) {
 		if (j >= b->n || (i < a->n && a->value[i] <= b->value[j]))
 			x = a->value[i];
 		else
 			x = b->value[j];
-		aless[n] = ca;
+		buf[n] = ca;
 		while (i < a->n && a->value[i] <= x)
 			ca += (double)a->count[i++];
 		while (j < b->n && b->value[j] <= x)
 			cb += (double)b->count[j++];
-		bmore[n++] = Nb - cb;
+		buf[cap + n] = Nb - cb;
+		s.fv[n] = s.gv[n] = NAN;
+		n++;
 	}
-	s.aless = aless;
-	s.bmore = bmore;
 	s.best = INFINITY;
+	/*
+	 * Seed the bound near the minimum: f - g increases with i, and the
+	 * sum is smallest around where it changes sign, found by bisection
+	 * in O(log n) evaluations. With a good best, the ranges far from it
+	 * are pruned at once.
+	 */
+	lo = 0;
+	hi = n - 1;
+	while (hi - lo > 1) {
+		mid = lo + (hi - lo) / 2;
+		if (quant_bb_f(&s, mid) < quant_bb_g(&s, mid))
+			lo = mid;
+		else
+			hi = mid;
+	}
+	quant_bb_at(&s, lo);
+	quant_bb_at(&s, hi);
 	quant_bb_range(&s, 0, n - 1);
-	free(aless);
+	free(buf);
 	return isnan(s.best) ? 0 : s.best;
 }
 
