@@ -100,6 +100,23 @@ exp_find(const struct engine *eng, const char *id)
 	return eng->exps[slot];
 }
 
+/*
+ * The record path's lookup: producers send a unit's records together, so
+ * the experiment of the previous record is checked first, by name, before
+ * hashing.
+ */
+static struct experiment *
+exp_find_recent(struct engine *eng, const char *id)
+{
+	struct experiment *e = eng->recent;
+
+	if (e != NULL && strcmp(e->id, id) == 0)
+		return e;
+	if ((e = exp_find(eng, id)) != NULL)
+		eng->recent = e;
+	return e;
+}
+
 static int
 arm_find(const struct experiment *e, const char *name)
 {
@@ -615,7 +632,7 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 		rc = apply_plan(eng, r->arms, r->narms, r->experiment, now);
 		goto done;
 	}
-	if ((e = exp_find(eng, r->experiment)) == NULL) {
+	if ((e = exp_find_recent(eng, r->experiment)) == NULL) {
 		rc = ENGINE_E_UNPLANNED;
 		goto done;
 	}

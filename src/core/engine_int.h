@@ -131,6 +131,7 @@ struct engine {
 	uint64_t	 event;
 	int		 force;		/* engine_finish: every costly look */
 	uint32_t	 cursor;	/* where the last tick's budget ran out */
+	struct experiment *recent;	/* the previous record's experiment */
 	/* Scratch for quantile tests, grown once, reused every tick. */
 	double		*scratch_v;
 	uint64_t	*scratch_c;

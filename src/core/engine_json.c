@@ -494,6 +494,7 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 		uint32_t slot;
 		nmap_get(eng->index, id, strlen(id), &slot);
 		engine_exp_free(eng->exps[slot]);
+		eng->recent = NULL;
 		eng->exps[slot] = eng->exps[--eng->nexps];
 		nmap_del(eng->index, id, strlen(id));
 		if (slot < eng->nexps)
