@@ -170,6 +170,10 @@ int		 engine_foreach_in(const struct engine *, const char *experiment,
 json_t		*engine_json_list(const struct engine *);
 json_t		*engine_json_experiment(const struct engine *, const char *id);
 
+/* The fixed mixture parameters for a two-arm experiment under the
+ * configuration's defaults (logged at start and reload). */
+json_t		*engine_json_tuning(const struct engine *);
+
 /* Full state for checkpoints; restore refuses foreign or bad input. */
 json_t		*engine_save(const struct engine *);
 struct engine	*engine_restore(const struct conf *, const uint8_t hashkey[16],

@@ -131,6 +131,63 @@ detail_cb(void *arg, const struct finding *f)
 	json_array_append_new(c->tests, o);
 }
 
+/*
+ * The mixture parameters in force for an experiment with this level,
+ * plan size and number of arms: all fixed before monitoring from the
+ * configuration, never retuned from the data. The mean and proportion
+ * mixtures' tau^2 is a multiple of the pooled per-unit variance (rule (a)
+ * of METHODS.md sec. 1), so it is given per unit of that variance.
+ */
+static json_t *
+tuning_json(const struct engine *eng, double alpha, double srm_alpha,
+    double plan_units, int narms, int family)
+{
+	const struct conf *c = eng->conf;
+	double level = alpha / (family > 0 ? family : 1);
+	json_t *g = json_array();
+	int i;
+
+	for (i = 0; i < c->nguardrails; i++) {
+		const struct conf_guardrail *gr = &c->guardrails[i];
+		double units = gr->plan_units > 0 ? gr->plan_units : plan_units;
+		json_t *o = json_pack("{s:s, s:s, s:o, s:o}", "guardrail",
+		    gr->name, "test", conf_test_name(gr->test), "level",
+		    finding_num(level), "plan_units", finding_num(units));
+
+		switch (gr->test) {
+		case TEST_MEAN:
+		case TEST_PROPORTION:
+			json_object_set_new(o, "tau2_per_unit_variance",
+			    finding_num(stats_msprt_tau2(1, level, units)));
+			break;
+		case TEST_RATE:
+			json_object_set_new(o, "concentration", finding_num(
+			    c->rate_concentration > 0 ? c->rate_concentration :
+			    100));
+			break;
+		case TEST_QUANTILE:
+			json_object_set_new(o, "t_opt", finding_num(units));
+			json_object_set_new(o, "sketch_accuracy",
+			    finding_num(c->sketch_accuracy));
+			break;
+		}
+		json_array_append_new(g, o);
+	}
+	return json_pack("{s:i, s:i, s:o, s:o, s:o}", "arms", narms, "family",
+	    family, "srm_concentration", finding_num(stats_dm_k0(plan_units *
+	    narms, srm_alpha)), "srm_alpha", finding_num(srm_alpha),
+	    "guardrails", g);
+}
+
+json_t *
+engine_json_tuning(const struct engine *eng)
+{
+	const struct conf *c = eng->conf;
+
+	return tuning_json(eng, c->alpha, c->srm_alpha, c->plan_units, 2,
+	    c->nguardrails > 0 ? c->nguardrails : 1);
+}
+
 json_t *
 engine_json_experiment(const struct engine *eng, const char *id)
 {
@@ -157,6 +214,8 @@ engine_json_experiment(const struct engine *eng, const char *id)
 	json_object_set_new(o, "srm_alpha", finding_num(e->srm_alpha));
 	json_object_set_new(o, "family", json_integer(e->family));
 	json_object_set_new(o, "plan_units", finding_num(e->plan_units));
+	json_object_set_new(o, "tuning", tuning_json(eng, e->alpha,
+	    e->srm_alpha, e->plan_units, e->narms, e->family));
 	ep = json_array();
 	for (i = 0; i < e->nepochs; i++) {
 		arms = json_array();

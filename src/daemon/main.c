@@ -173,6 +173,31 @@ daemon_differs(const char *a, const char *b)
 }
 
 /* Settings copied at start: say which changes wait for a restart. */
+/*
+ * The mixture parameters are fixed before monitoring from the
+ * configuration and never retuned from the data; say which, once per
+ * guardrail, whenever a configuration comes into force.
+ */
+static void
+daemon_log_tuning(struct daemon *d)
+{
+	json_t *t = engine_json_tuning(d->engine), *g;
+	char *line;
+	size_t i;
+
+	log_info("tuning (two-arm experiment): srm_concentration=%.6g "
+	    "family=%lld", json_real_value(json_object_get(t,
+	    "srm_concentration")), json_integer_value(json_object_get(t,
+	    "family")));
+	json_array_foreach(json_object_get(t, "guardrails"), i, g) {
+		line = json_dumps(g, JSON_COMPACT | JSON_REAL_PRECISION(6));
+		if (line != NULL)
+			log_info("tuning %s", line);
+		free(line);
+	}
+	json_decref(t);
+}
+
 static void
 daemon_reload_notes(const struct conf *old, const struct conf *new)
 {
@@ -243,6 +268,7 @@ daemon_reload(struct daemon *d)
 	log_info("reload: configuration in force path=%s guardrails=%d "
 	    "experiments=%d", d->conf_path, d->conf->nguardrails,
 	    d->conf->nexperiments);
+	daemon_log_tuning(d);
 done:
 	if (nc != NULL)
 		conf_free(nc);
@@ -570,6 +596,7 @@ main(int argc, char **argv)
 	log_info("stopcockd ready pid=%ld config=%s state=%s records=%" PRIu64,
 	    (long)getpid(), d->conf_path, d->state_dir,
 	    ingest_records_total(d));
+	daemon_log_tuning(d);
 	sd_notify(0, "READY=1\nSTATUS=running");
 
 	if (event_base_dispatch(d->base) == -1)
