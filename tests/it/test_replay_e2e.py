@@ -165,6 +165,33 @@ tap.ok(rc == 0 and harms(found) == [("checkout-v2", "checkout_p99",
        "rc %d, harms %s, srm %d\n%s" % (rc, harms(found), len(srms(found)),
                                         err))
 
+# --report: the demo's charts as standalone SVG files for a post-mortem,
+# parsed by Python's own XML parser; the harmful test's chart marks the
+# verdict and draws the margin line.
+import xml.etree.ElementTree as ET  # noqa: E402
+rdir = os.path.join(OUT, "replay-report")
+os.makedirs(rdir, exist_ok=True)
+for f in os.listdir(rdir):
+    os.unlink(os.path.join(rdir, f))
+p = subprocess.run([STOPCOCK, "replay", "-q", "-c", demo_conf, "--report",
+                    rdir, path], capture_output=True, timeout=300)
+svgs = sorted(os.listdir(rdir))
+want = "checkout-v2-checkout_p99-treatment.svg"
+parsed = []
+for f in svgs:
+    try:
+        ET.parse(os.path.join(rdir, f))
+        parsed.append(f)
+    except ET.ParseError:
+        pass
+tap.ok(p.returncode == 0 and want in svgs and "checkout-v2-srm.svg" in svgs
+       and parsed == svgs, "replay --report writes one well-formed SVG per "
+       "test and per SRM check", "rc %d, files %s, parsed %s"
+       % (p.returncode, svgs, parsed))
+text = open(os.path.join(rdir, want)).read() if want in svgs else ""
+tap.ok("margin" in text and "harm" in text,
+       "the harmful test's chart shows the margin and the verdict")
+
 # Bad lines change nothing but the counters.
 BAD = [
     (b"frobnicate e2e control 1", "bad_kind"),
