@@ -184,10 +184,27 @@ test_rejections(void **state)
 	assert_int_equal(feed(fx, "plan e2 A=1 B=1"), ENGINE_OK);
 	assert_int_equal(feed(fx, "plan e3 A=1 B=1"), ENGINE_OK);
 	assert_int_equal(feed(fx, "plan e4 A=1 B=1"), ENGINE_E_EXPERIMENTS);
+	/* a flood of new names past the caps costs counters, not memory */
+	{
+		struct engine_counters before, after;
+		int i;
+
+		engine_counters(fx->eng, &before);
+		for (i = 0; i < 20000; i++) {
+			assert_int_equal(feed(fx, "plan flood%d A=1 B=1", i),
+			    ENGINE_E_EXPERIMENTS);
+			assert_int_equal(feed(fx, "observe shop A m%d 1", i),
+			    ENGINE_E_METRICS);
+		}
+		engine_counters(fx->eng, &after);
+		assert_int_equal(after.bytes, before.bytes);
+		assert_int_equal(after.rejected[ENGINE_E_EXPERIMENTS],
+		    before.rejected[ENGINE_E_EXPERIMENTS] + 20000);
+	}
 	engine_counters(fx->eng, &c);
 	assert_int_equal(c.experiments, 3);
 	assert_int_equal(c.rejected[ENGINE_E_MISMATCH], 2);
-	assert_int_equal(c.rejected[ENGINE_E_EXPERIMENTS], 1);
+	assert_int_equal(c.rejected[ENGINE_E_EXPERIMENTS], 20001);
 	assert_int_equal(c.applied[PROTO_PLAN], 3);
 	assert_string_equal(engine_reason(ENGINE_E_K_GT_N), "k_exceeds_n");
 }
