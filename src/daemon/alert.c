@@ -763,33 +763,24 @@ alert_metrics(struct alert *a, struct evbuffer *b)
 		if (a->v[i]->state == ALERT_RAISED &&
 		    (k = alert_kind_index(a->v[i]->what)) != -1)
 			active[k]++;
-	evbuffer_add_printf(b, "# HELP stopcock_alerts_raised_total Alerts "
-	    "raised since start, by kind.\n"
-	    "# TYPE stopcock_alerts_raised_total counter\n");
+	metrics_family(b, "stopcock_alerts_raised_total", "counter",
+	    "Alerts raised since start, by kind.");
 	for (i = 0; i < SC_NELEM(alert_kinds); i++)
 		evbuffer_add_printf(b, "stopcock_alerts_raised_total"
 		    "{alert=\"%s\"} %llu\n", alert_kinds[i],
 		    (unsigned long long)a->raised[i]);
-	evbuffer_add_printf(b, "# HELP stopcock_alerts_active Alerts raised "
-	    "and not acknowledged, by kind.\n"
-	    "# TYPE stopcock_alerts_active gauge\n");
+	metrics_family(b, "stopcock_alerts_active", "gauge",
+	    "Alerts raised and not acknowledged, by kind.");
 	for (i = 0; i < SC_NELEM(alert_kinds); i++)
 		evbuffer_add_printf(b, "stopcock_alerts_active{alert=\"%s\"} "
 		    "%llu\n", alert_kinds[i], (unsigned long long)active[i]);
-	evbuffer_add_printf(b, "# HELP stopcock_alerts_reminders_total "
-	    "Reminders sent.\n# TYPE stopcock_alerts_reminders_total counter\n"
-	    "stopcock_alerts_reminders_total %llu\n"
-	    "# HELP stopcock_alerts_acked_total Alerts acknowledged.\n"
-	    "# TYPE stopcock_alerts_acked_total counter\n"
-	    "stopcock_alerts_acked_total %llu\n"
-	    "# HELP stopcock_alerts_duplicates_total Findings that matched an "
-	    "alert already raised (not sent again).\n"
-	    "# TYPE stopcock_alerts_duplicates_total counter\n"
-	    "stopcock_alerts_duplicates_total %llu\n"
-	    "# HELP stopcock_alerts_evicted_total Alerts forgotten because "
-	    "more than the limit were held.\n"
-	    "# TYPE stopcock_alerts_evicted_total counter\n"
-	    "stopcock_alerts_evicted_total %llu\n",
-	    (unsigned long long)a->reminders, (unsigned long long)a->acked,
-	    (unsigned long long)a->duplicates, (unsigned long long)a->evicted);
+	metrics_counter(b, "stopcock_alerts_reminders_total",
+	    "Reminders sent.", a->reminders);
+	metrics_counter(b, "stopcock_alerts_acked_total",
+	    "Alerts acknowledged.", a->acked);
+	metrics_counter(b, "stopcock_alerts_duplicates_total", "Findings that "
+	    "matched an alert already raised (not sent again).",
+	    a->duplicates);
+	metrics_counter(b, "stopcock_alerts_evicted_total", "Alerts forgotten "
+	    "because more than the limit were held.", a->evicted);
 }

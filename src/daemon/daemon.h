@@ -137,6 +137,14 @@ json_t		*ingest_json(struct daemon *);
 void		 ingest_restore(struct daemon *, const json_t *);
 uint64_t	 ingest_records_total(struct daemon *);
 
+/* metrics.c: Prometheus text exposition format helpers. */
+void		 metrics_family(struct evbuffer *, const char *name,
+		    const char *type, const char *help);
+void		 metrics_counter(struct evbuffer *, const char *name,
+		    const char *help, uint64_t);
+void		 metrics_gauge(struct evbuffer *, const char *name,
+		    const char *help, double);
+
 /* ckpt.c */
 int		 ckpt_write(struct daemon *, char **cause);
 int		 ckpt_restore(struct daemon *, char **cause);

@@ -675,14 +675,6 @@ http_scrape_finding(void *arg, const struct finding *f)
 	http_sample(s, FAM_ALPHA, f, f->variant, f->alpha);
 }
 
-static void
-http_family(struct evbuffer *b, const char *name, const char *type,
-    const char *help)
-{
-	evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s %s\n", name, help,
-	    name, type);
-}
-
 /* Our own families, then every subsystem's, then the per-test gauges. */
 static void
 http_metrics(struct http *h, struct evbuffer *b)
@@ -693,19 +685,19 @@ http_metrics(struct http *h, struct evbuffer *b)
 	double now = daemon_now();
 	size_t i;
 
-	http_family(b, "stopcock_build_info", "gauge",
+	metrics_family(b, "stopcock_build_info", "gauge",
 	    "Always 1; the version is a label.");
 	evbuffer_add_printf(b, "stopcock_build_info{version=\"%s\"} 1\n",
 	    STOPCOCK_VERSION);
-	http_family(b, "stopcock_uptime_seconds", "gauge",
+	metrics_family(b, "stopcock_uptime_seconds", "gauge",
 	    "Seconds since the daemon started.");
 	evbuffer_add_printf(b, "stopcock_uptime_seconds %.3f\n",
 	    now - d->started);
-	http_family(b, "stopcock_checkpoints_total", "counter",
+	metrics_family(b, "stopcock_checkpoints_total", "counter",
 	    "Checkpoints written.");
 	evbuffer_add_printf(b, "stopcock_checkpoints_total %llu\n",
 	    (unsigned long long)d->checkpoints);
-	http_family(b, "stopcock_checkpoint_age_seconds", "gauge",
+	metrics_family(b, "stopcock_checkpoint_age_seconds", "gauge",
 	    "Seconds since the last checkpoint (+Inf before the first).");
 	if (d->last_checkpoint > 0)
 		evbuffer_add_printf(b, "stopcock_checkpoint_age_seconds %.3f\n",
@@ -713,7 +705,7 @@ http_metrics(struct http *h, struct evbuffer *b)
 	else
 		evbuffer_add_printf(b,
 		    "stopcock_checkpoint_age_seconds +Inf\n");
-	http_family(b, "stopcock_http_responses_total", "counter",
+	metrics_family(b, "stopcock_http_responses_total", "counter",
 	    "HTTP responses by status code.");
 	for (i = 0; i <= HTTP_NCODES; i++) {
 		if (i < HTTP_NCODES)
@@ -725,32 +717,32 @@ http_metrics(struct http *h, struct evbuffer *b)
 			    "{code=\"other\"} %llu\n",
 			    (unsigned long long)h->responses[i]);
 	}
-	http_family(b, "stopcock_http_actions_total", "counter",
+	metrics_family(b, "stopcock_http_actions_total", "counter",
 	    "Operator actions accepted over HTTP.");
 	evbuffer_add_printf(b, "stopcock_http_actions_total %llu\n",
 	    (unsigned long long)h->actions);
-	http_family(b, "stopcock_http_auth_refused_total", "counter",
+	metrics_family(b, "stopcock_http_auth_refused_total", "counter",
 	    "Actions refused for a missing or wrong bearer token.");
 	evbuffer_add_printf(b, "stopcock_http_auth_refused_total %llu\n",
 	    (unsigned long long)h->refused_auth);
 
 	engine_counters(d->engine, &ec);
-	http_family(b, "stopcock_engine_experiments", "gauge",
+	metrics_family(b, "stopcock_engine_experiments", "gauge",
 	    "Experiments tracked (bounded by max_experiments).");
 	evbuffer_add_printf(b, "stopcock_engine_experiments %u\n",
 	    ec.experiments);
-	http_family(b, "stopcock_engine_series", "gauge",
+	metrics_family(b, "stopcock_engine_series", "gauge",
 	    "Tallies held: experiment x epoch x arm x metric.");
 	evbuffer_add_printf(b, "stopcock_engine_series %llu\n",
 	    (unsigned long long)ec.series);
-	http_family(b, "stopcock_engine_tests", "gauge",
+	metrics_family(b, "stopcock_engine_tests", "gauge",
 	    "Live guardrail x arm tests.");
 	evbuffer_add_printf(b, "stopcock_engine_tests %llu\n",
 	    (unsigned long long)ec.tests);
-	http_family(b, "stopcock_engine_memory_bytes", "gauge",
+	metrics_family(b, "stopcock_engine_memory_bytes", "gauge",
 	    "Memory held by tallies and tests.");
 	evbuffer_add_printf(b, "stopcock_engine_memory_bytes %zu\n", ec.bytes);
-	http_family(b, "stopcock_engine_findings_total", "counter",
+	metrics_family(b, "stopcock_engine_findings_total", "counter",
 	    "Verdict changes and other findings the engine reported.");
 	evbuffer_add_printf(b, "stopcock_engine_findings_total %llu\n",
 	    (unsigned long long)ec.findings);
@@ -772,7 +764,7 @@ http_metrics(struct http *h, struct evbuffer *b)
 			fatalx("http: evbuffer_new failed");
 	engine_foreach(d->engine, http_scrape_finding, &s);
 	for (i = 0; i < FAM_N; i++) {
-		http_family(b, http_fams[i].name, "gauge", http_fams[i].help);
+		metrics_family(b, http_fams[i].name, "gauge", http_fams[i].help);
 		evbuffer_add_buffer(b, s.fam[i]);
 		evbuffer_free(s.fam[i]);
 	}

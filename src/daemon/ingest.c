@@ -197,35 +197,28 @@ ingest_records_total(struct daemon *d)
 	return n;
 }
 
-static void
-ingest_metric_head(struct evbuffer *b, const char *name, const char *help)
-{
-	evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s counter\n", name, help,
-	    name);
-}
-
 void
 ingest_metrics(struct daemon *d, struct evbuffer *b)
 {
 	struct ingest_counters *c = &d->counters;
 	int s, r;
 
-	ingest_metric_head(b, "stopcock_lines_total",
+	metrics_family(b, "stopcock_lines_total", "counter",
 	    "Lines read, blank and comment lines included.");
 	for (s = 0; s < SRC_N; s++)
 		evbuffer_add_printf(b, "stopcock_lines_total{source=\"%s\"} %"
 		    PRIu64 "\n", source_name(s), c->lines[s]);
-	ingest_metric_head(b, "stopcock_bytes_total",
+	metrics_family(b, "stopcock_bytes_total", "counter",
 	    "Bytes of line content read, line terminators excluded.");
 	for (s = 0; s < SRC_N; s++)
 		evbuffer_add_printf(b, "stopcock_bytes_total{source=\"%s\"} %"
 		    PRIu64 "\n", source_name(s), c->bytes[s]);
-	ingest_metric_head(b, "stopcock_records_total",
+	metrics_family(b, "stopcock_records_total", "counter",
 	    "Records applied to the engine.");
 	for (s = 0; s < SRC_N; s++)
 		evbuffer_add_printf(b, "stopcock_records_total{source=\"%s\"} %"
 		    PRIu64 "\n", source_name(s), c->records[s]);
-	ingest_metric_head(b, "stopcock_rejected_total",
+	metrics_family(b, "stopcock_rejected_total", "counter",
 	    "Lines refused by the protocol or the engine, by reason.");
 	for (s = 0; s < SRC_N; s++) {
 		for (r = PROTO_SKIP + 1; r < PROTO_NSTATUS; r++)

@@ -706,39 +706,31 @@ listen_metrics(struct listen *l, struct evbuffer *b)
 	size_t i;
 	int r;
 
-	evbuffer_add_printf(b, "# HELP stopcock_clients Connected stream "
-	    "clients.\n# TYPE stopcock_clients gauge\n");
+	metrics_family(b, "stopcock_clients", "gauge",
+	    "Connected stream clients.");
 	for (i = 0; i < SC_NELEM(stream); i++)
 		evbuffer_add_printf(b, "stopcock_clients{source=\"%s\"} %u\n",
 		    source_name(stream[i]), l->nby[stream[i]]);
-	evbuffer_add_printf(b, "# HELP stopcock_clients_accepted_total "
-	    "Stream connections accepted.\n# TYPE "
-	    "stopcock_clients_accepted_total counter\n");
+	metrics_family(b, "stopcock_clients_accepted_total", "counter",
+	    "Stream connections accepted.");
 	for (i = 0; i < SC_NELEM(stream); i++)
 		evbuffer_add_printf(b, "stopcock_clients_accepted_total{source="
 		    "\"%s\"} %" PRIu64 "\n", source_name(stream[i]),
 		    l->accepted[stream[i]]);
-	evbuffer_add_printf(b, "# HELP stopcock_clients_refused_total "
-	    "Connections closed at once because max_clients was reached.\n"
-	    "# TYPE stopcock_clients_refused_total counter\n"
-	    "stopcock_clients_refused_total %" PRIu64 "\n", l->refused);
-	evbuffer_add_printf(b, "# HELP stopcock_clients_cut_total Clients cut "
-	    "off for garbage or an endless line.\n# TYPE "
-	    "stopcock_clients_cut_total counter\n");
+	metrics_counter(b, "stopcock_clients_refused_total", "Connections "
+	    "closed at once because max_clients was reached.", l->refused);
+	metrics_family(b, "stopcock_clients_cut_total", "counter",
+	    "Clients cut off for garbage or an endless line.");
 	for (i = 0; i < SC_NELEM(stream); i++)
 		for (r = 0; r < CUT_N; r++)
 			evbuffer_add_printf(b, "stopcock_clients_cut_total{"
 			    "source=\"%s\",reason=\"%s\"} %" PRIu64 "\n",
 			    source_name(stream[i]), listen_cut_names[r],
 			    l->cut[stream[i]][r]);
-	evbuffer_add_printf(b, "# HELP stopcock_accept_backoffs_total Times "
-	    "accepting paused for lack of file descriptors.\n# TYPE "
-	    "stopcock_accept_backoffs_total counter\n"
-	    "stopcock_accept_backoffs_total %" PRIu64 "\n", l->backoffs);
-	evbuffer_add_printf(b, "# HELP stopcock_udp_datagrams_total UDP "
-	    "datagrams received.\n# TYPE stopcock_udp_datagrams_total "
-	    "counter\nstopcock_udp_datagrams_total %" PRIu64 "\n",
-	    l->udp_datagrams);
+	metrics_counter(b, "stopcock_accept_backoffs_total", "Times accepting "
+	    "paused for lack of file descriptors.", l->backoffs);
+	metrics_counter(b, "stopcock_udp_datagrams_total",
+	    "UDP datagrams received.", l->udp_datagrams);
 }
 
 json_t *

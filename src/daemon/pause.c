@@ -774,40 +774,29 @@ pause_metrics(struct pause *p, struct evbuffer *b)
 
 	if (p == NULL)
 		return;
-	evbuffer_add_printf(b, "# HELP stopcock_pause_decisions_total Pause "
-	    "decisions, by decision and reason.\n"
-	    "# TYPE stopcock_pause_decisions_total counter\n");
+	metrics_family(b, "stopcock_pause_decisions_total", "counter",
+	    "Pause decisions, by decision and reason.");
 	for (i = 0; i < PAUSE_NDECISIONS; i++)
 		evbuffer_add_printf(b, "stopcock_pause_decisions_total"
 		    "{decision=\"%s\",reason=\"%s\"} %llu\n",
 		    pause_names[i].decision, i == PAUSE_PAUSED ? "harm" :
 		    i == PAUSE_DRY_RUN ? "dry_run" : pause_names[i].reason,
 		    (unsigned long long)p->decisions[i]);
+	metrics_family(b, "stopcock_pause_redis_commands_total", "counter",
+	    "Redis SET/PUBLISH commands for pauses, by outcome.");
 	evbuffer_add_printf(b,
-	    "# HELP stopcock_pause_redis_commands_total Redis SET/PUBLISH "
-	    "commands for pauses, by outcome.\n"
-	    "# TYPE stopcock_pause_redis_commands_total counter\n"
 	    "stopcock_pause_redis_commands_total{outcome=\"ok\"} %llu\n"
 	    "stopcock_pause_redis_commands_total{outcome=\"error\"} %llu\n"
-	    "stopcock_pause_redis_commands_total{outcome=\"dropped\"} %llu\n"
-	    "# HELP stopcock_pause_redis_pending Redis commands for pauses "
-	    "not yet answered.\n"
-	    "# TYPE stopcock_pause_redis_pending gauge\n"
-	    "stopcock_pause_redis_pending %u\n"
-	    "# HELP stopcock_pause_redis_up 1 when the pause Redis connection "
-	    "is up.\n# TYPE stopcock_pause_redis_up gauge\n"
-	    "stopcock_pause_redis_up %d\n"
-	    "# HELP stopcock_pause_http_queued_total Pauses handed to the "
-	    "pause URL's queue.\n"
-	    "# TYPE stopcock_pause_http_queued_total counter\n"
-	    "stopcock_pause_http_queued_total %llu\n"
-	    "# HELP stopcock_pause_audit_errors_total Audit lines that could "
-	    "not be written.\n"
-	    "# TYPE stopcock_pause_audit_errors_total counter\n"
-	    "stopcock_pause_audit_errors_total %llu\n",
+	    "stopcock_pause_redis_commands_total{outcome=\"dropped\"} %llu\n",
 	    (unsigned long long)p->redis_ok,
 	    (unsigned long long)p->redis_errors,
-	    (unsigned long long)p->redis_dropped, p->nqueue,
-	    p->state == REDIS_UP, (unsigned long long)p->http_queued,
-	    (unsigned long long)p->audit_errors);
+	    (unsigned long long)p->redis_dropped);
+	metrics_gauge(b, "stopcock_pause_redis_pending", "Redis commands for "
+	    "pauses not yet answered.", p->nqueue);
+	metrics_gauge(b, "stopcock_pause_redis_up", "1 when the pause Redis "
+	    "connection is up.", p->state == REDIS_UP);
+	metrics_counter(b, "stopcock_pause_http_queued_total", "Pauses handed "
+	    "to the pause URL's queue.", p->http_queued);
+	metrics_counter(b, "stopcock_pause_audit_errors_total", "Audit lines "
+	    "that could not be written.", p->audit_errors);
 }

@@ -31,6 +31,7 @@
  */
 #include <errno.h>
 #include <inttypes.h>
+#include <math.h>
 #include <limits.h>
 #include <stdarg.h>
 #include <stdio.h>
@@ -799,51 +800,35 @@ redis_in_lag(struct redis_in *r)
 	return r->lag;
 }
 
-static void
-redis_in_gauge(struct evbuffer *b, const char *name, const char *help,
-    int64_t v)
-{
-	evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s gauge\n", name, help,
-	    name);
-	if (v < 0)
-		evbuffer_add_printf(b, "%s NaN\n", name);
-	else
-		evbuffer_add_printf(b, "%s %" PRId64 "\n", name, v);
-}
-
-static void
-redis_in_counter(struct evbuffer *b, const char *name, const char *help,
-    uint64_t v)
-{
-	evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s counter\n%s %" PRIu64
-	    "\n", name, help, name, name, v);
-}
-
 void
 redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 {
 	int i;
 
-	redis_in_gauge(b, "stopcock_redis_up", "1 when the stream consumer is "
-	    "connected and reading.", r->state == RS_PENDING ||
+	metrics_gauge(b, "stopcock_redis_up", "1 when the stream consumer "
+	    "is connected and reading.", r->state == RS_PENDING ||
 	    r->state == RS_STEADY);
-	redis_in_gauge(b, "stopcock_redis_lag", "Stream entries not yet "
-	    "delivered to the group (NaN when unknown).", r->lag);
-	redis_in_gauge(b, "stopcock_redis_pending", "Entries delivered to the "
-	    "group but not acknowledged.", r->pending);
-	redis_in_gauge(b, "stopcock_redis_pending_own", "Entries pending on "
-	    "this consumer.", r->pending_own);
-	redis_in_counter(b, "stopcock_redis_entries_total", "Stream entries "
+	/* -1 marks a figure Redis has not told us yet: NaN */
+	metrics_gauge(b, "stopcock_redis_lag", "Stream entries not yet "
+	    "delivered to the group (NaN when unknown).",
+	    r->lag < 0 ? NAN : (double)r->lag);
+	metrics_gauge(b, "stopcock_redis_pending", "Entries delivered to "
+	    "the group but not acknowledged.",
+	    r->pending < 0 ? NAN : (double)r->pending);
+	metrics_gauge(b, "stopcock_redis_pending_own", "Entries pending on "
+	    "this consumer.", r->pending_own < 0 ? NAN :
+	    (double)r->pending_own);
+	metrics_counter(b, "stopcock_redis_entries_total", "Stream entries "
 	    "applied.", r->entries);
-	redis_in_counter(b, "stopcock_redis_skipped_total", "Entries read "
+	metrics_counter(b, "stopcock_redis_skipped_total", "Entries read "
 	    "back that the checkpoint already covered.", r->skipped);
-	redis_in_counter(b, "stopcock_redis_claimed_total", "Entries "
+	metrics_counter(b, "stopcock_redis_claimed_total", "Entries "
 	    "reclaimed from idle consumers.", r->claimed);
-	redis_in_counter(b, "stopcock_redis_acked_total", "Entries "
+	metrics_counter(b, "stopcock_redis_acked_total", "Entries "
 	    "acknowledged.", r->acked);
-	redis_in_counter(b, "stopcock_redis_reconnects_total", "Connection "
+	metrics_counter(b, "stopcock_redis_reconnects_total", "Connection "
 	    "attempts after the first.", r->reconnects);
-	redis_in_counter(b, "stopcock_redis_errors_total", "Commands that "
+	metrics_counter(b, "stopcock_redis_errors_total", "Commands that "
 	    "failed.", r->errors);
 	evbuffer_add_printf(b, "# HELP stopcock_redis_dead_letter_total "
 	    "Entries moved to the dead-letter stream.\n# TYPE "
@@ -852,7 +837,7 @@ redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 		evbuffer_add_printf(b, "stopcock_redis_dead_letter_total{"
 		    "reason=\"%s\"} %" PRIu64 "\n", redis_in_dead_names[i],
 		    r->dead_count[i]);
-	redis_in_counter(b, "stopcock_redis_dead_letter_failed_total",
+	metrics_counter(b, "stopcock_redis_dead_letter_failed_total",
 	    "Dead-letter moves that Redis refused.", r->dead_failed);
 }
 

@@ -1014,8 +1014,7 @@ webhook_metrics(struct webhook *w, struct evbuffer *b)
 	if (w == NULL || w->nrcv == 0)
 		return;
 	for (k = 0; k < SC_NELEM(m); k++) {
-		evbuffer_add_printf(b, "# HELP %s %s\n# TYPE %s %s\n",
-		    m[k].name, m[k].help, m[k].name, m[k].type);
+		metrics_family(b, m[k].name, m[k].type, m[k].help);
 		for (i = 0; i < w->nrcv; i++) {
 			r = w->rcv[i];
 			switch (k) {
