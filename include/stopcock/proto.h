@@ -22,6 +22,9 @@
 #define PROTO_PLAN_MAX 16	/* variants in one plan record */
 #define PROTO_EXPOSE_MAX 1000000000ULL	/* N in one expose record */
 #define PROTO_WEIGHT_MAX 1e6
+/* K and N of one count record: one unit's tally, so far below this; the
+ * bound keeps sums of 10^9 records finite and exact enough. */
+#define PROTO_COUNT_MAX 1e12
 
 enum proto_kind {
 	PROTO_PLAN,

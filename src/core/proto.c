@@ -70,8 +70,8 @@ static const char *const proto_sentences[PROTO_NSTATUS] = {
 	    "a character outside [A-Za-z0-9._:-]",
 	[PROTO_E_NUMBER] = "a number is not a finite decimal of at most 400 "
 	    "characters (no nan, inf or hex; units must be whole)",
-	[PROTO_E_RANGE] = "a number is out of range (negative K or N, N = 0, "
-	    "units outside 1..1000000000, weight above 1e6)",
+	[PROTO_E_RANGE] = "a number is out of range (K or N negative or above "
+	    "1e12, N = 0, units outside 1..1000000000, weight above 1e6)",
 	[PROTO_E_TS] = "timestamp is not unix seconds in [0, 1e11)",
 	[PROTO_E_PLAN] = "plan needs 2 to 16 variants written NAME=WEIGHT with "
 	    "unique names and weights above zero",
@@ -289,7 +289,7 @@ proto_ts(double ts, struct record *r)
 static enum proto_status
 proto_count_values(double k, double n)
 {
-	if (k < 0 || n <= 0)
+	if (k < 0 || n <= 0 || k > PROTO_COUNT_MAX || n > PROTO_COUNT_MAX)
 		return PROTO_E_RANGE;
 	return PROTO_OK;
 }
