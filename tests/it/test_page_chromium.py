@@ -157,6 +157,16 @@ def main():
              "SRM chart with its threshold and epoch start",
              [c["svg"][:8] for c in q.cards])
 
+        # The list marks each verdict of the SRM experiment, not only
+        # the experiment's row.
+        rc, dom3, err = run_chromium(["--dump-dom"],
+                                     "http://127.0.0.1:%d/" % d.http)
+        row = dom3[dom3.find("feed_ranker"):]
+        row = row[:row.find("</tr>")]
+        t.ok(rc == 0 and row.count("untrustworthy") >= 2,
+             "the list marks every verdict of the SRM experiment "
+             "untrustworthy", row[:600])
+
         for name, u, size in (("page.png", url, "1280,1800"),
                               ("page-phone.png", url, "390,1600"),
                               ("page-list.png",
