@@ -71,6 +71,8 @@ struct test {
 	double		 first_ts;
 	uint64_t	 first_event;
 	int		 pause_sent;	/* FINDING_PAUSE emitted this epoch */
+	double		 tau2_level;	/* level tau2_unit was computed for */
+	double		 tau2_unit;	/* mSPRT tau^2 per unit variance */
 	double		 cs_n;		/* samples at the last costly CS */
 	double		 ev_n;		/* samples at the last costly look */
 	int		 dirty;		/* data changed since last evaluation */

@@ -42,6 +42,14 @@ pause_level(const struct engine *eng, const struct experiment *e)
 	return pa / (e->family > 0 ? e->family : 1);
 }
 
+/* Planned units per arm that tune this guardrail's mixture: its own
+ * plan_units when set, else the experiment's. */
+static double
+plan_units(const struct conf_guardrail *g, const struct experiment *e)
+{
+	return g->plan_units > 0 ? g->plan_units : e->plan_units;
+}
+
 /* Signed direction: +1 when an increase is harmful. */
 static double
 harm_sign(const struct conf_guardrail *g)
@@ -129,7 +137,13 @@ eval_normal(struct experiment *e, struct test *t,
 	V = va / na + vb / nb;
 	if (!(V > 0))
 		return -1;
-	tau2 = stats_msprt_tau2(va + vb, level, e->plan_units);
+	/* the rule's constant depends only on the level and the plan: kept
+	 * per test rather than recomputed (two logs) on every record */
+	if (t->tau2_level != level) {
+		t->tau2_level = level;
+		t->tau2_unit = stats_msprt_tau2(1, level, plan_units(g, e));
+	}
+	tau2 = (va + vb) * t->tau2_unit;
 	t->est = t->trt_value - t->ctl_value;
 	t->margin_abs = margin_abs(g, t->ctl_value);
 	theta0 = harm_sign(g) * t->margin_abs;
@@ -291,14 +305,14 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 		shift = g->margin_relative ? 0 : m;
 		blocks_of(eng, a->sk, 0, scale, shift, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
-		t->log_e = stats_quantile_log_e1(&ba, &bb, q, e->plan_units);
+		t->log_e = stats_quantile_log_e1(&ba, &bb, q, plan_units(g, e));
 	} else {
 		scale = g->margin_relative ? 1 - m : 1;
 		shift = g->margin_relative ? 0 : -m;
 		blocks_of(eng, a->sk, 0, scale, shift, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
 		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
-		t->log_e = stats_quantile_log_e1(&bb, &ba, q, e->plan_units);
+		t->log_e = stats_quantile_log_e1(&bb, &ba, q, plan_units(g, e));
 	}
 	if (!want_cs)
 		return 0;
@@ -306,8 +320,8 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	 * jointly by a union bound. */
 	blocks_of(eng, a->sk, 0, 1, 0, &ca);
 	blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &cb);
-	if (stats_quantile_cs(&ca, q, e->plan_units, level / 2, &t->ctl_lo,
-	    &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q, e->plan_units,
+	if (stats_quantile_cs(&ca, q, plan_units(g, e), level / 2, &t->ctl_lo,
+	    &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q, plan_units(g, e),
 	    level / 2, &t->trt_lo, &t->trt_hi) != 0)
 		return 0;
 	t->lo = t->trt_lo - t->ctl_hi;
@@ -348,9 +362,10 @@ quantile_harm_bound(struct engine *eng, struct experiment *e, struct test *t,
 		blocks_of(eng, a->sk, 0, m, 0, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
 		if ((g->harm == HARM_INCREASE ?
-		    stats_quantile_log_e1(&ba, &bb, g->quantile, e->plan_units) :
+		    stats_quantile_log_e1(&ba, &bb, g->quantile,
+		    plan_units(g, e)) :
 		    stats_quantile_log_e1(&bb, &ba, g->quantile,
-		    e->plan_units)) >= target)
+		    plan_units(g, e))) >= target)
 			lo = mid;
 		else
 			hi = mid;

@@ -460,6 +460,61 @@ test_reconfigure(void **state)
 	conf_free(c2);
 }
 
+/* A guardrail's own plan_units tunes its mixture, not the default's: the
+ * same data give a different confidence sequence, and the tuning the
+ * experiment reports names the guardrail's value. */
+static void
+test_guardrail_plan_units(void **state)
+{
+	struct fx *fx = *state;
+	struct conf *c2 = load("[guardrail render2]\nmetric = render_ms\n"
+	    "test = mean\nplan_units = 500000\n");
+	uint8_t key[16] = { 4 };
+	struct engine *e2 = engine_new(c2, key);
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	struct record r;
+	char line[128];
+	json_t *j, *t, *tn;
+	double w[2] = { 0, 0 };
+	size_t i;
+	int k;
+
+	gsl_rng_set(rng, 2);
+	snprintf(line, sizeof line, "plan u control=1 treatment=1");
+	proto_parse(line, strlen(line), &r);
+	engine_apply(e2, &r, 1, 1);
+	for (k = 0; k < 2000; k++) {
+		snprintf(line, sizeof line, "observe u %s render_ms %.4f",
+		    k % 2 ? "control" : "treatment",
+		    100 + gsl_ran_gaussian(rng, 10));
+		proto_parse(line, strlen(line), &r);
+		engine_apply(e2, &r, 2, (uint64_t)k + 2);
+	}
+	j = engine_json_experiment(e2, "u");
+	json_array_foreach(json_object_get(j, "tests"), i, t) {
+		const char *g = json_string_value(json_object_get(t,
+		    "guardrail"));
+		double width = json_real_value(json_object_get(t, "upper")) -
+		    json_real_value(json_object_get(t, "lower"));
+		if (strcmp(g, "render") == 0)
+			w[0] = width;
+		else if (strcmp(g, "render2") == 0)
+			w[1] = width;
+	}
+	assert_true(w[0] > 0 && w[1] > 0 && fabs(w[0] - w[1]) > 1e-6 * w[0]);
+	json_array_foreach(json_object_get(json_object_get(j, "tuning"),
+	    "guardrails"), i, tn)
+		if (strcmp(json_string_value(json_object_get(tn, "guardrail")),
+		    "render2") == 0)
+			assert_true(json_real_value(json_object_get(tn,
+			    "plan_units")) == 500000);
+	json_decref(j);
+	gsl_rng_free(rng);
+	engine_free(e2);
+	conf_free(c2);
+	(void)fx;
+}
+
 int
 main(void)
 {
@@ -480,6 +535,8 @@ main(void)
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_reconfigure, setup,
 		    teardown),
+		cmocka_unit_test_setup_teardown(test_guardrail_plan_units,
+		    setup, teardown),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);
