@@ -60,24 +60,6 @@ ckpt_sha256(const void *p, size_t len, char hex[65])
 	return 0;
 }
 
-static int
-ckpt_write_all(int fd, const char *p, size_t len)
-{
-	ssize_t n;
-
-	while (len > 0) {
-		n = write(fd, p, len);
-		if (n == -1) {
-			if (errno == EINTR)
-				continue;
-			return -1;
-		}
-		p += n;
-		len -= (size_t)n;
-	}
-	return 0;
-}
-
 static json_t *
 ckpt_build(struct daemon *d, char **cause)
 {
@@ -124,13 +106,13 @@ int
 ckpt_write(struct daemon *d, char **cause)
 {
 	json_t *root;
-	char *payload = NULL, *header = NULL, *tmp, *path;
+	char *payload = NULL, *header = NULL, *path;
+	const char *parts[2];
+	size_t lens[2], len;
 	char sha[65];
-	size_t len;
 	double start = daemon_now();
-	int fd = -1, dfd = -1, rc = -1;
+	int rc = -1;
 
-	xasprintf(&tmp, "%s/%s", d->state_dir, CKPT_TEMP);
 	xasprintf(&path, "%s/%s", d->state_dir, CKPT_FILE);
 	if ((root = ckpt_build(d, cause)) == NULL)
 		goto out;
@@ -147,32 +129,13 @@ ckpt_write(struct daemon *d, char **cause)
 	}
 	xasprintf(&header, "%s %d %zu %s\n", CKPT_MAGIC, CKPT_VERSION, len,
 	    sha);
-	fd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0640);
-	if (fd == -1) {
-		xasprintf(cause, "%s: %s", tmp, strerror(errno));
+	parts[0] = header;
+	lens[0] = strlen(header);
+	parts[1] = payload;
+	lens[1] = len;
+	if (durable_write(d->state_dir, path, parts, lens, 2, 0640,
+	    cause) != 0)
 		goto out;
-	}
-	if (ckpt_write_all(fd, header, strlen(header)) != 0 ||
-	    ckpt_write_all(fd, payload, len) != 0 || fsync(fd) != 0) {
-		xasprintf(cause, "%s: %s", tmp, strerror(errno));
-		goto out;
-	}
-	if (close(fd) != 0) {
-		fd = -1;
-		xasprintf(cause, "%s: %s", tmp, strerror(errno));
-		goto out;
-	}
-	fd = -1;
-	if (rename(tmp, path) != 0) {
-		xasprintf(cause, "rename %s: %s", path, strerror(errno));
-		goto out;
-	}
-	/* The rename is durable only once the directory is. */
-	dfd = open(d->state_dir, O_RDONLY | O_DIRECTORY | O_CLOEXEC);
-	if (dfd == -1 || fsync(dfd) != 0) {
-		xasprintf(cause, "%s: %s", d->state_dir, strerror(errno));
-		goto out;
-	}
 	rc = 0;
 	d->checkpoints++;
 	d->last_checkpoint = daemon_now();
@@ -182,15 +145,8 @@ ckpt_write(struct daemon *d, char **cause)
 	if (d->redis != NULL)
 		redis_in_covered(d->redis);
 out:
-	if (fd != -1)
-		close(fd);
-	if (dfd != -1)
-		close(dfd);
-	if (rc != 0)
-		unlink(tmp);
 	free(payload);
 	free(header);
-	free(tmp);
 	free(path);
 	return rc;
 }

@@ -145,6 +145,12 @@ void		 metrics_counter(struct evbuffer *, const char *name,
 void		 metrics_gauge(struct evbuffer *, const char *name,
 		    const char *help, double);
 
+/* durable.c: whole-or-nothing files (tmp, fsync, rename, fsync dir). */
+int		 durable_write(const char *dir, const char *path,
+		    const char *const *parts, const size_t *lens, int nparts,
+		    int mode, char **cause);
+int		 durable_mkdirs(const char *path, int mode, char **cause);
+
 /* ckpt.c */
 int		 ckpt_write(struct daemon *, char **cause);
 int		 ckpt_restore(struct daemon *, char **cause);

@@ -223,15 +223,14 @@ webhook_unspool(struct delivery *dl)
 		log_warn("webhook: unlink %s", dl->path);
 }
 
-/* Write tmp, fsync, rename, fsync the directory: all or nothing. */
+/* The delivery's spool file, written durably before any attempt. */
 static int
 webhook_spool_write(struct receiver *r, struct delivery *dl)
 {
 	json_t *j;
-	char *text, *path, *tmp;
-	size_t len, off = 0;
-	ssize_t n;
-	int fd, dfd;
+	char *text, *path, *cause = NULL;
+	const char *parts[1];
+	size_t lens[1];
 
 	j = json_pack("{s:s, s:s%, s:s, s:I}", "id", dl->id, "body", dl->body,
 	    dl->len, "receiver", r->name, "seq", (json_int_t)dl->seq);
@@ -241,69 +240,19 @@ webhook_spool_write(struct receiver *r, struct delivery *dl)
 	json_decref(j);
 	if (text == NULL)
 		return -1;
-	len = strlen(text);
 	xasprintf(&path, "%s/%016" PRIx64 ".json", r->spool, dl->seq);
-	xasprintf(&tmp, "%s.tmp", path);
-	fd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0600);
-	if (fd == -1)
-		goto fail;
-	while (off < len) {
-		n = write(fd, text + off, len - off);
-		if (n == -1 && errno == EINTR)
-			continue;
-		if (n <= 0)
-			goto fail_fd;
-		off += (size_t)n;
-	}
-	if (fsync(fd) == -1 || close(fd) == -1) {
-		fd = -1;
-		goto fail_unlink;
-	}
-	if (rename(tmp, path) == -1)
-		goto fail_unlink;
-	if ((dfd = open(r->spool, O_RDONLY | O_DIRECTORY | O_CLOEXEC)) != -1) {
-		(void)fsync(dfd);
-		close(dfd);
+	parts[0] = text;
+	lens[0] = strlen(text);
+	if (durable_write(r->spool, path, parts, lens, 1, 0600, &cause) != 0) {
+		log_warnx("webhook: spool: %s", cause);
+		free(cause);
+		free(text);
+		free(path);
+		return -1;
 	}
 	free(text);
-	free(tmp);
 	dl->path = path;
 	return 0;
-
-fail_fd:
-	close(fd);
-fail_unlink:
-	unlink(tmp);
-fail:
-	log_warn("webhook: spool %s", tmp);
-	free(text);
-	free(tmp);
-	free(path);
-	return -1;
-}
-
-static int
-webhook_mkdirs(const char *path, char **cause)
-{
-	char *p, *s;
-
-	p = xstrdup(path);
-	for (s = p + 1; *s != '\0'; s++) {
-		if (*s != '/')
-			continue;
-		*s = '\0';
-		if (mkdir(p, 0700) == -1 && errno != EEXIST)
-			goto fail;
-		*s = '/';
-	}
-	if (mkdir(p, 0700) == -1 && errno != EEXIST)
-		goto fail;
-	free(p);
-	return 0;
-fail:
-	xasprintf(cause, "mkdir %s: %s", p, strerror(errno));
-	free(p);
-	return -1;
 }
 
 static void
@@ -813,7 +762,7 @@ webhook_add(struct webhook *w, const char *name, const char *url,
 
 	if (d->conf->state_dir != NULL) {
 		xasprintf(&r->spool, "%s/spool/%s", d->conf->state_dir, name);
-		if (webhook_mkdirs(r->spool, cause) == -1)
+		if (durable_mkdirs(r->spool, 0700, cause) == -1)
 			return -1;
 		webhook_spool_load(r);
 	} else
