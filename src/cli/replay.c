@@ -124,6 +124,7 @@ replay_read(struct replay *r, FILE *in)
 {
 	char *buf = xmalloc(REPLAY_BUF + PROTO_LINE_MAX + 2);
 	size_t have = 0, n, start, i;
+	const char *nl;
 	int overlong = 0;
 
 	for (;;) {
@@ -133,15 +134,14 @@ replay_read(struct replay *r, FILE *in)
 			break;
 		have += n;
 		start = 0;
-		for (i = 0; i < have; i++) {
-			if (buf[i] != '\n')
-				continue;
-			if (overlong) {
+		/* memchr finds newlines many bytes at a time */
+		while (start < have && (nl = memchr(buf + start, '\n',
+		    have - start)) != NULL) {
+			i = (size_t)(nl - buf);
+			if (overlong)
 				overlong = 0;
-				start = i + 1;
-				continue;
-			}
-			replay_line(r, buf + start, i - start);
+			else
+				replay_line(r, buf + start, i - start);
 			start = i + 1;
 		}
 		if (start == 0 && have > PROTO_LINE_MAX) {
