@@ -20,7 +20,11 @@ PKGS_TEST	= cmocka
 WARN	= -Wall -Wextra -Wformat=2 -Wshadow -Wstrict-prototypes \
 	  -Wmissing-prototypes -Wwrite-strings -Wno-unused-parameter -Werror
 OPT	?= -O2
-CPPFLAGS += -Iinclude -D_GNU_SOURCE
+# The version: the release number, plus the commit when built from git.
+VERSION	?= 0.1.0
+COMMIT	:= $(shell git rev-parse --short HEAD 2>/dev/null)
+CPPFLAGS += -Iinclude -D_GNU_SOURCE \
+	    -DSTOPCOCK_VERSION='"$(VERSION)$(if $(COMMIT),+$(COMMIT))"'
 CFLAGS	?= -g
 CFLAGS	+= -std=c11 $(OPT) $(WARN) -fno-strict-aliasing \
 	   $(shell pkg-config --cflags $(PKGS_CORE) $(PKGS_DAEMON) 2>/dev/null)
