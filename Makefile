@@ -23,10 +23,10 @@ OPT	?= -O2
 # The version: the release number, plus the commit when built from git.
 VERSION	?= 0.1.0
 COMMIT	:= $(shell git rev-parse --short HEAD 2>/dev/null)
-CPPFLAGS += -Iinclude -D_GNU_SOURCE \
+override CPPFLAGS += -Iinclude -D_GNU_SOURCE \
 	    -DSTOPCOCK_VERSION='"$(VERSION)$(if $(COMMIT),+$(COMMIT))"'
 CFLAGS	?= -g
-CFLAGS	+= -std=c11 $(OPT) $(WARN) -fno-strict-aliasing \
+override CFLAGS += -std=c11 $(OPT) $(WARN) -fno-strict-aliasing \
 	   $(shell pkg-config --cflags $(PKGS_CORE) $(PKGS_DAEMON) 2>/dev/null)
 LDLIBS_CORE	= $(shell pkg-config --libs $(PKGS_CORE) 2>/dev/null) -lm
 LDLIBS_DAEMON	= $(shell pkg-config --libs $(PKGS_DAEMON) 2>/dev/null) \
@@ -36,9 +36,9 @@ LDLIBS_TEST	= $(shell pkg-config --libs $(PKGS_TEST) 2>/dev/null)
 ifeq ($(SAN),1)
 BUILD	= build/san
 OPT	= -O1
-CFLAGS	+= -fsanitize=address,undefined -fno-omit-frame-pointer \
+override CFLAGS += -fsanitize=address,undefined -fno-omit-frame-pointer \
 	   -fno-sanitize-recover=undefined
-LDFLAGS	+= -fsanitize=address,undefined
+override LDFLAGS += -fsanitize=address,undefined
 endif
 
 CORE_SRC	= $(sort $(wildcard src/util/*.c src/core/*.c src/core/stats/*.c))
