@@ -7,6 +7,9 @@
  * summary goes to stderr. Bad lines are counted by reason and the first
  * few reported with their line number; they never stop the run.
  */
+#include <sys/mman.h>
+#include <sys/stat.h>
+
 #include <errno.h>
 #include <getopt.h>
 #include <math.h>
@@ -165,6 +168,34 @@ replay_read(struct replay *r, FILE *in)
 	return ferror(in) ? -1 : 0;
 }
 
+/*
+ * A regular file is mapped rather than read: replay's input is large and
+ * read once, and copying it through a buffer cost a fifth of the time.
+ * Returns 1 when the file cannot be mapped (the caller reads it instead).
+ */
+static int
+replay_map(struct replay *r, FILE *in)
+{
+	struct stat st;
+	const char *base, *p, *end, *nl;
+	int fd = fileno(in);
+
+	if (fstat(fd, &st) != 0 || !S_ISREG(st.st_mode) || st.st_size <= 0)
+		return 1;
+	base = mmap(NULL, (size_t)st.st_size, PROT_READ, MAP_PRIVATE, fd, 0);
+	if (base == MAP_FAILED)
+		return 1;
+	(void)madvise((void *)base, (size_t)st.st_size, MADV_SEQUENTIAL);
+	end = base + st.st_size;
+	for (p = base; p < end; p = nl + 1) {
+		if ((nl = memchr(p, '\n', (size_t)(end - p))) == NULL)
+			nl = end;
+		replay_line(r, p, (size_t)(nl - p));
+	}
+	munmap((void *)base, (size_t)st.st_size);
+	return 0;
+}
+
 static void
 replay_summary(struct replay *r)
 {
@@ -314,7 +345,7 @@ cmd_replay(int argc, char **argv)
 	r.tick = conf->tick > 0 ? conf->tick : 1;
 	r.tty = isatty(STDERR_FILENO);
 	engine_set_sink(r.engine, replay_sink, &r);
-	rc = replay_read(&r, in);
+	rc = replay_map(&r, in) == 0 ? 0 : replay_read(&r, in);
 	engine_finish(r.engine, r.now);
 	fflush(stdout);
 	replay_summary(&r);

@@ -165,6 +165,15 @@ tap.ok(rc == 0 and harms(found) == [("checkout-v2", "checkout_p99",
        "rc %d, harms %s, srm %d\n%s" % (rc, harms(found), len(srms(found)),
                                         err))
 
+# A file is mapped, standard input is read through a buffer: the same
+# verdicts either way.
+with open(path, "rb") as f:
+    p = subprocess.run([STOPCOCK, "replay", "-q", "-c", demo_conf, "-"],
+                       stdin=f, capture_output=True, timeout=300)
+tap.ok(p.returncode == 0 and [json.loads(l) for l in
+                              p.stdout.decode().splitlines() if l] == found,
+       "replay from standard input equals replay of the file")
+
 # --report: the demo's charts as standalone SVG files for a post-mortem,
 # parsed by Python's own XML parser; the harmful test's chart marks the
 # verdict and draws the margin line.
