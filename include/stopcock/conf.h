@@ -69,6 +69,10 @@ struct conf {
 	uint32_t	sketch_buckets;
 	uint32_t	history_points;	/* chart points kept per test */
 	uint32_t	tick_budget;	/* costly looks per tick, 0: no limit */
+	/* event time: the SRM test reads only complete intervals */
+	double		lateness;	/* allowed lateness of an exposure, s */
+	double		srm_interval;	/* SRM interval length, s */
+	uint32_t	unit_groups;	/* variance groups per arm (unit=) */
 	/* [defaults]: caps (hostile cardinality) */
 	uint32_t	max_experiments;
 	uint32_t	max_variants;

@@ -32,6 +32,8 @@ enum engine_reject {
 	ENGINE_E_METRICS,	/* "cap_metrics" */
 	ENGINE_E_MISMATCH,	/* "kind_mismatch": observe for a count metric.. */
 	ENGINE_E_K_GT_N,	/* "k_exceeds_n": proportion with K > N */
+	ENGINE_E_CLOSED_EPOCH,	/* "closed_epoch": epoch= names a past epoch */
+	ENGINE_E_FUTURE_EPOCH,	/* "future_epoch": epoch= not planned yet */
 	ENGINE_NREJECT
 };
 
@@ -83,6 +85,7 @@ struct finding {
 	double		 margin;	/* absolute margin in force */
 	double		 chi2_p;	/* srm: one-look chi-square p */
 	double		 sketch_accuracy;	/* quantile tests */
+	double		 design_effect;	/* variance / independent-unit one */
 	int		 untrusted;	/* SRM has fired in this epoch */
 	double		 ts;		/* record time of the finding */
 	double		 first_ts;	/* when the verdict first held */
@@ -101,6 +104,8 @@ struct engine_counters {
 	uint64_t	 tests;		/* live guardrail x arm tests */
 	size_t		 bytes;		/* memory held by tallies and tests */
 	uint64_t	 findings;
+	uint64_t	 grouped_series;	/* series with unit= groups */
+	uint64_t	 srm_late;	/* exposures behind the watermark */
 };
 
 struct engine;

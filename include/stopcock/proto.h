@@ -7,6 +7,18 @@
  *   [@TS] observe EXP VAR METRIC VALUE
  *   [@TS] count   EXP VAR METRIC K N
  *
+ * expose, observe and count records may end with attributes KEY=VALUE
+ * (JSON: keys of the object):
+ *   unit=ID    the randomisation unit (user, device) the record belongs
+ *              to: 1-128 bytes of [A-Za-z0-9._:-]. Records of one unit
+ *              share a variance group, so requests clustered in a user
+ *              do not count as independent. Absent: the record is its
+ *              own unit.
+ *   epoch=N    the epoch (1-based plan generation) in which the unit was
+ *              exposed, for records that arrive after a ramp step.
+ *              Absent: the epoch current when the record arrives.
+ * An unknown key, a repeated key or a bad value is bad_attribute.
+ *
  * proto_parse is a pure function: no I/O and no allocation for the plain
  * form (the JSON form goes through jansson, which allocates). Names are
  * copied into the record, so a record outlives its line.
@@ -25,6 +37,8 @@
 /* K and N of one count record: one unit's tally, so far below this; the
  * bound keeps sums of 10^9 records finite and exact enough. */
 #define PROTO_COUNT_MAX 1e12
+#define PROTO_UNIT_MAX 128	/* bytes in a unit= id */
+#define PROTO_EPOCH_MAX 1000000000u	/* largest epoch= value */
 
 enum proto_kind {
 	PROTO_PLAN,
@@ -51,6 +65,7 @@ enum proto_status {
 	PROTO_E_PLAN,		/* "bad_plan": duplicate variant, zero weights */
 	PROTO_E_JSON,		/* "bad_json": not a JSON object or wrong types */
 	PROTO_E_BYTES,		/* "bad_bytes": NUL or control characters */
+	PROTO_E_ATTR,		/* "bad_attribute": unknown/repeated key, bad value */
 	PROTO_NSTATUS
 };
 
@@ -69,6 +84,9 @@ struct record {
 	double		value;		/* observe */
 	double		k, n;		/* count: K events of N (or over N) */
 	uint64_t	units;		/* expose: N, default 1 */
+	uint32_t	epoch;		/* epoch=: 0 when absent */
+	uint8_t		unit_len;	/* unit=: 0 when absent */
+	char		unit[PROTO_UNIT_MAX + 1];
 	int		narms;		/* plan */
 	struct proto_arm arms[PROTO_PLAN_MAX];
 };

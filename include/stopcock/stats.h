@@ -54,6 +54,38 @@ double	stats_msprt_log_lr(double est, double theta0, double V, double tau2);
 double	stats_msprt_halfwidth(double V, double tau2, double alpha);
 /* tau^2 tuned to be tightest at n_opt steps of per-step variance v_unit. */
 double	stats_msprt_tau2(double v_unit, double alpha, double n_opt);
+/*
+ * One-sided harm evidence with a margin (docs/methods.md, "harm
+ * evidence"): the half-normal mixture over excesses lambda >= 0 of the
+ * Gaussian likelihood ratio, for d = s * estimate - margin (positive
+ * means beyond the margin in the harmful direction) with variance V and
+ * mixing scale tau2. A supermartingale on the whole null "no harm beyond
+ * the margin"; a better treatment drives it towards 0. Returns log E,
+ * 0 when V or tau2 is not a positive finite number.
+ */
+double	stats_harm_log_e(double d, double V, double tau2);
+/* The smallest d with stats_harm_log_e(d, V, tau2) >= log(1/alpha). */
+double	stats_harm_boundary(double V, double tau2, double alpha);
+/*
+ * Proportions under the null p_T - p_C = D: the restricted maximum
+ * likelihood estimates (Farrington & Manning 1990, method 3), found by
+ * bisection on the score. Returns 0, or -1 when the data carry no
+ * information (no arm has trials).
+ */
+int	stats_prop_null(double x_t, double n_t, double x_c, double n_c,
+	    double D, double *p_t, double *p_c);
+/*
+ * Random-group variance of a ratio R = sum S_g / sum N_g over G groups
+ * (Wolter 2007, ch. 2, in linearised form): G/(G-1) sum (S_g - R N_g)^2
+ * / N^2. Sets *R; returns the variance (NAN when N is 0 or G < 2).
+ */
+double	stats_group_var(int G, const double *S, const double *N, double *R);
+/*
+ * Inflation for a variance estimated from nu + 1 groups, so the test's
+ * tail at one-sided probability q matches a t with nu degrees of freedom:
+ * kappa = (t_nu^-1(1 - q) / z_{1-q})^2.
+ */
+double	stats_group_kappa(double nu, double q);
 
 /* ---- dirichlet.c: SRM, rates, beta-binomial mixtures ---- */
 #define STATS_ARMS_MAX 16

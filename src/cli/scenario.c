@@ -643,6 +643,11 @@ scenario_next(struct scenario_gen *g, struct record *r)
 
 	if (g->emitted >= s->records)
 		return 0;
+	/* the generator states neither unit nor epoch: each record is its
+	 * own unit and counts in the epoch current when it arrives */
+	r->epoch = 0;
+	r->unit_len = 0;
+	r->unit[0] = '\0';
 	if (g->phase == 0 && g->next_plan == 0 && !g->ramped &&
 	    s->ramp_at > 0 && (double)g->emitted >= s->ramp_at *
 	    (double)s->records) {

@@ -72,6 +72,17 @@ const struct conf_option conf_options[] = {
 	{ S_DEFAULTS, "tick_budget", T_U32, C(tick_budget), 0, 100000000,
 	  F_ZERO_OK, "500", NULL, "costly test looks per tick, taken in turn "
 	  "across experiments (bounds a tick's time); 0: no limit" },
+	{ S_DEFAULTS, "lateness", T_DURATION, C(lateness), 0, 86400,
+	  F_ZERO_OK, "30s", NULL, "how far behind the newest exposure of an "
+	  "experiment (in record time) an exposure may arrive and still "
+	  "count in the SRM test; later ones are counted as late" },
+	{ S_DEFAULTS, "srm_interval", T_DURATION, C(srm_interval), 0.001,
+	  3600, 0, "5s", NULL, "the SRM test adds exposures one complete "
+	  "interval of record time at a time, so arrival order inside an "
+	  "interval cannot move it" },
+	{ S_DEFAULTS, "unit_groups", T_U32, C(unit_groups), 16, 4096, 0,
+	  "256", NULL, "random groups per arm and metric for the variance "
+	  "of records that name their unit (unit=); memory 16 bytes each" },
 	{ S_DEFAULTS, "max_experiments", T_U32, C(max_experiments), 1, 1e6, 0,
 	  "10000", NULL, "experiments tracked at once; records beyond are "
 	  "refused and counted" },

@@ -22,6 +22,7 @@
 static const char *reject_names[ENGINE_NREJECT] = {
 	"ok", "unplanned", "unknown_variant", "cap_experiments",
 	"cap_variants", "cap_metrics", "kind_mismatch", "k_exceeds_n",
+	"closed_epoch", "future_epoch",
 };
 
 const char *
@@ -129,14 +130,68 @@ arm_find(const struct experiment *e, const char *name)
 }
 
 static void
+groups_free(struct groups *g)
+{
+	if (g == NULL)
+		return;
+	free(g->s);
+	free(g->n);
+	free(g);
+}
+
+static struct groups *
+groups_new(uint32_t G)
+{
+	struct groups *g = xcalloc(1, sizeof *g);
+
+	g->G = G;
+	g->s = xcalloc(G, sizeof *g->s);
+	g->n = xcalloc(G, sizeof *g->n);
+	return g;
+}
+
+/*
+ * Add one record to its unit's group. The group index comes from the
+ * unit's SipHash under the engine key, mixed with a per-experiment salt
+ * so two experiments never share a grouping (the assignment hash of the
+ * producer is unknown to us and must not line up with ours). Records of
+ * a grouped series that name no unit are their own units: round robin.
+ */
+static void
+groups_add(struct engine *eng, struct experiment *e, struct series *sr,
+    const struct record *r, double num, double den)
+{
+	uint32_t G, gi;
+	uint64_t h;
+
+	if (sr->grp == NULL) {
+		if (r->unit_len == 0)
+			return;
+		sr->grp = groups_new(eng->conf->unit_groups);
+		eng->counters.grouped_series++;
+	}
+	G = sr->grp->G;
+	if (r->unit_len > 0) {
+		h = (siphash24(eng->key, r->unit, r->unit_len) ^ e->salt) *
+		    0x9e3779b97f4a7c15ULL;
+		gi = (uint32_t)((h >> 32) % G);
+	} else
+		gi = (uint32_t)(sr->grp->seq++ % G);
+	sr->grp->s[gi] += num;
+	sr->grp->n[gi] += den;
+}
+
+static void
 series_free(struct metric *m, int narms)
 {
 	int i;
 
 	if (m->arm == NULL)
 		return;
-	for (i = 0; i < narms; i++)
+	for (i = 0; i < narms; i++) {
 		sketch_free(m->arm[i].sk);
+		groups_free(m->arm[i].grp);
+	}
 	free(m->arm);
 	m->arm = NULL;
 }
@@ -198,6 +253,7 @@ test_reset_epoch(struct test *t)
 	t->ctl_value = t->trt_value = NAN;
 	t->ctl_lo = t->ctl_hi = t->trt_lo = t->trt_hi = NAN;
 	t->margin_abs = NAN;
+	t->deff = 0;
 	t->first_ts = NAN;
 	t->first_event = 0;
 	t->pause_sent = 0;
@@ -280,9 +336,10 @@ exp_settings(const struct engine *eng, struct experiment *e)
 
 /* SRM state for a new epoch: Dirichlet(k0 theta0) prior. */
 static void
-exp_srm_start(struct experiment *e)
+exp_srm_start(const struct engine *eng, struct experiment *e)
 {
 	double sum = 0, k0;
+	uint32_t slots;
 	int i;
 
 	for (i = 0; i < e->narms; i++)
@@ -296,7 +353,19 @@ exp_srm_start(struct experiment *e)
 		e->theta0[i] = e->arms[i].weight / sum;
 		e->srm_a[i] = k0 * e->theta0[i];
 		e->exposures[i] = 0;
+		e->srm_late[i] = 0;
 	}
+	/* open intervals span the lateness plus the one being filled */
+	slots = (uint32_t)ceil(eng->conf->lateness /
+	    eng->conf->srm_interval) + 2;
+	if (slots > ENGINE_SRM_SLOTS_MAX)
+		slots = ENGINE_SRM_SLOTS_MAX;
+	free(e->srm_ring);
+	e->srm_slots = slots;
+	e->srm_ring = xcalloc((size_t)slots * PROTO_PLAN_MAX,
+	    sizeof *e->srm_ring);
+	e->srm_done = INT64_MIN;
+	e->srm_newest = NAN;
 	e->srm_log_e = e->srm_max_log_e = 0;
 	e->srm_fired = 0;
 	e->srm_first_ts = NAN;
@@ -330,11 +399,12 @@ engine_exp_new(struct engine *eng, const char *id,
 
 	e = xcalloc(1, sizeof *e);
 	snprintf(e->id, sizeof e->id, "%s", id);
+	e->salt = siphash24(eng->key, e->id, strlen(e->id));
 	e->epoch = 1;
 	e->narms = narms;
 	memcpy(e->arms, arms, (size_t)narms * sizeof *arms);
 	exp_settings(eng, e);
-	exp_srm_start(e);
+	exp_srm_start(eng, e);
 	exp_push_epoch(e, now);
 	exp_ensure_tests(eng, e);
 	e->last_ts = now;
@@ -363,6 +433,7 @@ engine_exp_free(struct experiment *e)
 		hist_free(&e->tests[i].hist);
 	free(e->tests);
 	hist_free(&e->srm_hist);
+	free(e->srm_ring);
 	free(e->epochs);
 	free(e);
 }
@@ -400,7 +471,7 @@ exp_new_epoch(struct engine *eng, struct experiment *e,
 	if (forget)
 		hist_free(&e->srm_hist);
 	exp_settings(eng, e);
-	exp_srm_start(e);
+	exp_srm_start(eng, e);
 	exp_push_epoch(e, now);
 	exp_ensure_tests(eng, e);
 	finding_fill_srm(eng, e, FINDING_EPOCH, &f);
@@ -616,6 +687,111 @@ evaluate_metric(struct engine *eng, struct experiment *e, int mi, int arm)
 	}
 }
 
+/*
+ * Apply every SRM interval that ends at or before the watermark, each as
+ * one exact Dirichlet-multinomial batch (Lindon & Malek 2022): the Bayes
+ * factor after a batch depends on its counts only, so the order in which
+ * a complete interval's exposures arrived cannot move it, while the old
+ * per-record path peaked inside a batch of one arm.
+ */
+static uint64_t *
+srm_slot(const struct experiment *e, int64_t j)
+{
+	int64_t k = j % (int64_t)e->srm_slots;
+
+	if (k < 0)
+		k += e->srm_slots;
+	return e->srm_ring + (size_t)k * PROTO_PLAN_MAX;
+}
+
+static void
+srm_complete(struct engine *eng, struct experiment *e, int64_t upto)
+{
+	double x[PROTO_PLAN_MAX];
+	uint64_t *slot, total;
+	int64_t end = upto;
+	int i, applied = 0;
+
+	/* beyond one turn of the ring every interval is empty: a jump in
+	 * record time costs one turn, not one step per interval */
+	if (end - e->srm_done > (int64_t)e->srm_slots)
+		end = e->srm_done + (int64_t)e->srm_slots;
+	for (; e->srm_done < end; e->srm_done++) {
+		slot = srm_slot(e, e->srm_done);
+		total = 0;
+		for (i = 0; i < e->narms; i++) {
+			x[i] = (double)slot[i];
+			total += slot[i];
+			slot[i] = 0;
+		}
+		if (total == 0)
+			continue;
+		e->srm_log_e += stats_dm_update(e->narms, e->srm_a, x,
+		    e->theta0);
+		applied = 1;
+		if (e->srm_log_e > e->srm_max_log_e)
+			e->srm_max_log_e = e->srm_log_e;
+	}
+	if (upto > e->srm_done)
+		e->srm_done = upto;
+	if (applied)
+		verdict_srm(eng, e);
+}
+
+static int64_t
+srm_interval_of(const struct engine *eng, double t)
+{
+	double j = floor(t / eng->conf->srm_interval);
+
+	return j < -9e18 ? INT64_MIN + 1 : j > 9e18 ? INT64_MAX - 1 :
+	    (int64_t)j;
+}
+
+/*
+ * An exposure at event time t. The watermark is the newest exposure time
+ * less the allowed lateness (the producer's promise: no exposure arrives
+ * later than that behind the newest one). Exposures stamped before the
+ * epoch began belong to the previous plan's split and are late too.
+ */
+static void
+srm_expose(struct engine *eng, struct experiment *e, int arm,
+    uint64_t units, double t)
+{
+	const struct epoch_info *ep = e->nepochs > 0 ?
+	    &e->epochs[e->nepochs - 1] : NULL;
+	int64_t j = srm_interval_of(eng, t), w;
+
+	if (!(t >= e->srm_newest)) {
+		if (isnan(e->srm_newest)) {
+			e->srm_newest = t;
+			e->srm_done = srm_interval_of(eng,
+			    t - eng->conf->lateness);
+		}
+	} else if (t > e->srm_newest) {
+		e->srm_newest = t;
+		w = srm_interval_of(eng, t - eng->conf->lateness);
+		/* the ring holds srm_slots intervals: never more open */
+		if (w < j - (int64_t)e->srm_slots + 2)
+			w = j - (int64_t)e->srm_slots + 2;
+		srm_complete(eng, e, w);
+	}
+	if (j < e->srm_done || (ep != NULL && t < ep->started)) {
+		e->srm_late[arm] += units;
+		eng->counters.srm_late += units;
+		return;
+	}
+	srm_slot(e, j)[arm] += units;
+}
+
+/* End of input: every open interval is complete. */
+static void
+srm_flush(struct engine *eng, struct experiment *e)
+{
+	if (isnan(e->srm_newest))
+		return;
+	srm_complete(eng, e, srm_interval_of(eng, e->srm_newest) + 1);
+}
+
 enum engine_reject
 engine_apply(struct engine *eng, const struct record *r, double now,
     uint64_t event)
@@ -623,13 +799,13 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 	struct experiment *e;
 	struct metric *m;
 	enum engine_reject rc = ENGINE_OK;
-	double x[PROTO_PLAN_MAX];
 	int arm, mi;
 
 	eng->now = now;
 	eng->event = event;
 	if (r->kind == PROTO_PLAN) {
-		rc = apply_plan(eng, r->arms, r->narms, r->experiment, now);
+		rc = apply_plan(eng, r->arms, r->narms, r->experiment,
+		    r->has_ts && r->ts < now ? r->ts : now);
 		goto done;
 	}
 	if ((e = exp_find_recent(eng, r->experiment)) == NULL) {
@@ -642,15 +818,21 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 	}
 	e->last_ts = now;
 	e->last_event = event;
+	/* a record names the epoch its unit was exposed in (epoch=); one
+	 * of a closed epoch must not land in the current one's tallies */
+	if (r->epoch != 0 && r->epoch != e->epoch) {
+		rc = r->epoch < e->epoch ? ENGINE_E_CLOSED_EPOCH :
+		    ENGINE_E_FUTURE_EPOCH;
+		if (rc == ENGINE_E_CLOSED_EPOCH)
+			e->late_epoch++;
+		goto done;
+	}
 	switch (r->kind) {
 	case PROTO_EXPOSE:
 		e->exposures[arm] += r->units;
-		memset(x, 0, sizeof x);
-		x[arm] = (double)r->units;
-		/* exact Dirichlet-multinomial batch update (sec. 3) */
-		e->srm_log_e += stats_dm_update(e->narms, e->srm_a, x,
-		    e->theta0);
-		verdict_srm(eng, e);
+		/* event time: the record's own stamp, even when a caller's
+		 * clock (replay: the newest record time) runs ahead of it */
+		srm_expose(eng, e, arm, r->units, r->has_ts ? r->ts : now);
 		break;
 	case PROTO_OBSERVE:
 		if ((rc = metric_for(eng, e, r->metric, METRIC_OBSERVE,
@@ -659,6 +841,7 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 		tally_moments_add(&m->arm[arm].m, r->value);
 		if (m->arm[arm].sk != NULL)
 			sketch_add(m->arm[arm].sk, r->value, 1);
+		groups_add(eng, e, &m->arm[arm], r, r->value, 1);
 		mi = (int)(m - e->metrics);
 		evaluate_metric(eng, e, mi, arm);
 		break;
@@ -671,6 +854,7 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 			goto done;
 		}
 		tally_ratio_add(&m->arm[arm].r, r->k, r->n);
+		groups_add(eng, e, &m->arm[arm], r, r->k, r->n);
 		mi = (int)(m - e->metrics);
 		evaluate_metric(eng, e, mi, arm);
 		break;
@@ -759,6 +943,10 @@ engine_tick(struct engine *eng, double now)
 void
 engine_finish(struct engine *eng, double now)
 {
+	uint32_t i;
+
+	for (i = 0; i < eng->nexps; i++)
+		srm_flush(eng, eng->exps[i]);
 	eng->force = 1;
 	engine_tick(eng, now);
 	eng->force = 0;

@@ -21,13 +21,34 @@
 /* Minimum records per arm before a plug-in variance is trusted
  * (common practice for CLT-based tests; our choice of 30). */
 #define ENGINE_BURN_IN 30
+/* Filled unit groups before a group variance is used (our choice). */
+#define ENGINE_GROUPS_MIN 30
+/* Expected events and non-events per arm before a proportion is tested
+ * (common practice for normal approximations to the binomial). */
+#define ENGINE_EVENTS_MIN 5
 
 enum metric_kind { METRIC_UNSET, METRIC_OBSERVE, METRIC_COUNT };
+
+/*
+ * Random groups of units (Wolter 2007, ch. 2): records naming their unit
+ * (unit=) add to the group the unit hashes to, so all of one user's
+ * requests share a group and the spread of group totals carries their
+ * dependence. Allocated on the first unit= record of a series; a series
+ * whose records never name a unit treats each record as its unit and
+ * needs no groups.
+ */
+struct groups {
+	uint32_t	 G;		/* unit_groups when allocated */
+	uint64_t	 seq;		/* records without unit=: round robin */
+	double		*s;		/* [G] numerator: values, events */
+	double		*n;		/* [G] denominator: records, trials */
+};
 
 struct series {
 	struct tally_moments	 m;	/* observe values */
 	struct tally_ratio	 r;	/* count records */
 	struct sketch		*sk;	/* when a quantile guardrail reads it */
+	struct groups		*grp;	/* once a unit= record arrives */
 };
 
 struct metric {
@@ -73,6 +94,9 @@ struct test {
 	int		 pause_sent;	/* FINDING_PAUSE emitted this epoch */
 	double		 tau2_level;	/* level tau2_unit was computed for */
 	double		 tau2_unit;	/* mSPRT tau^2 per unit variance */
+	double		 tail_q;	/* design tail for kappa, at tau2_level */
+	double		 deff;		/* design effect of the larger arm */
+	double		 V, tau2;	/* last mean/proportion look */
 	double		 cs_n;		/* samples at the last costly CS */
 	double		 ev_n;		/* samples at the last costly look */
 	int		 dirty;		/* data changed since last evaluation */
@@ -99,6 +123,18 @@ struct experiment {
 
 	/* SRM, this epoch (Lindon & Malek 2022 Dirichlet-multinomial). */
 	double		 srm_a[PROTO_PLAN_MAX];	/* posterior concentration */
+	/*
+	 * Event time: exposures wait in a ring of open intervals until the
+	 * watermark (newest exposure time - lateness) passes their end;
+	 * complete intervals are applied as one batch each.
+	 */
+	int64_t		 srm_done;	/* first interval not yet applied */
+	double		 srm_newest;	/* newest exposure time, NAN none */
+	uint32_t	 srm_slots;	/* ring length */
+	uint64_t	*srm_ring;	/* [srm_slots][narms] open counts */
+	uint64_t	 srm_late[PROTO_PLAN_MAX];	/* behind the watermark */
+	uint64_t	 late_epoch;	/* records naming a closed epoch */
+	uint64_t	 salt;		/* unit hash, per experiment */
 	double		 srm_log_e, srm_max_log_e;
 	int		 srm_fired;	/* untrusted this epoch */
 	double		 srm_first_ts;
@@ -119,6 +155,8 @@ struct experiment {
 };
 
 #define ENGINE_EPOCHS_KEPT 32
+/* Open SRM intervals at most: bounds lateness / srm_interval. */
+#define ENGINE_SRM_SLOTS_MAX 4096
 
 struct engine {
 	struct conf	*conf;		/* owned copy */

@@ -157,8 +157,9 @@ tuning_json(const struct engine *eng, double alpha, double srm_alpha,
 		switch (gr->test) {
 		case TEST_MEAN:
 		case TEST_PROPORTION:
+			/* one-sided tuning: alpha -> 2 alpha */
 			json_object_set_new(o, "tau2_per_unit_variance",
-			    finding_num(stats_msprt_tau2(1, level, units)));
+			    finding_num(stats_msprt_tau2(1, 2 * level, units)));
 			break;
 		case TEST_RATE:
 			json_object_set_new(o, "concentration", finding_num(
@@ -228,6 +229,17 @@ engine_json_experiment(const struct engine *eng, const char *id)
 		    finding_num(e->epochs[i].started), "arms", arms));
 	}
 	json_object_set_new(o, "epochs", ep);
+	arms = json_array();
+	for (i = 0; i < e->narms; i++)
+		json_array_append_new(arms, json_integer(
+		    (json_int_t)e->srm_late[i]));
+	/* what was counted but not applied: exposures behind the SRM
+	 * watermark (per arm), records naming a closed epoch */
+	json_object_set_new(o, "late", json_pack("{s:o, s:I, s:o, s:o}",
+	    "srm_exposures", arms, "closed_epoch_records",
+	    (json_int_t)e->late_epoch, "lateness",
+	    finding_num(eng->conf->lateness), "srm_interval",
+	    finding_num(eng->conf->srm_interval)));
 	return o;
 }
 
@@ -394,6 +406,107 @@ sketch_load(const char *b64)
 }
 
 static json_t *
+groups_save(const struct groups *g)
+{
+	json_t *sa = json_array(), *na = json_array();
+	uint32_t i;
+
+	for (i = 0; i < g->G; i++) {
+		json_array_append_new(sa, sreal(g->s[i]));
+		json_array_append_new(na, sreal(g->n[i]));
+	}
+	return json_pack("{s:I, s:o, s:o}", "seq", (json_int_t)g->seq, "s", sa,
+	    "n", na);
+}
+
+/* Groups of a series; a count other than the configured one (unit_groups
+ * changed between runs) cannot be mapped back: the image is refused. */
+static int
+groups_load(struct series *sr, const json_t *o, uint32_t G)
+{
+	const json_t *sa = json_object_get(o, "s"), *na = json_object_get(o,
+	    "n");
+	uint32_t i;
+
+	if (json_array_size(sa) != G || json_array_size(na) != G)
+		return -1;
+	sr->grp = xcalloc(1, sizeof *sr->grp);
+	sr->grp->G = G;
+	sr->grp->s = xcalloc(G, sizeof *sr->grp->s);
+	sr->grp->n = xcalloc(G, sizeof *sr->grp->n);
+	sr->grp->seq = (uint64_t)json_integer_value(json_object_get(o, "seq"));
+	for (i = 0; i < G; i++) {
+		sr->grp->s[i] = aget(sa, i);
+		sr->grp->n[i] = aget(na, i);
+		if (!isfinite(sr->grp->s[i]) || !isfinite(sr->grp->n[i]))
+			return -1;
+	}
+	return 0;
+}
+
+/* The SRM test's open intervals: [interval, count per arm...] rows. */
+static json_t *
+srm_ring_save(const struct experiment *e)
+{
+	json_t *rows = json_array(), *row;
+	const uint64_t *slot;
+	int64_t j;
+	int i, any;
+
+	if (isnan(e->srm_newest))
+		return rows;
+	for (j = e->srm_done; j < e->srm_done + (int64_t)e->srm_slots; j++) {
+		int64_t k = j % (int64_t)e->srm_slots;
+		if (k < 0)
+			k += e->srm_slots;
+		slot = e->srm_ring + (size_t)k * PROTO_PLAN_MAX;
+		for (i = any = 0; i < e->narms; i++)
+			any |= slot[i] != 0;
+		if (!any)
+			continue;
+		row = json_array();
+		json_array_append_new(row, json_integer((json_int_t)j));
+		for (i = 0; i < e->narms; i++)
+			json_array_append_new(row, json_integer(
+			    (json_int_t)slot[i]));
+		json_array_append_new(rows, row);
+	}
+	return rows;
+}
+
+static int
+srm_ring_load(struct experiment *e, const json_t *rows)
+{
+	const json_t *row;
+	size_t r;
+	int64_t j, k;
+	int i;
+
+	json_array_foreach(rows, r, row) {
+		if (json_array_size(row) != (size_t)e->narms + 1)
+			return -1;
+		j = (int64_t)json_integer_value(json_array_get(row, 0));
+		/* a lateness changed since the image was written: what no
+		 * longer fits the ring is late, counted, not applied */
+		if (j < e->srm_done || j >= e->srm_done +
+		    (int64_t)e->srm_slots) {
+			for (i = 0; i < e->narms; i++)
+				e->srm_late[i] += (uint64_t)json_integer_value(
+				    json_array_get(row, (size_t)i + 1));
+			continue;
+		}
+		k = j % (int64_t)e->srm_slots;
+		if (k < 0)
+			k += e->srm_slots;
+		for (i = 0; i < e->narms; i++)
+			e->srm_ring[(size_t)k * PROTO_PLAN_MAX + (size_t)i] =
+			    (uint64_t)json_integer_value(json_array_get(row,
+			    (size_t)i + 1));
+	}
+	return 0;
+}
+
+static json_t *
 exp_save(const struct experiment *e, const struct conf *conf)
 {
 	json_t *o, *a, *m, *arms, *tests;
@@ -416,6 +529,21 @@ exp_save(const struct experiment *e, const struct conf *conf)
 	    "first_event", (json_int_t)e->srm_first_event, "hist",
 	    hist_save(&e->srm_hist)));
 	a = json_array();
+	for (i = 0; i < e->narms; i++)
+		json_array_append_new(a, json_integer(
+		    (json_int_t)e->srm_late[i]));
+	json_object_set_new(json_object_get(o, "srm"), "late", a);
+	if (!isnan(e->srm_newest)) {
+		json_object_set_new(json_object_get(o, "srm"), "done",
+		    json_integer((json_int_t)e->srm_done));
+		json_object_set_new(json_object_get(o, "srm"), "newest",
+		    sreal(e->srm_newest));
+		json_object_set_new(json_object_get(o, "srm"), "open",
+		    srm_ring_save(e));
+	}
+	json_object_set_new(o, "late_epoch", json_integer(
+	    (json_int_t)e->late_epoch));
+	a = json_array();
 	for (i = 0; i < e->nepochs; i++)
 		json_array_append_new(a, json_pack("{s:i, s:o, s:o}", "epoch",
 		    (int)e->epochs[i].epoch, "started",
@@ -437,6 +565,9 @@ exp_save(const struct experiment *e, const struct conf *conf)
 			if (s->sk)
 				json_object_set_new(m, "sketch",
 				    sketch_save(s->sk));
+			if (s->grp)
+				json_object_set_new(m, "groups",
+				    groups_save(s->grp));
 			json_array_append_new(arms, m);
 		}
 		json_array_append_new(a, json_pack("{s:s, s:i, s:o}", "name",
@@ -579,6 +710,22 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 	e->srm_first_event = (uint64_t)json_integer_value(json_object_get(srm,
 	    "first_event"));
 	hist_load(&e->srm_hist, json_object_get(srm, "hist"), cap);
+	a = json_object_get(srm, "late");
+	for (i = 0; i < (size_t)narms && i < json_array_size(a); i++)
+		e->srm_late[i] = (uint64_t)json_integer_value(
+		    json_array_get(a, i));
+	e->late_epoch = (uint64_t)json_integer_value(json_object_get(o,
+	    "late_epoch"));
+	if (get_real(srm, "newest", &e->srm_newest) == 0 &&
+	    !isnan(e->srm_newest)) {
+		e->srm_done = (int64_t)json_integer_value(json_object_get(srm,
+		    "done"));
+		if (srm_ring_load(e, json_object_get(srm, "open")) != 0) {
+			xasprintf(cause, "experiment %s: bad SRM intervals", id);
+			return -1;
+		}
+	} else
+		e->srm_newest = NAN;
 	a = json_object_get(o, "epochs");
 	e->nepochs = 0;
 	json_array_foreach(a, i, v) {
@@ -638,6 +785,13 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 			s->r.kk = aget(rr, 3);
 			s->r.kn = aget(rr, 4);
 			s->r.nn = aget(rr, 5);
+			if (json_object_get(sv, "groups") != NULL &&
+			    groups_load(s, json_object_get(sv, "groups"),
+			    eng->conf->unit_groups) != 0) {
+				xasprintf(cause, "experiment %s: metric %s: "
+				    "bad unit groups", id, name);
+				return -1;
+			}
 			if (b64 != NULL && s->sk != NULL) {
 				struct sketch *sk = sketch_load(b64);
 				if (sk == NULL) {

@@ -89,6 +89,7 @@ finding_fill(const struct engine *eng, const struct experiment *e,
 	f->chi2_p = NAN;
 	f->sketch_accuracy = g->test == TEST_QUANTILE ?
 	    eng->conf->sketch_accuracy : NAN;
+	f->design_effect = t->deff > 0 ? t->deff : NAN;
 	f->untrusted = e->srm_fired;
 	f->ts = eng->now;
 	f->first_ts = t->first_ts;
@@ -123,6 +124,7 @@ finding_fill_srm(const struct engine *eng, const struct experiment *e,
 	f->rel_estimate = f->rel_lower = f->rel_upper = NAN;
 	f->margin = NAN;
 	f->sketch_accuracy = NAN;
+	f->design_effect = NAN;
 	for (i = 0; i < e->narms; i++)
 		counts[i] = (double)e->exposures[i];
 	/* The classic chi-square, shown as a one-look figure only. */
@@ -221,6 +223,7 @@ finding_json(const struct finding *f)
 	json_object_set_new(o, "margin", finding_num(f->margin));
 	json_object_set_new(o, "chi2_p", finding_num(f->chi2_p));
 	json_object_set_new(o, "sketch_accuracy", finding_num(f->sketch_accuracy));
+	json_object_set_new(o, "design_effect", finding_num(f->design_effect));
 	json_object_set_new(o, "untrusted", json_boolean(f->untrusted));
 	json_object_set_new(o, "ts", finding_num(f->ts));
 	json_object_set_new(o, "first_ts", finding_num(f->first_ts));

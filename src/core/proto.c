@@ -327,6 +327,9 @@ proto_clear(struct record *r)
 	r->value = r->k = r->n = 0;
 	r->units = 0;
 	r->narms = 0;
+	r->epoch = 0;
+	r->unit_len = 0;
+	r->unit[0] = '\0';
 }
 
 static enum proto_status

@@ -98,57 +98,169 @@ set_relative(struct test *t)
 }
 
 /*
- * Mean and proportion: two-sample mSPRT with a normal mixture in the
- * generic form for unequal arms (Johari, Pekelis & Walsh 2022; METHODS.md
- * sec. 1) with plug-in variances. tau^2 follows rule (a): tightest at the
- * planned units per arm, expressed in units of the pooled per-unit
- * variance so it is fixed before monitoring in standardised terms.
+ * The design's one-sided tail at the harm boundary, q = 1 - Phi(d* /
+ * sqrt V) with tau^2 tuned for V: it fixes the kappa inflation of a
+ * group variance (stats_group_kappa). Depends on the level only.
+ */
+static double
+design_tail(double level)
+{
+	double c = stats_msprt_tau2(1, 2 * level, 1);
+
+	return stats_norm_sf(stats_harm_boundary(1, c, level));
+}
+
+/*
+ * Variance of one arm's ratio (mean, proportion, rate) from its unit
+ * groups, inflated by kappa for the few groups it rests on; NAN when the
+ * series has no groups or too few filled ones (ENGINE_GROUPS_MIN).
+ */
+static double
+group_var(const struct engine *eng, const struct series *sr, double q)
+{
+	const struct groups *gp = sr->grp;
+	uint32_t i, used = 0;
+	double R, v, kappa;
+
+	if (gp == NULL)
+		return NAN;
+	for (i = 0; i < gp->G; i++)
+		used += gp->n[i] != 0;
+	if (used < ENGINE_GROUPS_MIN)
+		return NAN;
+	v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
+	kappa = stats_group_kappa(used - 1, q);
+	return isfinite(kappa) && kappa > 1 ? v * kappa : v;
+}
+
+/*
+ * Per-arm estimates and variances of a mean, proportion or rate ratio.
+ * var is the variance of the arm's estimate; without unit groups it is
+ * the record-level one (each record its own unit), with groups the
+ * larger of that and the group variance, so clustering can only widen.
+ */
+struct arm_est {
+	double	value, var, n, k;	/* estimate, its variance, N, K */
+	double	deff;			/* group / record-level variance */
+};
+
+static int
+arm_estimate(const struct engine *eng, const struct conf_guardrail *g,
+    const struct series *sr, double q, struct arm_est *out)
+{
+	double gv;
+
+	if (g->test == TEST_MEAN) {
+		if (sr->m.n < ENGINE_BURN_IN)
+			return -1;
+		out->n = (double)sr->m.n;
+		out->value = sr->m.mean;
+		out->var = tally_moments_var(&sr->m) / out->n;
+	} else {
+		if (sr->r.records < ENGINE_BURN_IN)
+			return -1;
+		out->n = (double)sr->r.n;
+		out->k = (double)sr->r.k;
+		out->value = tally_ratio_rate(&sr->r);
+		/* delta method over records: a record (a session's K of N)
+		 * is a cluster of its own */
+		out->var = tally_ratio_var(&sr->r);
+	}
+	if (!isfinite(out->value))
+		return -1;
+	out->deff = 1;
+	gv = group_var(eng, sr, q);
+	if (isfinite(gv) && out->var > 0) {
+		out->deff = gv / out->var;
+		if (gv > out->var)
+			out->var = gv;
+	} else if (isfinite(gv) && gv > 0)
+		out->var = gv;
+	return 0;
+}
+
+/* An arm's variance over the binomial one of independent trials; 1 when
+ * the arm has no event (or only events) yet and no estimate of it. */
+static double
+binomial_deff(const struct arm_est *x)
+{
+	double p = x->value, vb = p * (1 - p) / x->n;
+
+	return vb > 0 && x->var > 0 ? x->var / vb : 1;
+}
+
+/*
+ * Mean, proportion and (beside the exact conditional test) rate: the
+ * one-sided harm mixture with a margin (stats_harm_log_e). For a relative
+ * margin r the contrast stays linear: theta = mu_T - (1 + s r) mu_C, so
+ * H0 is s theta <= 0 and V = V_T + (1 + s r)^2 V_C. tau^2 follows the
+ * one-sided tuning rule at the planned units per arm, in units of the
+ * pooled per-unit variance, so it is fixed in standardised terms.
+ *
+ * Proportions take their variance under the null (Farrington & Manning
+ * 1990): the proportions that maximise the likelihood subject to the
+ * margin, so an arm with no event yet still has p~(1 - p~)/n. Clustering
+ * multiplies it by the arm's design effect (at least 1). They are looked
+ * at only once both arms expect 5 events and 5 non-events under the
+ * pooled rate: the normal tail is too light before that (common practice
+ * for binomial z-tests; our choice of 5).
  */
 static int
-eval_normal(struct experiment *e, struct test *t,
+eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
     const struct conf_guardrail *g, const struct series *a,
     const struct series *b, double level)
 {
-	double na, nb, va, vb, V, tau2, hw, theta0;
+	struct arm_est ca, tb;
+	double s = harm_sign(g), k, d, V, tau2, hw, vu, q;
 
-	if (g->test == TEST_MEAN) {
-		if (a->m.n < ENGINE_BURN_IN || b->m.n < ENGINE_BURN_IN)
-			return -1;
-		na = (double)a->m.n;
-		nb = (double)b->m.n;
-		t->ctl_value = a->m.mean;
-		t->trt_value = b->m.mean;
-		va = tally_moments_var(&a->m);	/* per observation */
-		vb = tally_moments_var(&b->m);
-	} else {
-		if (a->r.records < ENGINE_BURN_IN ||
-		    b->r.records < ENGINE_BURN_IN)
-			return -1;
-		na = (double)a->r.records;
-		nb = (double)b->r.records;
-		t->ctl_value = tally_ratio_rate(&a->r);
-		t->trt_value = tally_ratio_rate(&b->r);
-		/* per-record variance of the ratio, from the delta method */
-		va = tally_ratio_var(&a->r) * na;
-		vb = tally_ratio_var(&b->r) * nb;
-	}
-	if (!isfinite(t->ctl_value) || !isfinite(t->trt_value))
-		return -1;
-	V = va / na + vb / nb;
-	if (!(V > 0))
-		return -1;
-	/* the rule's constant depends only on the level and the plan: kept
-	 * per test rather than recomputed (two logs) on every record */
 	if (t->tau2_level != level) {
 		t->tau2_level = level;
-		t->tau2_unit = stats_msprt_tau2(1, level, plan_units(g, e));
+		t->tau2_unit = stats_msprt_tau2(1, 2 * level, plan_units(g, e));
+		t->tail_q = design_tail(level);
 	}
-	tau2 = (va + vb) * t->tau2_unit;
-	t->est = t->trt_value - t->ctl_value;
-	t->margin_abs = margin_abs(g, t->ctl_value);
-	theta0 = harm_sign(g) * t->margin_abs;
-	t->log_e = stats_msprt_log_lr(t->est, theta0, V, tau2);
-	hw = stats_msprt_halfwidth(V, tau2, level);
+	q = t->tail_q;
+	if (arm_estimate(eng, g, a, q, &ca) != 0 ||
+	    arm_estimate(eng, g, b, q, &tb) != 0)
+		return -1;
+	t->ctl_value = ca.value;
+	t->trt_value = tb.value;
+	t->est = tb.value - ca.value;
+	t->margin_abs = margin_abs(g, ca.value);
+	k = g->margin_relative ? 1 + s * g->margin : 1;
+	d = s * (tb.value - k * ca.value) -
+	    (g->margin_relative ? 0 : g->margin);
+	if (g->test == TEST_PROPORTION) {
+		double pt, pc, pool, D;
+
+		pool = (ca.k + tb.k) / (ca.n + tb.n);
+		if (fmin(ca.n, tb.n) * fmin(pool, 1 - pool) < ENGINE_EVENTS_MIN)
+			return -1;
+		D = s * (g->margin_relative ? g->margin * ca.value : g->margin);
+		if (fabs(D) >= 1 ||
+		    stats_prop_null(tb.k, tb.n, ca.k, ca.n, D, &pt, &pc) != 0)
+			return -1;
+		/* design effects against independent trials: records of
+		 * K of N and units of many records both widen */
+		tb.deff = binomial_deff(&tb);
+		ca.deff = binomial_deff(&ca);
+		V = fmax(1, tb.deff) * pt * (1 - pt) / tb.n +
+		    k * k * fmax(1, ca.deff) * pc * (1 - pc) / ca.n;
+		vu = pt * (1 - pt) + pc * (1 - pc);
+	} else {
+		V = tb.var + k * k * ca.var;
+		vu = tb.var * tb.n + ca.var * ca.n;
+	}
+	if (!(V > 0) || !isfinite(V) || !(vu > 0))
+		return -1;
+	t->deff = fmax(ca.deff, tb.deff);
+	tau2 = vu * t->tau2_unit;
+	t->log_e = stats_harm_log_e(d, V, tau2);
+	t->V = V;
+	t->tau2 = tau2;
+	/* display and safe: a two-sided CS of T - C on the same scale
+	 * (for proportions the null variance, which cannot collapse) */
+	hw = stats_msprt_halfwidth(g->test == TEST_PROPORTION ? V :
+	    tb.var + ca.var, tau2, level);
 	t->lo = t->est - hw;
 	t->hi = t->est + hw;
 	cs_intersect(t, t->lo, t->hi);
@@ -164,13 +276,14 @@ eval_normal(struct experiment *e, struct test *t,
  * supermartingale for every ratio on the good side of r0.
  */
 static int
-eval_rate(struct experiment *e, struct test *t,
+eval_rate(const struct engine *eng, struct experiment *e, struct test *t,
     const struct conf_guardrail *g, const struct series *a,
     const struct series *b, double level, double k, int want_cs)
 {
 	double ka = (double)a->r.k, ea = (double)a->r.n;
 	double kb = (double)b->r.k, eb = (double)b->r.n;
-	double ra, rb, share, r0, th0, rlo, rhi;
+	double ra, rb, share, r0, th0, rlo, rhi, saved_lo, saved_hi;
+	double robust = NAN;
 
 	if (!(ea > 0) || !(eb > 0) || ka + kb < 1)
 		return -1;
@@ -189,10 +302,32 @@ eval_rate(struct experiment *e, struct test *t,
 		r0 = 1e-9;
 	share = eb / (ea + eb);
 	th0 = share * r0 / (share * r0 + (1 - share));
+	/*
+	 * The conditional test is exact only for Poisson events; a crash
+	 * loop makes one unit's events share a label. The ratio test with a
+	 * record- or unit-level variance holds whatever the dependence within
+	 * units, but only asymptotically. Harm needs both: the smaller of two
+	 * e-processes is below each, so it keeps the guarantee of whichever
+	 * one's assumptions hold.
+	 */
+	saved_lo = t->cs_lo;
+	saved_hi = t->cs_hi;
+	if (eval_normal(eng, e, t, g, a, b, level) == 0)
+		robust = t->log_e;
+	t->cs_lo = saved_lo;
+	t->cs_hi = saved_hi;
 	if (g->harm == HARM_INCREASE)
 		t->log_e = stats_rate_log_bf(ka, kb, th0, k, 1);
 	else
 		t->log_e = stats_rate_log_bf(kb, ka, 1 - th0, k, 1);
+	if (!isfinite(robust))
+		return -1;
+	if (robust < t->log_e)
+		t->log_e = robust;
+	t->ctl_value = ra;
+	t->trt_value = rb;
+	t->est = rb - ra;
+	t->margin_abs = margin_abs(g, ra);
 	/*
 	 * Bounds from inverting the one-sided factors, each side at half the
 	 * level so the pair is a two-sided confidence sequence at the level.
@@ -241,25 +376,42 @@ grown(const struct engine *eng, double *last, double n, double growth,
 	return 1;
 }
 
-/* Fill the engine's scratch with a sketch's blocks, values scaled. */
+/*
+ * Fill the engine's scratch with a sketch's blocks: each bucket's value
+ * moved by the factor w away from zero (w > 1) or towards it (w < 1),
+ * then scaled and shifted. The widening puts a bucket at the edge of the
+ * values it may hold (relative error a: w = (1 + a)/(1 - a) or its
+ * inverse), so a margin is decided on the conservative side of the
+ * sketch's resolution.
+ */
 static void
-blocks_of(struct engine *eng, const struct sketch *sk, size_t off,
-    double scale, double shift, struct stats_blocks *out)
+blocks_widened(struct engine *eng, const struct sketch *sk, size_t off,
+    double w, double scale, double shift, struct stats_blocks *out)
 {
 	size_t i, n;
 	uint64_t total = 0;
+	double v;
 
 	n = sketch_buckets(sk, eng->scratch_v + off, eng->scratch_c + off,
 	    eng->scratch_n / 2);
 	for (i = 0; i < n; i++) {
-		eng->scratch_v[off + i] = eng->scratch_v[off + i] * scale +
-		    shift;
+		v = eng->scratch_v[off + i];
+		v = v >= 0 ? v * w : v / w;
+		eng->scratch_v[off + i] = v * scale + shift;
 		total += eng->scratch_c[off + i];
 	}
 	out->value = eng->scratch_v + off;
 	out->count = eng->scratch_c + off;
 	out->n = n;
 	out->total = total;
+}
+
+/* Fill the engine's scratch with a sketch's blocks, values scaled. */
+static void
+blocks_of(struct engine *eng, const struct sketch *sk, size_t off,
+    double scale, double shift, struct stats_blocks *out)
+{
+	blocks_widened(eng, sk, off, 1, scale, shift, out);
 }
 
 static void
@@ -287,7 +439,7 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
     const struct series *b, double level, int want_cs)
 {
 	struct stats_blocks ba, bb, ca, cb;
-	double q = g->quantile, scale, shift, m;
+	double q = g->quantile, scale, shift, m, acc;
 	size_t need;
 
 	if (a->sk == NULL || b->sk == NULL || sketch_count(a->sk) == 0 ||
@@ -300,16 +452,26 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	t->est = t->trt_value - t->ctl_value;
 	t->margin_abs = margin_abs(g, t->ctl_value);
 	m = g->margin;
+	/*
+	 * Resolution: a bucket's value is within a relative a of every value
+	 * it holds. For "increase" the control is taken at the top of its
+	 * buckets and the treatment at the bottom (both scaled by 1 + a,
+	 * hence w and the shift's factor), for "decrease" the reverse, so an
+	 * effect exactly at the margin never reads as beyond it.
+	 */
+	acc = eng->conf->sketch_accuracy;
 	if (g->harm == HARM_INCREASE) {
 		scale = g->margin_relative ? 1 + m : 1;
-		shift = g->margin_relative ? 0 : m;
-		blocks_of(eng, a->sk, 0, scale, shift, &ba);
+		shift = g->margin_relative ? 0 : m * (1 + acc);
+		blocks_widened(eng, a->sk, 0, (1 + acc) / (1 - acc), scale,
+		    shift, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
 		t->log_e = stats_quantile_log_e1(&ba, &bb, q, plan_units(g, e));
 	} else {
 		scale = g->margin_relative ? 1 - m : 1;
-		shift = g->margin_relative ? 0 : -m;
-		blocks_of(eng, a->sk, 0, scale, shift, &ba);
+		shift = g->margin_relative ? 0 : -m * (1 - acc);
+		blocks_widened(eng, a->sk, 0, (1 - acc) / (1 + acc), scale,
+		    shift, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
 		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
 		t->log_e = stats_quantile_log_e1(&bb, &ba, q, plan_units(g, e));
@@ -378,6 +540,26 @@ quantile_harm_bound(struct engine *eng, struct experiment *e, struct test *t,
 }
 
 /*
+ * At a mean or proportion harm verdict: the harmful side's bound from
+ * inverting the same one-sided test at the same level, sign * effect
+ * >= sign * estimate - d*, so the alert's bound lies beyond the margin
+ * exactly when the verdict does (the two-sided display CS is wider).
+ */
+static void
+normal_harm_bound(struct test *t, const struct conf_guardrail *g,
+    double level)
+{
+	double dstar = stats_harm_boundary(t->V, t->tau2, level);
+
+	if (!isfinite(dstar) || !isfinite(t->est))
+		return;
+	if (g->harm == HARM_INCREASE && t->est - dstar > t->cs_lo)
+		t->cs_lo = t->est - dstar;
+	else if (g->harm == HARM_DECREASE && t->est + dstar < t->cs_hi)
+		t->cs_hi = t->est + dstar;
+}
+
+/*
  * At a rate harm verdict: the bound on the harmful side from the same
  * one-sided test at the same level, so the alert's bound lies beyond the
  * margin exactly when the verdict does.
@@ -432,7 +614,7 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	switch (g->test) {
 	case TEST_MEAN:
 	case TEST_PROPORTION:
-		rc = eval_normal(e, t, g, a, b, level);
+		rc = eval_normal(eng, e, t, g, a, b, level);
 		break;
 	case TEST_RATE:
 		/* an incomplete beta per record is too dear for the hot
@@ -443,7 +625,7 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 			return;
 		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
 		    VERDICT_CS_MIN_STEP);
-		rc = eval_rate(e, t, g, a, b, level, rate_concentration(eng),
+		rc = eval_rate(eng, e, t, g, a, b, level, rate_concentration(eng),
 		    want_cs);
 		break;
 	case TEST_QUANTILE:
@@ -473,7 +655,9 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	p = stats_p_from_log_e(t->max_log_e);
 	nv = old;
 	if (old == VERDICT_UNDECIDED) {
-		if (p <= level && s * (t->est - s * t->margin_abs) > 0)
+		/* the evidence is one-sided: it points at harm beyond the
+		 * margin only, so no sign check of the latest estimate */
+		if (p <= level)
 			nv = VERDICT_HARM;
 		else if (isfinite(t->cs_lo) && isfinite(t->cs_hi) &&
 		    s * (s * t->margin_abs - (s > 0 ? t->cs_hi : t->cs_lo)) > 0)
@@ -484,13 +668,16 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 		if (!want_cs && g->test == TEST_QUANTILE)
 			(void)eval_quantile(eng, e, t, g, a, b, level, 1);
 		else if (!want_cs && g->test == TEST_RATE)
-			(void)eval_rate(e, t, g, a, b, level,
+			(void)eval_rate(eng, e, t, g, a, b, level,
 			    rate_concentration(eng), 1);
 		if (nv == VERDICT_HARM && g->test == TEST_QUANTILE)
 			quantile_harm_bound(eng, e, t, g, a, b, level);
 		if (nv == VERDICT_HARM && g->test == TEST_RATE)
 			rate_harm_bound(t, g, a, b, level,
 			    rate_concentration(eng));
+		if (nv == VERDICT_HARM && (g->test == TEST_MEAN ||
+		    g->test == TEST_PROPORTION))
+			normal_harm_bound(t, g, level);
 		set_relative(t);
 		t->verdict = nv;
 		t->first_ts = eng->now;

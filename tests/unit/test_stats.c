@@ -726,11 +726,118 @@ test_classical(void **state)
 	assert_true(isinf(stats_fixed_n(0, 1, 1, 0.05, 0.8)));
 }
 
+/*
+ * One-sided harm mixture (docs/methods.md, harm evidence). Values [L]:
+ * scipy.special.log_ndtr in the closed form and scipy.integrate.quad of
+ * the half-normal mixture integral agree with these to 1e-10; the
+ * boundaries are scipy.optimize.brentq roots of the same function.
+ */
+static void
+test_harm_table(void **state)
+{
+	static const struct { double d, V, tau2, want; } row[] = {
+		{ 0.02, 1e-4, 4e-4, 1.45091415358 },
+		{ 0, 1e-4, 4e-4, -0.804718956217 },	/* -0.5 log 5 */
+		{ -0.03, 1e-4, 4e-4, -2.12592156946 },
+		{ 0.05, 1e-4, 1e-3, 10.8578349743 },
+		{ -0.5, 1e-4, 1e-3, -5.28954642162 },	/* z = -47.67 */
+	};
+	static const struct { double V, tau2, alpha, want; } bnd[] = {
+		{ 1e-4, 4e-4, 0.0125, 0.0335222191304 },
+		{ 1e-4, 1e-3, 0.0125, 0.0327950664043 },
+		{ 2.5e-5, 4e-4, 0.05, 0.0140624082796 },
+	};
+	size_t i;
+	int ok = 1;
+
+	(void)state;
+	for (i = 0; i < sizeof row / sizeof row[0]; i++)
+		ok &= near("harm log E", stats_harm_log_e(row[i].d, row[i].V,
+		    row[i].tau2), row[i].want, 11);
+	for (i = 0; i < sizeof bnd / sizeof bnd[0]; i++)
+		ok &= near("harm boundary", stats_harm_boundary(bnd[i].V,
+		    bnd[i].tau2, bnd[i].alpha), bnd[i].want, 13);
+	/* a better treatment is never evidence of harm: log E falls with d */
+	ok &= stats_harm_log_e(-10, 1e-4, 1e-3) < stats_harm_log_e(-1, 1e-4,
+	    1e-3);
+	ok &= stats_harm_log_e(1, 0, 1) == 0 && stats_harm_log_e(1, NAN, 1) == 0;
+	assert_true(ok);
+}
+
+/*
+ * Restricted MLE under p_T - p_C = D (Farrington & Manning 1990). [L]
+ * scipy.optimize.brentq on the score; the first row is the pooled
+ * proportion 25/2782 in closed form.
+ */
+static void
+test_prop_null(void **state)
+{
+	static const struct { double xt, nt, xc, nc, D, pt, pc; } row[] = {
+		{ 3, 321, 22, 2461, 0, 0.00898634076204, 0.00898634076204 },
+		{ 0, 50, 200, 10000, 0, 0.0199004975124, 0.0199004975124 },
+		{ 2, 400, 100, 10000, 0.005, 0.0147412079472,
+		    0.00974120794723 },
+		{ 30, 1000, 200, 10000, 0.002, 0.0226697250452,
+		    0.0206697250452 },
+		{ 0, 200, 0, 20000, 0.003, 0.003, 0 },
+	};
+	size_t i;
+	double pt, pc;
+	int ok = 1;
+
+	(void)state;
+	for (i = 0; i < sizeof row / sizeof row[0]; i++) {
+		assert_int_equal(stats_prop_null(row[i].xt, row[i].nt,
+		    row[i].xc, row[i].nc, row[i].D, &pt, &pc), 0);
+		ok &= near("p~_T", pt, row[i].pt, 13);
+		ok &= near("p~_C", pc, row[i].pc, 13);
+	}
+	assert_int_equal(stats_prop_null(0, 0, 0, 0, 0, &pt, &pc), -1);
+	assert_true(ok);
+}
+
+/*
+ * Random-group variance (Wolter 2007, ch. 2, linearised). [C] exact
+ * rational arithmetic in Python (fractions) for R and v; kappa [L]
+ * scipy.stats.t.isf / norm.isf at q = 4.008286644e-4.
+ */
+static void
+test_group_var(void **state)
+{
+	static const double S[8] = { 25100, 18700, 27900, 15100, 22800, 21900,
+	    17600, 29300 };
+	static const double N[8] = { 120, 95, 130, 80, 110, 105, 90, 140 };
+	static const double E[8] = { 3, 0, 12, 1, 0, 2, 25, 1 };
+	static const double Q[8] = { 900, 850, 1100, 700, 950, 1000, 1200,
+	    800 };
+	double R, v;
+	int ok = 1;
+
+	(void)state;
+	v = stats_group_var(8, S, N, &R);
+	ok &= near("R", R, 205.057471264, 9);
+	ok &= near("v(R)", v, 8.11636231373, 11);
+	v = stats_group_var(8, E, Q, &R);
+	ok &= near("error rate", R, 0.00586666666667, 14);
+	ok &= near("v(error rate)", v, 9.19766552381e-6, 16);
+	ok &= near("kappa 64", stats_group_kappa(63, 4.008286644e-4),
+	    1.104119407, 9);
+	ok &= near("kappa 256", stats_group_kappa(255, 4.008286644e-4),
+	    1.024405015, 9);
+	ok &= near("kappa 1024", stats_group_kappa(1023, 4.008286644e-4),
+	    1.006006364, 9);
+	assert_true(isnan(stats_group_var(1, S, N, &R)));
+	assert_true(ok);
+}
+
 int
 main(void)
 {
 	const struct CMUnitTest tests[] = {
 		cmocka_unit_test(test_nm_hrms),
+		cmocka_unit_test(test_harm_table),
+		cmocka_unit_test(test_prop_null),
+		cmocka_unit_test(test_group_var),
 		cmocka_unit_test(test_msprt_table),
 		cmocka_unit_test(test_msprt_hrms_mapping),
 		cmocka_unit_test(test_msprt_sequence),

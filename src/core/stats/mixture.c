@@ -128,3 +128,53 @@ stats_msprt_tau2(double v_unit, double alpha, double n_opt)
 		return NAN;
 	return v_unit * stats_hrms_denom(alpha) / n_opt;
 }
+
+/*
+ * One-sided harm evidence with a margin: the half-normal mixture of the
+ * Gaussian likelihood ratio exp(lambda X - lambda^2 I / 2), X = d / V,
+ * I = 1 / V, over lambda >= 0 with density 2 phi(lambda / tau) / tau
+ * (Howard, Ramdas, McAuliffe & Sekhon 2021, Prop. 5, in the mSPRT form of
+ * Johari, Pekelis & Walsh 2022). Integrating gives
+ *
+ *   log E = log 2 - 0.5 log1p(tau^2 / V) + log Phi(z) + z^2 / 2,
+ *   z = tau d / sqrt(V (V + tau^2)).
+ *
+ * For a true excess delta <= 0 every component has expectation
+ * exp(lambda delta I) <= 1, so E is a supermartingale on the whole null.
+ * Phi and the exponential are never formed apart: log Phi(z) + z^2/2 is
+ * taken from the normal hazard for z << 0, where each term alone is
+ * ~1000 and their sum ~ -log(-z) (stats_log_ndtr_plus_half_sq).
+ */
+double
+stats_harm_log_e(double d, double V, double tau2)
+{
+	double z;
+
+	if (!(V > 0) || !isfinite(V) || !(tau2 > 0) || !isfinite(tau2) ||
+	    !isfinite(d))
+		return 0;
+	z = d * sqrt(tau2) / sqrt(V) / sqrt(V + tau2);
+	return M_LN2 - 0.5 * log1p(tau2 / V) + stats_log_ndtr_half_sq(z);
+}
+
+/* log E grows with d: bisect on [0, 2^j sqrt V], doubling until above. */
+double
+stats_harm_boundary(double V, double tau2, double alpha)
+{
+	double target = stats_log_inv_alpha(alpha), lo = 0, hi, mid;
+	int i;
+
+	if (!(V > 0) || !isfinite(V) || !(tau2 > 0))
+		return INFINITY;
+	hi = sqrt(V);
+	for (i = 0; i < 200 && stats_harm_log_e(hi, V, tau2) < target; i++)
+		hi *= 2;
+	for (i = 0; i < MIX_BISECT_MAX && hi - lo > 1e-15 * hi; i++) {
+		mid = 0.5 * (lo + hi);
+		if (stats_harm_log_e(mid, V, tau2) < target)
+			lo = mid;
+		else
+			hi = mid;
+	}
+	return 0.5 * (lo + hi);
+}

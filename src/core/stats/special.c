@@ -12,6 +12,7 @@
 #include <math.h>
 
 #include <gsl/gsl_cdf.h>
+#include <gsl/gsl_sf_erf.h>
 
 #include "stopcock/stats.h"
 #include "stats_int.h"
@@ -96,6 +97,25 @@ stats_log_ndtr(double z)
 	z2 = 1 / (z * z);
 	s = 1 - z2 * (1 - z2 * (3 - z2 * (15 - z2 * (105 - z2 * 945))));
 	return -0.5 * z * z - log(-z) - (double)LOG_SQRT_2PI + log(s);
+}
+
+/*
+ * log Phi(z) + z^2 / 2, the one-sided mixture's fused term. For z < -5
+ * both parts are large and of opposite sign, so it is written through the
+ * normal hazard h(x) = phi(x) / Q(x) at x = -z: log Phi(z) = log phi(z) -
+ * log h(-z), and the z^2/2 cancels analytically (GSL's gsl_sf_hazard is
+ * accurate in the far tail).
+ */
+double
+stats_log_ndtr_half_sq(double z)
+{
+	if (isnan(z))
+		return z;
+	if (z >= -5)
+		return stats_log_ndtr(z) + 0.5 * z * z;
+	if (z == -INFINITY)
+		return -INFINITY;
+	return -(double)LOG_SQRT_2PI - log(gsl_sf_hazard(-z));
 }
 
 double

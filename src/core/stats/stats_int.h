@@ -17,6 +17,8 @@ long double	stats_lgamma_diff_l(long double x, long double d);
  * x = 1 keep their precision.
  */
 double		stats_log_ibeta_xy(double a, double b, double x, double y);
+/* log Phi(z) + z^2 / 2 without cancellation for z << 0. */
+double		stats_log_ndtr_half_sq(double z);
 /* log(1/alpha) with alpha clamped into (0, 1). */
 double		stats_log_inv_alpha(double alpha);
 /* The HRMS tuning denominator 2 l + log(1 + 2 l), l = log(1/alpha). */
