@@ -57,6 +57,10 @@ struct conf_webhook {
 	int		line;
 };
 
+/* Open SRM intervals (lateness / srm_interval) at most; the engine's
+ * ring holds two more. */
+#define CONF_SRM_OPEN_MAX 4000
+
 struct conf {
 	char		*path;		/* file it came from, or NULL */
 

@@ -511,7 +511,7 @@ conf_check(struct conf_parser *p)
 	struct conf *c = p->conf;
 	const struct conf_guardrail *g, *h, *obs, *cnt;
 	const struct conf_experiment *e;
-	int i, j, pline = 0, clash;
+	int i, j, pline = 0, lline = 0, clash;
 	const struct conf_option *o;
 
 	for (o = conf_options; o < conf_options + conf_noptions; o++)
@@ -521,6 +521,16 @@ conf_check(struct conf_parser *p)
 	if (c->pause_alpha > 0 && c->pause_alpha >= c->alpha)
 		conf_error(p, pline, "pause_alpha %g must be below [defaults] "
 		    "alpha %g", c->pause_alpha, c->alpha);
+	/* the SRM test keeps one counter row per open interval */
+	for (o = conf_options; o < conf_options + conf_noptions; o++)
+		if (o->section == S_DEFAULTS &&
+		    o->offset == offsetof(struct conf, lateness))
+			lline = p->keyline[o - conf_options];
+	if (c->srm_interval > 0 && c->lateness / c->srm_interval >
+	    CONF_SRM_OPEN_MAX)
+		conf_error(p, lline, "lateness %gs spans more than %d intervals "
+		    "of srm_interval %gs; raise srm_interval", c->lateness,
+		    CONF_SRM_OPEN_MAX, c->srm_interval);
 	for (i = 0; i < c->nexperiments; i++) {
 		e = &c->experiments[i];
 		if (c->pause_alpha > 0 && e->alpha > 0 &&

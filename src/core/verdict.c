@@ -141,6 +141,7 @@ group_var(const struct engine *eng, const struct series *sr, double q)
  */
 struct arm_est {
 	double	value, var, n, k;	/* estimate, its variance, N, K */
+	double	recs;			/* records */
 	double	deff;			/* group / record-level variance */
 };
 
@@ -153,13 +154,14 @@ arm_estimate(const struct engine *eng, const struct conf_guardrail *g,
 	if (g->test == TEST_MEAN) {
 		if (sr->m.n < ENGINE_BURN_IN)
 			return -1;
-		out->n = (double)sr->m.n;
+		out->n = out->recs = (double)sr->m.n;
 		out->value = sr->m.mean;
 		out->var = tally_moments_var(&sr->m) / out->n;
 	} else {
 		if (sr->r.records < ENGINE_BURN_IN)
 			return -1;
 		out->n = (double)sr->r.n;
+		out->recs = (double)sr->r.records;
 		out->k = (double)sr->r.k;
 		out->value = tally_ratio_rate(&sr->r);
 		/* delta method over records: a record (a session's K of N)
@@ -211,7 +213,7 @@ eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
     const struct series *b, double level)
 {
 	struct arm_est ca, tb;
-	double s = harm_sign(g), k, d, V, tau2, hw, vu, q;
+	double s = harm_sign(g), k, d, V, tau2, hw, vu, q, vt, vc;
 
 	if (t->tau2_level != level) {
 		t->tau2_level = level;
@@ -243,13 +245,16 @@ eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
 		 * K of N and units of many records both widen */
 		tb.deff = binomial_deff(&tb);
 		ca.deff = binomial_deff(&ca);
-		V = fmax(1, tb.deff) * pt * (1 - pt) / tb.n +
-		    k * k * fmax(1, ca.deff) * pc * (1 - pc) / ca.n;
-		vu = pt * (1 - pt) + pc * (1 - pc);
+		vt = fmax(1, tb.deff) * pt * (1 - pt) / tb.n;
+		vc = fmax(1, ca.deff) * pc * (1 - pc) / ca.n;
 	} else {
-		V = tb.var + k * k * ca.var;
-		vu = tb.var * tb.n + ca.var * ca.n;
+		vt = tb.var;
+		vc = ca.var;
 	}
+	V = vt + k * k * vc;
+	/* per-record variance: plan_units counts units (records without
+	 * unit=), whatever a record's N is (trials, hours) */
+	vu = vt * tb.recs + vc * ca.recs;
 	if (!(V > 0) || !isfinite(V) || !(vu > 0))
 		return -1;
 	t->deff = fmax(ca.deff, tb.deff);

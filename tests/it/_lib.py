@@ -405,7 +405,11 @@ class Daemon:
         if self.http:
             d["http"] = "127.0.0.1:%d" % self.http
         d.update(daemon_keys)
-        text = "[defaults]\nalpha = 0.05\nplan_units = 2000\n\n"
+        # The tests send a burst of records within a second, stamped on
+        # arrival and so in order: no lateness, and SRM intervals of 1 ms,
+        # or the SRM test would wait for record time to pass.
+        text = ("[defaults]\nalpha = 0.05\nplan_units = 2000\n"
+                "lateness = 0\nsrm_interval = 1ms\n\n")
         text += guardrails + "\n"
         text += "[daemon]\n" + "".join("%s = %s\n" % kv for kv in d.items())
         if self.redis is not None:
