@@ -148,6 +148,8 @@ struct stats_blocks {
 	const uint64_t	*count;
 	size_t		 n;		/* number of blocks */
 	uint64_t	 total;		/* sum of counts */
+	double		 weight;	/* each count stands for this many
+					 * samples, in (0, 1]; 0 means 1 */
 };
 /*
  * Time-uniform CS for the p-quantile (Howard & Ramdas 2022), tuned at

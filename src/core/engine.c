@@ -158,27 +158,59 @@ groups_new(uint32_t G)
  * a grouped series that name no unit are their own units: round robin.
  */
 static void
-groups_add(struct engine *eng, struct experiment *e, struct series *sr,
+groups_add(struct engine *eng, struct experiment *e, struct groups **gp,
     const struct record *r, double num, double den)
 {
 	uint32_t G, gi;
 	uint64_t h;
 
-	if (sr->grp == NULL) {
+	if (*gp == NULL) {
 		if (r->unit_len == 0)
 			return;
-		sr->grp = groups_new(eng->conf->unit_groups);
+		*gp = groups_new(eng->conf->unit_groups);
 		eng->counters.grouped_series++;
 	}
-	G = sr->grp->G;
+	G = (*gp)->G;
 	if (r->unit_len > 0) {
 		h = (siphash24(eng->key, r->unit, r->unit_len) ^ e->salt) *
 		    0x9e3779b97f4a7c15ULL;
 		gi = (uint32_t)((h >> 32) % G);
 	} else
-		gi = (uint32_t)(sr->grp->seq++ % G);
-	sr->grp->s[gi] += num;
-	sr->grp->n[gi] += den;
+		gi = (uint32_t)((*gp)->seq++ % G);
+	(*gp)->s[gi] += num;
+	(*gp)->n[gi] += den;
+}
+
+/*
+ * Quantile tests on a grouped metric also count, per group, the records
+ * above a threshold x0 frozen from the arm's own sketch once it holds
+ * ENGINE_QUANTILE_FREEZE records: the design effect of that exceedance
+ * indicator stands for the quantile's (docs/methods.md sec. 14).
+ */
+static void
+groups_add_quantiles(struct engine *eng, struct experiment *e, int mi,
+    int arm, const struct record *r)
+{
+	const struct metric *m = &e->metrics[mi];
+	struct test *t;
+	int i, side;
+
+	for (i = 0; i < e->ntests; i++) {
+		t = &e->tests[i];
+		if (t->metric != mi || (arm != 0 && t->arm != arm) ||
+		    eng->conf->guardrails[t->g].test != TEST_QUANTILE)
+			continue;
+		side = arm == 0 ? 0 : 1;
+		if (isnan(t->qx0[side])) {
+			if (m->arm[arm].sk == NULL || sketch_count(
+			    m->arm[arm].sk) < ENGINE_QUANTILE_FREEZE)
+				continue;
+			t->qx0[side] = sketch_quantile(m->arm[arm].sk,
+			    eng->conf->guardrails[t->g].quantile);
+		}
+		groups_add(eng, e, &t->qg[side], r, r->value > t->qx0[side],
+		    1);
+	}
 }
 
 static void
@@ -243,6 +275,8 @@ metric_find(const struct experiment *e, const char *name)
 static void
 test_reset_epoch(struct test *t)
 {
+	int i;
+
 	t->closed_log_e += t->log_e;
 	t->log_e = 0;
 	t->verdict = VERDICT_UNDECIDED;
@@ -259,6 +293,11 @@ test_reset_epoch(struct test *t)
 	t->pause_sent = 0;
 	t->cs_n = t->ev_n = 0;
 	t->dirty = t->hist_dirty = 0;
+	for (i = 0; i < 2; i++) {
+		groups_free(t->qg[i]);
+		t->qg[i] = NULL;
+		t->qx0[i] = NAN;
+	}
 }
 
 static void
@@ -429,8 +468,11 @@ engine_exp_free(struct experiment *e)
 	for (i = 0; i < e->nmetrics; i++)
 		series_free(&e->metrics[i], e->narms);
 	free(e->metrics);
-	for (i = 0; i < e->ntests; i++)
+	for (i = 0; i < e->ntests; i++) {
 		hist_free(&e->tests[i].hist);
+		groups_free(e->tests[i].qg[0]);
+		groups_free(e->tests[i].qg[1]);
+	}
 	free(e->tests);
 	hist_free(&e->srm_hist);
 	free(e->srm_ring);
@@ -601,6 +643,8 @@ engine_reconfigure(struct engine *eng, const struct conf *conf, char **cause)
 					break;
 			if (k == eng->conf->nguardrails) {
 				hist_free(&e->tests[j].hist);
+				groups_free(e->tests[j].qg[0]);
+				groups_free(e->tests[j].qg[1]);
 				continue;
 			}
 			nt[ntests] = e->tests[j];
@@ -841,8 +885,10 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 		tally_moments_add(&m->arm[arm].m, r->value);
 		if (m->arm[arm].sk != NULL)
 			sketch_add(m->arm[arm].sk, r->value, 1);
-		groups_add(eng, e, &m->arm[arm], r, r->value, 1);
+		groups_add(eng, e, &m->arm[arm].grp, r, r->value, 1);
 		mi = (int)(m - e->metrics);
+		if (m->arm[arm].grp != NULL && m->want_sketch)
+			groups_add_quantiles(eng, e, mi, arm, r);
 		evaluate_metric(eng, e, mi, arm);
 		break;
 	case PROTO_COUNT:
@@ -854,7 +900,7 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 			goto done;
 		}
 		tally_ratio_add(&m->arm[arm].r, r->k, r->n);
-		groups_add(eng, e, &m->arm[arm], r, r->k, r->n);
+		groups_add(eng, e, &m->arm[arm].grp, r, r->k, r->n);
 		mi = (int)(m - e->metrics);
 		evaluate_metric(eng, e, mi, arm);
 		break;

@@ -26,6 +26,8 @@
 /* Expected events and non-events per arm before a proportion is tested
  * (common practice for normal approximations to the binomial). */
 #define ENGINE_EVENTS_MIN 5
+/* Records in an arm's sketch before its exceedance threshold is frozen. */
+#define ENGINE_QUANTILE_FREEZE 500
 
 enum metric_kind { METRIC_UNSET, METRIC_OBSERVE, METRIC_COUNT };
 
@@ -97,6 +99,10 @@ struct test {
 	double		 tail_q;	/* design tail for kappa, at tau2_level */
 	double		 deff;		/* design effect of the larger arm */
 	double		 V, tau2;	/* last mean/proportion look */
+	/* quantile on a grouped metric: exceedances of x0 per unit group,
+	 * control and treatment (engine.c groups_add_quantiles) */
+	struct groups	*qg[2];
+	double		 qx0[2];
 	double		 cs_n;		/* samples at the last costly CS */
 	double		 ev_n;		/* samples at the last costly look */
 	int		 dirty;		/* data changed since last evaluation */

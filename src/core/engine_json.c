@@ -608,6 +608,12 @@ exp_save(const struct experiment *e, const struct conf *conf)
 		json_object_set_new(to, "dirty", json_boolean(t->dirty));
 		json_object_set_new(to, "cs_n", sreal(t->cs_n));
 		json_object_set_new(to, "ev_n", sreal(t->ev_n));
+		for (j = 0; j < 2; j++)
+			if (t->qg[j] != NULL)
+				json_object_set_new(to, j ? "qg_treatment" :
+				    "qg_control", json_pack("{s:o, s:o}", "x0",
+				    sreal(t->qx0[j]), "groups",
+				    groups_save(t->qg[j])));
 		json_object_set_new(to, "hist", hist_save(&t->hist));
 		json_array_append_new(tests, to);
 	}
@@ -847,6 +853,22 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 		t->dirty = json_is_true(json_object_get(v, "dirty"));
 		if (get_real(v, "cs_n", &t->cs_n) != 0 || isnan(t->cs_n))
 			t->cs_n = 0;
+		for (k = 0; k < 2; k++) {
+			const json_t *q = json_object_get(v, k ?
+			    "qg_treatment" : "qg_control");
+			struct series tmp;
+			if (q == NULL)
+				continue;
+			memset(&tmp, 0, sizeof tmp);
+			if (get_real(q, "x0", &t->qx0[k]) != 0 ||
+			    groups_load(&tmp, json_object_get(q, "groups"),
+			    eng->conf->unit_groups) != 0) {
+				xasprintf(cause, "experiment %s: bad quantile "
+				    "groups", id);
+				return -1;
+			}
+			t->qg[k] = tmp.grp;
+		}
 		if (get_real(v, "ev_n", &t->ev_n) != 0 || isnan(t->ev_n))
 			t->ev_n = 0;
 		hist_load(&t->hist, json_object_get(v, "hist"), cap);

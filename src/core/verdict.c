@@ -409,6 +409,7 @@ blocks_widened(struct engine *eng, const struct sketch *sk, size_t off,
 	out->count = eng->scratch_c + off;
 	out->n = n;
 	out->total = total;
+	out->weight = 1;
 }
 
 /* Fill the engine's scratch with a sketch's blocks, values scaled. */
@@ -432,6 +433,39 @@ scratch_reserve(struct engine *eng, size_t need)
 }
 
 /*
+ * Weights (1 / design effect) of the two arms of a quantile test on a
+ * grouped metric, from the unit groups of the exceedance indicator at
+ * each arm's frozen threshold: v(R) (kappa-inflated) over the binomial
+ * R (1 - R) / N, floored at 1. -1 while either arm has too few groups.
+ */
+static int
+quantile_weights(const struct test *t, double wt[2])
+{
+	const struct groups *gp;
+	double R, v, kappa, vb, q = t->tail_q > 0 ? t->tail_q : 4e-4, N;
+	uint32_t i, used;
+	int side;
+
+	for (side = 0; side < 2; side++) {
+		if ((gp = t->qg[side]) == NULL)
+			return -1;
+		for (i = used = 0, N = 0; i < gp->G; i++) {
+			used += gp->n[i] != 0;
+			N += gp->n[i];
+		}
+		if (used < ENGINE_GROUPS_MIN)
+			return -1;
+		v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
+		kappa = stats_group_kappa(used - 1, q);
+		if (isfinite(kappa) && kappa > 1)
+			v *= kappa;
+		vb = R * (1 - R) / N;
+		wt[side] = vb > 0 && v > vb ? vb / v : 1;
+	}
+	return 0;
+}
+
+/*
  * Quantile: one-sided sequential comparison on sketch buckets (Howard &
  * Ramdas 2022; METHODS.md sec. 4). The margin enters by scaling (or
  * shifting) the control's values, so H0 is Q_b <= (1 + m) Q_a for an
@@ -444,12 +478,19 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
     const struct series *b, double level, int want_cs)
 {
 	struct stats_blocks ba, bb, ca, cb;
-	double q = g->quantile, scale, shift, m, acc;
+	double q = g->quantile, scale, shift, m, acc, wt[2];
 	size_t need;
 
 	if (a->sk == NULL || b->sk == NULL || sketch_count(a->sk) == 0 ||
 	    sketch_count(b->sk) == 0)
 		return -1;
+	/* records clustered in units: each counts as 1/deff of a sample,
+	 * and none is tested before the design effect can be measured */
+	if (a->grp != NULL || b->grp != NULL) {
+		if (quantile_weights(t, wt) != 0)
+			return -1;
+	} else
+		wt[0] = wt[1] = 1;
 	need = sketch_nbuckets(a->sk) + sketch_nbuckets(b->sk) + 2;
 	scratch_reserve(eng, need);
 	t->ctl_value = sketch_quantile(a->sk, q);
@@ -478,6 +519,8 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 		blocks_widened(eng, a->sk, 0, (1 - acc) / (1 + acc), scale,
 		    shift, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
+		ba.weight = wt[0];
+		bb.weight = wt[1];
 		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
 		t->log_e = stats_quantile_log_e1(&bb, &ba, q, plan_units(g, e));
 	}
@@ -487,6 +530,8 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	 * jointly by a union bound. */
 	blocks_of(eng, a->sk, 0, 1, 0, &ca);
 	blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &cb);
+	ca.weight = wt[0];
+	cb.weight = wt[1];
 	if (stats_quantile_cs(&ca, q, plan_units(g, e), level / 2, &t->ctl_lo,
 	    &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q, plan_units(g, e),
 	    level / 2, &t->trt_lo, &t->trt_hi) != 0)

@@ -197,7 +197,7 @@ p_quantile_cs(const double *v, int n)
 {
 	static double val[PROBE_ARGS_MAX / 2];
 	static uint64_t cnt[PROBE_ARGS_MAX / 2];
-	struct stats_blocks b = { val, cnt, 0, 0 };
+	struct stats_blocks b = { val, cnt, 0, 0, 1 };
 	double lo, hi;
 	int i;
 
@@ -221,7 +221,7 @@ p_quantile_log_e(const double *v, int n, int two)
 {
 	static double val[PROBE_ARGS_MAX / 2];
 	static uint64_t cnt[PROBE_ARGS_MAX / 2];
-	struct stats_blocks a = { val, cnt, 0, 0 }, b = { NULL, NULL, 0, 0 };
+	struct stats_blocks a = { val, cnt, 0, 0, 1 }, b = { NULL, NULL, 0, 0, 1 };
 	int i, na;
 
 	if (n < 3 || (n - 3) % 2 != 0)

@@ -463,6 +463,7 @@ seq_make(struct seq_blocks *s, size_t N, double off)
 	s->b.count = s->c;
 	s->b.n = N;
 	s->b.total = N;
+	s->b.weight = 1;
 }
 
 static void
@@ -525,7 +526,7 @@ test_quantile_cs_ties(void **state)
 {
 	double v[3] = { 1, 2, 3 }, lo, hi;
 	uint64_t c[3] = { 3000, 4000, 3000 };
-	struct stats_blocks b = { v, c, 3, 10000 };
+	struct stats_blocks b = { v, c, 3, 10000, 1 };
 
 	assert_int_equal(stats_quantile_cs(&b, 0.5, 1000, 0.05, &lo, &hi), 0);
 	assert_true(lo == 2 && hi == 2);
@@ -595,7 +596,7 @@ test_quantile_huge(void **state)
 {
 	double va[500], vb[500], e1, e2, lo, hi;
 	uint64_t ca[500], cb[500];
-	struct stats_blocks a = { va, ca, 500, 0 }, b = { vb, cb, 500, 0 };
+	struct stats_blocks a = { va, ca, 500, 0, 1 }, b = { vb, cb, 500, 0, 1 };
 	size_t i;
 
 	for (i = 0; i < 500; i++) {

@@ -24,6 +24,17 @@
 #define QUANT_ALPHA_OPT	0.05
 #define QUANT_BISECT	200
 
+/*
+ * What one counted sample stands for: 1, or the inverse of a design
+ * effect when samples are clustered in units (an effective sample size;
+ * approximate, docs/methods.md sec. 14).
+ */
+static double
+quant_w(const struct stats_blocks *bl)
+{
+	return bl->weight > 0 && bl->weight <= 1 ? bl->weight : 1;
+}
+
 /* Sum of counts, recomputed so a stale total cannot misplace a rank. */
 static double
 quant_total(const struct stats_blocks *bl)
@@ -32,7 +43,7 @@ quant_total(const struct stats_blocks *bl)
 	size_t i;
 
 	for (i = 0; i < bl->n; i++)
-		t += (double)bl->count[i];
+		t += quant_w(bl) * (double)bl->count[i];
 	return t;
 }
 
@@ -44,7 +55,7 @@ quant_at_rank(const struct stats_blocks *bl, double rank)
 	size_t i;
 
 	for (i = 0; i < bl->n; i++) {
-		cum += (double)bl->count[i];
+		cum += quant_w(bl) * (double)bl->count[i];
 		if (cum >= rank)
 			return bl->value[i];
 	}
@@ -254,9 +265,9 @@ quant_scan(const struct stats_blocks *a, const struct stats_blocks *b,
 			x = b->value[j];
 		da = db = 0;
 		while (i < a->n && a->value[i] <= x)
-			da += (double)a->count[i++];
+			da += quant_w(a) * (double)a->count[i++];
 		while (j < b->n && b->value[j] <= x)
-			db += (double)b->count[j++];
+			db += quant_w(b) * (double)b->count[j++];
 		if (kind == 2)
 			val = quant_arm_G2(&qa, ca, ca + da) +
 			    quant_arm_G2(&qb, cb, cb + db);
@@ -371,9 +382,9 @@ quant_scan1(const struct stats_blocks *a, const struct stats_blocks *b,
 			x = b->value[j];
 		buf[n] = ca;
 		while (i < a->n && a->value[i] <= x)
-			ca += (double)a->count[i++];
+			ca += quant_w(a) * (double)a->count[i++];
 		while (j < b->n && b->value[j] <= x)
-			cb += (double)b->count[j++];
+			cb += quant_w(b) * (double)b->count[j++];
 		buf[cap + n] = Nb - cb;
 		s.fv[n] = s.gv[n] = NAN;
 		n++;
