@@ -19,10 +19,20 @@
  *   k           number                  (count)
  *   n           number                  (expose: units, optional; count)
  *   weights     [{"variant": name, "weight": number}, ...]   (plan)
+ *   unit        string, unit= rules     (expose, observe, count; optional)
+ *   epoch       integer, epoch= rules   (expose, observe, count; optional)
  * weights is an array of objects, not an object, so that order survives
  * any JSON tool on the way: the first entry is the control.
- * Unknown keys are bad_json; keys that do not belong to the kind, or a
- * missing required key, are bad_fields.
+ * Unknown keys are bad_json; keys that do not belong to the kind (unit or
+ * epoch on a plan too), or a missing required key, are bad_fields. A unit
+ * or epoch of the wrong type or value is bad_attribute; a repeated key is
+ * bad_json, as every duplicate key is.
+ *
+ * Attributes of the plain form: after the kind's fixed fields, a run of
+ * tokens that each hold '=' (unit=ID, epoch=N, each at most once). The run
+ * is found from the end of the line, so "observe e v m unit=u" lacks its
+ * value (bad_fields) rather than having a value "unit=u"; a token without
+ * '=' after an attribute is a surplus field (bad_fields), as before.
  */
 #include <inttypes.h>
 #include <math.h>
@@ -57,6 +67,7 @@ static const char *const proto_reasons[PROTO_NSTATUS] = {
 	[PROTO_E_PLAN] = "bad_plan",
 	[PROTO_E_JSON] = "bad_json",
 	[PROTO_E_BYTES] = "bad_bytes",
+	[PROTO_E_ATTR] = "bad_attribute",
 };
 
 static const char *const proto_sentences[PROTO_NSTATUS] = {
@@ -77,6 +88,8 @@ static const char *const proto_sentences[PROTO_NSTATUS] = {
 	    "unique names and weights above zero",
 	[PROTO_E_JSON] = "not a JSON object with known keys of the right types",
 	[PROTO_E_BYTES] = "line holds a NUL or control character",
+	[PROTO_E_ATTR] = "an attribute is not unit=ID (1-128 bytes of "
+	    "[A-Za-z0-9._:-]) or epoch=N (1-1000000000), or is repeated",
 };
 
 const char *
@@ -276,6 +289,82 @@ proto_units(const char *s, size_t n, uint64_t *out)
 	return PROTO_OK;
 }
 
+/* unit=: 1..PROTO_UNIT_MAX name characters, copied NUL-terminated. */
+static enum proto_status
+proto_unit(const char *s, size_t n, struct record *r)
+{
+	size_t i;
+
+	if (r->unit_len != 0 || n == 0 || n > PROTO_UNIT_MAX)
+		return PROTO_E_ATTR;
+	for (i = 0; i < n; i++) {
+		if (!(proto_class[(unsigned char)s[i]] & PC_NAME))
+			return PROTO_E_ATTR;
+	}
+	memcpy(r->unit, s, n);
+	r->unit[n] = '\0';
+	r->unit_len = (uint8_t)n;
+	return PROTO_OK;
+}
+
+/* epoch=: digits only (no sign, point or exponent), 1..PROTO_EPOCH_MAX. */
+static enum proto_status
+proto_epoch(const char *s, size_t n, struct record *r)
+{
+	uint64_t u = 0;
+	size_t i;
+
+	if (r->epoch != 0 || n == 0)
+		return PROTO_E_ATTR;
+	for (i = 0; i < n; i++) {
+		if ((unsigned)(s[i] - '0') >= 10)
+			return PROTO_E_ATTR;
+		if (u <= PROTO_EPOCH_MAX)	/* saturate: no overflow */
+			u = u * 10 + (unsigned)(s[i] - '0');
+	}
+	if (u == 0 || u > PROTO_EPOCH_MAX)
+		return PROTO_E_ATTR;
+	r->epoch = (uint32_t)u;
+	return PROTO_OK;
+}
+
+/*
+ * The attribute tokens of a plain record. A repeat is caught because a
+ * set field is never zero (unit_len >= 1, epoch >= 1) and proto_clear
+ * zeroed both.
+ */
+static enum proto_status
+proto_attrs(const struct tok *t, int na, struct record *r)
+{
+	const char *eq, *v;
+	size_t kn, vn;
+	enum proto_status st;
+	int i;
+
+	for (i = 0; i < na; i++) {
+		eq = memchr(t[i].p, '=', t[i].n);
+		kn = (size_t)(eq - t[i].p);
+		v = eq + 1;
+		vn = t[i].n - kn - 1;
+		if (kn == 4 && memcmp(t[i].p, "unit", 4) == 0)
+			st = proto_unit(v, vn, r);
+		else if (kn == 5 && memcmp(t[i].p, "epoch", 5) == 0)
+			st = proto_epoch(v, vn, r);
+		else
+			st = PROTO_E_ATTR;
+		if (st != PROTO_OK)
+			return st;
+	}
+	return PROTO_OK;
+}
+
+/* A token that may be an attribute: one holding '='. A name token cannot. */
+static inline int
+proto_isattr(const struct tok *t)
+{
+	return !t->name && memchr(t->p, '=', t->n) != NULL;
+}
+
 static enum proto_status
 proto_ts(double ts, struct record *r)
 {
@@ -372,6 +461,7 @@ proto_plain(const struct tok *t, int nt, struct record *r)
 	enum proto_status st;
 	double ts;
 	const char *k;
+	int na = 0, nf;
 
 	if (t[0].p[0] == '@') {
 		if (proto_number(t[0].p + 1, t[0].n - 1, 0, &ts) != 0)
@@ -395,25 +485,41 @@ proto_plain(const struct tok *t, int nt, struct record *r)
 		if (memcmp(k, "count", 5) != 0)
 			return PROTO_E_KIND;
 		r->kind = PROTO_COUNT;
-		if (nt != 6)
-			return PROTO_E_FIELDS;
 		break;
 	case 6:
 		if (memcmp(k, "expose", 6) != 0)
 			return PROTO_E_KIND;
 		r->kind = PROTO_EXPOSE;
-		if (nt != 3 && nt != 4)
-			return PROTO_E_FIELDS;
 		break;
 	case 7:
 		if (memcmp(k, "observe", 7) != 0)
 			return PROTO_E_KIND;
 		r->kind = PROTO_OBSERVE;
-		if (nt != 5)
-			return PROTO_E_FIELDS;
 		break;
 	default:
 		return PROTO_E_KIND;
+	}
+	/*
+	 * Trailing tokens holding '=' are attributes; kind, EXP and VAR never
+	 * are. Without attributes this looks at the last token's name flag
+	 * only (a number like 123.5 or a name is all name characters).
+	 */
+	while (nt - na > 3 && proto_isattr(&t[nt - na - 1]))
+		na++;
+	nf = nt - na;
+	switch (r->kind) {
+	case PROTO_COUNT:
+		if (nf != 6)
+			return PROTO_E_FIELDS;
+		break;
+	case PROTO_EXPOSE:
+		if (nf != 3 && nf != 4)
+			return PROTO_E_FIELDS;
+		break;
+	default:
+		if (nf != 5)
+			return PROTO_E_FIELDS;
+		break;
 	}
 	if (proto_tokname(r->experiment, &t[1]) != 0 ||
 	    proto_tokname(r->variant, &t[2]) != 0)
@@ -421,25 +527,27 @@ proto_plain(const struct tok *t, int nt, struct record *r)
 	switch (r->kind) {
 	case PROTO_EXPOSE:
 		r->units = 1;
-		if (nt == 4)
-			return proto_units(t[3].p, t[3].n, &r->units);
-		return PROTO_OK;
+		if (nf == 4 &&
+		    (st = proto_units(t[3].p, t[3].n, &r->units)) != PROTO_OK)
+			return st;
+		break;
 	case PROTO_OBSERVE:
 		if (proto_tokname(r->metric, &t[3]) != 0)
 			return PROTO_E_NAME;
 		if (proto_number(t[4].p, t[4].n, 1, &r->value) != 0)
 			return PROTO_E_NUMBER;
-		return PROTO_OK;
-	case PROTO_COUNT:
+		break;
+	default:
 		if (proto_tokname(r->metric, &t[3]) != 0)
 			return PROTO_E_NAME;
 		if (proto_number(t[4].p, t[4].n, 1, &r->k) != 0 ||
 		    proto_number(t[5].p, t[5].n, 1, &r->n) != 0)
 			return PROTO_E_NUMBER;
-		return proto_count_values(r->k, r->n);
-	default:
-		return PROTO_E_KIND;
+		if ((st = proto_count_values(r->k, r->n)) != PROTO_OK)
+			return st;
+		break;
 	}
+	return na == 0 ? PROTO_OK : proto_attrs(t + nf, na, r);
 }
 
 /* Key bits for the JSON form, so a missing or foreign key is one test. */
@@ -452,7 +560,10 @@ enum {
 	JK_VALUE = 1 << 5,
 	JK_K = 1 << 6,
 	JK_N = 1 << 7,
-	JK_WEIGHTS = 1 << 8
+	JK_WEIGHTS = 1 << 8,
+	JK_UNIT = 1 << 9,
+	JK_EPOCH = 1 << 10,
+	JK_ATTRS = JK_UNIT | JK_EPOCH
 };
 
 static const struct {
@@ -462,6 +573,7 @@ static const struct {
 	{ "ts", JK_TS }, { "kind", JK_KIND }, { "experiment", JK_EXP },
 	{ "variant", JK_VAR }, { "metric", JK_METRIC }, { "value", JK_VALUE },
 	{ "k", JK_K }, { "n", JK_N }, { "weights", JK_WEIGHTS },
+	{ "unit", JK_UNIT }, { "epoch", JK_EPOCH },
 };
 
 static enum proto_status
@@ -521,6 +633,37 @@ proto_jweights(json_t *a, struct record *r)
 	return proto_plan_unique(r);
 }
 
+/*
+ * unit and epoch of a JSON record. Integers decode as reals, so an epoch
+ * is any number with no fraction: 3 and 3.0 alike, 2.5 not.
+ */
+static enum proto_status
+proto_jattrs(json_t *o, int have, struct record *r)
+{
+	json_t *v;
+	double d;
+	enum proto_status st;
+
+	if (have & JK_UNIT) {
+		v = json_object_get(o, "unit");
+		if (!json_is_string(v))
+			return PROTO_E_ATTR;
+		if ((st = proto_unit(json_string_value(v), json_string_length(v),
+		    r)) != PROTO_OK)
+			return st;
+	}
+	if (have & JK_EPOCH) {
+		v = json_object_get(o, "epoch");
+		if (!json_is_number(v))
+			return PROTO_E_ATTR;
+		d = json_number_value(v);
+		if (!(d >= 1 && d <= (double)PROTO_EPOCH_MAX) || d != floor(d))
+			return PROTO_E_ATTR;
+		r->epoch = (uint32_t)d;
+	}
+	return PROTO_OK;
+}
+
 static enum proto_status
 proto_jrecord(json_t *o, struct record *r)
 {
@@ -562,15 +705,15 @@ proto_jrecord(json_t *o, struct record *r)
 	} else if (strcmp(kind, "expose") == 0) {
 		r->kind = PROTO_EXPOSE;
 		need = JK_EXP | JK_VAR;
-		allow = need | JK_N;
+		allow = need | JK_N | JK_ATTRS;
 	} else if (strcmp(kind, "observe") == 0) {
 		r->kind = PROTO_OBSERVE;
 		need = JK_EXP | JK_VAR | JK_METRIC | JK_VALUE;
-		allow = need;
+		allow = need | JK_ATTRS;
 	} else if (strcmp(kind, "count") == 0) {
 		r->kind = PROTO_COUNT;
 		need = JK_EXP | JK_VAR | JK_METRIC | JK_K | JK_N;
-		allow = need;
+		allow = need | JK_ATTRS;
 	} else
 		return PROTO_E_KIND;
 	have &= ~(JK_TS | JK_KIND);
@@ -587,7 +730,7 @@ proto_jrecord(json_t *o, struct record *r)
 	case PROTO_EXPOSE:
 		r->units = 1;
 		if (!(have & JK_N))
-			return PROTO_OK;
+			break;
 		if ((st = proto_jnumber(o, "n", &d)) != PROTO_OK)
 			return st;
 		if (d != floor(d))
@@ -595,20 +738,23 @@ proto_jrecord(json_t *o, struct record *r)
 		if (d < 1 || d > (double)PROTO_EXPOSE_MAX)
 			return PROTO_E_RANGE;
 		r->units = (uint64_t)d;
-		return PROTO_OK;
+		break;
 	case PROTO_OBSERVE:
-		if ((st = proto_jname(o, "metric", r->metric)) != PROTO_OK)
+		if ((st = proto_jname(o, "metric", r->metric)) != PROTO_OK ||
+		    (st = proto_jnumber(o, "value", &r->value)) != PROTO_OK)
 			return st;
-		return proto_jnumber(o, "value", &r->value);
+		break;
 	case PROTO_COUNT:
 		if ((st = proto_jname(o, "metric", r->metric)) != PROTO_OK ||
 		    (st = proto_jnumber(o, "k", &r->k)) != PROTO_OK ||
-		    (st = proto_jnumber(o, "n", &r->n)) != PROTO_OK)
+		    (st = proto_jnumber(o, "n", &r->n)) != PROTO_OK ||
+		    (st = proto_count_values(r->k, r->n)) != PROTO_OK)
 			return st;
-		return proto_count_values(r->k, r->n);
+		break;
 	default:
 		return PROTO_E_KIND;
 	}
+	return proto_jattrs(o, have, r);
 }
 
 /*
@@ -762,6 +908,15 @@ proto_format(const struct record *r, char *buf, size_t size)
 	default:
 		return -1;
 	}
+	/* never on a plan: "unit=x" there would read back as an arm */
+	if (r->kind == PROTO_PLAN)
+		return (int)off;
+	if (r->unit_len > PROTO_UNIT_MAX || r->epoch > PROTO_EPOCH_MAX)
+		return -1;
+	if (r->unit_len > 0)
+		PROTO_PUT(" unit=%.*s", (int)r->unit_len, r->unit);
+	if (r->epoch > 0)
+		PROTO_PUT(" epoch=%" PRIu32, r->epoch);
 #undef PROTO_PUT
 	return (int)off;
 }

@@ -3,8 +3,9 @@
  * reaches every proto_status; field checks on the good ones; the plain
  * form's number parser against the C library's strtod on random decimal
  * strings (strtod is the outside reference: glibc rounds correctly);
- * proto_format round trips; and a bad line in a stream never changes how
- * the good lines around it parse.
+ * proto_format round trips; the unit= and epoch= attributes and their
+ * limits; and a bad line in a stream never changes how the good lines
+ * around it parse. Limits and grammar are the ones proto.h states.
  */
 #include <math.h>
 #include <setjmp.h>
@@ -25,6 +26,8 @@ struct pcase {
 };
 
 #define N64 "aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa"
+#define U128 N64 N64	/* PROTO_UNIT_MAX bytes */
+#define JE "{\"kind\":\"expose\",\"experiment\":\"e\",\"variant\":\"v\","
 
 static const struct pcase cases[] = {
 	/* skip */
@@ -240,6 +243,108 @@ static const struct pcase cases[] = {
 	    "{\"variant\":\"b\",\"weight\":1}]}", PROTO_E_PLAN },
 	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":[]}",
 	    PROTO_E_PLAN },
+	/* attributes, good: any order, after the fixed fields */
+	{ "expose e v unit=u1", PROTO_OK },
+	{ "expose e v 25 unit=user:42 epoch=2", PROTO_OK },
+	{ "expose e v epoch=1 unit=a", PROTO_OK },
+	{ "expose e v 1 epoch=3", PROTO_OK },
+	{ "observe e v m 1.5 unit=A.b_c:d-0", PROTO_OK },
+	{ "observe e v m -2 epoch=1000000000", PROTO_OK },
+	{ "observe e v m 1 epoch=007", PROTO_OK },	/* leading zeros: 7 */
+	{ "count e v m 3 10 unit=x epoch=7", PROTO_OK },
+	{ "@1700000000 count e v m 3 10 epoch=1 unit=" U128, PROTO_OK },
+	{ "\tobserve\te\tv\tm\t2\tunit=u\t", PROTO_OK },
+	{ "observe e v m 2 unit=u\r", PROTO_OK },
+	/* plan takes no attributes: unit=2 is an arm called unit */
+	{ "plan e a=1 b=1 unit=2", PROTO_OK },
+	{ "plan e a=1 b=1 unit=x", PROTO_E_NUMBER },
+	/* attributes, bad */
+	{ "observe e v m 1 unit=", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=" U128 "b", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=a/b", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=a=b", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=\xc3\xa9", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=\"a\"", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=a unit=a", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=a epoch=2 unit=b", PROTO_E_ATTR },
+	{ "expose e v epoch=1 epoch=1", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=0", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=000", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=1000000001", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=99999999999999999999999999", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=-1", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=+1", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=1e3", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=1.0", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=x", PROTO_E_ATTR },
+	{ "observe e v m 1 epoch=0x10", PROTO_E_ATTR },
+	{ "observe e v m 1 Unit=a", PROTO_E_ATTR },
+	{ "observe e v m 1 units=a", PROTO_E_ATTR },
+	{ "observe e v m 1 user=a", PROTO_E_ATTR },
+	{ "observe e v m 1 =a", PROTO_E_ATTR },
+	{ "observe e v m 1 =", PROTO_E_ATTR },
+	{ "expose e v 5=3", PROTO_E_ATTR },
+	{ "count e v m 1 2 unit=a epoch=1 x=1", PROTO_E_ATTR },
+	{ "observe e v m 1 unit=a unit=a unit=a unit=a unit=a unit=a unit=a "
+	    "unit=a unit=a unit=a unit=a unit=a unit=a unit=a unit=a unit=a "
+	    "unit=a unit=a unit=a unit=a unit=a unit=a unit=a unit=a unit=a",
+	    PROTO_E_ATTR },
+	/* attributes end the record: anything else is a field count error */
+	{ "observe e v m unit=a", PROTO_E_FIELDS },	/* no value */
+	{ "observe e v m 1 unit=a 2", PROTO_E_FIELDS },
+	{ "observe e v m 1 x unit=a", PROTO_E_FIELDS },
+	{ "expose e v unit=a 5", PROTO_E_FIELDS },
+	{ "expose e v 5 6 unit=a", PROTO_E_FIELDS },
+	{ "count e v m 1 unit=a", PROTO_E_FIELDS },
+	{ "observe e v unit=a epoch=1", PROTO_E_FIELDS },
+	/* EXP and VAR are never attributes */
+	{ "expose e unit=a", PROTO_E_NAME },
+	/* fields are checked before attributes */
+	{ "observe e v m nan unit=", PROTO_E_NUMBER },
+	{ "observe e/x v m 1 epoch=0", PROTO_E_NAME },
+	{ "expose e v 0 unit=a", PROTO_E_RANGE },
+	{ "count e v m -1 1 epoch=0", PROTO_E_RANGE },
+	/* attributes in JSON, good */
+	{ JE "\"unit\":\"user:42\",\"epoch\":2}", PROTO_OK },
+	{ JE "\"n\":3,\"epoch\":1000000000}", PROTO_OK },
+	{ JE "\"epoch\":3.0}", PROTO_OK },	/* integers decode as reals */
+	{ JE "\"unit\":\"" U128 "\"}", PROTO_OK },
+	{ "{\"kind\":\"observe\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"value\":1.5,\"unit\":\"u.1\"}", PROTO_OK },
+	{ "{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"k\":3,\"n\":100,\"epoch\":4,\"unit\":\"x\"}",
+	    PROTO_OK },
+	/* attributes in JSON, bad */
+	{ JE "\"unit\":\"\"}", PROTO_E_ATTR },
+	{ JE "\"unit\":\"" U128 "b\"}", PROTO_E_ATTR },
+	{ JE "\"unit\":\"a b\"}", PROTO_E_ATTR },
+	{ JE "\"unit\":\"\\u00e9\"}", PROTO_E_ATTR },
+	{ JE "\"unit\":\"\xc3\xa9\"}", PROTO_E_ATTR },
+	{ JE "\"unit\":7}", PROTO_E_ATTR },
+	{ JE "\"unit\":null}", PROTO_E_ATTR },
+	{ JE "\"unit\":[\"a\"]}", PROTO_E_ATTR },
+	{ JE "\"epoch\":0}", PROTO_E_ATTR },
+	{ JE "\"epoch\":1000000001}", PROTO_E_ATTR },
+	{ JE "\"epoch\":2.5}", PROTO_E_ATTR },
+	{ JE "\"epoch\":\"3\"}", PROTO_E_ATTR },
+	{ JE "\"epoch\":-1}", PROTO_E_ATTR },
+	{ JE "\"epoch\":1e300}", PROTO_E_ATTR },
+	{ JE "\"epoch\":true}", PROTO_E_ATTR },
+	{ JE "\"epoch\":null}", PROTO_E_ATTR },
+	/* JSON, attribute keys and the existing key rules */
+	{ JE "\"unit\":\"a\",\"unit\":\"a\"}", PROTO_E_JSON },	/* dup */
+	{ JE "\"units\":\"a\"}", PROTO_E_JSON },			/* unknown */
+	/* jansson refuses an escaped NUL in any string, before keys count */
+	{ JE "\"unit\":\"a\\u0000\"}", PROTO_E_JSON },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"unit\":\"a\","
+	    "\"weights\":[{\"variant\":\"a\",\"weight\":1},"
+	    "{\"variant\":\"b\",\"weight\":1}]}", PROTO_E_FIELDS },
+	{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"epoch\":1,"
+	    "\"weights\":[{\"variant\":\"a\",\"weight\":1},"
+	    "{\"variant\":\"b\",\"weight\":1}]}", PROTO_E_FIELDS },
+	{ "{\"kind\":\"expose\",\"experiment\":\"e/x\",\"variant\":\"v\","
+	    "\"epoch\":0}", PROTO_E_NAME },
 };
 
 static void
@@ -281,6 +386,7 @@ test_every_status(void **state)
 	assert_string_equal(proto_reason(PROTO_E_NAME), "bad_name");
 	assert_string_equal(proto_reason(PROTO_E_LONG), "too_long");
 	assert_string_equal(proto_reason(PROTO_E_RANGE), "out_of_range");
+	assert_string_equal(proto_reason(PROTO_E_ATTR), "bad_attribute");
 	assert_string_equal(proto_reason(PROTO_NSTATUS), "unknown");
 }
 
@@ -410,6 +516,67 @@ test_fields(void **state)
 	assert_string_equal(r.variant, "v");
 }
 
+static void
+test_attrs(void **state)
+{
+	struct record r;
+	const char *l;
+
+	/* absent: cleared, whatever the record held before */
+	memset(&r, 0xa5, sizeof r);
+	l = "observe e v m 1";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.unit_len, 0);
+	assert_int_equal(r.unit[0], '\0');
+	assert_int_equal(r.epoch, 0);
+
+	l = "expose e v 25 unit=user:42 epoch=2";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_true(r.units == 25);
+	assert_string_equal(r.variant, "v");
+	assert_int_equal(r.unit_len, 7);
+	assert_string_equal(r.unit, "user:42");
+	assert_int_equal(r.epoch, 2);
+
+	/* expose without N: units 1, the attribute is not N */
+	l = "expose e v epoch=9";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_true(r.units == 1);
+	assert_int_equal(r.epoch, 9);
+	assert_int_equal(r.unit_len, 0);	/* the last line's unit is gone */
+
+	l = "count e v m 3 10 epoch=1000000000 unit=" U128;
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_true(r.k == 3 && r.n == 10);
+	assert_int_equal(r.epoch, 1000000000u);
+	assert_int_equal(r.unit_len, PROTO_UNIT_MAX);
+	assert_int_equal(strlen(r.unit), PROTO_UNIT_MAX);
+
+	l = "observe e v m 1 epoch=007";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.epoch, 7);
+
+	l = JE "\"unit\":\"u.1\",\"epoch\":3.0}";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_string_equal(r.unit, "u.1");
+	assert_int_equal(r.unit_len, 3);
+	assert_int_equal(r.epoch, 3);
+
+	/* a plan never carries attributes */
+	l = "plan e a=1 b=1 unit=2";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	assert_int_equal(r.narms, 3);
+	assert_string_equal(r.arms[2].name, "unit");
+	assert_int_equal(r.unit_len, 0);
+	assert_int_equal(r.epoch, 0);
+
+	/* the length in hand bounds the unit, not a NUL */
+	l = "observe e v m 1 unit=abcdef";
+	assert_int_equal(proto_parse(l, strlen(l) - 3, &r), PROTO_OK);
+	assert_string_equal(r.unit, "abc");
+	assert_int_equal(r.unit_len, 3);
+}
+
 /* Records equal in every field their kind uses. */
 static int
 same_record(const struct record *a, const struct record *b)
@@ -419,6 +586,9 @@ same_record(const struct record *a, const struct record *b)
 	if (a->kind != b->kind || a->has_ts != b->has_ts ||
 	    (a->has_ts && a->ts != b->ts) ||
 	    strcmp(a->experiment, b->experiment) != 0)
+		return 0;
+	if (a->kind != PROTO_PLAN && (a->epoch != b->epoch ||
+	    a->unit_len != b->unit_len || strcmp(a->unit, b->unit) != 0))
 		return 0;
 	switch (a->kind) {
 	case PROTO_PLAN:
@@ -487,6 +657,62 @@ test_format_roundtrip(void **state)
 	assert_string_equal(buf, "observe e v m 0.30000000000000004");
 	assert_int_equal(proto_parse(buf, (size_t)n, &r2), PROTO_OK);
 	assert_true(same_record(&r, &r2));
+}
+
+/* Attributes are written back in the grammar proto.h gives. */
+static void
+test_format_attrs(void **state)
+{
+	struct record r, r2;
+	char buf[PROTO_LINE_MAX + 1];
+	const char *l;
+	int n;
+
+	l = "expose e v unit=u epoch=2";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	n = proto_format(&r, buf, sizeof buf);
+	assert_string_equal(buf, "expose e v 1 unit=u epoch=2");
+	assert_int_equal(proto_parse(buf, (size_t)n, &r2), PROTO_OK);
+	assert_true(same_record(&r, &r2));
+	/* a buffer one byte short of the attributes fails cleanly */
+	assert_int_equal(proto_format(&r, buf, (size_t)n), -1);
+	assert_int_equal(proto_format(&r, buf, (size_t)n + 1), n);
+
+	l = "@1700000000.5 count e v m 3 10 epoch=1000000000 unit=" U128;
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	n = proto_format(&r, buf, sizeof buf);
+	assert_string_equal(buf, "@1700000000.5 count e v m 3 10 unit=" U128
+	    " epoch=1000000000");
+	assert_int_equal(proto_parse(buf, (size_t)n, &r2), PROTO_OK);
+	assert_true(same_record(&r, &r2));
+
+	/* JSON in, plain out, the same record */
+	l = "{\"kind\":\"observe\",\"experiment\":\"e\",\"variant\":\"v\","
+	    "\"metric\":\"m\",\"value\":1.5,\"unit\":\"u.1\",\"epoch\":4}";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	n = proto_format(&r, buf, sizeof buf);
+	assert_string_equal(buf, "observe e v m 1.5 unit=u.1 epoch=4");
+	assert_int_equal(proto_parse(buf, (size_t)n, &r2), PROTO_OK);
+	assert_true(same_record(&r, &r2));
+
+	/* a plan formats without them even if a caller set them, since
+	 * "unit=x" after a plan's arms would read back as one more arm */
+	l = "plan e c=1 t=1";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	strcpy(r.unit, "x");
+	r.unit_len = 1;
+	r.epoch = 2;
+	n = proto_format(&r, buf, sizeof buf);
+	assert_string_equal(buf, "plan e c=1 t=1");
+	/* fields out of their bounds do not format */
+	l = "observe e v m 1";
+	assert_int_equal(proto_parse(l, strlen(l), &r), PROTO_OK);
+	r.epoch = PROTO_EPOCH_MAX + 1;
+	assert_int_equal(proto_format(&r, buf, sizeof buf), -1);
+	r.epoch = 0;
+	memset(r.unit, 'a', PROTO_UNIT_MAX + 1);
+	r.unit_len = PROTO_UNIT_MAX + 1;
+	assert_int_equal(proto_format(&r, buf, sizeof buf), -1);
 }
 
 /* xorshift64*, so the random cases are the same on every run. */
@@ -600,24 +826,26 @@ test_bad_between_good(void **state)
 		"{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"t\","
 		    "\"metric\":\"err\",\"k\":1,\"n\":9}",
 		"count e c err 2 10",
+		"observe e t lat 3 unit=u:1 epoch=2",
 	};
 	static const char *badl[] = {
+		"observe e t lat 3 unit=u:2 epoch=0",
 		"observe e t lat nan", "{\"kind\":", "plan e a=1 a=1",
 		"\x01\x02\x03", "observe e v m 1 2 3 4 5 6 7 8 9 10 11 12 13 "
 		"14 15 16 17 18 19 20 21 22 23 24 25 26 27 28 29",
 	};
-	struct record alone[5], r;
+	struct record alone[6], r;
 	char garbage[300];
 	size_t i, j, k, n;
 	int round;
 
-	for (i = 0; i < 5; i++)
+	for (i = 0; i < 6; i++)
 		assert_int_equal(proto_parse(good[i], strlen(good[i]),
 		    &alone[i]), PROTO_OK);
 	for (round = 0; round < 2000; round++) {
-		for (i = 0; i < 5; i++) {
-			j = rng() % 6;
-			if (j < 5)
+		for (i = 0; i < 6; i++) {
+			j = rng() % 7;
+			if (j < 6)
 				proto_parse(badl[j], strlen(badl[j]), &r);
 			else {
 				n = rng() % sizeof garbage;
@@ -641,7 +869,9 @@ main(void)
 		cmocka_unit_test(test_long),
 		cmocka_unit_test(test_names),
 		cmocka_unit_test(test_fields),
+		cmocka_unit_test(test_attrs),
 		cmocka_unit_test(test_format_roundtrip),
+		cmocka_unit_test(test_format_attrs),
 		cmocka_unit_test(test_numbers_vs_strtod),
 		cmocka_unit_test(test_bad_between_good),
 	};
