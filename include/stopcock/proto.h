@@ -17,7 +17,8 @@
  *   epoch=N    the epoch (1-based plan generation) in which the unit was
  *              exposed, for records that arrive after a ramp step.
  *              Absent: the epoch current when the record arrives.
- * An unknown key, a repeated key or a bad value is bad_attribute.
+ * An unknown key, a repeated key or a bad value is bad_attribute (in
+ * JSON a repeated key is bad_json, as every duplicate key is).
  *
  * proto_parse is a pure function: no I/O and no allocation for the plain
  * form (the JSON form goes through jansson, which allocates). Names are
