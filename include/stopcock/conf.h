@@ -77,6 +77,8 @@ struct conf {
 	double		lateness;	/* allowed lateness of an exposure, s */
 	double		srm_interval;	/* SRM interval length, s */
 	uint32_t	unit_groups;	/* variance groups per arm (unit=) */
+	double		detect_arl;	/* s of record time between false
+					 * change alarms, per experiment */
 	/* [defaults]: caps (hostile cardinality) */
 	uint32_t	max_experiments;
 	uint32_t	max_variants;

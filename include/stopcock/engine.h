@@ -86,6 +86,15 @@ struct finding {
 	double		 chi2_p;	/* srm: one-look chi-square p */
 	double		 sketch_accuracy;	/* quantile tests */
 	double		 design_effect;	/* variance / independent-unit one */
+	/* change detection: log M, its threshold, the estimated start of
+	 * the change (record time) and whether it raised this harm */
+	double		 detect_log_m, detect_threshold, change_start;
+	int		 by_detector;
+	/* the effect over the last hour and day of record time, since when,
+	 * and the records per arm (control, treatment) it rests on */
+	double		 recent[2], recent_since[2], recent_records[2][2];
+	/* the record time a verdict speaks of: epoch start to now */
+	double		 covers_from, covers_to;
 	int		 untrusted;	/* SRM has fired in this epoch */
 	double		 ts;		/* record time of the finding */
 	double		 first_ts;	/* when the verdict first held */

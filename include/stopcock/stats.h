@@ -182,4 +182,36 @@ double	stats_ztest(double est, double var, double *z);
 double	stats_fixed_n(double delta, double var_a, double var_b, double alpha,
 	    double power);
 
+/* ---- detect.c: change detection ---- */
+/*
+ * A mixture over a grid of excess sizes of Page's CUSUM on one-sided
+ * Gaussian block scores (Page 1954; Shin, Ramdas & Rinaldo 2023). A plain
+ * struct of numbers: it lives inside its owner's state and is saved as
+ * such. Under no change the alarm time at log c has E[N] >= c blocks.
+ */
+#define STATS_DETECT_GRID 12
+struct stats_detect {
+	int	 k;			/* grid points in use */
+	double	 blocks;		/* blocks seen */
+	double	 lambda[STATS_DETECT_GRID];	/* excesses, effect units */
+	double	 log_w[STATS_DETECT_GRID];	/* log weights, sum 1 */
+	double	 log_m[STATS_DETECT_GRID];	/* log CUSUM; -inf: none */
+	double	 start[STATS_DETECT_GRID];	/* time its run started */
+};
+/* Log-spaced grid of k points in [lambda_min, lambda_max], equal weights. */
+void	stats_detect_init(struct stats_detect *, double lambda_min,
+	    double lambda_max, int k);
+/* One block with score X = d I and information I at time t; returns
+ * log M. A block with I <= 0 or anything not finite is skipped. */
+double	stats_detect_update(struct stats_detect *, double X, double I,
+	    double t);
+double	stats_detect_log_m(const struct stats_detect *);
+/* Start time of the run of the grid point that weighs most in log M. */
+double	stats_detect_change_start(const struct stats_detect *);
+/* log c for series detectors sharing a mean run length of arl blocks. */
+double	stats_detect_threshold(double arl_blocks, double series);
+/* Page's CUSUM and Shiryaev-Roberts recursions in log form. */
+double	stats_cusum_update(double w, double l);
+double	stats_sr_update(double log_r, double l);
+
 #endif

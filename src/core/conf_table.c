@@ -80,6 +80,10 @@ const struct conf_option conf_options[] = {
 	  3600, 0, "5s", NULL, "the SRM test adds exposures one complete "
 	  "interval of record time at a time, so arrival order inside an "
 	  "interval cannot move it" },
+	{ S_DEFAULTS, "detect_arl", T_DURATION, C(detect_arl), 3600, 1e12,
+	  0, "600d", NULL, "change detection: the average record time "
+	  "between false alarms of one experiment's detectors (600d: 0.05 "
+	  "expected in 30 days); shorter finds late harm sooner" },
 	{ S_DEFAULTS, "unit_groups", T_U32, C(unit_groups), 16, 4096, 0,
 	  "256", NULL, "random groups per arm and metric for the variance "
 	  "of records that name their unit (unit=); memory 16 bytes each" },

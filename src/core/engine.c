@@ -293,6 +293,9 @@ test_reset_epoch(struct test *t)
 	t->pause_sent = 0;
 	t->cs_n = t->ev_n = 0;
 	t->dirty = t->hist_dirty = 0;
+	t->by_detector = 0;
+	t->sig2_t = t->sig2_c = 0;
+	change_reset(t);
 	for (i = 0; i < 2; i++) {
 		groups_free(t->qg[i]);
 		t->qg[i] = NULL;

@@ -26,6 +26,14 @@
 /* Expected events and non-events per arm before a proportion is tested
  * (common practice for normal approximations to the binomial). */
 #define ENGINE_EVENTS_MIN 5
+/* A change-detection block: records per arm and seconds of record time
+ * at least (our choice: a CLT per block, and at most a block a second so
+ * an ARL in blocks is one in seconds). */
+#define ENGINE_BLOCK_RECORDS 30
+#define ENGINE_BLOCK_SECONDS 1.0
+/* Windowed views: last hour and last day, snapshots per window. */
+#define CHANGE_WINDOWS 2
+#define CHANGE_WIN_SLOTS 12
 /* Records in an arm's sketch before its exceedance threshold is frozen. */
 #define ENGINE_QUANTILE_FREEZE 500
 
@@ -75,6 +83,13 @@ struct hist {
 	struct hist_point	*pt;
 };
 
+/* Snapshots of a test's cumulative tallies for one recent window. */
+struct change_window {
+	int		 head, n;
+	double		 ts[CHANGE_WIN_SLOTS];
+	double		 snap[CHANGE_WIN_SLOTS][2][3];
+};
+
 /* One guardrail x treatment arm. Identity: (guardrail name, variant). */
 struct test {
 	int		 g;		/* index into conf->guardrails */
@@ -103,6 +118,18 @@ struct test {
 	 * control and treatment (engine.c groups_add_quantiles) */
 	struct groups	*qg[2];
 	double		 qx0[2];
+	/* per-record variances and margin of the last look (change.c) */
+	double		 sig2_t, sig2_c, kfac, mlin;
+	/* change detection (change.c) */
+	struct stats_detect det;
+	int		 det_on;	/* grid fixed */
+	int		 det_alarm;	/* crossed this epoch */
+	int		 by_detector;	/* the harm verdict came from it */
+	double		 det_log_m;	/* latest log M */
+	double		 det_start;	/* estimated change start at alarm */
+	double		 blk_ts;	/* start of the open block */
+	double		 snap[2][3];	/* control, treatment at blk_ts */
+	struct change_window win[CHANGE_WINDOWS];
 	double		 cs_n;		/* samples at the last costly CS */
 	double		 ev_n;		/* samples at the last costly look */
 	int		 dirty;		/* data changed since last evaluation */
@@ -204,7 +231,27 @@ void		 hist_offer(struct hist *, uint32_t cap, double t, double a,
 		    double b, double c, double p);
 void		 hist_free(struct hist *);
 
+/* change.c */
+void		 change_reset(struct test *);
+double		 change_threshold(const struct engine *,
+		    const struct experiment *);
+int		 change_offer(const struct engine *, const struct experiment *,
+		    struct test *, const struct conf_guardrail *,
+		    const struct series *, const struct series *, double sig2_t,
+		    double sig2_c, double k, double m);
+
+void		 change_window_offer(const struct engine *, struct test *,
+		    const struct conf_guardrail *, const struct series *,
+		    const struct series *);
+double		 change_window_estimate(const struct engine *,
+		    const struct test *, const struct conf_guardrail *,
+		    const struct series *, const struct series *, int i,
+		    double *since, double rec[2]);
+double		 change_window_span(int i);
+
 /* verdict.c */
+double		 plan_units_of(const struct conf_guardrail *,
+		    const struct experiment *);
 void		 verdict_evaluate(struct engine *, struct experiment *,
 		    struct test *, int costly);
 void		 verdict_srm(struct engine *, struct experiment *);

@@ -507,6 +507,102 @@ srm_ring_load(struct experiment *e, const json_t *rows)
 }
 
 static json_t *
+reals_save(const double *x, size_t n)
+{
+	json_t *a = json_array();
+	size_t i;
+
+	for (i = 0; i < n; i++)
+		json_array_append_new(a, sreal(x[i]));
+	return a;
+}
+
+/* Fill x[0..n) from an array of exactly n numbers (nan, +-inf allowed). */
+static int
+reals_load(const json_t *a, double *x, size_t n)
+{
+	size_t i;
+
+	if (!json_is_array(a) || json_array_size(a) != n)
+		return -1;
+	for (i = 0; i < n; i++)
+		x[i] = json_is_null(json_array_get(a, i)) ? NAN : aget(a, i);
+	return 0;
+}
+
+/* A test's change detector, block snapshot and recent windows. */
+static json_t *
+change_save(const struct test *t)
+{
+	json_t *o, *w = json_array();
+	int i;
+
+	o = json_pack("{s:b, s:b, s:b, s:o, s:o, s:o, s:o, s:i, s:o}", "on",
+	    t->det_on, "alarm", t->det_alarm, "by_detector", t->by_detector,
+	    "log_m", sreal(t->det_log_m), "start", sreal(t->det_start),
+	    "block_ts", sreal(t->blk_ts), "snap", reals_save(&t->snap[0][0],
+	    6), "k", t->det.k, "blocks", sreal(t->det.blocks));
+	json_object_set_new(o, "lambda", reals_save(t->det.lambda,
+	    STATS_DETECT_GRID));
+	json_object_set_new(o, "log_w", reals_save(t->det.log_w,
+	    STATS_DETECT_GRID));
+	json_object_set_new(o, "log_mk", reals_save(t->det.log_m,
+	    STATS_DETECT_GRID));
+	json_object_set_new(o, "startk", reals_save(t->det.start,
+	    STATS_DETECT_GRID));
+	for (i = 0; i < CHANGE_WINDOWS; i++)
+		json_array_append_new(w, json_pack("{s:i, s:i, s:o, s:o}",
+		    "head", t->win[i].head, "n", t->win[i].n, "ts",
+		    reals_save(t->win[i].ts, CHANGE_WIN_SLOTS), "snap",
+		    reals_save(&t->win[i].snap[0][0][0], CHANGE_WIN_SLOTS * 6)));
+	json_object_set_new(o, "windows", w);
+	return o;
+}
+
+static int
+change_load(struct test *t, const json_t *o)
+{
+	const json_t *w, *wi;
+	size_t i;
+
+	t->det_on = json_is_true(json_object_get(o, "on"));
+	t->det_alarm = json_is_true(json_object_get(o, "alarm"));
+	t->by_detector = json_is_true(json_object_get(o, "by_detector"));
+	t->det.k = (int)json_integer_value(json_object_get(o, "k"));
+	if (t->det.k < 0 || t->det.k > STATS_DETECT_GRID ||
+	    get_real(o, "log_m", &t->det_log_m) != 0 ||
+	    get_real(o, "start", &t->det_start) != 0 ||
+	    get_real(o, "block_ts", &t->blk_ts) != 0 ||
+	    get_real(o, "blocks", &t->det.blocks) != 0 ||
+	    reals_load(json_object_get(o, "snap"), &t->snap[0][0], 6) != 0 ||
+	    reals_load(json_object_get(o, "lambda"), t->det.lambda,
+	    STATS_DETECT_GRID) != 0 ||
+	    reals_load(json_object_get(o, "log_w"), t->det.log_w,
+	    STATS_DETECT_GRID) != 0 ||
+	    reals_load(json_object_get(o, "log_mk"), t->det.log_m,
+	    STATS_DETECT_GRID) != 0 ||
+	    reals_load(json_object_get(o, "startk"), t->det.start,
+	    STATS_DETECT_GRID) != 0)
+		return -1;
+	w = json_object_get(o, "windows");
+	if (json_array_size(w) != CHANGE_WINDOWS)
+		return -1;
+	json_array_foreach(w, i, wi) {
+		struct change_window *cw = &t->win[i];
+		cw->head = (int)json_integer_value(json_object_get(wi, "head"));
+		cw->n = (int)json_integer_value(json_object_get(wi, "n"));
+		if (cw->head < 0 || cw->head >= CHANGE_WIN_SLOTS || cw->n < 0 ||
+		    cw->n > CHANGE_WIN_SLOTS ||
+		    reals_load(json_object_get(wi, "ts"), cw->ts,
+		    CHANGE_WIN_SLOTS) != 0 ||
+		    reals_load(json_object_get(wi, "snap"),
+		    &cw->snap[0][0][0], CHANGE_WIN_SLOTS * 6) != 0)
+			return -1;
+	}
+	return 0;
+}
+
+static json_t *
 exp_save(const struct experiment *e, const struct conf *conf)
 {
 	json_t *o, *a, *m, *arms, *tests;
@@ -608,6 +704,7 @@ exp_save(const struct experiment *e, const struct conf *conf)
 		json_object_set_new(to, "dirty", json_boolean(t->dirty));
 		json_object_set_new(to, "cs_n", sreal(t->cs_n));
 		json_object_set_new(to, "ev_n", sreal(t->ev_n));
+		json_object_set_new(to, "change", change_save(t));
 		for (j = 0; j < 2; j++)
 			if (t->qg[j] != NULL)
 				json_object_set_new(to, j ? "qg_treatment" :
@@ -868,6 +965,12 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 				return -1;
 			}
 			t->qg[k] = tmp.grp;
+		}
+		if (json_object_get(v, "change") != NULL &&
+		    change_load(t, json_object_get(v, "change")) != 0) {
+			xasprintf(cause, "experiment %s: bad change detector",
+			    id);
+			return -1;
 		}
 		if (get_real(v, "ev_n", &t->ev_n) != 0 || isnan(t->ev_n))
 			t->ev_n = 0;

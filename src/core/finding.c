@@ -59,6 +59,7 @@ finding_fill(const struct engine *eng, const struct experiment *e,
     const struct test *t, enum finding_kind kind, struct finding *f)
 {
 	const struct conf_guardrail *g = &eng->conf->guardrails[t->g];
+	int i;
 
 	memset(f, 0, sizeof *f);
 	f->kind = kind;
@@ -90,6 +91,24 @@ finding_fill(const struct engine *eng, const struct experiment *e,
 	f->sketch_accuracy = g->test == TEST_QUANTILE ?
 	    eng->conf->sketch_accuracy : NAN;
 	f->design_effect = t->deff > 0 ? t->deff : NAN;
+	f->detect_log_m = t->det_on ? t->det_log_m : NAN;
+	f->detect_threshold = g->test == TEST_QUANTILE ? NAN :
+	    change_threshold(eng, e);
+	f->change_start = t->det_alarm ? t->det_start : NAN;
+	f->by_detector = t->verdict == VERDICT_HARM && t->by_detector;
+	f->covers_from = e->nepochs > 0 ? e->epochs[e->nepochs - 1].started :
+	    NAN;
+	f->covers_to = eng->now;
+	for (i = 0; i < 2; i++) {
+		f->recent[i] = f->recent_since[i] = NAN;
+		f->recent_records[i][0] = f->recent_records[i][1] = NAN;
+		if (t->metric >= 0 && t->arm > 0 &&
+		    e->metrics[t->metric].arm != NULL)
+			f->recent[i] = change_window_estimate(eng, t, g,
+			    &e->metrics[t->metric].arm[0],
+			    &e->metrics[t->metric].arm[t->arm], i,
+			    &f->recent_since[i], f->recent_records[i]);
+	}
 	f->untrusted = e->srm_fired;
 	f->ts = eng->now;
 	f->first_ts = t->first_ts;
@@ -125,6 +144,13 @@ finding_fill_srm(const struct engine *eng, const struct experiment *e,
 	f->margin = NAN;
 	f->sketch_accuracy = NAN;
 	f->design_effect = NAN;
+	f->detect_log_m = f->detect_threshold = f->change_start = NAN;
+	f->covers_from = e->nepochs > 0 ? e->epochs[e->nepochs - 1].started :
+	    NAN;
+	f->covers_to = eng->now;
+	for (i = 0; i < 2; i++)
+		f->recent[i] = f->recent_since[i] = f->recent_records[i][0] =
+		    f->recent_records[i][1] = NAN;
 	for (i = 0; i < e->narms; i++)
 		counts[i] = (double)e->exposures[i];
 	/* The classic chi-square, shown as a one-look figure only. */
@@ -224,6 +250,28 @@ finding_json(const struct finding *f)
 	json_object_set_new(o, "chi2_p", finding_num(f->chi2_p));
 	json_object_set_new(o, "sketch_accuracy", finding_num(f->sketch_accuracy));
 	json_object_set_new(o, "design_effect", finding_num(f->design_effect));
+	json_object_set_new(o, "raised_by", f->kind == FINDING_VERDICT &&
+	    f->verdict == VERDICT_HARM ? json_string(f->by_detector ?
+	    "change_detector" : "running_test") : json_null());
+	json_object_set_new(o, "detector", json_pack("{s:o, s:o, s:o}",
+	    "log_m", finding_num(f->detect_log_m), "threshold",
+	    finding_num(f->detect_threshold), "change_start",
+	    finding_num(f->change_start)));
+	json_object_set_new(o, "covers", json_pack("{s:o, s:o}", "from",
+	    finding_num(f->covers_from), "to", finding_num(f->covers_to)));
+	if (f->kind == FINDING_VERDICT) {
+		json_t *w = json_array();
+		int i;
+		for (i = 0; i < 2; i++)
+			json_array_append_new(w, json_pack("{s:o, s:o, s:o, "
+			    "s:[o, o]}", "span", finding_num(
+			    change_window_span(i)), "since", finding_num(
+			    f->recent_since[i]), "estimate", finding_num(
+			    f->recent[i]), "records", finding_num(
+			    f->recent_records[i][0]), finding_num(
+			    f->recent_records[i][1])));
+		json_object_set_new(o, "recent", w);
+	}
 	json_object_set_new(o, "untrusted", json_boolean(f->untrusted));
 	json_object_set_new(o, "ts", finding_num(f->ts));
 	json_object_set_new(o, "first_ts", finding_num(f->first_ts));

@@ -44,8 +44,8 @@ pause_level(const struct engine *eng, const struct experiment *e)
 
 /* Planned units per arm that tune this guardrail's mixture: its own
  * plan_units when set, else the experiment's. */
-static double
-plan_units(const struct conf_guardrail *g, const struct experiment *e)
+double
+plan_units_of(const struct conf_guardrail *g, const struct experiment *e)
 {
 	return g->plan_units > 0 ? g->plan_units : e->plan_units;
 }
@@ -217,7 +217,7 @@ eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
 
 	if (t->tau2_level != level) {
 		t->tau2_level = level;
-		t->tau2_unit = stats_msprt_tau2(1, 2 * level, plan_units(g, e));
+		t->tau2_unit = stats_msprt_tau2(1, 2 * level, plan_units_of(g, e));
 		t->tail_q = design_tail(level);
 	}
 	q = t->tail_q;
@@ -252,6 +252,10 @@ eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
 		vc = ca.var;
 	}
 	V = vt + k * k * vc;
+	t->sig2_t = vt * (g->test == TEST_PROPORTION ? tb.n : tb.recs);
+	t->sig2_c = vc * (g->test == TEST_PROPORTION ? ca.n : ca.recs);
+	t->kfac = k;
+	t->mlin = g->margin_relative ? 0 : g->margin;
 	/* per-record variance: plan_units counts units (records without
 	 * unit=), whatever a record's N is (trials, hours) */
 	vu = vt * tb.recs + vc * ca.recs;
@@ -512,7 +516,7 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 		blocks_widened(eng, a->sk, 0, (1 + acc) / (1 - acc), scale,
 		    shift, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
-		t->log_e = stats_quantile_log_e1(&ba, &bb, q, plan_units(g, e));
+		t->log_e = stats_quantile_log_e1(&ba, &bb, q, plan_units_of(g, e));
 	} else {
 		scale = g->margin_relative ? 1 - m : 1;
 		shift = g->margin_relative ? 0 : -m * (1 - acc);
@@ -522,7 +526,7 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 		ba.weight = wt[0];
 		bb.weight = wt[1];
 		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
-		t->log_e = stats_quantile_log_e1(&bb, &ba, q, plan_units(g, e));
+		t->log_e = stats_quantile_log_e1(&bb, &ba, q, plan_units_of(g, e));
 	}
 	if (!want_cs)
 		return 0;
@@ -532,8 +536,8 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &cb);
 	ca.weight = wt[0];
 	cb.weight = wt[1];
-	if (stats_quantile_cs(&ca, q, plan_units(g, e), level / 2, &t->ctl_lo,
-	    &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q, plan_units(g, e),
+	if (stats_quantile_cs(&ca, q, plan_units_of(g, e), level / 2, &t->ctl_lo,
+	    &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q, plan_units_of(g, e),
 	    level / 2, &t->trt_lo, &t->trt_hi) != 0)
 		return 0;
 	t->lo = t->trt_lo - t->ctl_hi;
@@ -575,9 +579,9 @@ quantile_harm_bound(struct engine *eng, struct experiment *e, struct test *t,
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
 		if ((g->harm == HARM_INCREASE ?
 		    stats_quantile_log_e1(&ba, &bb, g->quantile,
-		    plan_units(g, e)) :
+		    plan_units_of(g, e)) :
 		    stats_quantile_log_e1(&bb, &ba, g->quantile,
-		    plan_units(g, e))) >= target)
+		    plan_units_of(g, e))) >= target)
 			lo = mid;
 		else
 			hi = mid;
@@ -652,7 +656,7 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	struct finding f;
 	double level = verdict_level(e), s, p, n;
 	enum verdict old = t->verdict, nv;
-	int rc, want_cs = 1;
+	int rc, want_cs = 1, det;
 
 	if (t->metric < 0 || t->arm <= 0)
 		return;
@@ -703,16 +707,24 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 
 	s = harm_sign(g);
 	p = stats_p_from_log_e(t->max_log_e);
+	det = g->test != TEST_QUANTILE && t->sig2_t > 0 && t->sig2_c > 0 &&
+	    change_offer(eng, e, t, g, a, b, t->sig2_t, t->sig2_c, t->kfac,
+	    t->mlin);
+	change_window_offer(eng, t, g, a, b);
 	nv = old;
-	if (old == VERDICT_UNDECIDED) {
-		/* the evidence is one-sided: it points at harm beyond the
-		 * margin only, so no sign check of the latest estimate */
-		if (p <= level)
-			nv = VERDICT_HARM;
-		else if (isfinite(t->cs_lo) && isfinite(t->cs_hi) &&
-		    s * (s * t->margin_abs - (s > 0 ? t->cs_hi : t->cs_lo)) > 0)
-			nv = VERDICT_SAFE;
-	}
+	/*
+	 * The evidence is one-sided: it points at harm beyond the margin
+	 * only, so no sign check of the latest estimate. Harm may follow
+	 * safe: safe said harm was ruled out on the data until then, and
+	 * both the running test and the change detector keep watching.
+	 */
+	if (old != VERDICT_HARM && (p <= level || det)) {
+		nv = VERDICT_HARM;
+		t->by_detector = p > level;
+	} else if (old == VERDICT_UNDECIDED && isfinite(t->cs_lo) &&
+	    isfinite(t->cs_hi) &&
+	    s * (s * t->margin_abs - (s > 0 ? t->cs_hi : t->cs_lo)) > 0)
+		nv = VERDICT_SAFE;
 	if (nv != old) {
 		/* an alert carries fresh bounds, whatever the schedule */
 		if (!want_cs && g->test == TEST_QUANTILE)
@@ -736,8 +748,12 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 		f.previous = old;
 		engine_emit(eng, &f);
 	}
+	/* a detector's harm pauses once its evidence is as many times
+	 * stronger than its threshold as pause_alpha is below the level */
 	if (t->verdict == VERDICT_HARM && g->action == ACTION_PAUSE &&
-	    !t->pause_sent && p <= pause_level(eng, e)) {
+	    !t->pause_sent && (p <= pause_level(eng, e) || (t->by_detector &&
+	    t->det_log_m >= change_threshold(eng, e) +
+	    log(level / pause_level(eng, e))))) {
 		t->pause_sent = 1;
 		finding_fill(eng, e, t, FINDING_PAUSE, &f);
 		engine_emit(eng, &f);

@@ -560,6 +560,54 @@ test_guardrail_plan_units(void **state)
 	(void)fx;
 }
 
+/*
+ * Safe speaks of the past: a guardrail judged safe on a healthy stretch
+ * must still raise harm when the treatment turns bad later, and the
+ * change detector must find it well before the diluted running test
+ * could (the cumulative mean difference stays below the margin here).
+ */
+static void
+test_late_harm_after_safe(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	struct seen before;
+	int i;
+
+	engine_free(fx->eng);
+	conf_free(fx->conf);
+	fx->conf = load("[guardrail late]\nmetric = load_ms\ntest = mean\n"
+	    "harm = increase\nmargin = 2\n");
+	fx->eng = engine_new(fx->conf, (const uint8_t *)"0123456789abcdef");
+	engine_set_sink(fx->eng, sink, &fx->seen);
+	gsl_rng_set(rng, 11);
+	feed(fx, "plan late control=50 treatment=50");
+	for (i = 0; i < 60000; i++) {
+		feed(fx, "observe late control load_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+		feed(fx, "observe late treatment load_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+	}
+	assert_int_equal(fx->seen.safes, 1);
+	assert_int_equal(fx->seen.harms, 0);
+	before = fx->seen;
+	/* a bad build: +6 ms, three times the margin, after 60,000 pairs */
+	for (i = 0; i < 20000 && fx->seen.harms == 0; i++) {
+		feed(fx, "observe late control load_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+		feed(fx, "observe late treatment load_ms %.4f",
+		    106 + gsl_ran_gaussian(rng, 10));
+	}
+	gsl_rng_free(rng);
+	assert_int_equal(fx->seen.harms, 1);
+	assert_int_equal(fx->seen.last_verdict, VERDICT_HARM);
+	assert_string_equal(fx->seen.last_guardrail, "late");
+	/* found within 20,000 pairs, while the epoch's mean difference
+	 * 6 i / (60000 + i) was still under the 2 ms margin */
+	assert_true(i < 20000 && 6.0 * i / (60000 + i) < 2);
+	assert_int_equal(fx->seen.safes, before.safes);
+}
+
 int
 main(void)
 {
@@ -570,6 +618,8 @@ main(void)
 		cmocka_unit_test_setup_teardown(test_srm, setup, teardown),
 		cmocka_unit_test_setup_teardown(test_srm_batches, setup,
 		    teardown),
+		cmocka_unit_test_setup_teardown(test_late_harm_after_safe,
+		    setup, teardown),
 		cmocka_unit_test_setup_teardown(test_mean_harm, setup,
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_proportion_harm_and_pause,
