@@ -60,6 +60,8 @@ struct conf_webhook {
 /* Open SRM intervals (lateness / srm_interval) at most; the engine's
  * ring holds two more. */
 #define CONF_SRM_OPEN_MAX 4000
+/* Largest unit_groups (the option table's bound). */
+#define CONF_UNIT_GROUPS_MAX 4096
 
 struct conf {
 	char		*path;		/* file it came from, or NULL */

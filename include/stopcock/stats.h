@@ -198,14 +198,29 @@ struct stats_detect {
 	double	 log_m[STATS_DETECT_GRID];	/* log CUSUM; -inf: none */
 	double	 start[STATS_DETECT_GRID];	/* time its run started */
 };
-/* Log-spaced grid of k points in [lambda_min, lambda_max], equal weights. */
-void	stats_detect_init(struct stats_detect *, double lambda_min,
+/*
+ * Log-spaced grid of k points in [lambda_min, lambda_max], equal weights,
+ * no run yet. Returns -1 (and leaves an inert detector, k = 0, whose
+ * log M stays -inf) unless 0 < lambda_min <= lambda_max < inf and
+ * 1 <= k <= STATS_DETECT_GRID.
+ */
+int	stats_detect_init(struct stats_detect *, double lambda_min,
 	    double lambda_max, int k);
-/* One block with score X = d I and information I at time t; returns
- * log M. A block with I <= 0 or anything not finite is skipped. */
+/* Forget every run (a new epoch, or after an alarm); keeps the grid. */
+void	stats_detect_reset(struct stats_detect *);
+/*
+ * One block with score X = d I and information I; t is stored as the
+ * start of any run that begins with this block. Returns log M. A block
+ * with I <= 0, X or I not finite, or a log ratio that overflows is
+ * skipped: state unchanged, blocks not counted (so callers can count
+ * it as rejected).
+ */
 double	stats_detect_update(struct stats_detect *, double X, double I,
 	    double t);
 double	stats_detect_log_m(const struct stats_detect *);
+/* 0 if the numbers are a state init/update could produce (k = 0 too),
+ * -1 if not: for state read back from a checkpoint. */
+int	stats_detect_check(const struct stats_detect *);
 /* Start time of the run of the grid point that weighs most in log M. */
 double	stats_detect_change_start(const struct stats_detect *);
 /* log c for series detectors sharing a mean run length of arl blocks. */

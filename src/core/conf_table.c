@@ -84,7 +84,8 @@ const struct conf_option conf_options[] = {
 	  0, "600d", NULL, "change detection: the average record time "
 	  "between false alarms of one experiment's detectors (600d: 0.05 "
 	  "expected in 30 days); shorter finds late harm sooner" },
-	{ S_DEFAULTS, "unit_groups", T_U32, C(unit_groups), 16, 4096, 0,
+	{ S_DEFAULTS, "unit_groups", T_U32, C(unit_groups), 16,
+	  CONF_UNIT_GROUPS_MAX, 0,
 	  "256", NULL, "random groups per arm and metric for the variance "
 	  "of records that name their unit (unit=); memory 16 bytes each" },
 	{ S_DEFAULTS, "max_experiments", T_U32, C(max_experiments), 1, 1e6, 0,

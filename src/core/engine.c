@@ -1083,6 +1083,13 @@ engine_counters(const struct engine *eng, struct engine_counters *c)
 
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
+		bytes += (size_t)e->srm_slots * PROTO_PLAN_MAX *
+		    sizeof *e->srm_ring;
+		for (j = 0; j < e->ntests; j++)
+			for (k = 0; k < 2; k++)
+				if (e->tests[j].qg[k] != NULL)
+					bytes += sizeof(struct groups) +
+					    e->tests[j].qg[k]->G * 16;
 		bytes += sizeof *e + (size_t)e->nmetrics * sizeof *e->metrics +
 		    (size_t)e->testcap * sizeof *e->tests +
 		    (e->epochs ? ENGINE_EPOCHS_KEPT * sizeof *e->epochs : 0) +
@@ -1091,10 +1098,14 @@ engine_counters(const struct engine *eng, struct engine_counters *c)
 			if (e->metrics[j].arm == NULL)
 				continue;
 			bytes += (size_t)e->narms * sizeof(struct series);
-			for (k = 0; k < e->narms; k++)
+			for (k = 0; k < e->narms; k++) {
 				if (e->metrics[j].arm[k].sk)
 					bytes += sketch_bytes(
 					    e->metrics[j].arm[k].sk);
+				if (e->metrics[j].arm[k].grp)
+					bytes += sizeof(struct groups) +
+					    e->metrics[j].arm[k].grp->G * 16;
+			}
 		}
 		for (j = 0; j < e->ntests; j++)
 			bytes += e->tests[j].hist.cap *

@@ -419,19 +419,21 @@ groups_save(const struct groups *g)
 	    "n", na);
 }
 
-/* Groups of a series; a count other than the configured one (unit_groups
- * changed between runs) cannot be mapped back: the image is refused. */
+/* Groups of a series, at the count they were saved with (a changed
+ * unit_groups applies to series that start after it). */
 static int
-groups_load(struct series *sr, const json_t *o, uint32_t G)
+groups_load(struct series *sr, const json_t *o, uint32_t Gmax)
 {
 	const json_t *sa = json_object_get(o, "s"), *na = json_object_get(o,
 	    "n");
+	size_t G = json_array_size(sa);
 	uint32_t i;
 
-	if (json_array_size(sa) != G || json_array_size(na) != G)
+	(void)Gmax;
+	if (G < 2 || G > CONF_UNIT_GROUPS_MAX || json_array_size(na) != G)
 		return -1;
 	sr->grp = xcalloc(1, sizeof *sr->grp);
-	sr->grp->G = G;
+	sr->grp->G = (uint32_t)G;
 	sr->grp->s = xcalloc(G, sizeof *sr->grp->s);
 	sr->grp->n = xcalloc(G, sizeof *sr->grp->n);
 	sr->grp->seq = (uint64_t)json_integer_value(json_object_get(o, "seq"));
