@@ -433,14 +433,20 @@ test_save_restore(void **state)
 	feed(fx, "plan s control=50 treatment=50");
 	for (i = 0; i < 3000; i++) {
 		feed(fx, "expose s %s", i % 2 ? "control" : "treatment");
-		feed(fx, "observe s %s latency_ms %.3f",
+		/* units of three records each: unit groups, the quantile's
+		 * exceedance groups and the detector all enter the image */
+		feed(fx, "observe s %s latency_ms %.3f unit=u%d",
 		    i % 2 ? "control" : "treatment",
-		    exp(3 + gsl_ran_gaussian(rng, 1)));
-		feed(fx, "count s %s server_errors %d 3",
-		    i % 2 ? "control" : "treatment", i % 7 == 0);
+		    exp(3 + gsl_ran_gaussian(rng, 1)), i / 6 * 2 + i % 2);
+		feed(fx, "count s %s server_errors %d 3 unit=u%d",
+		    i % 2 ? "control" : "treatment", i % 7 == 0,
+		    i / 6 * 2 + i % 2);
 	}
 	engine_tick(fx->eng, fx->now);
 	a = engine_save(fx->eng);
+	assert_non_null(json_object_get(json_array_get(json_object_get(
+	    json_array_get(json_object_get(json_array_get(json_object_get(a,
+	    "experiments"), 0), "metrics"), 0), "series"), 0), "groups"));
 	copy = engine_restore(fx->conf, key, a, &cause);
 	if (copy == NULL)
 		fail_msg("restore: %s", cause);
