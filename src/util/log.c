@@ -65,6 +65,11 @@ log_set_verbose(int v)
 	logger.verbose = v;
 }
 
+/* The attribute lets the compiler check vfprintf's format through the
+ * callers' own printf attributes (log.h), rather than reject it as a
+ * non-literal format (clang's -Wformat-nonliteral under -Wformat=2). */
+static void vlog(int, const char *, va_list) SC_PRINTF(2, 0);
+
 static void
 vlog(int pri, const char *fmt, va_list ap)
 {

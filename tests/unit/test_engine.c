@@ -140,6 +140,9 @@ teardown(void **state)
 }
 
 /* Apply one protocol line; returns the engine's verdict on it. */
+static enum engine_reject feed(struct fx *, const char *, ...)
+    SC_PRINTF(2, 3);
+
 static enum engine_reject
 feed(struct fx *fx, const char *fmt, ...)
 {

@@ -823,16 +823,16 @@ test_bad_between_good(void **state)
 		"plan e c=1 t=1",
 		"@1700000000 expose e c 3",
 		"observe e t lat 12.25",
-		"{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"t\","
-		    "\"metric\":\"err\",\"k\":1,\"n\":9}",
+		("{\"kind\":\"count\",\"experiment\":\"e\",\"variant\":\"t\","
+		    "\"metric\":\"err\",\"k\":1,\"n\":9}"),
 		"count e c err 2 10",
 		"observe e t lat 3 unit=u:1 epoch=2",
 	};
 	static const char *badl[] = {
 		"observe e t lat 3 unit=u:2 epoch=0",
 		"observe e t lat nan", "{\"kind\":", "plan e a=1 a=1",
-		"\x01\x02\x03", "observe e v m 1 2 3 4 5 6 7 8 9 10 11 12 13 "
-		"14 15 16 17 18 19 20 21 22 23 24 25 26 27 28 29",
+		"\x01\x02\x03", ("observe e v m 1 2 3 4 5 6 7 8 9 10 11 12 13 "
+		"14 15 16 17 18 19 20 21 22 23 24 25 26 27 28 29"),
 	};
 	struct record alone[6], r;
 	char garbage[300];
