@@ -238,6 +238,36 @@ status_list(const json_t *root, const struct status_style *st)
 	}
 }
 
+/*
+ * Under a test's line: what a safe verdict covers (it is no promise
+ * about the future), a harm found by the change detector with the
+ * estimated start of the change, and the effect over the last hour.
+ */
+static void
+status_test_notes(const struct status_style *st, const json_t *t)
+{
+	const json_t *cov = json_object_get(t, "covers");
+	const json_t *det = json_object_get(t, "detector");
+	const json_t *hour = json_array_get(json_object_get(t, "recent"), 0);
+	char a[64], b[64];
+
+	if (strcmp(status_str(t, "verdict"), "safe") == 0 && cov != NULL) {
+		status_time(a, sizeof a, status_num(cov, "from"));
+		status_time(b, sizeof b, status_num(cov, "to"));
+		printf("%s           safe on the records from %s to %s; still "
+		    "watched%s\n", st->dim, a, b, st->off);
+	}
+	if (strcmp(status_str(t, "raised_by"), "change_detector") == 0 &&
+	    det != NULL) {
+		status_time(a, sizeof a, status_num(det, "change_start"));
+		printf("%s           found by the change detector; the change "
+		    "began about %s%s\n", st->warn, a, st->off);
+	}
+	if (hour != NULL && isfinite(status_num(hour, "estimate")))
+		printf("%s           last hour: %+.4g%s\n", st->dim,
+		    status_num(hour, "estimate"), st->off);
+}
+
 static void
 status_experiment(const json_t *x, const struct status_style *st)
 {
@@ -282,6 +312,7 @@ status_experiment(const json_t *x, const struct status_style *st)
 		printf("%s%-10s%s ", status_verdict_colour(st, v), v, st->off);
 		status_name(name, 28);
 		printf(" %-34s %-26s %-8s %s\n", est, rel, p, since);
+		status_test_notes(st, t);
 	}
 	if (json_array_size(tests) == 0)
 		printf("%s(no guardrail data in this epoch yet)%s\n", st->dim,
