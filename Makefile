@@ -15,6 +15,7 @@ endif
 
 PKGS_CORE	= gsl jansson inih libcrypto
 PKGS_DAEMON	= libevent hiredis libcurl libsystemd
+PKGS_CLI	= libcurl
 PKGS_TEST	= cmocka
 
 WARN	= -Wall -Wextra -Wformat=2 -Wshadow -Wstrict-prototypes \
@@ -29,8 +30,8 @@ CFLAGS	?= -g
 override CFLAGS += -std=c11 $(OPT) $(WARN) -fno-strict-aliasing \
 	   $(shell pkg-config --cflags $(PKGS_CORE) $(PKGS_DAEMON) 2>/dev/null)
 LDLIBS_CORE	= $(shell pkg-config --libs $(PKGS_CORE) 2>/dev/null) -lm
-LDLIBS_DAEMON	= $(shell pkg-config --libs $(PKGS_DAEMON) 2>/dev/null) \
-		  -levent_openssl -lssl
+LDLIBS_DAEMON	= $(shell pkg-config --libs $(PKGS_DAEMON) 2>/dev/null)
+LDLIBS_CLI	= $(shell pkg-config --libs $(PKGS_CLI) 2>/dev/null)
 LDLIBS_TEST	= $(shell pkg-config --libs $(PKGS_TEST) 2>/dev/null)
 
 ifeq ($(SAN),1)
@@ -83,8 +84,10 @@ $(BUILD)/stopcockd: $(DAEMON_OBJ) $(LIBCORE)
 	$(CC) $(LDFLAGS) -o $@ $(DAEMON_OBJ) $(LIBCORE) $(LDLIBS_DAEMON) \
 	    $(LDLIBS_CORE)
 
+# The CLI links only what it uses (libcurl for `status`): no libevent,
+# hiredis or libsystemd (tools/layers.sh checks the binary).
 $(BUILD)/stopcock: $(CLI_OBJ) $(LIBCORE)
-	$(CC) $(LDFLAGS) -o $@ $(CLI_OBJ) $(LIBCORE) $(LDLIBS_DAEMON) \
+	$(CC) $(LDFLAGS) -o $@ $(CLI_OBJ) $(LIBCORE) $(LDLIBS_CLI) \
 	    $(LDLIBS_CORE)
 
 $(BUILD)/tests/%: tests/unit/%.c $(LIBCORE)
