@@ -1,10 +1,15 @@
 # stopcock: GNU make build. `make` builds build/stopcockd and build/stopcock;
 # `make check` installs missing Debian packages (as root), then runs every
-# test and ends with "N passed, N failed"; `make demo` runs the scenario.
+# test and ends with "N passed, N failed, N skipped"; `make demo` runs the
+# scenario.
 #
-# BUILD selects the output directory, so parallel work (and the sanitizer
-# build, SAN=1) never share objects.
+# BUILD selects the output directory, so parallel work never shares
+# objects. `make check` puts its other legs below it: $(BUILD)/san (ASan +
+# UBSan), $(BUILD)/clang and $(BUILD)/fuzz (libFuzzer), whatever BUILD is.
 
+ifeq ($(SAN),1)
+BUILD	?= build/san
+endif
 BUILD	?= build
 PREFIX	?= /usr/local
 DESTDIR	?=
@@ -35,10 +40,17 @@ LDLIBS_CLI	= $(shell pkg-config --libs $(PKGS_CLI) 2>/dev/null)
 LDLIBS_TEST	= $(shell pkg-config --libs $(PKGS_TEST) 2>/dev/null)
 
 ifeq ($(SAN),1)
-BUILD	= build/san
 OPT	= -O1
 override CFLAGS += -fsanitize=address,undefined -fno-omit-frame-pointer \
 	   -fno-sanitize-recover=undefined
+override LDFLAGS += -fsanitize=address,undefined
+endif
+# FUZZ=1 (set by `make fuzz`, with CC=clang): the core instrumented for
+# libFuzzer's coverage, under ASan + UBSan; fuzz-build links the targets.
+ifeq ($(FUZZ),1)
+OPT	= -O1
+override CFLAGS += -fsanitize=fuzzer-no-link,address,undefined \
+	   -fno-omit-frame-pointer -fno-sanitize-recover=undefined
 override LDFLAGS += -fsanitize=address,undefined
 endif
 
@@ -54,6 +66,7 @@ DAEMON_OBJ	= $(DAEMON_SRC:%.c=$(BUILD)/obj/%.o)
 CLI_OBJ		= $(CLI_SRC:%.c=$(BUILD)/obj/%.o)
 UNIT_BIN	= $(UNIT_SRC:tests/unit/%.c=$(BUILD)/tests/%)
 TOOL_BIN	= $(TOOL_SRC:tests/tools/%.c=$(BUILD)/tests/%)
+FUZZ_BIN	= $(FUZZ_SRC:tests/fuzz/%.c=$(BUILD)/%)
 LIBCORE		= $(BUILD)/libstopcock.a
 
 # The daemon's page (src/daemon/page.html) is compiled in as a C array,
@@ -66,8 +79,8 @@ $(BUILD)/obj/gen/page.o: $(BUILD)/gen/page.c
 	@mkdir -p $(@D)
 	$(CC) $(CPPFLAGS) $(CFLAGS) -c $< -o $@
 
-.PHONY: all deps check check-fast unit test-build demo bench fuzz install \
-	clean
+.PHONY: all deps check check-fast unit test-build demo bench fuzz \
+	fuzz-build install clean
 .DEFAULT_GOAL := all
 
 all: $(BUILD)/stopcockd $(BUILD)/stopcock
@@ -100,17 +113,28 @@ $(BUILD)/tests/%: tests/tools/%.c $(LIBCORE)
 	$(CC) $(CPPFLAGS) $(CFLAGS) $(LDFLAGS) -o $@ $< $(LIBCORE) \
 	    $(LDLIBS_CORE)
 
+$(BUILD)/fuzz_%: tests/fuzz/fuzz_%.c $(LIBCORE)
+	@mkdir -p $(@D)
+	$(CC) $(CPPFLAGS) $(CFLAGS) $(LDFLAGS) -fsanitize=fuzzer -o $@ $< \
+	    $(LIBCORE) $(LDLIBS_CORE)
+
 test-build: all $(UNIT_BIN) $(TOOL_BIN)
 
 deps:
 	@sh tools/deps.sh
 
-# Every test: unit (plain and under ASan+UBSan), reference checks against
-# scipy/numpy, and integration tests against real servers.
+# Every test: the layer check, unit tests (built with $(CC), again under
+# ASan+UBSan, again with clang), the fuzz targets for a bounded number of
+# runs, reference checks against scipy/numpy, and integration tests
+# against real servers. Each leg's directory is passed to run.sh, which
+# fails the run when a leg it was given has no binaries.
 check: deps
 	@$(MAKE) --no-print-directory test-build
-	@$(MAKE) --no-print-directory SAN=1 test-build
-	@sh tests/run.sh $(BUILD) build/san
+	@$(MAKE) --no-print-directory SAN=1 BUILD=$(BUILD)/san test-build
+	@$(MAKE) --no-print-directory CC=clang BUILD=$(BUILD)/clang test-build
+	@$(MAKE) --no-print-directory fuzz
+	@sh tests/run.sh --san $(BUILD)/san --clang $(BUILD)/clang \
+	    --fuzz $(BUILD)/fuzz $(BUILD)
 
 # Unit tests only, no install step (for quick iteration).
 unit: test-build
@@ -124,15 +148,13 @@ bench: deps
 	@$(MAKE) --no-print-directory test-build
 	@sh bench/run.sh $(BUILD)
 
+# libFuzzer targets into $(BUILD)/fuzz (clang); tests/fuzz/run.sh runs
+# one on its seeds (tests/fuzz/corpus/<target>/) for a bounded time.
 fuzz:
-	@mkdir -p build/fuzz
-	@for f in $(FUZZ_SRC); do \
-	    n=$$(basename $$f .c); \
-	    clang -std=c11 -g -O1 -Iinclude -D_GNU_SOURCE \
-	        $$(pkg-config --cflags $(PKGS_CORE)) \
-	        -fsanitize=fuzzer,address,undefined -o build/fuzz/$$n $$f \
-	        $(CORE_SRC) $(LDLIBS_CORE) || exit 1; \
-	done
+	@$(MAKE) --no-print-directory FUZZ=1 CC=clang BUILD=$(BUILD)/fuzz \
+	    fuzz-build
+
+fuzz-build: $(FUZZ_BIN)
 
 install: all
 	install -d $(DESTDIR)$(PREFIX)/bin $(DESTDIR)$(PREFIX)/sbin \

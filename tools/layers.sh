@@ -15,7 +15,11 @@
 cd "$(dirname "$0")/.." || exit 1
 
 # Shell libraries, as patterns on the text between <> or "".
-SHELL_LIBS='^(event2/|event\.h$|evhttp\.h$|hiredis|adapters/|curl/|systemd/|syslog\.h$|sys/socket\.h$|sys/un\.h$|netinet/|arpa/|netdb\.h$|ifaddrs\.h$|poll\.h$|sys/poll\.h$|sys/epoll\.h$|sys/select\.h$|sys/event\.h$|pthread\.h$|signal\.h$)'
+SHELL_LIBS='^(event2/|event\.h$|evhttp\.h$|hiredis|adapters/|curl/|systemd/'
+SHELL_LIBS=$SHELL_LIBS'|syslog\.h$|sys/socket\.h$|sys/un\.h$|netinet/|arpa/'
+SHELL_LIBS=$SHELL_LIBS'|netdb\.h$|ifaddrs\.h$|poll\.h$|sys/poll\.h$'
+SHELL_LIBS=$SHELL_LIBS'|sys/epoll\.h$|sys/select\.h$|sys/event\.h$|pthread\.h$'
+SHELL_LIBS=$SHELL_LIBS'|signal\.h$)'
 
 n=0
 nfail=0
@@ -57,7 +61,8 @@ includes() {
 				fi
 			done
 		fi
-		printf '%s\t%s\t%s\t%s\t%s\n' "$f" "$line" "$kind" "$name" "$res"
+		printf '%s\t%s\t%s\t%s\t%s\n' "$f" "$line" "$kind" "$name" \
+		    "$res"
 	done
 }
 

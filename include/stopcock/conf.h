@@ -70,7 +70,7 @@ struct conf {
 	double		alpha;		/* family-wise budget per experiment */
 	double		srm_alpha;
 	double		plan_units;	/* planned units per arm: tunes mixtures */
-	double		rate_concentration;	/* 0: tuned from plan_units */
+	double		rate_concentration;	/* 0: 100 */
 	double		sketch_accuracy;
 	uint32_t	sketch_buckets;
 	uint32_t	history_points;	/* chart points kept per test */

@@ -113,7 +113,7 @@ struct engine_counters {
 	uint64_t	 tests;		/* live guardrail x arm tests */
 	size_t		 bytes;		/* memory held by tallies and tests */
 	uint64_t	 findings;
-	uint64_t	 grouped_series;	/* series with unit= groups */
+	uint64_t	 grouped_series;	/* series that began unit groups */
 	uint64_t	 srm_late;	/* exposures behind the watermark */
 };
 

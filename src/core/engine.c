@@ -152,8 +152,10 @@ groups_new(uint32_t G)
 
 /*
  * Add one record to its unit's group. The group index comes from the
- * unit's SipHash under the engine key, mixed with a per-experiment salt
- * so two experiments never share a grouping (the assignment hash of the
+ * unit's SipHash under the experiment's own key, drawn from the engine
+ * key when the experiment appears and kept in the state image, so a
+ * restart (with a new engine key) keeps every unit in its group and two
+ * experiments never share a grouping (the assignment hash of the
  * producer is unknown to us and must not line up with ours). Records of
  * a grouped series that name no unit are their own units: round robin.
  */
@@ -172,8 +174,7 @@ groups_add(struct engine *eng, struct experiment *e, struct groups **gp,
 	}
 	G = (*gp)->G;
 	if (r->unit_len > 0) {
-		h = (siphash24(eng->key, r->unit, r->unit_len) ^ e->salt) *
-		    0x9e3779b97f4a7c15ULL;
+		h = siphash24(e->unit_key, r->unit, r->unit_len);
 		gi = (uint32_t)((h >> 32) % G);
 	} else
 		gi = (uint32_t)((*gp)->seq++ % G);
@@ -395,19 +396,21 @@ exp_srm_start(const struct engine *eng, struct experiment *e)
 		e->theta0[i] = e->arms[i].weight / sum;
 		e->srm_a[i] = k0 * e->theta0[i];
 		e->exposures[i] = 0;
-		e->srm_late[i] = 0;
+		e->srm_late[i] = e->srm_ahead[i] = 0;
 	}
-	/* open intervals span the lateness plus the one being filled */
+	/* open intervals span the lateness plus the one being filled, and
+	 * headroom for exposures newer than the quorum's newest */
 	slots = (uint32_t)ceil(eng->conf->lateness /
-	    eng->conf->srm_interval) + 2;
+	    eng->conf->srm_interval) + 2 + ENGINE_SRM_HEADROOM;
 	if (slots > ENGINE_SRM_SLOTS_MAX)
 		slots = ENGINE_SRM_SLOTS_MAX;
 	free(e->srm_ring);
 	e->srm_slots = slots;
-	e->srm_ring = xcalloc((size_t)slots * PROTO_PLAN_MAX,
+	e->srm_ring = xcalloc((size_t)slots * (size_t)e->narms,
 	    sizeof *e->srm_ring);
 	e->srm_done = INT64_MIN;
 	e->srm_newest = NAN;
+	e->srm_ntop = 0;
 	e->srm_log_e = e->srm_max_log_e = 0;
 	e->srm_fired = 0;
 	e->srm_first_ts = NAN;
@@ -433,6 +436,23 @@ exp_push_epoch(struct experiment *e, double now)
 	memcpy(ep->arms, e->arms, sizeof ep->arms);
 }
 
+/* The experiment's unit-group key: SipHash of its name under the engine
+ * key, twice (the second time of the name and a suffix). */
+static void
+exp_unit_key(const struct engine *eng, struct experiment *e)
+{
+	char buf[PROTO_NAME_MAX + 2];
+	uint64_t a, b;
+	size_t n = strlen(e->id);
+
+	a = siphash24(eng->key, e->id, n);
+	memcpy(buf, e->id, n);
+	buf[n] = '#';
+	b = siphash24(eng->key, buf, n + 1);
+	memcpy(e->unit_key, &a, 8);
+	memcpy(e->unit_key + 8, &b, 8);
+}
+
 struct experiment *
 engine_exp_new(struct engine *eng, const char *id,
     const struct proto_arm *arms, int narms, double now)
@@ -441,7 +461,7 @@ engine_exp_new(struct engine *eng, const char *id,
 
 	e = xcalloc(1, sizeof *e);
 	snprintf(e->id, sizeof e->id, "%s", id);
-	e->salt = siphash24(eng->key, e->id, strlen(e->id));
+	exp_unit_key(eng, e);
 	e->epoch = 1;
 	e->narms = narms;
 	memcpy(e->arms, arms, (size_t)narms * sizeof *arms);
@@ -748,7 +768,7 @@ srm_slot(const struct experiment *e, int64_t j)
 
 	if (k < 0)
 		k += e->srm_slots;
-	return e->srm_ring + (size_t)k * PROTO_PLAN_MAX;
+	return e->srm_ring + (size_t)k * (size_t)e->narms;
 }
 
 static void
@@ -794,11 +814,38 @@ srm_interval_of(const struct engine *eng, double t)
 	    (int64_t)j;
 }
 
+/* Keep the ENGINE_SRM_QUORUM largest exposure times, ascending. */
+static void
+srm_top_insert(struct experiment *e, double t)
+{
+	int i;
+
+	if (e->srm_ntop < ENGINE_SRM_QUORUM)
+		i = e->srm_ntop++;
+	else if (t > e->srm_top[0])
+		i = 0;
+	else
+		return;
+	if (i == 0 && e->srm_ntop == ENGINE_SRM_QUORUM) {
+		/* drop the smallest, sift t up */
+		for (; i + 1 < ENGINE_SRM_QUORUM && e->srm_top[i + 1] < t; i++)
+			e->srm_top[i] = e->srm_top[i + 1];
+		e->srm_top[i] = t;
+		return;
+	}
+	for (; i > 0 && e->srm_top[i - 1] > t; i--)
+		e->srm_top[i] = e->srm_top[i - 1];
+	e->srm_top[i] = t;
+}
+
 /*
  * An exposure at event time t. The watermark is the newest exposure time
  * less the allowed lateness (the producer's promise: no exposure arrives
- * later than that behind the newest one). Exposures stamped before the
- * epoch began belong to the previous plan's split and are late too.
+ * later than that behind the newest one), where "newest" is the
+ * ENGINE_SRM_QUORUM-th newest, so one exposure stamped far in the future
+ * (a bad clock) cannot close every interval before its time. Exposures
+ * stamped before the epoch began belong to the previous plan's split and
+ * are late too; ones beyond the ring's headroom are counted as ahead.
  */
 static void
 srm_expose(struct engine *eng, struct experiment *e, int arm,
@@ -806,24 +853,27 @@ srm_expose(struct engine *eng, struct experiment *e, int arm,
 {
 	const struct epoch_info *ep = e->nepochs > 0 ?
 	    &e->epochs[e->nepochs - 1] : NULL;
-	int64_t j = srm_interval_of(eng, t), w;
+	int64_t j = srm_interval_of(eng, t);
+	double newest;
 
-	if (!(t >= e->srm_newest)) {
-		if (isnan(e->srm_newest)) {
-			e->srm_newest = t;
-			e->srm_done = srm_interval_of(eng,
-			    t - eng->conf->lateness);
-		}
-	} else if (t > e->srm_newest) {
-		e->srm_newest = t;
-		w = srm_interval_of(eng, t - eng->conf->lateness);
-		/* the ring holds srm_slots intervals: never more open */
-		if (w < j - (int64_t)e->srm_slots + 2)
-			w = j - (int64_t)e->srm_slots + 2;
-		srm_complete(eng, e, w);
+	srm_top_insert(e, t);
+	newest = e->srm_top[0];
+	if (isnan(e->srm_newest)) {
+		e->srm_newest = newest;
+		e->srm_done = srm_interval_of(eng, newest -
+		    eng->conf->lateness);
+	} else if (newest > e->srm_newest) {
+		e->srm_newest = newest;
+		srm_complete(eng, e, srm_interval_of(eng, newest -
+		    eng->conf->lateness));
 	}
 	if (j < e->srm_done || (ep != NULL && t < ep->started)) {
 		e->srm_late[arm] += units;
+		eng->counters.srm_late += units;
+		return;
+	}
+	if (j >= e->srm_done + (int64_t)e->srm_slots) {
+		e->srm_ahead[arm] += units;
 		eng->counters.srm_late += units;
 		return;
 	}
@@ -1083,7 +1133,7 @@ engine_counters(const struct engine *eng, struct engine_counters *c)
 
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
-		bytes += (size_t)e->srm_slots * PROTO_PLAN_MAX *
+		bytes += (size_t)e->srm_slots * (size_t)e->narms *
 		    sizeof *e->srm_ring;
 		for (j = 0; j < e->ntests; j++)
 			for (k = 0; k < 2; k++)

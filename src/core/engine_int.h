@@ -34,6 +34,10 @@
 /* Windowed views: last hour and last day, snapshots per window. */
 #define CHANGE_WINDOWS 2
 #define CHANGE_WIN_SLOTS 12
+/* The SRM watermark follows the QUORUM-th newest exposure time; the ring
+ * has HEADROOM intervals for exposures newer than that. */
+#define ENGINE_SRM_QUORUM 3
+#define ENGINE_SRM_HEADROOM 64
 /* Records in an arm's sketch before its exceedance threshold is frozen. */
 #define ENGINE_QUANTILE_FREEZE 500
 
@@ -166,8 +170,11 @@ struct experiment {
 	uint32_t	 srm_slots;	/* ring length */
 	uint64_t	*srm_ring;	/* [srm_slots][narms] open counts */
 	uint64_t	 srm_late[PROTO_PLAN_MAX];	/* behind the watermark */
+	uint64_t	 srm_ahead[PROTO_PLAN_MAX];	/* beyond the ring */
+	double		 srm_top[ENGINE_SRM_QUORUM];	/* newest times */
+	int		 srm_ntop;
 	uint64_t	 late_epoch;	/* records naming a closed epoch */
-	uint64_t	 salt;		/* unit hash, per experiment */
+	uint8_t		 unit_key[16];	/* unit-group hash key, kept */
 	double		 srm_log_e, srm_max_log_e;
 	int		 srm_fired;	/* untrusted this epoch */
 	double		 srm_first_ts;
@@ -189,7 +196,7 @@ struct experiment {
 
 #define ENGINE_EPOCHS_KEPT 32
 /* Open SRM intervals at most: bounds lateness / srm_interval. */
-#define ENGINE_SRM_SLOTS_MAX 4096
+#define ENGINE_SRM_SLOTS_MAX 4200
 
 struct engine {
 	struct conf	*conf;		/* owned copy */

@@ -235,8 +235,12 @@ engine_json_experiment(const struct engine *eng, const char *id)
 		    (json_int_t)e->srm_late[i]));
 	/* what was counted but not applied: exposures behind the SRM
 	 * watermark (per arm), records naming a closed epoch */
-	json_object_set_new(o, "late", json_pack("{s:o, s:I, s:o, s:o}",
-	    "srm_exposures", arms, "closed_epoch_records",
+	ep = json_array();
+	for (i = 0; i < e->narms; i++)
+		json_array_append_new(ep, json_integer(
+		    (json_int_t)e->srm_ahead[i]));
+	json_object_set_new(o, "late", json_pack("{s:o, s:o, s:I, s:o, s:o}",
+	    "srm_exposures", arms, "srm_ahead", ep, "closed_epoch_records",
 	    (json_int_t)e->late_epoch, "lateness",
 	    finding_num(eng->conf->lateness), "srm_interval",
 	    finding_num(eng->conf->srm_interval)));
@@ -461,7 +465,7 @@ srm_ring_save(const struct experiment *e)
 		int64_t k = j % (int64_t)e->srm_slots;
 		if (k < 0)
 			k += e->srm_slots;
-		slot = e->srm_ring + (size_t)k * PROTO_PLAN_MAX;
+		slot = e->srm_ring + (size_t)k * (size_t)e->narms;
 		for (i = any = 0; i < e->narms; i++)
 			any |= slot[i] != 0;
 		if (!any)
@@ -501,7 +505,7 @@ srm_ring_load(struct experiment *e, const json_t *rows)
 		if (k < 0)
 			k += e->srm_slots;
 		for (i = 0; i < e->narms; i++)
-			e->srm_ring[(size_t)k * PROTO_PLAN_MAX + (size_t)i] =
+			e->srm_ring[(size_t)k * (size_t)e->narms + (size_t)i] =
 			    (uint64_t)json_integer_value(json_array_get(row,
 			    (size_t)i + 1));
 	}
@@ -631,6 +635,13 @@ exp_save(const struct experiment *e, const struct conf *conf)
 		json_array_append_new(a, json_integer(
 		    (json_int_t)e->srm_late[i]));
 	json_object_set_new(json_object_get(o, "srm"), "late", a);
+	a = json_array();
+	for (i = 0; i < e->narms; i++)
+		json_array_append_new(a, json_integer(
+		    (json_int_t)e->srm_ahead[i]));
+	json_object_set_new(json_object_get(o, "srm"), "ahead", a);
+	json_object_set_new(json_object_get(o, "srm"), "top", reals_save(
+	    e->srm_top, (size_t)e->srm_ntop));
 	if (!isnan(e->srm_newest)) {
 		json_object_set_new(json_object_get(o, "srm"), "done",
 		    json_integer((json_int_t)e->srm_done));
@@ -641,6 +652,12 @@ exp_save(const struct experiment *e, const struct conf *conf)
 	}
 	json_object_set_new(o, "late_epoch", json_integer(
 	    (json_int_t)e->late_epoch));
+	{
+		char hex[33];
+		for (i = 0; i < 16; i++)
+			snprintf(hex + 2 * i, 3, "%02x", e->unit_key[i]);
+		json_object_set_new(o, "unit_key", json_string(hex));
+	}
 	a = json_array();
 	for (i = 0; i < e->nepochs; i++)
 		json_array_append_new(a, json_pack("{s:i, s:o, s:o}", "epoch",
@@ -774,7 +791,7 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 	struct proto_arm arms[PROTO_PLAN_MAX];
 	struct experiment *e;
 	const json_t *a, *v, *srm, *ser, *sv;
-	const char *id = json_string_value(json_object_get(o, "id"));
+	const char *id = json_string_value(json_object_get(o, "id")), *hex;
 	int narms, g;
 	size_t i, j;
 	uint32_t cap = eng->conf->history_points;
@@ -819,8 +836,33 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 	for (i = 0; i < (size_t)narms && i < json_array_size(a); i++)
 		e->srm_late[i] = (uint64_t)json_integer_value(
 		    json_array_get(a, i));
+	a = json_object_get(srm, "ahead");
+	for (i = 0; i < (size_t)narms && i < json_array_size(a); i++)
+		e->srm_ahead[i] = (uint64_t)json_integer_value(
+		    json_array_get(a, i));
+	a = json_object_get(srm, "top");
+	if (json_array_size(a) <= ENGINE_SRM_QUORUM) {
+		e->srm_ntop = (int)json_array_size(a);
+		(void)reals_load(a, e->srm_top, (size_t)e->srm_ntop);
+	}
 	e->late_epoch = (uint64_t)json_integer_value(json_object_get(o,
 	    "late_epoch"));
+	if ((hex = json_string_value(json_object_get(o, "unit_key"))) !=
+	    NULL) {
+		unsigned int byte;
+		if (strlen(hex) != 32) {
+			xasprintf(cause, "experiment %s: bad unit key", id);
+			return -1;
+		}
+		for (i = 0; i < 16; i++) {
+			if (sscanf(hex + 2 * i, "%2x", &byte) != 1) {
+				xasprintf(cause, "experiment %s: bad unit key",
+				    id);
+				return -1;
+			}
+			e->unit_key[i] = (uint8_t)byte;
+		}
+	}
 	if (get_real(srm, "newest", &e->srm_newest) == 0 &&
 	    !isnan(e->srm_newest)) {
 		e->srm_done = (int64_t)json_integer_value(json_object_get(srm,

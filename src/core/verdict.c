@@ -5,21 +5,20 @@
  * confidence sequence by calling the statistics module, then applies the
  * one rule shared by every test kind:
  *
- *   harm  when the always-valid p-value for "effect = margin" is at most
- *         the test's level (alpha / family, Bonferroni) and the estimate
- *         lies beyond the margin in the harmful direction;
+ *   harm  when the always-valid p-value of the one-sided test "the effect
+ *         lies beyond the margin in the harmful direction" is at most the
+ *         test's level (alpha / family, Bonferroni), or when the change
+ *         detector (change.c) crosses its threshold;
  *   safe  when the confidence sequence lies entirely on the good side of
- *         the margin (harm beyond the margin is ruled out);
+ *         the margin (harm beyond the margin is ruled out so far);
  *   otherwise undecided.
  *
- * For a single epoch the harm rule is the confidence-sequence rule of the
- * issue: the running-intersection CS lies beyond the margin exactly when
- * the mixture rejected the margin at some earlier look with the estimate
- * on that side. Across epochs the p-value multiplies per-epoch test
- * martingales (closed_log_e), never pooling tallies across weights.
- * Verdicts are sticky within an epoch. Tests only read numbers; the
- * engine decides when to call them (cheap kinds on every record,
- * quantiles and rate CSs on the tick).
+ * The evidence only ever points at harm, so a treatment better than the
+ * control lowers it; across epochs the p-value multiplies per-epoch test
+ * martingales (closed_log_e), never pooling tallies across weights. Harm
+ * is kept for the epoch; safe may turn into harm (it speaks of the data
+ * so far). Tests only read numbers; the engine decides when to call them
+ * (cheap kinds on every record, quantiles and rate CSs on the tick).
  */
 #include <math.h>
 #include <string.h>
@@ -509,13 +508,18 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	 * hence w and the shift's factor), for "decrease" the reverse, so an
 	 * effect exactly at the margin never reads as beyond it.
 	 */
-	acc = eng->conf->sketch_accuracy;
+	/* each sketch keeps the accuracy it was built with across reloads */
+	acc = fmax(sketch_accuracy(a->sk), sketch_accuracy(b->sk));
+	if (!(acc > 0 && acc < 1))
+		acc = eng->conf->sketch_accuracy;
 	if (g->harm == HARM_INCREASE) {
 		scale = g->margin_relative ? 1 + m : 1;
 		shift = g->margin_relative ? 0 : m * (1 + acc);
 		blocks_widened(eng, a->sk, 0, (1 + acc) / (1 - acc), scale,
 		    shift, &ba);
 		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
+		ba.weight = wt[0];
+		bb.weight = wt[1];
 		t->log_e = stats_quantile_log_e1(&ba, &bb, q, plan_units_of(g, e));
 	} else {
 		scale = g->margin_relative ? 1 - m : 1;

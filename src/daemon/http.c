@@ -746,6 +746,15 @@ http_metrics(struct http *h, struct evbuffer *b)
 	    "Verdict changes and other findings the engine reported.");
 	evbuffer_add_printf(b, "stopcock_engine_findings_total %llu\n",
 	    (unsigned long long)ec.findings);
+	metrics_family(b, "stopcock_engine_srm_late_exposures_total",
+	    "counter", "Exposures the SRM test did not read: behind its "
+	    "watermark, stamped before their epoch, or beyond its ring.");
+	evbuffer_add_printf(b, "stopcock_engine_srm_late_exposures_total "
+	    "%llu\n", (unsigned long long)ec.srm_late);
+	metrics_family(b, "stopcock_engine_grouped_series_total", "counter",
+	    "Series that began to use unit groups (their records name units).");
+	evbuffer_add_printf(b, "stopcock_engine_grouped_series_total %llu\n",
+	    (unsigned long long)ec.grouped_series);
 
 	ingest_metrics(d, b);
 	if (d->listen != NULL)

@@ -291,6 +291,11 @@ test_srm_batches(void **state)
 	    t0), 0);
 	for (sec = 0; sec < 600; sec++) {
 		double t = t0 + sec;
+		/* one exposure from a host whose clock is a year ahead must
+		 * not close every interval before its time */
+		if (sec == 10)
+			assert_int_equal(feed(fx, "@%.3f expose batch control",
+			    t0 + 3.2e7), 0);
 		for (i = 0; i < 250; i++)
 			assert_int_equal(feed(fx, "@%.3f expose batch %s", t,
 			    sec % 2 ? "treatment" : "control"), 0);
@@ -309,7 +314,10 @@ test_srm_batches(void **state)
 	assert_int_equal(json_integer_value(json_array_get(json_object_get(
 	    json_object_get(j, "late"), "srm_exposures"), 0)), 1);
 	engine_counters(fx->eng, &c);
-	assert_int_equal(c.srm_late, 1);
+	/* the stale one behind the watermark and the one far ahead */
+	assert_int_equal(c.srm_late, 2);
+	assert_int_equal(json_integer_value(json_array_get(json_object_get(
+	    json_object_get(j, "late"), "srm_ahead"), 0)), 1);
 	json_decref(j);
 }
 

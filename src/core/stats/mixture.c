@@ -143,7 +143,7 @@ stats_msprt_tau2(double v_unit, double alpha, double n_opt)
  * exp(lambda delta I) <= 1, so E is a supermartingale on the whole null.
  * Phi and the exponential are never formed apart: log Phi(z) + z^2/2 is
  * taken from the normal hazard for z << 0, where each term alone is
- * ~1000 and their sum ~ -log(-z) (stats_log_ndtr_plus_half_sq).
+ * ~1000 and their sum ~ -log(-z) (stats_log_ndtr_half_sq).
  */
 double
 stats_harm_log_e(double d, double V, double tau2)
