@@ -45,7 +45,7 @@ double	stats_nm_logm1(double s, double v, double rho);	/* one-sided, upper */
 double	stats_nm_bound(double v, double rho, double alpha);
 double	stats_nm_bound1(double v, double rho, double alpha);
 /*
- * mSPRT, generic form for unequal arms (JPW 2022; METHODS.md sec. 1):
+ * mSPRT, generic form for unequal arms (JPW 2022; docs/methods.md sec. 1):
  * est is the estimated difference, V its variance, tau2 the mixing
  * variance, theta0 the null value. Returns log Lambda (0 when V <= 0).
  */
@@ -160,7 +160,7 @@ int	stats_quantile_cs(const struct stats_blocks *, double p, double t_opt,
 	    double alpha, double *lo, double *hi);
 /*
  * Two-sample tests of H0: Q_a(p) = Q_b(p) (two-sided, Thm 5) and
- * H0: Q_b(p) <= Q_a(p) (one-sided, METHODS.md sec. 4). Return the log
+ * H0: Q_b(p) <= Q_a(p) (one-sided, docs/methods.md sec. 4). Return the log
  * evidence min_x [G_a(x) + G_b(x)]; its running maximum gives the
  * always-valid p-value.
  */

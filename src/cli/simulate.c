@@ -16,7 +16,7 @@
  *   - a naive analyst's test repeated at K equally spaced looks on the
  *     same streams (a two-sided Wald z-test at the same level), which
  *     shows the inflation that peeking causes (Armitage, McPherson & Rowe
- *     1969; METHODS.md sec. 8);
+ *     1969; docs/methods.md sec. 8);
  *   - the coverage of the confidence sequence when the truth is known
  *     (no effect on the metric: the difference is 0).
  *

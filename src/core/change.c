@@ -133,7 +133,9 @@ change_offer(const struct engine *eng, const struct experiment *e,
 		double sd = sqrt(V * fmin(dr_a, dr_b));
 		lo = sd / sqrt(fmax(plan_units_of(g, e), 4 * need));
 		hi = 4 * sd / sqrt(need);
-		stats_detect_init(&t->det, lo, hi, STATS_DETECT_GRID);
+		/* a grid that cannot be built leaves the detector off */
+		if (stats_detect_init(&t->det, lo, hi, STATS_DETECT_GRID) != 0)
+			return 0;
 		t->det_on = 1;
 	}
 	/* a run's start is the start of its first block */

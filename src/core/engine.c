@@ -370,7 +370,7 @@ exp_settings(const struct engine *eng, struct experiment *e)
 	/*
 	 * Bonferroni over every configured guardrail x treatment arm, fixed
 	 * by the plan rather than by which metrics happen to arrive, so the
-	 * family cannot grow with the data (METHODS.md sec. 6).
+	 * family cannot grow with the data (docs/methods.md sec. 6).
 	 */
 	e->family = c->nguardrails * (treat > 0 ? treat : 1);
 	if (e->family < 1)
@@ -388,7 +388,7 @@ exp_srm_start(const struct engine *eng, struct experiment *e)
 	for (i = 0; i < e->narms; i++)
 		sum += e->arms[i].weight;
 	/* HRMS-derived concentration, tightest at the planned total
-	 * (METHODS.md sec. 3); fixed before any exposure is seen. */
+	 * (docs/methods.md sec. 3); fixed before any exposure is seen. */
 	k0 = stats_dm_k0(e->plan_units * e->narms, e->srm_alpha);
 	if (!(k0 > 0))
 		k0 = 100;

@@ -136,7 +136,7 @@ detail_cb(void *arg, const struct finding *f)
  * plan size and number of arms: all fixed before monitoring from the
  * configuration, never retuned from the data. The mean and proportion
  * mixtures' tau^2 is a multiple of the pooled per-unit variance (rule (a)
- * of METHODS.md sec. 1), so it is given per unit of that variance.
+ * of docs/methods.md sec. 1), so it is given per unit of that variance.
  */
 static json_t *
 tuning_json(const struct engine *eng, double alpha, double srm_alpha,
@@ -589,6 +589,8 @@ change_load(struct test *t, const json_t *o)
 	    STATS_DETECT_GRID) != 0 ||
 	    reals_load(json_object_get(o, "startk"), t->det.start,
 	    STATS_DETECT_GRID) != 0)
+		return -1;
+	if (t->det_on && stats_detect_check(&t->det) != 0)
 		return -1;
 	w = json_object_get(o, "windows");
 	if (json_array_size(w) != CHANGE_WINDOWS)

@@ -2,7 +2,7 @@
  * sketch.c: the quantile sketch behind latency guardrails, after DDSketch
  * (C. Masson, J. E. Rim, H. K. Lee, "DDSketch: a fast and fully-mergeable
  * quantile sketch with relative-error guarantees", PVLDB 12(12), 2019;
- * METHODS.md section 7). One sketch per arm and metric; the quantile tests
+ * docs/methods.md section 7). One sketch per arm and metric; the quantile tests
  * read it through sketch_quantile and sketch_buckets, checkpoints through
  * sketch_encode.
  *
@@ -266,7 +266,7 @@ sketch_value(const struct sketch *s, int64_t key, int negative)
 
 /*
  * Rank q(n - 1) (0-based), and the first bucket whose running count
- * exceeds it, scanning from the lowest value up (METHODS.md section 7).
+ * exceeds it, scanning from the lowest value up (docs/methods.md section 7).
  */
 double
 sketch_quantile(const struct sketch *s, double q)

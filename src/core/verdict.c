@@ -68,7 +68,7 @@ static void
 cs_intersect(struct test *t, double lo, double hi)
 {
 	/*
-	 * Running intersection (METHODS.md sec. 0). With plug-in variances
+	 * Running intersection (docs/methods.md sec. 0). With plug-in variances
 	 * the intersection can come out empty, a sign of model misfit; we
 	 * then restart from the current interval rather than report an
 	 * empty set.
@@ -279,7 +279,7 @@ eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
  * Rate: events over exposure. Given the total, each event's arm is a
  * categorical draw with the exposure share as null probability; the
  * beta-mixture Bayes factor is exact at any count (Lindon & Malek 2022;
- * METHODS.md sec. 5). The null is the margin's rate ratio r0; the
+ * docs/methods.md sec. 5). The null is the margin's rate ratio r0; the
  * one-sided factor (prior truncated to the harmful side) is a test
  * supermartingale for every ratio on the good side of r0.
  */
@@ -470,7 +470,7 @@ quantile_weights(const struct test *t, double wt[2])
 
 /*
  * Quantile: one-sided sequential comparison on sketch buckets (Howard &
- * Ramdas 2022; METHODS.md sec. 4). The margin enters by scaling (or
+ * Ramdas 2022; docs/methods.md sec. 4). The margin enters by scaling (or
  * shifting) the control's values, so H0 is Q_b <= (1 + m) Q_a for an
  * increase. Bucket indices are monotone in the value, so validity holds
  * for the rounded distributions, i.e. at sketch resolution.
@@ -644,7 +644,7 @@ rate_harm_bound(struct test *t, const struct conf_guardrail *g,
 static double
 rate_concentration(const struct engine *eng)
 {
-	/* METHODS.md sec. 3: k = 100 as a default concentration for the
+	/* docs/methods.md sec. 3: k = 100 as a default concentration for the
 	 * categorical rate test; configurable. */
 	return eng->conf->rate_concentration > 0 ?
 	    eng->conf->rate_concentration : 100;
@@ -766,7 +766,7 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 
 /*
  * SRM: the Dirichlet-multinomial Bayes factor against the epoch's
- * weights (Lindon & Malek 2022; METHODS.md sec. 3) is updated by
+ * weights (Lindon & Malek 2022; docs/methods.md sec. 3) is updated by
  * engine_apply; here its running maximum becomes the verdict. Once it
  * fires, every verdict of the epoch is marked untrustworthy.
  */

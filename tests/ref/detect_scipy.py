@@ -8,11 +8,11 @@ What is checked, each against a reference computed here:
   - log M and the change start, block by block, on random sequences
     (blocks that must be skipped included) against a numpy brute force
     over every start time and grid point (no recursion), and
-    Page's/Shiryaev-Roberts recursions against METHODS-2 sec. 8 E1;
+    Page's/Shiryaev-Roberts recursions against docs/methods.md sec. 19, check value E1;
   - the exact ARL of Page's CUSUM (Page 1954) by the Nystrom method on
     the integral equation L(w) = 1 + F(-w) L(0) + int_0^h f(y - w) L(y) dy
     (Gauss-Legendre nodes, scipy.stats.norm), itself checked against the
-    values printed in METHODS-2 sec. 8 E3 and between 200 and 400 nodes;
+    values printed in docs/methods.md sec. 19, check value E3 and between 200 and 400 nodes;
   - a simulation through stopcock's stats_detect_* with one grid point
     (= Page's CUSUM) against that exact ARL, within 4 Monte Carlo
     standard errors, in and out of control, at two scales of information;
@@ -166,7 +166,7 @@ check(worst < 1e-11 and wstart == 0,
       "(%d sequences)" % len(cases),
       "# max err %.2g, %d wrong starts" % (worst, wstart))
 
-# METHODS-2 sec. 8 E1 (z, lambda = 1): CUSUM and SR recursions
+# docs/methods.md sec. 19, check value E1 (z, lambda = 1): CUSUM and SR recursions
 z = [0.3, -1.2, 0.8, 2.1, 1.7, 0.4, 2.5, 1.9]
 e1_cu = [-0.2, -1.7, 0.3, 1.9, 3.1, 3, 5, 6.4]
 e1_sr = [-0.2, -1.101861131, 0.586870851, 2.629030776, 3.898695221,
@@ -178,7 +178,7 @@ for zi in z:
     sr.append(r)
 check(np.max(np.abs(cu - e1_cu)) < 1e-12 and
       np.max(np.abs(np.array(sr) - e1_sr)) < 5e-9,
-      "E1 CUSUM and SR recursions (METHODS-2 sec. 8 E1)")
+      "E1 CUSUM and SR recursions (docs/methods.md sec. 19, check value E1)")
 thr = ask(["threshold 51840000 20", "threshold 0.5 20", "threshold 10 0"])
 check(abs(thr[0][0] - LOG_C_DEFAULT) < 1e-12 and np.isnan(thr[1][0]) and
       np.isnan(thr[2][0]), "threshold log(series * arl) vs math.log")
@@ -199,7 +199,7 @@ def page_arl(mu, sigma, h, nodes):
     return float(L[0])
 
 
-# (delta, h, ARL0, ARL1) from METHODS-2 sec. 8 E3 [C Nystrom there]
+# (delta, h, ARL0, ARL1) from docs/methods.md sec. 19, check value E3 [C Nystrom there]
 E3 = [(1.0, math.log(100), 623.3197423, 9.588329856),
       (1.0, math.log(1000), 6350.938529, 14.18788736),
       (0.5, math.log(1000), 14245.16491, 51.94801131)]
@@ -213,7 +213,7 @@ for dl, h, a0, a1 in E3:
         # printed to 10 significant digits
         check(abs(v400 - want) <= 6e-10 * want and
               abs(v200 - v400) <= 1e-9 * v400,
-              "Nystrom %s delta %g h log %d vs METHODS-2 E3" %
+              "Nystrom %s delta %g h log %d vs docs/methods.md sec. 19, check value E3" %
               (name, dl, round(math.exp(h))),
               "# %.10g (E3 %.10g; 200 nodes %.10g)" % (v400, want, v200))
 
@@ -302,7 +302,7 @@ def print_delays(rows, pre):
 
 
 if "--values" in sys.argv:
-    # check values for tests/unit/test_detect.c: METHODS-2 E2's block
+    # check values for tests/unit/test_detect.c: docs/methods.md sec. 19, check value E2's block
     # excesses, I = 100, grid [0.02, 0.5] x 12, by brute force
     d = [0.05, -0.12, 0.02, 0.08, -0.06, 0.01, -0.03, 0.04, 0.25, 0.31, 0.22,
          0.28]

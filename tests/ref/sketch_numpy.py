@@ -3,7 +3,7 @@
 numpy is the outside reference here: the sketch's answers (through the
 sketchprobe tool, which also round-trips the sketch through its checkpoint
 encoding) are compared with numpy's exact order statistics of the same
-samples. DDSketch (Masson, Rim & Lee 2019; METHODS.md section 7) promises
+samples. DDSketch (Masson, Rim & Lee 2019; docs/methods.md section 7) promises
 |estimate - x_q| <= a * x_q for x_q the element of 1-based rank
 floor(1 + q(n - 1)). np.quantile(x, q, method='lower') returns exactly that
 element: the sorted element at 0-based index floor(q(n - 1)); the script

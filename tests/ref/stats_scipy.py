@@ -17,7 +17,7 @@ References used:
     when it is, it is used as a further check).
   - Dirichlet-multinomial and rate Bayes factors, their confidence sets,
     the Bernoulli CS and the quantile CS: re-implemented below from
-    METHODS.md sec. 3-5 with scipy.special and scipy.optimize.brentq.
+    docs/methods.md sec. 3-5 with scipy.special and scipy.optimize.brentq.
 
 Env STOPCOCK_BUILD is the build directory holding tests/statsprobe.
 Prints TAP; exits 1 on any failure.
@@ -253,7 +253,7 @@ family("chi2_sf vs scipy.special.chdtrc", lines,
        [float(special.chdtrc(float(q.split()[2]), float(q.split()[1])))
         for q in lines], 1e-10)
 
-# ---- Dirichlet-multinomial Bayes factor (METHODS.md sec. 3) ----
+# ---- Dirichlet-multinomial Bayes factor (docs/methods.md sec. 3) ----
 
 
 def dm_ref(c, th, a0):
@@ -288,11 +288,11 @@ for i in range(60):
     a0 = th * 100
     lines.append("dm_log_bf 2 %s %s %s" % (fmt(*c), fmt(*th), fmt(*a0)))
     refs.append(dm_ref(c, th, a0))
-# gammaln in double loses ~1e-6 absolute at 1e9 (METHODS.md sec. 9)
+# gammaln in double loses ~1e-6 absolute at 1e9 (docs/methods.md sec. 9)
 family("dm_log_bf vs scipy gammaln (N up to 1e9)", lines, refs, 2e-5,
        rel=False)
 
-# ---- rate Bayes factors (METHODS.md sec. 5) ----
+# ---- rate Bayes factors (docs/methods.md sec. 5) ----
 
 
 def rate_ref(na, nb, th, k, one, th1=None):
@@ -414,7 +414,7 @@ for upper in (0, 1):
     family("rate_ratio_bound %s vs brentq on scipy one-sided BF"
            % ("upper" if upper else "lower"), lines, refs, 1e-7)
 
-# ---- beta-binomial mixture and Bernoulli CS (METHODS.md sec. 4) ----
+# ---- beta-binomial mixture and Bernoulli CS (docs/methods.md sec. 4) ----
 
 
 def bb_ref(k, n, p, k0, one):
@@ -481,7 +481,7 @@ worst = max(max(abs(g[0] - lo), abs(g[1] - hi))
 results.append((worst <= 1e-9, "bernoulli_cs vs brentq on scipy BF",
                 len(lines), worst, 1e-9, ""))
 
-# ---- quantile CS on random tie blocks (METHODS.md sec. 4) ----
+# ---- quantile CS on random tie blocks (docs/methods.md sec. 4) ----
 
 
 def bb_logm2_ref(s, v, g, h, r):
@@ -536,7 +536,7 @@ bad = sum(1 for g, lo, hi in zip(got, qlo, qhi) if g[0] != lo or g[1] != hi)
 results.append((bad == 0, "quantile_cs vs brentq + numpy ranks", len(lines),
                 float(bad), 0.0, "mismatches"))
 
-# ---- two-sample quantile tests (METHODS.md sec. 4), brute force ----
+# ---- two-sample quantile tests (docs/methods.md sec. 4), brute force ----
 
 
 def log_beta_sf(x, a, b):
@@ -622,7 +622,7 @@ family("quantile_log_e2 vs brute-force scan (scipy)", lines2, refs2, 1e-8,
 family("quantile_log_e1 vs brute-force scan (scipy)", lines1, refs1, 2e-6,
        floor=1.0)
 
-# ---- classical: chi-square SRM, z-test, sample size (METHODS.md sec. 8) ----
+# ---- classical: chi-square SRM, z-test, sample size (docs/methods.md sec. 8) ----
 lines, refs = [], []
 for i in range(100):
     K = int(rng.integers(2, 8))

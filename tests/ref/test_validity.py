@@ -10,13 +10,13 @@ Checks, each against a reference outside the engine:
     for SRM: the observed false-alarm rate is at most
     alpha + 3 Monte Carlo standard errors, SE = sqrt(alpha (1 - alpha) / R)
     (Ville's inequality: an anytime-valid test keeps its level however
-    often it is looked at; METHODS.md sec. 0).
+    often it is looked at; docs/methods.md sec. 0).
   - Peeking: the naive two-sided z-test at nominal alpha = 0.05 repeated
     at 5 equally spaced looks on normal data rejects a true null about
     14.2% of the time (Armitage, McPherson & Rowe, "Repeated significance
     tests on accumulating data", JRSS-A 132:235-244, 1969; as tabulated
     in Wetterslev, Jakobsen & Gluud, BMC Med. Res. Methodol. 17:39, 2017,
-    Table 1, and METHODS.md sec. 8 / 10.8: 0.1418). The simulated rate
+    Table 1, and docs/methods.md sec. 8 / 10.8: 0.1418). The simulated rate
     must lie within 3 Monte Carlo SE of 0.142. For the other kinds the
     naive rate must clearly exceed the bound that the sequential test
     meets (the simulator sees the problem it guards against).

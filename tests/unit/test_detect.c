@@ -1,12 +1,12 @@
 /*
  * test_detect.c: the change detector of detect.c (stats_detect_*, Page's
  * CUSUM and Shiryaev-Roberts recursions) against outside values:
- *   [E1] METHODS-2 sec. 8 E1 (docs/methods.md): z = (0.3, -1.2, 0.8,
+ *   [E1] docs/methods.md sec. 19 (check value E1): z = (0.3, -1.2, 0.8,
  *        2.1, 1.7, 0.4, 2.5, 1.9), lambda = 1, so l = z - 1/2; computed
  *        there both by the recursions and by a brute force over starts.
  *   [NB] numpy brute force over every start time and grid point (no
  *        recursion), printed by `tests/ref/detect_scipy.py --values`:
- *        METHODS-2 E2's block excesses d_b (a change at block 9) with
+ *        docs/methods.md sec. 19, check value E2's block excesses d_b (a change at block 9) with
  *        I_b = 100 and the grid geomspace(0.02, 0.5, 12).
  *   [L]  Python's math.log for the default threshold.
  * The ARL and the e-detector guarantee are checked by simulation in
@@ -87,7 +87,7 @@ test_equal_points(void **state)
 	assert_true(ok);
 }
 
-/* [NB] METHODS-2 E2's excesses, I = 100, grid geomspace(0.02, 0.5, 12) */
+/* [NB] docs/methods.md sec. 19, check value E2's excesses, I = 100, grid geomspace(0.02, 0.5, 12) */
 static void
 test_e2_grid(void **state)
 {

@@ -3,7 +3,7 @@
  * and every rejection reason, caps, epochs, SRM, harm for each test kind,
  * the untrusted mark, and checkpoint round trips. Statistical values are
  * checked against the statistics module's closed forms (themselves
- * checked against METHODS.md sec. 10 and scipy in test_stats and
+ * checked against docs/methods.md sec. 10 and scipy in test_stats and
  * tests/ref), so what is tested here is the routing and bookkeeping.
  */
 #include <math.h>

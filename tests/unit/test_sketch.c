@@ -1,6 +1,6 @@
 /*
  * test_sketch.c: the DDSketch quantile sketch. Check values come from
- * METHODS.md section 10.7 (computed there by independent Python code);
+ * docs/methods.md section 10.7 (computed there by independent Python code);
  * the accuracy guarantee is checked against exact order statistics of
  * sorted samples; the numpy comparison on 10^6 samples lives in
  * tests/ref/sketch_numpy.py.
@@ -88,7 +88,7 @@ assert_same_sketch(const struct sketch *a, const struct sketch *b)
 	free(cb);
 }
 
-/* METHODS.md 10.7: index and representative for alpha_s = 0.01. */
+/* docs/methods.md 10.7: index and representative for alpha_s = 0.01. */
 static void
 test_methods_table(void **state)
 {
@@ -104,7 +104,7 @@ test_methods_table(void **state)
 		{ 0.001, -345, 0.0009974781146 },
 		{ 1234.5, 356, 1224.376497 },
 	};
-	/* METHODS.md 10.7: gamma and ln gamma for alpha_s = 0.01. */
+	/* docs/methods.md 10.7: gamma and ln gamma for alpha_s = 0.01. */
 	const double gamma = 1.0202020202020201, lng = 0.020000666706669435;
 	struct sketch *s;
 	double v;
@@ -128,7 +128,7 @@ test_methods_table(void **state)
 	}
 }
 
-/* METHODS.md 10.7: values 1..100, 85 non-empty buckets, quantiles. */
+/* docs/methods.md 10.7: values 1..100, 85 non-empty buckets, quantiles. */
 static void
 test_methods_quantiles(void **state)
 {

@@ -1,7 +1,7 @@
 /*
  * test_stats.c: the statistics module against the check values of
- * /work/shared/METHODS.md sec. 10 and a few figures from scipy. Each row
- * names its METHODS section and source tag: [L] a general-purpose
+ * docs/methods.md sec. 10 and a few figures from scipy. Each row
+ * names its docs/methods.md section and source tag: [L] a general-purpose
  * library's unit test or scipy, [C] independent Python computation,
  * [P] printed in a paper. Values match to 1e-6 relative or to the digits
  * printed. Edge cases check guards (V = 0, empty arms, zero counts) and
@@ -623,7 +623,7 @@ test_special(void **state)
 	double v, lo, up;
 	int i;
 
-	/* [L scipy] special.log_ndtr(-40) (METHODS.md sec. 9) */
+	/* [L scipy] special.log_ndtr(-40) (docs/methods.md sec. 9) */
 	NEAR("log_ndtr(-40) [9 L]", stats_log_ndtr(-40), -804.6084420138, 10);
 	/* [L scipy] log_ndtr(-5), log_ndtr(3), ndtri */
 	NEAR("log_ndtr(-5) [L scipy]", stats_log_ndtr(-5), -15.064998393988727,
@@ -831,53 +831,6 @@ test_group_var(void **state)
 	assert_true(ok);
 }
 
-/*
- * Change detection (docs/methods.md sec. 19). Recursions on the scores
- * z = (0.3, -1.2, 0.8, 2.1, 1.7, 0.4, 2.5, 1.9) at lambda = 1 (l = z -
- * 1/2): [C] Python, the recursion and a brute force over start times
- * agree. The one-point detector must reproduce Page's CUSUM.
- */
-static void
-test_detect(void **state)
-{
-	static const double z[8] = { 0.3, -1.2, 0.8, 2.1, 1.7, 0.4, 2.5,
-	    1.9 };
-	static const double cu[8] = { -0.2, -1.7, 0.3, 1.9, 3.1, 3, 5, 6.4 };
-	static const double sr[8] = { -0.2, -1.101861131, 0.586870851,
-	    2.629030776, 3.898695221, 3.818760892, 5.84047834, 7.243381574 };
-	struct stats_detect d;
-	double w = -INFINITY, r = -INFINITY, m;
-	int i, ok = 1;
-
-	(void)state;
-	stats_detect_init(&d, 1, 1, 1);
-	for (i = 0; i < 8; i++) {
-		w = stats_cusum_update(w, z[i] - 0.5);
-		r = stats_sr_update(r, z[i] - 0.5);
-		m = stats_detect_update(&d, z[i], 1, i + 1);
-		ok &= near("CUSUM", w, cu[i], 9);
-		ok &= near("SR", r, sr[i], 9);
-		ok &= near("detector", m, cu[i], 9);
-	}
-	/* the run that reaches 6.4 started at the third block, after the
-	 * statistic last fell below zero */
-	ok &= stats_detect_change_start(&d) == 3;
-	/* a mixture of equal weights over k points is below the best point
-	 * and above it less log k */
-	stats_detect_init(&d, 0.25, 4, 5);
-	for (i = 0; i < 8; i++)
-		m = stats_detect_update(&d, z[i], 1, i + 1);
-	for (i = 0, w = -INFINITY; i < 5; i++)
-		w = fmax(w, d.log_m[i]);
-	ok &= m <= w + 1e-12 && m >= w - log(5.0) - 1e-12;
-	ok &= near("threshold", stats_detect_threshold(5.184e7, 20),
-	    log(20 * 5.184e7), 9);
-	/* nothing finite or no information: skipped */
-	ok &= stats_detect_update(&d, NAN, 1, 9) == m &&
-	    stats_detect_update(&d, 1, 0, 9) == m;
-	assert_true(ok);
-}
-
 int
 main(void)
 {
@@ -886,7 +839,6 @@ main(void)
 		cmocka_unit_test(test_harm_table),
 		cmocka_unit_test(test_prop_null),
 		cmocka_unit_test(test_group_var),
-		cmocka_unit_test(test_detect),
 		cmocka_unit_test(test_msprt_table),
 		cmocka_unit_test(test_msprt_hrms_mapping),
 		cmocka_unit_test(test_msprt_sequence),

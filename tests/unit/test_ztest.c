@@ -2,7 +2,7 @@
  * test_ztest.c: stats_ztest, the two-sided Wald z-test that the simulator
  * repeats at several looks to show the peeking inflation. Check values
  * are scipy's 2 * norm.sf(|z|) [L scipy]; one row ties it to the pooled
- * two-proportion test of METHODS.md sec. 10.8 (z = 2.383995,
+ * two-proportion test of docs/methods.md sec. 10.8 (z = 2.383995,
  * p = 0.0171258 [L scipy]).
  */
 #include <setjmp.h>
@@ -39,7 +39,7 @@ test_ztest_scipy(void **state)
 }
 
 /* The pooled two-proportion test is a Wald test with the pooled variance:
- * 200/10000 vs 250/10000 (METHODS.md sec. 10.8). */
+ * 200/10000 vs 250/10000 (docs/methods.md sec. 10.8). */
 static void
 test_ztest_prop(void **state)
 {

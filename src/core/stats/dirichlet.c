@@ -5,7 +5,7 @@
  * exposure share as null; the beta-binomial mixture of Howard, Ramdas,
  * McAuliffe & Sekhon (2021, Props. 6/7) gives boundaries for Bernoulli
  * means and quantiles, and is the same Bayes factor in other coordinates
- * (METHODS.md sec. 3-5). Sums whose terms grow like N log N but cancel to
+ * (docs/methods.md sec. 3-5). Sums whose terms grow like N log N but cancel to
  * O(1) are done in long double (N up to 10^12).
  */
 #include <float.h>
@@ -67,7 +67,7 @@ dir_null_loglik(int K, const double *x, const double *theta0, long double ts)
 }
 
 /*
- * Lindon & Malek 2022 (METHODS.md sec. 3), batch update:
+ * Lindon & Malek 2022 (docs/methods.md sec. 3), batch update:
  * dlog BF = sum_j [lgamma(a_j + x_j) - lgamma(a_j)] - [lgamma(A + m) -
  * lgamma(A)] - sum_j x_j log theta0_j; then a += x. Order-invariant, so
  * the full Bayes factor is one batch from the prior.
@@ -121,7 +121,7 @@ stats_dm_update(int K, double *a, const double *x, const double *theta0)
 	if (!dir_valid(K, x, theta0))
 		return NAN;
 	/* One unit in arm j, the common case of a per-unit stream:
-	 * log BF += log(a_j / A) - log theta0_j (METHODS.md sec. 3). */
+	 * log BF += log(a_j / A) - log theta0_j (docs/methods.md sec. 3). */
 	for (i = 0; i < K; i++) {
 		A += a[i];
 		if (x[i] == 0)
@@ -142,7 +142,7 @@ stats_dm_update(int K, double *a, const double *x, const double *theta0)
 }
 
 /*
- * HRMS-derived concentration for K = 2 (ours, METHODS.md sec. 3 via sec. 4):
+ * HRMS-derived concentration for K = 2 (ours, docs/methods.md sec. 3 via sec. 4):
  * the beta-binomial tuning r = rho - g h with rho = N_opt g h / D gives
  * k0 = r/(g h) = N_opt / D - 1, D = 2 log(1/alpha) + log(1 + 2 log(1/alpha)).
  * Floored like r (1e-3 g h) so a tiny plan still gives a proper prior.
@@ -158,7 +158,7 @@ stats_dm_k0(double n_opt, double alpha)
 	return k0 > 1e-3 ? k0 : 1e-3;
 }
 
-/* Pearson's chi-square goodness of fit, df = K - 1 (METHODS.md sec. 8). */
+/* Pearson's chi-square goodness of fit, df = K - 1 (docs/methods.md sec. 8). */
 double
 stats_srm_chi2(int K, const double *counts, const double *theta0,
     double *x2)
@@ -191,7 +191,7 @@ stats_srm_chi2(int K, const double *counts, const double *theta0,
 }
 
 /*
- * Two-arm rate Bayes factor (Lindon & Malek 2022 via METHODS.md sec. 5),
+ * Two-arm rate Bayes factor (Lindon & Malek 2022 via docs/methods.md sec. 5),
  * with theta0 and 1 - theta0 passed separately so a null share within
  * 1e-17 of 0 or 1 keeps its digits:
  *   log BF = log B(a + n_b, b + n_a) - log B(a, b) - n_b log th - n_a log th1,
@@ -275,7 +275,7 @@ dir_rate_edge(double n_a, double n_b, double k, double target, double l0,
 
 /*
  * Confidence set for r = rate_b / rate_a by inverting the two-sided rate
- * test over the null (METHODS.md sec. 0, 5): theta_r = s_b r/(s_b r + s_a)
+ * test over the null (docs/methods.md sec. 0, 5): theta_r = s_b r/(s_b r + s_a)
  * with exposure shares s_a, s_b, prior centred at theta_r. In logit terms
  * logit(theta_r) = log r + log(e_b / e_a), so the search runs in
  * l = logit(theta) from the point estimate log(n_b / n_a), where the
@@ -330,7 +330,7 @@ stats_rate_ratio_cs(double n_a, double e_a, double n_b, double e_b,
 
 /*
  * One-sided bounds for the rate ratio (our inversion of the one-sided
- * factor of METHODS.md sec. 5, Lindon & Malek 2022). With theta(r) the
+ * factor of docs/methods.md sec. 5, Lindon & Malek 2022). With theta(r) the
  * treatment's share of events under ratio r, the factor for "treatment
  * rate higher" falls as r grows and the factor for "lower" rises, so
  * each bound is one root, found by bisection in log r.
@@ -411,7 +411,7 @@ stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
 	return 0;
 }
 
-/* HRMS 2021 Sec. 3.5 as applied in METHODS.md sec. 4: r = max(rho - g h, 1e-3 g h). */
+/* HRMS 2021 Sec. 3.5 as applied in docs/methods.md sec. 4: r = max(rho - g h, 1e-3 g h). */
 double
 stats_bb_r(double v_opt, double g, double h, double alpha, int one_sided)
 {
@@ -422,7 +422,7 @@ stats_bb_r(double v_opt, double g, double h, double alpha, int one_sided)
 }
 
 /*
- * HRMS 2021 Props. 6 (two-sided) and 7 (one-sided), METHODS.md sec. 4:
+ * HRMS 2021 Props. 6 (two-sided) and 7 (one-sided), docs/methods.md sec. 4:
  *   log m = (v/(gh)) log(g+h) - ((v+hs)/(h(g+h))) log g
  *           - ((v-gs)/(g(g+h))) log h + log B_x(A, B) - log B_x(A0, B0),
  *   A = (r + v - g s)/(g (g+h)), B = (r + v + h s)/(h (g+h)),
@@ -462,7 +462,7 @@ stats_bb_logm(double s, double v, double g, double h, double r,
 }
 
 /*
- * Bound: the s in [0, v/g] where log m crosses log(1/alpha) (METHODS.md
+ * Bound: the s in [0, v/g] where log m crosses log(1/alpha) (docs/methods.md
  * sec. 9); v/g, the largest possible sum, when it never does. log m is
  * smooth and increasing in s there, so the root is bracketed and found by
  * the Illinois variant of regula falsi (Dowell & Jarratt 1971), which
@@ -514,7 +514,7 @@ stats_bb_bound(double v, double g, double h, double r, double alpha,
 /*
  * Beta-binomial Bayes factor for k events in n trials against success
  * probability p, prior Beta(k0 p, k0 (1 - p)); equals the two-sided
- * mixture with g = p, h = 1 - p, r = k0 p (1 - p) (METHODS.md sec. 4).
+ * mixture with g = p, h = 1 - p, r = k0 p (1 - p) (docs/methods.md sec. 4).
  */
 static double
 dir_bernoulli_lbf(double k, double n, double p, double k0)
@@ -531,7 +531,7 @@ dir_bernoulli_lbf(double k, double n, double p, double k0)
 }
 
 /*
- * Bernoulli-mean CS (METHODS.md sec. 4; HRMS 2021 Prop. 6): the p with
+ * Bernoulli-mean CS (docs/methods.md sec. 4; HRMS 2021 Prop. 6): the p with
  * two-sided log m(k - n p, n p(1-p)) < log(1/alpha), tuned at
  * v_opt = t_opt p (1-p). Then k0 = r/(p(1-p)) = max(t_opt/D - 1, 1e-3)
  * does not depend on p, so each side is a bisection on one Bayes factor.

@@ -2,14 +2,14 @@
  * fixed.c: one-look, fixed-horizon figures. They are shown beside the
  * sequential results for orientation (a classic z-test, a planned sample
  * size) and are valid only for a single analysis at a pre-set n; every
- * caller labels them so (METHODS.md sec. 8).
+ * caller labels them so (docs/methods.md sec. 8).
  */
 #include <math.h>
 
 #include "stopcock/stats.h"
 
 /*
- * Pooled two-proportion z-test (METHODS.md sec. 8):
+ * Pooled two-proportion z-test (docs/methods.md sec. 8):
  * p = (x_a + x_b)/(n_a + n_b), SE = sqrt(p(1-p)(1/n_a + 1/n_b)),
  * z = (x_b/n_b - x_a/n_a)/SE, two-sided P = 2(1 - Phi(|z|)).
  * No variation (pooled p in {0, 1}) or an empty arm gives z = 0, P = 1.

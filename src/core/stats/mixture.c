@@ -5,7 +5,7 @@
  * give its one-sided variant and the tuning rule that picks the mixing
  * variance from a planned sample size. Inputs are sufficient statistics
  * (estimate, variance, intrinsic time); output is log evidence or a
- * boundary. Formulas: METHODS.md sec. 1 and 2.
+ * boundary. Formulas: docs/methods.md sec. 1 and 2.
  */
 #include <math.h>
 
@@ -18,7 +18,7 @@
 /*
  * HRMS 2021 Sec. 3.5: rho = v_opt / (2 log(1/alpha) + log(1 + 2 log(1/alpha)))
  * makes the two-sided boundary tightest at v_opt; the one-sided mixture
- * uses the same rule with alpha -> 2 alpha (METHODS.md sec. 2).
+ * uses the same rule with alpha -> 2 alpha (docs/methods.md sec. 2).
  */
 double
 stats_nm_rho(double v_opt, double alpha, int one_sided)
@@ -62,7 +62,7 @@ stats_nm_bound(double v, double rho, double alpha)
 
 /*
  * One-sided boundary: log m1(s, v) = log(1/alpha) has no closed form
- * (METHODS.md sec. 2); bisect. log m1 is increasing in s, negative at
+ * (docs/methods.md sec. 2); bisect. log m1 is increasing in s, negative at
  * s = 0, and at the two-sided bound u it exceeds log(1/alpha) because
  * log m1(u) >= log m(u) + log 2 + log Phi(sqrt(2 log(1/alpha))).
  */
@@ -86,7 +86,7 @@ stats_nm_bound1(double v, double rho, double alpha)
 }
 
 /*
- * Johari, Pekelis & Walsh 2022, generic form (METHODS.md sec. 1):
+ * Johari, Pekelis & Walsh 2022, generic form (docs/methods.md sec. 1):
  * log Lambda = -0.5 log1p(tau^2/V) + tau^2 (est - theta0)^2 / (2 V (V + tau^2)),
  * the second term written as d^2/(2V) / (1 + V/tau^2) so a tiny V cannot
  * underflow V (V + tau^2) to zero.
@@ -104,7 +104,7 @@ stats_msprt_log_lr(double est, double theta0, double V, double tau2)
 }
 
 /*
- * JPW 2022 inverted (our derivation, METHODS.md sec. 1):
+ * JPW 2022 inverted (our derivation, docs/methods.md sec. 1):
  * hw = sqrt(V (V + tau^2)/tau^2 * log((V + tau^2)/(V alpha^2))).
  */
 double
@@ -117,7 +117,7 @@ stats_msprt_halfwidth(double V, double tau2, double alpha)
 }
 
 /*
- * Rule (a) of METHODS.md sec. 1: tau^2 = V_unit (2 log(1/alpha) +
+ * Rule (a) of docs/methods.md sec. 1: tau^2 = V_unit (2 log(1/alpha) +
  * log(1 + 2 log(1/alpha))) / n_opt, the HRMS tuning mapped through
  * rho = V_unit^2 / tau^2 with v_opt = n_opt V_unit.
  */

@@ -7,7 +7,7 @@
  * turns it into a confidence sequence for one quantile, and into a
  * two-sample test by scanning candidate values of the common quantile.
  * Inputs are tie blocks (ascending values with counts): a sketch's
- * buckets or sorted raw data. Formulas: METHODS.md sec. 4.
+ * buckets or sorted raw data. Formulas: docs/methods.md sec. 4.
  */
 #include <math.h>
 #include <stdlib.h>
@@ -18,7 +18,7 @@
 
 /*
  * The two-sample tests are tuned at t_opt samples with alpha_opt = 0.05,
- * the level of METHODS.md sec. 10.4; the tuning only shapes power, the
+ * the level of docs/methods.md sec. 10.4; the tuning only shapes power, the
  * test stays valid at any alpha.
  */
 #define QUANT_ALPHA_OPT	0.05
@@ -78,7 +78,7 @@ quant_bound(double v, double g, double r, double alpha)
 }
 
 /*
- * Howard & Ramdas 2022, fixed-quantile CS (METHODS.md sec. 4): with the
+ * Howard & Ramdas 2022, fixed-quantile CS (docs/methods.md sec. 4): with the
  * two-sided beta-binomial bound u at v = p(1-p) t,
  * CS_t = [X_(floor(t p - u_lo) + 1), X_(ceil(t p + u_up))], u_up from
  * (g, h) = (p, 1-p) and u_lo from (1-p, p); one martingale, total alpha.
@@ -128,7 +128,7 @@ quant_digamma(double x)
 /*
  * One arm of a two-sample test: the beta-binomial mixture of HRMS 2021
  * Props. 6/7 for an event count c out of N with null event probability
- * g0, written as the Bayes factor it equals (METHODS.md sec. 4):
+ * g0, written as the Bayes factor it equals (docs/methods.md sec. 4):
  *   log m(c) = log B(a0 + c, b0 + N - c) - log B(a0, b0)
  *              - c log g0 - (N - c) log(1 - g0)
  *   one-sided: + log I_{1-g0}(b0 + N - c, a0 + c) - log I_{1-g0}(b0, a0)
@@ -170,7 +170,7 @@ quant_arm_logm(struct quant_arm *q, double c)
 }
 
 /*
- * The two-sided log m is unimodal in c (METHODS.md sec. 4); its stationary
+ * The two-sided log m is unimodal in c (docs/methods.md sec. 4); its stationary
  * point solves psi(a0 + c) - psi(b0 + N - c) = log(g0 / (1 - g0)), the
  * left side increasing in c, found by bisection.
  */
@@ -228,7 +228,7 @@ quant_arm_G2(struct quant_arm *q, double c0, double c1)
 }
 
 /*
- * Merged pass over both arms' blocks (METHODS.md sec. 4): at each distinct
+ * Merged pass over both arms' blocks (docs/methods.md sec. 4): at each distinct
  * value x, count_j(< x) and count_j(<= x); then at the midpoint to the
  * next value, where both equal count_j(<= x).
  * kind 2, two-sided: min_x [G_A(x) + G_B(x)]. A midpoint can be skipped:
@@ -421,7 +421,7 @@ stats_quantile_log_e2(const struct stats_blocks *a,
 }
 
 /*
- * H0: Q_b(p) <= Q_a(p), our construction (METHODS.md sec. 4): under H0
+ * H0: Q_b(p) <= Q_a(p), our construction (docs/methods.md sec. 4): under H0
  * any x in [Q_b, Q_a] makes both one-sided arm factors supermartingales,
  * so the minimum over x bounds a test supermartingale.
  */

@@ -6,7 +6,7 @@
  * and rate tests, and log B(a, b) for counts up to ~10^12. libc's lgamma
  * and erfc do the small cases; large arguments go through Stirling's
  * series so differences of huge terms do not lose their digits.
- * See METHODS.md sec. 9 for the numerical notes this file follows.
+ * See docs/methods.md sec. 9 for the numerical notes this file follows.
  */
 #include <float.h>
 #include <math.h>
@@ -42,7 +42,7 @@ stats_log_inv_alpha(double alpha)
 	return -log(alpha);
 }
 
-/* 2 l + log(1 + 2 l): HRMS 2021 Sec. 3.5 tuning (METHODS.md sec. 2). */
+/* 2 l + log(1 + 2 l): HRMS 2021 Sec. 3.5 tuning (docs/methods.md sec. 2). */
 double
 stats_hrms_denom(double alpha)
 {
@@ -78,7 +78,7 @@ stats_p_from_log_e(double max_log_e)
 
 /*
  * log Phi(z). erfc is accurate in relative terms down to z = -30; below,
- * the asymptotic (Mills ratio) series of METHODS.md sec. 9, carried to
+ * the asymptotic (Mills ratio) series of docs/methods.md sec. 9, carried to
  * five terms so its truncation error (< 1e-13 at z = -30) is invisible.
  */
 double
@@ -406,7 +406,7 @@ ibeta_series(double a, double b, double x, double y)
  *   I_x(a, b) = Phi(w) + phi(w)/sqrt(r) * c0(eta) * (1 + O(1/r)),
  *   r = a + b, eta = sign(x - x0) sqrt(2 phi(x)), w = eta sqrt(r),
  *   c0(eta) = 1/eta - sqrt(x0 y0)/(x - x0).
- * It is the refined normal approximation METHODS.md sec. 9 asks for:
+ * It is the refined normal approximation docs/methods.md sec. 9 asks for:
  * exact in the exponent, so log I stays right deep in both tails.
  * This branch handles x <= x0 (the lower tail); the caller reflects.
  */
@@ -493,7 +493,7 @@ stats_log_ibeta_xy(double a, double b, double x, double y)
 	}
 	/*
 	 * Compute the smaller tail directly and reflect the other through
-	 * I_x(a, b) = 1 - I_y(b, a) (METHODS.md sec. 9): the switch is the
+	 * I_x(a, b) = 1 - I_y(b, a) (docs/methods.md sec. 9): the switch is the
 	 * mean for the expansion and (a + 1)/(a + b + 2) for the fraction.
 	 */
 	if (big ? x <= a / (a + b) : x < (a + 1) / (a + b + 2))
