@@ -2,8 +2,10 @@
 # Install step shared by `make check`, `make demo` and `make bench`: find
 # the Debian packages stopcock needs; when some are missing and we are
 # root with apt-get, install them, otherwise print the exact command.
-PKGS="build-essential pkg-config clang libevent-dev libgsl-dev libhiredis-dev
-libjansson-dev libinih-dev libcmocka-dev libcurl4-openssl-dev libssl-dev
+# libclang-rt-dev holds clang's sanitizer and libFuzzer runtimes (only
+# recommended by clang, and recommends are not installed here).
+PKGS="build-essential pkg-config clang libclang-rt-dev libevent-dev libgsl-dev
+libhiredis-dev libjansson-dev libinih-dev libcmocka-dev libcurl4-openssl-dev libssl-dev
 libsystemd-dev redis-server redis-tools python3 python3-scipy python3-numpy
 python3-prometheus-client chromium systemd mawk curl openssl"
 missing=""
