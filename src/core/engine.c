@@ -408,6 +408,15 @@ exp_srm_start(const struct engine *eng, struct experiment *e)
 	e->srm_slots = slots;
 	e->srm_ring = xcalloc((size_t)slots * (size_t)e->narms,
 	    sizeof *e->srm_ring);
+	/*
+	 * A new plan may arrive after exposures stamped past its start:
+	 * those went to the old epoch's open intervals, which are dropped.
+	 * Exposures up to the end of the interval holding the newest one
+	 * seen are late for the new epoch too, in every arm alike, so the
+	 * new epoch's first interval is not missing one arm's batch.
+	 */
+	e->srm_floor = e->srm_ntop > 0 ? (floor(e->srm_top[e->srm_ntop - 1] /
+	    eng->conf->srm_interval) + 1) * eng->conf->srm_interval : -INFINITY;
 	e->srm_done = INT64_MIN;
 	e->srm_newest = NAN;
 	e->srm_ntop = 0;
@@ -867,7 +876,8 @@ srm_expose(struct engine *eng, struct experiment *e, int arm,
 		srm_complete(eng, e, srm_interval_of(eng, newest -
 		    eng->conf->lateness));
 	}
-	if (j < e->srm_done || (ep != NULL && t < ep->started)) {
+	if (j < e->srm_done || (ep != NULL && t < ep->started) ||
+	    t < e->srm_floor) {
 		e->srm_late[arm] += units;
 		eng->counters.srm_late += units;
 		return;

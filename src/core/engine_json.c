@@ -644,6 +644,8 @@ exp_save(const struct experiment *e, const struct conf *conf)
 	json_object_set_new(json_object_get(o, "srm"), "ahead", a);
 	json_object_set_new(json_object_get(o, "srm"), "top", reals_save(
 	    e->srm_top, (size_t)e->srm_ntop));
+	json_object_set_new(json_object_get(o, "srm"), "floor",
+	    sreal(e->srm_floor));
 	if (!isnan(e->srm_newest)) {
 		json_object_set_new(json_object_get(o, "srm"), "done",
 		    json_integer((json_int_t)e->srm_done));
@@ -842,6 +844,9 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 	for (i = 0; i < (size_t)narms && i < json_array_size(a); i++)
 		e->srm_ahead[i] = (uint64_t)json_integer_value(
 		    json_array_get(a, i));
+	if (get_real(srm, "floor", &e->srm_floor) != 0 ||
+	    isnan(e->srm_floor))
+		e->srm_floor = -INFINITY;
 	a = json_object_get(srm, "top");
 	if (json_array_size(a) <= ENGINE_SRM_QUORUM) {
 		e->srm_ntop = (int)json_array_size(a);

@@ -249,6 +249,24 @@ eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
 	} else {
 		vt = tb.var;
 		vc = ca.var;
+		if (g->test == TEST_MEAN) {
+			/*
+			 * A small arm of skewed data (latencies) mostly misses
+			 * the rare large values: its mean and its variance
+			 * are low together, and a plug-in z reads that as an
+			 * effect. Under the null of no difference the pooled
+			 * within-arm variance is consistent and carries the
+			 * large arm's tail, so neither arm's per-record
+			 * variance goes below it (times the arm's design
+			 * effect): conservative when the arms differ.
+			 */
+			double pool = (a->m.m2 + b->m.m2) / (ca.recs + tb.recs -
+			    2);
+			if (pool * fmax(1, tb.deff) / tb.recs > vt)
+				vt = pool * fmax(1, tb.deff) / tb.recs;
+			if (pool * fmax(1, ca.deff) / ca.recs > vc)
+				vc = pool * fmax(1, ca.deff) / ca.recs;
+		}
 	}
 	V = vt + k * k * vc;
 	t->sig2_t = vt * (g->test == TEST_PROPORTION ? tb.n : tb.recs);
