@@ -127,12 +127,16 @@ deps:
 # ASan+UBSan, again with clang), the fuzz targets for a bounded number of
 # runs, reference checks against scipy/numpy, and integration tests
 # against real servers. Each leg's directory is passed to run.sh, which
-# fails the run when a leg it was given has no binaries.
+# fails the run when a leg it was given has no binaries. The four builds
+# use every core unless make was given its own -j.
+CHECK_JOBS = $(if $(filter -j%,$(MAKEFLAGS)),,-j$(shell nproc 2>/dev/null))
 check: deps
-	@$(MAKE) --no-print-directory test-build
-	@$(MAKE) --no-print-directory SAN=1 BUILD=$(BUILD)/san test-build
-	@$(MAKE) --no-print-directory CC=clang BUILD=$(BUILD)/clang test-build
-	@$(MAKE) --no-print-directory fuzz
+	@$(MAKE) --no-print-directory $(CHECK_JOBS) test-build
+	@$(MAKE) --no-print-directory $(CHECK_JOBS) SAN=1 BUILD=$(BUILD)/san \
+	    test-build
+	@$(MAKE) --no-print-directory $(CHECK_JOBS) CC=clang \
+	    BUILD=$(BUILD)/clang test-build
+	@$(MAKE) --no-print-directory $(CHECK_JOBS) fuzz
 	@sh tests/run.sh --san $(BUILD)/san --clang $(BUILD)/clang \
 	    --fuzz $(BUILD)/fuzz $(BUILD)
 
