@@ -939,6 +939,8 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 		e->exposures[arm] += r->units;
 		/* event time: the record's own stamp, even when a caller's
 		 * clock (replay: the newest record time) runs ahead of it */
+		if (r->has_ts)
+			e->srm_stamped = 1;
 		srm_expose(eng, e, arm, r->units, r->has_ts ? r->ts : now);
 		break;
 	case PROTO_OBSERVE:
@@ -1011,6 +1013,15 @@ tick_experiment(struct engine *eng, struct experiment *e, double now)
 			t->hist_dirty = 0;
 		}
 	}
+	/*
+	 * Exposures stamped on arrival come in time order: once the clock
+	 * is past an interval's end by the lateness, no exposure can still
+	 * land in it, so the tick completes it even when no newer exposure
+	 * arrives. Producer-stamped ones (a backlog) wait for newer ones.
+	 */
+	if (!e->srm_stamped && !isnan(e->srm_newest))
+		srm_complete(eng, e, srm_interval_of(eng, now -
+		    eng->conf->lateness));
 	if (e->srm_dirty) {
 		hist_offer(&e->srm_hist, cap, eng->now, e->srm_log_e,
 		    log(1 / e->srm_alpha), 0,

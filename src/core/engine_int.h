@@ -174,6 +174,7 @@ struct experiment {
 	double		 srm_top[ENGINE_SRM_QUORUM];	/* newest times */
 	int		 srm_ntop;
 	double		 srm_floor;	/* exposures before it: late */
+	int		 srm_stamped;	/* an exposure carried its own time */
 	uint64_t	 late_epoch;	/* records naming a closed epoch */
 	uint8_t		 unit_key[16];	/* unit-group hash key, kept */
 	double		 srm_log_e, srm_max_log_e;

@@ -646,6 +646,8 @@ exp_save(const struct experiment *e, const struct conf *conf)
 	    e->srm_top, (size_t)e->srm_ntop));
 	json_object_set_new(json_object_get(o, "srm"), "floor",
 	    sreal(e->srm_floor));
+	json_object_set_new(json_object_get(o, "srm"), "stamped",
+	    json_boolean(e->srm_stamped));
 	if (!isnan(e->srm_newest)) {
 		json_object_set_new(json_object_get(o, "srm"), "done",
 		    json_integer((json_int_t)e->srm_done));
@@ -844,6 +846,9 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 	for (i = 0; i < (size_t)narms && i < json_array_size(a); i++)
 		e->srm_ahead[i] = (uint64_t)json_integer_value(
 		    json_array_get(a, i));
+	/* an image without the flag: assume producer stamps (waits) */
+	e->srm_stamped = json_object_get(srm, "stamped") == NULL ||
+	    json_is_true(json_object_get(srm, "stamped"));
 	if (get_real(srm, "floor", &e->srm_floor) != 0 ||
 	    isnan(e->srm_floor))
 		e->srm_floor = -INFINITY;

@@ -64,6 +64,14 @@ allow_srm = %s
        "yes" if dry_run else "no")
 
 
+def send_srm_first(d, lines, n):
+    """The plan and the skewed exposures, a pause of record time, then
+    the rest."""
+    d.send_tcp(lines[:n])
+    time.sleep(0.5)
+    d.send_tcp(lines[n:])
+
+
 def audit(d):
     path = os.path.join(d.state, "pause-audit.log")
     try:
@@ -159,10 +167,13 @@ def main():
             tap.ok(pa and pa[0]["json"]["experiment"] == "basket_a",
                    "ops: a pause alert tells people it was paused")
 
-            # basket_srm: SRM first, so the pause must be refused.
-            d.send_tcp(unit_records("basket_srm", "errors", [
+            # basket_srm: SRM first, so the pause must be refused. The
+            # skewed exposures go first and alone: the SRM test reads
+            # complete intervals of event time, so it needs record time
+            # to pass beyond them before the harmful counts arrive.
+            send_srm_first(d, unit_records("basket_srm", "errors", [
                 ("control", 2500, 0.02), ("treatment", 2500, 0.09)], 12,
-                skew={"control": 120, "treatment": 280}))
+                skew={"control": 120, "treatment": 280}), 401)
             srm = wait_for(lambda: [a for a in audit(d)
                                     if a["experiment"] == "basket_srm"], 20)
             tap.eq([(a["decision"], a["reason"]) for a in srm or []],
@@ -216,9 +227,9 @@ def main():
             tap.eq(messages(sub, 0.5), [], "dry run: nothing published")
             # allow_srm = yes here: the SRM itself is a pause reason (dry
             # run again), the guardrail's later pause is still refused.
-            d.send_tcp(unit_records("basket_dry_srm", "errors", [
+            send_srm_first(d, unit_records("basket_dry_srm", "errors", [
                 ("control", 2500, 0.02), ("treatment", 2500, 0.09)], 15,
-                skew={"control": 120, "treatment": 280}))
+                skew={"control": 120, "treatment": 280}), 401)
             ds = wait_for(lambda: (lambda x: x if len(x) >= 2 else None)(
                 [a for a in audit(d) if a["experiment"] ==
                  "basket_dry_srm"]), 20) or []
