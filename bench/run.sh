@@ -13,7 +13,11 @@
 #      3 arms x 4 metrics, divided out) and the cost of one engine tick at
 #      that scale (tests/tools/engine_bench.c);
 #   4. A/A false-alarm rates and detection medians from a larger
-#      `stopcock simulate` run.
+#      `stopcock simulate` run;
+#   5. the adversarial validity suite with >= 1000 null runs per cell and
+#      the power ratios beside a Wald SPRT (tests/ref/test_adversary.py
+#      --full), written to $BUILD/adversary.json; failing cells are
+#      reported, they do not stop the bench.
 # Nothing is hard-coded: every number printed is measured here.
 set -eu
 BUILD=${1:-build}
@@ -79,3 +83,12 @@ $PY bench/report.py "$TMP" "$N" "$gen_s" "$wc_lines" "$wc_s" "$mawk_s" \
     "$replay_s" "$(( $(date +%s) - start ))" > bench/results.json.tmp
 mv bench/results.json.tmp bench/results.json
 say "wrote bench/results.json"
+
+say "adversarial validity: >= 1000 runs per cell, and power"
+if STOPCOCK_BUILD="$BUILD" $PY tests/ref/test_adversary.py --full \
+    --json "$BUILD/adversary.json" > "$BUILD/adversary.tap"; then
+	say "adversary: every cell within its bound ($BUILD/adversary.json)"
+else
+	say "adversary: cells over their bound:"
+	grep '^not ok' "$BUILD/adversary.tap" >&2 || true
+fi
