@@ -495,7 +495,7 @@ def g_clustered(rng, exp, run, t0, pos, attrs, nusers, dur, user_sd,
     lat = 150 * np.exp(mu[owner] + rng.normal(0, req_sd, len(owner)))
     p = pu[owner]
     if pos:		# clear harms: liveness, not power
-        lat = np.where(a == 1, 2.5 * lat, lat)
+        lat = np.where(a == 1, 4 * lat, lat)
         p = np.where(a == 1, np.minimum(p + 0.05, 1), p)
     err = (rng.random(len(owner)) < p).astype(np.int64)
     o = np.argsort(t_r, kind="stable")
@@ -517,8 +517,8 @@ def g_sessions(rng, exp, run, t0, pos, attrs, nusers, dur, beta):
     pu = rng.beta(beta[0], beta[1], nusers)
     a = a_u[owner]
     p = pu[owner]
-    if pos:
-        p = np.where(a == 1, np.minimum(2.5 * p, 1), p)
+    if pos:		# a clear harm: every request of the arm fails more
+        p = np.where(a == 1, np.minimum(p + 0.05, 1), p)
     nreq = 1 + rng.poisson(9, len(owner))
     err = rng.binomial(nreq, p)
     o = np.argsort(t_s, kind="stable")

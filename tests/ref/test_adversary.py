@@ -160,7 +160,7 @@ STREAMS = [
                            "margin"}),
     # further attacks
     dict(id="x1", gen=A.g_split_prop, cost=46, level=0.01, plan=600,
-         params=dict(share=0.02, n=25000, p=0.01, p_pos=0.04, rate=100,
+         params=dict(share=0.02, n=25000, p=0.01, p_pos=0.06, rate=100,
                      metric=b"err"),
          guards=[guard("err", "err", "proportion")],
          cells={"err": "x1 proportion 98/2, small treatment, 1% errors, "
@@ -173,7 +173,7 @@ STREAMS = [
                           "treatment, harm = decrease"}),
     dict(id="x3", gen=A.g_split_mean, cost=43, level=0.01, plan=600,
          params=dict(share=0.98, n=25000, median=30, sigma=1.5,
-                     factor_pos=1.8, rate=100),
+                     factor_pos=3.0, rate=100),
          guards=[guard("basket", "basket", "mean")],
          cells={"basket": "x3 mean of lognormal(1.5) values, 2/98 small "
                           "control, harm = increase"}),
