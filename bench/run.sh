@@ -17,7 +17,11 @@
 #   5. the adversarial validity suite with >= 1000 null runs per cell and
 #      the power ratios beside a Wald SPRT (tests/ref/test_adversary.py
 #      --full), written to $BUILD/adversary.json; failing cells are
-#      reported, they do not stop the bench.
+#      reported, they do not stop the bench;
+#   6. harm that starts late: delays after 20k, 200k and 1M healthy units
+#      for every guardrail kind, beside a test started at the change and
+#      a CUSUM at the true effect (tests/ref/test_lateharm.py --full),
+#      written to $BUILD/lateharm.json; targets not met are reported.
 # Nothing is hard-coded: every number printed is measured here.
 set -eu
 BUILD=${1:-build}
@@ -91,4 +95,15 @@ if STOPCOCK_BUILD="$BUILD" $PY tests/ref/test_adversary.py --full \
 else
 	say "adversary: cells over their bound:"
 	grep '^not ok' "$BUILD/adversary.tap" >&2 || true
+fi
+
+say "late harm: 20k, 200k and 1M healthy units before the change"
+if STOPCOCK_BUILD="$BUILD" $PY tests/ref/test_lateharm.py --full \
+    --json "$BUILD/lateharm.json" > "$BUILD/lateharm.tap"; then
+	grep -E '^# +(kind +H|(proportion|rate|mean|quantile) +[0-9])' \
+	    "$BUILD/lateharm.tap" >&2 || true
+	grep '^not ok' "$BUILD/lateharm.tap" >&2 || true
+	say "late harm: figures in $BUILD/lateharm.json"
+else
+	say "late harm: the run failed (see $BUILD/lateharm.tap)"
 fi

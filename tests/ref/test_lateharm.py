@@ -118,8 +118,10 @@ def summarise(r):
                                          r["by_detector"]).sum()),
         "false_alarm_bound": level + 3 * se,
         "safe_before_change": float(r["safe_before"].mean()),
+        # of the runs judged safe before the change (None: no such run)
         "raised_after_safe": float((raised & r["safe_before"]).sum() /
-                                   max(1, r["safe_before"].sum())),
+                                   r["safe_before"].sum())
+        if r["safe_before"].any() else None,
         "raised_by_detector": float((raised & r["by_detector"]).sum() /
                                     max(1, raised.sum())),
         "oracle_median": pct(r["oracle"], 50),
