@@ -530,6 +530,10 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	acc = fmax(sketch_accuracy(a->sk), sketch_accuracy(b->sk));
 	if (!(acc > 0 && acc < 1))
 		acc = eng->conf->sketch_accuracy;
+	/* without a margin both arms share one bucket grid and bucket order
+	 * is value order: the rounded comparison is already exact there */
+	if (m == 0)
+		acc = 0;
 	if (g->harm == HARM_INCREASE) {
 		scale = g->margin_relative ? 1 + m : 1;
 		shift = g->margin_relative ? 0 : m * (1 + acc);
