@@ -115,6 +115,17 @@ struct conf {
 	uint32_t	redis_batch;	/* entries per XREADGROUP */
 	double		redis_block;	/* seconds per blocking read */
 
+	/* [kafka] */
+	char		*kafka_brokers;	/* NULL: no Kafka input */
+	char		*kafka_topic;
+	char		*kafka_group;
+	char		*kafka_state_topic;	/* compacted: partition states */
+	char		*kafka_client_id;	/* "%h" expands to the host name */
+	char		*kafka_instance_id;	/* static membership; NULL: none */
+	double		kafka_commit_every;	/* seconds between transactions */
+	double		kafka_session_timeout;	/* seconds */
+	uint32_t	kafka_max_message;	/* bytes of one message value */
+
 	/* [alerts] */
 	double		remind_every;	/* 0: no reminders */
 

@@ -133,6 +133,7 @@ conf_new(void)
 	conf_table_defaults(S_DEFAULTS, c);
 	conf_table_defaults(S_DAEMON, c);
 	conf_table_defaults(S_REDIS, c);
+	conf_table_defaults(S_KAFKA, c);
 	conf_table_defaults(S_ALERTS, c);
 	conf_table_defaults(S_PAUSE, c);
 	conf_table_defaults(S_SYSLOG, c);
@@ -511,7 +512,7 @@ conf_check(struct conf_parser *p)
 	struct conf *c = p->conf;
 	const struct conf_guardrail *g, *h, *obs, *cnt;
 	const struct conf_experiment *e;
-	int i, j, pline = 0, lline = 0, clash;
+	int i, j, pline = 0, lline = 0, kline = 0, clash;
 	const struct conf_option *o;
 
 	for (o = conf_options; o < conf_options + conf_noptions; o++)
@@ -543,6 +544,26 @@ conf_check(struct conf_parser *p)
 			    "more than max_variants (%u)", e->id, e->narms,
 			    c->max_variants);
 	}
+	/*
+	 * A Kafka daemon keeps its experiments' state in the state topic,
+	 * committed with the input offsets; records from another input
+	 * would live only in the local checkpoint, beside state it must
+	 * replace on every assignment, so the two are not mixed.
+	 */
+	for (o = conf_options; o < conf_options + conf_noptions; o++)
+		if (o->section == S_KAFKA &&
+		    o->offset == offsetof(struct conf, kafka_brokers))
+			kline = p->keyline[o - conf_options];
+	if (c->kafka_brokers != NULL && (c->tcp != NULL || c->udp != NULL ||
+	    c->unix_path != NULL || c->redis_address != NULL))
+		conf_error(p, kline, "[kafka] brokers is set: Kafka must be the "
+		    "daemon's only record input (unset [daemon] tcp, udp, unix "
+		    "and [redis] address)");
+	if (c->kafka_brokers != NULL &&
+	    strcmp(c->kafka_topic, c->kafka_state_topic) == 0)
+		conf_error(p, kline, "[kafka] topic and state_topic are both "
+		    "%s; the state needs its own compacted topic",
+		    c->kafka_topic);
 	if (c->nexperiments > (int)c->max_experiments)
 		conf_error(p, c->experiments[c->max_experiments].line,
 		    "more [experiment] sections than max_experiments (%u)",

@@ -18,6 +18,7 @@ enum conf_section {
 	S_EXPERIMENT,
 	S_DAEMON,
 	S_REDIS,
+	S_KAFKA,
 	S_ALERTS,
 	S_PAUSE,
 	S_SYSLOG,
@@ -44,7 +45,9 @@ enum conf_type {
 	T_SECRET,	/* char *: whsec_ + base64 */
 	T_TOKEN,	/* char *: no blanks, min..max bytes */
 	T_MARGIN,	/* guardrail margin: number or percentage */
-	T_PLAN		/* experiment arms: "control=50 treatment=50" */
+	T_PLAN,		/* experiment arms: "control=50 treatment=50" */
+	T_BROKERS,	/* char *: host:port[,host:port...] */
+	T_TOPIC		/* char *: a Kafka topic name, 1-max of A-Za-z0-9._- */
 };
 
 #define F_OPEN_MIN	0x01	/* min itself is outside the range */

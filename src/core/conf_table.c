@@ -22,6 +22,7 @@
 #define CONF_UNIX_PATH_MAX 107		/* sun_path holds 108 with the NUL */
 #define CONF_STRING_MAX 1024
 #define CONF_IDENT_MAX 48		/* RFC 5424 APP-NAME */
+#define CONF_TOPIC_MAX 249		/* Kafka's limit on a topic name */
 
 _Static_assert(sizeof(enum conf_test) == sizeof(int), "enum stored as int");
 _Static_assert(sizeof(enum conf_harm) == sizeof(int), "enum stored as int");
@@ -33,6 +34,7 @@ const struct conf_section_info conf_sections[S_COUNT] = {
 	[S_EXPERIMENT] = { "experiment", 1 },
 	[S_DAEMON] = { "daemon", 0 },
 	[S_REDIS] = { "redis", 0 },
+	[S_KAFKA] = { "kafka", 0 },
 	[S_ALERTS] = { "alerts", 0 },
 	[S_PAUSE] = { "pause", 0 },
 	[S_SYSLOG] = { "syslog", 0 },
@@ -141,6 +143,34 @@ const struct conf_option conf_options[] = {
 	  "entries per read" },
 	{ S_REDIS, "block", T_DURATION, C(redis_block), 0.01, 300, 0, "2s",
 	  NULL, "how long one read waits for entries" },
+
+	{ S_KAFKA, "brokers", T_BROKERS, C(kafka_brokers), 0, 0, 0, NULL,
+	  NULL, "bootstrap brokers, comma-separated host:port; unset: no "
+	  "Kafka input (then the daemon's only record input)" },
+	{ S_KAFKA, "topic", T_TOPIC, C(kafka_topic), 0, CONF_TOPIC_MAX, 0,
+	  "stopcock.records", NULL, "topic the records arrive on, keyed by "
+	  "experiment" },
+	{ S_KAFKA, "group", T_WORD, C(kafka_group), 0, CONF_STRING_MAX, 0,
+	  "stopcock", NULL, "consumer group the daemons share" },
+	{ S_KAFKA, "state_topic", T_TOPIC, C(kafka_state_topic), 0,
+	  CONF_TOPIC_MAX, 0, "stopcock.state", NULL, "compacted topic holding "
+	  "each input partition's state, as many partitions as topic" },
+	{ S_KAFKA, "client_id", T_TEMPLATE, C(kafka_client_id), 0,
+	  CONF_STRING_MAX, 0, "stopcockd-%h", "h", "client.id; %h is the "
+	  "host name" },
+	{ S_KAFKA, "instance_id", T_TEMPLATE, C(kafka_instance_id), 0,
+	  CONF_STRING_MAX, F_EMPTY_OFF, "%h", "h", "group.instance.id for "
+	  "static membership (a restart within session_timeout keeps the "
+	  "partitions); unique per daemon; empty: dynamic membership" },
+	{ S_KAFKA, "commit_every", T_DURATION, C(kafka_commit_every), 0.05,
+	  3600, 0, "5s", NULL, "how often each owned partition's state and "
+	  "input offset are committed in one transaction" },
+	{ S_KAFKA, "session_timeout", T_DURATION, C(kafka_session_timeout),
+	  1, 3600, 0, "45s", NULL, "a daemon silent this long loses its "
+	  "partitions to the others" },
+	{ S_KAFKA, "max_message", T_U32, C(kafka_max_message), 1024,
+	  1 << 28, 0, "1048576", NULL, "bytes of one message value; larger "
+	  "ones are refused and counted" },
 
 	{ S_GUARDRAIL, "metric", T_NAME, G(metric), 0, 0, F_REQUIRED, NULL,
 	  NULL, "metric the guardrail watches" },
@@ -343,6 +373,13 @@ conf_table_range_text(const struct conf_option *o, char *buf, size_t size)
 	case T_PLAN:
 		snprintf(buf, size, "2-%d arms NAME=WEIGHT", PROTO_PLAN_MAX);
 		break;
+	case T_BROKERS:
+		snprintf(buf, size, "host:port[,host:port...], port 1-65535");
+		break;
+	case T_TOPIC:
+		snprintf(buf, size, "a topic name of 1-%.0f of A-Z a-z 0-9 . _ -",
+		    o->max);
+		break;
 	}
 }
 
@@ -373,6 +410,40 @@ conf_table_hostport_ok(const char *s)
 	if (parse_u64(colon + 1, 65535, &port) != 0 || port == 0)
 		return 0;
 	return 1;
+}
+
+/* "h1:9092,h2:9092": one or more host:port, no blanks, no empty item. */
+static int
+conf_table_brokers_ok(const char *s)
+{
+	char *copy, *item, *save = NULL;
+	int ok = 1, n = 0;
+
+	if (strlen(s) > CONF_STRING_MAX || s[strlen(s) - 1] == ',' ||
+	    s[0] == ',' || strstr(s, ",,") != NULL)
+		return 0;
+	copy = xstrdup(s);
+	for (item = strtok_r(copy, ",", &save); item != NULL;
+	    item = strtok_r(NULL, ",", &save)) {
+		n++;
+		if (!conf_table_printable(item, 0) ||
+		    !conf_table_hostport_ok(item))
+			ok = 0;
+	}
+	free(copy);
+	return ok && n > 0;
+}
+
+/* Kafka's legal topic names: [A-Za-z0-9._-]+, not "." or "..". */
+static int
+conf_table_topic_ok(const char *s, size_t max)
+{
+	size_t n = strlen(s);
+
+	if (n == 0 || n > max || strcmp(s, ".") == 0 || strcmp(s, "..") == 0)
+		return 0;
+	return strspn(s, "abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ"
+	    "0123456789._-") == n;
 }
 
 static int
@@ -610,6 +681,12 @@ conf_table_set(const struct conf_option *o, void *base, const char *v, char **wh
 		ok = conf_table_printable(v, 0) && strlen(v) >= o->min &&
 		    strlen(v) <= o->max;
 		break;
+	case T_BROKERS:
+		ok = conf_table_brokers_ok(v);
+		break;
+	case T_TOPIC:
+		ok = conf_table_topic_ok(v, (size_t)o->max);
+		break;
 	default:
 		fatal("conf: option %s has no setter", o->key);
 	}
@@ -636,6 +713,8 @@ conf_table_is_string(enum conf_type t)
 	case T_URL:
 	case T_SECRET:
 	case T_TOKEN:
+	case T_BROKERS:
+	case T_TOPIC:
 		return 1;
 	default:
 		return 0;
@@ -668,6 +747,7 @@ conf_table_type_name(enum conf_type t)
 		[T_PATH] = "path", [T_ADDRESS] = "address", [T_URL] = "url",
 		[T_SECRET] = "secret", [T_TOKEN] = "token",
 		[T_MARGIN] = "margin", [T_PLAN] = "plan",
+		[T_BROKERS] = "brokers", [T_TOPIC] = "topic",
 	};
 
 	return names[t];

@@ -174,6 +174,15 @@ check_defaults(const struct conf *c)
 	assert_true(c->redis_claim_idle == 60);
 	assert_int_equal(c->redis_batch, 256);
 	assert_true(c->redis_block == 2);
+	assert_null(c->kafka_brokers);
+	assert_string_equal(c->kafka_topic, "stopcock.records");
+	assert_string_equal(c->kafka_group, "stopcock");
+	assert_string_equal(c->kafka_state_topic, "stopcock.state");
+	assert_string_equal(c->kafka_client_id, "stopcockd-%h");
+	assert_string_equal(c->kafka_instance_id, "%h");
+	assert_true(c->kafka_commit_every == 5);
+	assert_true(c->kafka_session_timeout == 45);
+	assert_int_equal(c->kafka_max_message, 1048576);
 	assert_true(c->remind_every == 0);
 	assert_null(c->pause_url);
 	assert_null(c->pause_secret);
@@ -380,6 +389,37 @@ static const struct ecase ecases[] = {
 	  "t.conf:2: bad value 'paused:%h' for 'redis_key'" },
 	{ "stream blank", "[redis]\nstream = two words\n",
 	  "t.conf:2: bad value 'two words' for 'stream'" },
+	{ "kafka brokers no port", "[kafka]\nbrokers = k1:9092,k2\n",
+	  "t.conf:2: bad value 'k1:9092,k2' for 'brokers' in [kafka]: "
+	  "expected host:port[,host:port...], port 1-65535" },
+	{ "kafka brokers empty item", "[kafka]\nbrokers = k1:9092,,k2:9092\n",
+	  "t.conf:2: bad value 'k1:9092,,k2:9092' for 'brokers'" },
+	{ "kafka brokers trailing comma", "[kafka]\nbrokers = k1:9092,\n",
+	  "t.conf:2: bad value 'k1:9092,' for 'brokers'" },
+	{ "kafka brokers port 0", "[kafka]\nbrokers = k1:0\n",
+	  "t.conf:2: bad value 'k1:0' for 'brokers'" },
+	{ "kafka topic slash", "[kafka]\ntopic = records/eu\n",
+	  "t.conf:2: bad value 'records/eu' for 'topic' in [kafka]: expected "
+	  "a topic name of 1-249 of A-Z a-z 0-9 . _ -" },
+	{ "kafka topic dotdot", "[kafka]\nstate_topic = ..\n",
+	  "t.conf:2: bad value '..' for 'state_topic'" },
+	{ "kafka instance escape", "[kafka]\ninstance_id = d-%p\n",
+	  "t.conf:2: bad value 'd-%p' for 'instance_id'" },
+	{ "kafka commit zero", "[kafka]\ncommit_every = 0\n",
+	  "t.conf:2: bad value '0' for 'commit_every'" },
+	{ "kafka max_message small", "[kafka]\nmax_message = 100\n",
+	  "t.conf:2: bad value '100' for 'max_message'" },
+	{ "kafka beside tcp", "[daemon]\ntcp = 127.0.0.1:7720\n"
+	  "[kafka]\nbrokers = k1:9092\n",
+	  "t.conf:4: [kafka] brokers is set: Kafka must be the daemon's only "
+	  "record input" },
+	{ "kafka beside redis", "[kafka]\nbrokers = k1:9092\n"
+	  "[redis]\naddress = 127.0.0.1:6379\n",
+	  "t.conf:2: [kafka] brokers is set: Kafka must be the daemon's only" },
+	{ "kafka state topic is topic", "[kafka]\nbrokers = k1:9092\n"
+	  "topic = t\nstate_topic = t\n",
+	  "t.conf:2: [kafka] topic and state_topic are both t; the state needs "
+	  "its own compacted topic" },
 	{ "facility", "[syslog]\nfacility = kern\n",
 	  "t.conf:2: bad value 'kern' for 'facility' in [syslog]: expected "
 	  "daemon, user or local0..local7" },
@@ -520,6 +560,18 @@ test_accepted(void **state)
 	assert_string_equal(c->syslog_facility, "local7");
 	assert_string_equal(c->pause_secret, "whsec_YQ==");
 	assert_int_equal(c->pause_on_srm, 1);
+	conf_free(c);
+
+	c = good("[kafka]\nbrokers = 127.0.0.1:39092,[::1]:39093,k3.example:9092\n"
+	    "topic = shop.events_v2\nstate_topic = shop-state\n"
+	    "instance_id =\ncommit_every = 250ms\nsession_timeout = 6s\n");
+	assert_string_equal(c->kafka_brokers,
+	    "127.0.0.1:39092,[::1]:39093,k3.example:9092");
+	assert_string_equal(c->kafka_topic, "shop.events_v2");
+	assert_string_equal(c->kafka_state_topic, "shop-state");
+	assert_null(c->kafka_instance_id);
+	assert_true(c->kafka_commit_every == 0.25);
+	assert_true(c->kafka_session_timeout == 6);
 	conf_free(c);
 
 	/* Pause's Redis key and channel can be turned off; nothing else. */
@@ -759,6 +811,10 @@ check_same(const struct conf *a, const struct conf *b)
 	SAME_STR(redis_group); SAME_STR(redis_consumer);
 	SAME_STR(redis_dead_letter); SAME(redis_max_deliveries);
 	SAME(redis_claim_idle); SAME(redis_batch); SAME(redis_block);
+	SAME_STR(kafka_brokers); SAME_STR(kafka_topic); SAME_STR(kafka_group);
+	SAME_STR(kafka_state_topic); SAME_STR(kafka_client_id);
+	SAME_STR(kafka_instance_id); SAME(kafka_commit_every);
+	SAME(kafka_session_timeout); SAME(kafka_max_message);
 	SAME(remind_every);
 	SAME_STR(pause_url); SAME_STR(pause_secret);
 	SAME_STR(pause_redis_key); SAME_STR(pause_redis_channel);
@@ -852,7 +908,8 @@ test_help(void **state)
 {
 	static const char *const want[] = {
 		"[defaults]", "[guardrail NAME]", "[experiment NAME]",
-		"[daemon]", "[redis]", "[alerts]", "[pause]", "[syslog]",
+		"[daemon]", "[redis]", "[kafka]", "[alerts]", "[pause]",
+		"[syslog]", "  state_topic ", "  instance_id ",
 		"[webhook NAME]", "  alpha ", "  quantile ", "  margin ",
 		"  plan ", "  client_buffer ", "  consumer ", "  remind ",
 		"  allow_srm ", "  facility ", "  max_attempts ",
