@@ -79,6 +79,9 @@ struct finding {
 	double		 log_e;		/* current log evidence */
 	double		 alpha;		/* level of this test: alpha / family */
 	double		 alpha_total;	/* the experiment's alpha */
+	/* the level a pause is held to: pause_alpha (or alpha / 10) over
+	 * the family; for the SRM check its own alpha */
+	double		 pause_level;
 	int		 family;	/* guardrails x treatment arms */
 	double		 estimate, lower, upper;	/* effect, absolute */
 	double		 rel_estimate, rel_lower, rel_upper;	/* relative */
@@ -204,5 +207,7 @@ const char	*verdict_name(enum verdict);
  * lower, upper}]. Non-finite numbers are null.
  */
 json_t		*finding_json(const struct finding *);
+/* A number for JSON: itself when finite, else null. New reference. */
+json_t		*finding_num(double);
 
 #endif

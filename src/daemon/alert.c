@@ -1,11 +1,11 @@
 /*
- * alert.c: the engine's sink. Verdict transitions become alerts that
- * people can act on: one per identity (experiment, epoch, guardrail,
+ * alert.c: findings become alerts that people can act on (dispatch.c
+ * hands them here in the loop, after the pause policy): one per identity (experiment, epoch, guardrail,
  * variant, and what happened: harm, safe, srm, untrusted, pause), raised
  * once and kept raised until the experiment starts a new epoch, is reset
  * or the alert is acknowledged. Each raise writes one syslog line of
- * key=value fields and queues one signed webhook (webhook.c) whose
- * webhook-id is derived from the identity, so receivers deduplicate and a
+ * key=value fields and yields one webhook body (dispatch.c queues it
+ * in webhook.c, signed) whose webhook-id is derived from the identity, so receivers deduplicate and a
  * restart that replays the same verdict never pages twice. Optional
  * reminders repeat raised, unacknowledged alerts. The state is saved in
  * the checkpoint (alert_save / alert_restore).
@@ -38,7 +38,7 @@ struct alert_entry {
 	uint32_t	 epoch;
 	char		*guardrail;
 	char		*variant;	/* "" for the SRM check */
-	char		*what;		/* harm, safe, srm, untrusted, pause.. */
+	enum alert_kind	 kind;
 	enum alert_state state;
 	int		 priority;
 	double		 first_seen;	/* wall time */
@@ -55,15 +55,21 @@ struct alert {
 	double			 remind_every;
 	struct alert_entry	**v;
 	size_t			 n;
-	uint64_t		 raised[6];	/* by alert_kinds index */
+	uint64_t		 raised[ALERT_NKINDS];
 	uint64_t		 reminders;
 	uint64_t		 acked;
 	uint64_t		 evicted;
 	uint64_t		 duplicates;
 };
 
-static const char *alert_kinds[] = {
-	"harm", "safe", "srm", "untrusted", "pause", "pause_dry_run"
+/* The names in syslog, webhooks, the API, metrics and the state. */
+static const char *const alert_kinds[ALERT_NKINDS] = {
+	[ALERT_HARM] = "harm",
+	[ALERT_SAFE] = "safe",
+	[ALERT_SRM] = "srm",
+	[ALERT_UNTRUSTED] = "untrusted",
+	[ALERT_PAUSE] = "pause",
+	[ALERT_PAUSE_DRY_RUN] = "pause_dry_run",
 };
 
 /*
@@ -109,14 +115,15 @@ alert_num(struct alert_line *l, const char *key, double v)
 		alert_printf(l, " %s=nan", key);
 }
 
+/* A saved kind's name back to the kind; -1 when unknown. */
 static int
-alert_kind_index(const char *what)
+alert_kind_parse(const char *name)
 {
-	size_t i;
+	int k;
 
-	for (i = 0; i < SC_NELEM(alert_kinds); i++)
-		if (strcmp(alert_kinds[i], what) == 0)
-			return (int)i;
+	for (k = 0; k < ALERT_NKINDS; k++)
+		if (strcmp(alert_kinds[k], name) == 0)
+			return k;
 	return -1;
 }
 
@@ -161,35 +168,28 @@ alert_link(struct alert *a, const char *experiment)
 	return link;
 }
 
-static const char *
-alert_what(const struct finding *f)
+static int
+alert_priority(const struct finding *f, enum alert_kind kind)
 {
-	switch (f->kind) {
-	case FINDING_VERDICT:
-		if (f->verdict == VERDICT_HARM)
-			return "harm";
-		if (f->verdict == VERDICT_SAFE)
-			return "safe";
-		return NULL;
-	case FINDING_SRM:
-		return f->verdict == VERDICT_UNDECIDED ? NULL : "srm";
-	case FINDING_UNTRUSTED:
-		return "untrusted";
+	switch (kind) {
+	case ALERT_HARM:
+		return f->action_pause ? LOG_CRIT : LOG_ERR;
+	case ALERT_PAUSE:
+		return LOG_CRIT;
+	case ALERT_SRM:
+		return LOG_ERR;
+	case ALERT_SAFE:
+		return LOG_NOTICE;
 	default:
-		return NULL;
+		return LOG_WARNING;	/* untrusted, pause_dry_run */
 	}
 }
 
+/* The SRM check's own alerts, which speak of arms, not a guardrail. */
 static int
-alert_priority(const struct finding *f, const char *what)
+alert_is_srm(enum alert_kind kind)
 {
-	if (strcmp(what, "harm") == 0)
-		return f->action_pause ? LOG_CRIT : LOG_ERR;
-	if (strcmp(what, "srm") == 0 || strcmp(what, "pause") == 0)
-		return strcmp(what, "pause") == 0 ? LOG_CRIT : LOG_ERR;
-	if (strcmp(what, "safe") == 0)
-		return LOG_NOTICE;
-	return LOG_WARNING;	/* untrusted, pause_dry_run */
+	return kind == ALERT_SRM || kind == ALERT_UNTRUSTED;
 }
 
 static const char *
@@ -204,16 +204,17 @@ alert_arm_role(const struct finding *f, const char *variant)
 
 /* One human sentence: what happened, where, how sure. */
 static char *
-alert_summary(const struct finding *f, const char *what, const char *reason)
+alert_summary(const struct finding *f, enum alert_kind kind,
+    const char *reason)
 {
 	struct alert_line l;
 	int i;
 
 	l.len = 0;
 	l.buf[0] = '\0';
-	if (strcmp(what, "srm") == 0 || strcmp(what, "untrusted") == 0) {
+	if (alert_is_srm(kind)) {
 		alert_printf(&l, "%s in experiment %s epoch %u:",
-		    strcmp(what, "srm") == 0 ? "Sample ratio mismatch" :
+		    kind == ALERT_SRM ? "Sample ratio mismatch" :
 		    "Verdicts untrustworthy (sample ratio mismatch)",
 		    f->experiment, f->epoch);
 		for (i = 0; i < f->narms; i++)
@@ -224,15 +225,15 @@ alert_summary(const struct finding *f, const char *what, const char *reason)
 		alert_printf(&l, "; p=%.3g", f->p);
 		return xstrdup(l.buf);
 	}
-	if (strcmp(what, "pause") == 0 || strcmp(what, "pause_dry_run") == 0) {
+	if (kind == ALERT_PAUSE || kind == ALERT_PAUSE_DRY_RUN) {
 		alert_printf(&l, "%s experiment %s: %s",
-		    strcmp(what, "pause") == 0 ? "Paused" :
+		    kind == ALERT_PAUSE ? "Paused" :
 		    "Dry run: would have paused", f->experiment,
 		    reason != NULL ? reason : "pause guardrail");
 		return xstrdup(l.buf);
 	}
 	alert_printf(&l, "guardrail %s %s for %s vs %s in experiment %s: "
-	    "effect %+.4g", f->guardrail, strcmp(what, "safe") == 0 ?
+	    "effect %+.4g", f->guardrail, kind == ALERT_SAFE ?
 	    "is safe" : "shows harm", f->variant ? f->variant : "?",
 	    f->control ? f->control : "?", f->experiment, f->estimate);
 	if (isfinite(f->rel_estimate))
@@ -248,18 +249,18 @@ alert_summary(const struct finding *f, const char *what, const char *reason)
 
 /* The key=value fields of the syslog line (after "alert raised"). */
 static char *
-alert_fields(const struct finding *f, const char *id, const char *what,
+alert_fields(const struct finding *f, const char *id, enum alert_kind kind,
     const char *link)
 {
 	struct alert_line l;
 	char key[PROTO_NAME_MAX + 16];
 	int i, srm;
 
-	srm = strcmp(what, "srm") == 0 || strcmp(what, "untrusted") == 0;
+	srm = alert_is_srm(kind);
 	l.len = 0;
 	l.buf[0] = '\0';
 	alert_printf(&l, "id=%s alert=%s experiment=%s epoch=%u guardrail=%s",
-	    id, what, f->experiment, f->epoch, f->guardrail ? f->guardrail :
+	    id, alert_kinds[kind], f->experiment, f->epoch, f->guardrail ? f->guardrail :
 	    "srm");
 	if (!srm) {
 		alert_printf(&l, " metric=%s test=%s variant=%s control=%s "
@@ -312,7 +313,6 @@ alert_entry_free(struct alert_entry *e)
 	free(e->experiment);
 	free(e->guardrail);
 	free(e->variant);
-	free(e->what);
 	free(e->line);
 	json_decref(e->body);
 	free(e);
@@ -373,9 +373,9 @@ alert_syslog(struct alert *a, struct alert_entry *e, const char *event)
 	log_debug("alert %s %s", event, e->line);
 }
 
-static void
-alert_raise(struct alert *a, const struct finding *f, const char *what,
-    const char *reason)
+json_t *
+alert_raise(struct alert *a, enum alert_kind kind, const struct finding *f,
+    const char *reason, const char **idp)
 {
 	struct alert_entry *e;
 	const char *guardrail, *variant;
@@ -385,11 +385,15 @@ alert_raise(struct alert *a, const struct finding *f, const char *what,
 
 	guardrail = f->guardrail != NULL ? f->guardrail : "srm";
 	variant = f->variant != NULL ? f->variant : "";
-	alert_make_id(id, f->experiment, f->epoch, guardrail, variant, what);
+	*idp = NULL;
+	if (f->experiment == NULL)
+		return NULL;
+	alert_make_id(id, f->experiment, f->epoch, guardrail, variant,
+	    alert_kinds[kind]);
 	if (alert_find(a, id) != NULL) {
 		/* Already raised (or acknowledged): never page twice. */
 		a->duplicates++;
-		return;
+		return NULL;
 	}
 	e = xcalloc(1, sizeof *e);
 	memcpy(e->id, id, sizeof e->id);
@@ -397,22 +401,22 @@ alert_raise(struct alert *a, const struct finding *f, const char *what,
 	e->epoch = f->epoch;
 	e->guardrail = xstrdup(guardrail);
 	e->variant = xstrdup(variant);
-	e->what = xstrdup(what);
+	e->kind = kind;
 	e->state = ALERT_RAISED;
-	e->priority = alert_priority(f, what);
+	e->priority = alert_priority(f, kind);
 	e->first_seen = now;
 	e->last_sent = now;
 
 	link = alert_link(a, f->experiment);
-	e->line = alert_fields(f, id, what, link);
-	summary = alert_summary(f, what, reason);
+	e->line = alert_fields(f, id, kind, link);
+	summary = alert_summary(f, kind, reason);
 	if ((body = finding_json(f)) == NULL || !json_is_object(body)) {
 		json_decref(body);
 		body = json_object();
 	}
 	json_object_set_new(body, "id", json_string(id));
 	json_object_set_new(body, "type", json_string("stopcock.alert.raised"));
-	json_object_set_new(body, "alert", json_string(what));
+	json_object_set_new(body, "alert", json_string(alert_kinds[kind]));
 	json_object_set_new(body, "first_seen", json_real(now));
 	json_object_set_new(body, "summary", json_string(summary));
 	json_object_set_new(body, "untrusted", json_boolean(f->untrusted));
@@ -426,9 +430,10 @@ alert_raise(struct alert *a, const struct finding *f, const char *what,
 	free(summary);
 
 	alert_insert(a, e);
-	a->raised[alert_kind_index(what)]++;
+	a->raised[kind]++;
 	alert_syslog(a, e, "raised");
-	webhook_send(a->d->webhook, e->id, e->body);
+	*idp = e->id;
+	return e->body;
 }
 
 /* A new epoch (a new plan or a reset) retires the earlier epochs' alerts. */
@@ -447,38 +452,10 @@ alert_clear(struct alert *a, const char *experiment, uint32_t below)
 }
 
 void
-alert_finding(void *arg, const struct finding *f)
+alert_epoch(struct alert *a, const char *experiment, uint32_t epoch)
 {
-	struct alert *a = arg;
-	const char *what;
-
-	if (a == NULL || f == NULL || f->experiment == NULL)
-		return;
-	switch (f->kind) {
-	case FINDING_EPOCH:
-		alert_clear(a, f->experiment, f->epoch);
-		return;
-	case FINDING_PAUSE:
-		pause_finding(a->d->pause, f);
-		return;
-	default:
-		break;
-	}
-	if ((what = alert_what(f)) == NULL)
-		return;
-	if (f->kind == FINDING_VERDICT && f->previous == f->verdict)
-		return;
-	alert_raise(a, f, what, NULL);
-	if (f->kind == FINDING_SRM)
-		pause_finding(a->d->pause, f);	/* it decides (pause_on_srm) */
-}
-
-void
-alert_pause(struct alert *a, const struct finding *f, int dry_run,
-    const char *reason)
-{
-	if (a != NULL)
-		alert_raise(a, f, dry_run ? "pause_dry_run" : "pause", reason);
+	if (a != NULL && experiment != NULL)
+		alert_clear(a, experiment, epoch);
 }
 
 int
@@ -501,7 +478,7 @@ alert_ack(struct alert *a, const char *experiment, const char *guardrail,
 		n++;
 		syslog(a->facility | LOG_NOTICE, "alert acknowledged id=%s "
 		    "alert=%s experiment=%s epoch=%u guardrail=%s variant=%s",
-		    e->id, e->what, e->experiment, e->epoch, e->guardrail,
+		    e->id, alert_kinds[e->kind], e->experiment, e->epoch, e->guardrail,
 		    *e->variant ? e->variant : "-");
 	}
 	if (n == 0) {
@@ -524,8 +501,8 @@ alert_experiment_reset(struct alert *a, const char *experiment)
 static int
 alert_remindable(const struct alert_entry *e)
 {
-	return e->state == ALERT_RAISED && (strcmp(e->what, "harm") == 0 ||
-	    strcmp(e->what, "srm") == 0 || strcmp(e->what, "untrusted") == 0);
+	return e->state == ALERT_RAISED && (e->kind == ALERT_HARM ||
+	    alert_is_srm(e->kind));
 }
 
 static void
@@ -592,8 +569,6 @@ alert_new(struct daemon *d, char **cause)
 		if (a->remind == NULL || event_add(a->remind, &tv) == -1)
 			fatalx("alert: cannot arm the reminder timer");
 	}
-	if (d->engine != NULL)
-		engine_set_sink(d->engine, alert_finding, a);
 	return a;
 }
 
@@ -625,7 +600,7 @@ alert_save(struct alert *a)
 		    "s:s, s:s, s:s, s:i, s:f, s:f, s:I, s:s, s:O}",
 		    "id", e->id, "experiment", e->experiment, "epoch",
 		    (json_int_t)e->epoch, "guardrail", e->guardrail, "variant",
-		    e->variant, "alert", e->what, "state",
+		    e->variant, "alert", alert_kinds[e->kind], "state",
 		    e->state == ALERT_RAISED ? "raised" : "acked", "priority",
 		    e->priority, "first_seen", e->first_seen, "last_sent",
 		    e->last_sent, "reminders", (json_int_t)e->reminders,
@@ -643,7 +618,7 @@ alert_restore_one(const json_t *j, char **cause)
 	json_t *body;
 	json_error_t err;
 	char check[sizeof e->id];
-	int priority;
+	int priority, kind;
 	double first, last;
 
 	if (json_unpack_ex((json_t *)j, &err, 0, "{s:s, s:s, s:I, s:s, s:s, "
@@ -656,7 +631,7 @@ alert_restore_one(const json_t *j, char **cause)
 		return NULL;
 	}
 	if (epoch < 1 || epoch > UINT32_MAX || reminders < 0 ||
-	    reminders > UINT32_MAX || alert_kind_index(what) == -1 ||
+	    reminders > UINT32_MAX || (kind = alert_kind_parse(what)) == -1 ||
 	    (strcmp(state, "raised") != 0 && strcmp(state, "acked") != 0) ||
 	    priority < LOG_EMERG || priority > LOG_DEBUG ||
 	    !json_is_object(body) || strlen(line) >= ALERT_LINE_MAX ||
@@ -676,7 +651,7 @@ alert_restore_one(const json_t *j, char **cause)
 	e->epoch = (uint32_t)epoch;
 	e->guardrail = xstrdup(gr);
 	e->variant = xstrdup(var);
-	e->what = xstrdup(what);
+	e->kind = (enum alert_kind)kind;
 	e->state = strcmp(state, "raised") == 0 ? ALERT_RAISED : ALERT_ACKED;
 	e->priority = priority;
 	e->first_seen = first;
@@ -753,25 +728,23 @@ alert_json(struct alert *a)
 void
 alert_metrics(struct alert *a, struct evbuffer *b)
 {
-	uint64_t active[SC_NELEM(alert_kinds)] = { 0 };
+	uint64_t active[ALERT_NKINDS] = { 0 };
 	size_t i;
-	int k;
 
 	if (a == NULL)
 		return;
 	for (i = 0; i < a->n; i++)
-		if (a->v[i]->state == ALERT_RAISED &&
-		    (k = alert_kind_index(a->v[i]->what)) != -1)
-			active[k]++;
+		if (a->v[i]->state == ALERT_RAISED)
+			active[a->v[i]->kind]++;
 	metrics_family(b, "stopcock_alerts_raised_total", "counter",
 	    "Alerts raised since start, by kind.");
-	for (i = 0; i < SC_NELEM(alert_kinds); i++)
+	for (i = 0; i < ALERT_NKINDS; i++)
 		evbuffer_add_printf(b, "stopcock_alerts_raised_total"
 		    "{alert=\"%s\"} %llu\n", alert_kinds[i],
 		    (unsigned long long)a->raised[i]);
 	metrics_family(b, "stopcock_alerts_active", "gauge",
 	    "Alerts raised and not acknowledged, by kind.");
-	for (i = 0; i < SC_NELEM(alert_kinds); i++)
+	for (i = 0; i < ALERT_NKINDS; i++)
 		evbuffer_add_printf(b, "stopcock_alerts_active{alert=\"%s\"} "
 		    "%llu\n", alert_kinds[i], (unsigned long long)active[i]);
 	metrics_counter(b, "stopcock_alerts_reminders_total",

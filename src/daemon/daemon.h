@@ -11,14 +11,17 @@
  *   redis_house.c  its housekeeping: acks, dead letters, reclaiming,
  *               lag (redis_house_*; shares redis_in_int.h)
  *   ckpt.c      checkpoint write/restore, atomic and checksummed (ckpt_*)
- *   alert.c     verdict findings -> alerts: identity, dedupe, syslog (alert_*)
+ *   dispatch.c  the engine's sink: findings queued, then drained on
+ *               the loop to pause, alert and webhooks    (dispatch_*)
+ *   alert.c     findings -> alerts: identity, dedupe, syslog (alert_*)
  *   webhook.c   signed webhooks over libcurl multi, spooled (webhook_*)
  *   pause.c     auto-pause: rules, audit log, HTTP + Redis delivery (pause_*)
  *   http.c      JSON API, /metrics and the page (libevent http) (http_*)
  *
- * Data flows one way: inputs -> ingest -> engine -> (sink) alert ->
- * webhook / pause / syslog. The HTTP server only reads state, except the
- * authenticated POST actions that go through the same engine calls.
+ * Data flows one way: inputs -> ingest -> engine -> (sink) dispatch ->
+ * pause policy -> alert (syslog) -> webhook / pause delivery. The HTTP
+ * server only reads state, except the authenticated POST actions that go
+ * through the same engine calls.
  */
 #ifndef STOPCOCK_DAEMON_H
 #define STOPCOCK_DAEMON_H
@@ -38,6 +41,7 @@ enum source { SRC_TCP, SRC_UDP, SRC_UNIX, SRC_REDIS, SRC_HTTP, SRC_N };
 
 struct listen;
 struct redis_in;
+struct dispatch;
 struct alert;
 struct webhook;
 struct pause;
@@ -81,6 +85,7 @@ struct daemon {
 
 	struct listen		*listen;
 	struct redis_in		*redis;
+	struct dispatch		*dispatch;
 	struct alert		*alert;
 	struct webhook		*webhook;
 	struct pause		*pause;
@@ -180,10 +185,37 @@ int64_t		 redis_in_lag(struct redis_in *);
 void		 redis_in_metrics(struct redis_in *, struct evbuffer *);
 json_t		*redis_in_json(struct redis_in *);
 
-/* alert.c: the engine's sink points here. */
+/* dispatch.c: the engine's sink. dispatch_finding only queues; the
+ * queue drains on the loop, or now with dispatch_drain (before the alert
+ * state is read or saved). */
+struct dispatch	*dispatch_new(struct daemon *);
+void		 dispatch_free(struct dispatch *);
+void		 dispatch_finding(void *dispatch, const struct finding *);
+void		 dispatch_drain(struct dispatch *);
+void		 dispatch_metrics(struct dispatch *, struct evbuffer *);
+
+/* alert.c */
+enum alert_kind {
+	ALERT_HARM,
+	ALERT_SAFE,
+	ALERT_SRM,
+	ALERT_UNTRUSTED,
+	ALERT_PAUSE,
+	ALERT_PAUSE_DRY_RUN,
+	ALERT_NKINDS
+};
+
 struct alert	*alert_new(struct daemon *, char **cause);
 void		 alert_free(struct alert *);
-void		 alert_finding(void *alert, const struct finding *);
+/* Raise the alert of this kind for f (reason: the pause's, may be NULL)
+ * and write its syslog line. Returns the webhook body (borrowed) and its
+ * id, or NULL when that alert was raised before (never page twice). */
+json_t		*alert_raise(struct alert *, enum alert_kind,
+		    const struct finding *, const char *reason,
+		    const char **id);
+/* A new epoch retires the earlier epochs' alerts of the experiment. */
+void		 alert_epoch(struct alert *, const char *experiment,
+		    uint32_t epoch);
 int		 alert_ack(struct alert *, const char *experiment,
 		    const char *guardrail, const char *variant, char **cause);
 void		 alert_experiment_reset(struct alert *, const char *experiment);
@@ -191,10 +223,6 @@ json_t		*alert_save(struct alert *);
 int		 alert_restore(struct alert *, const json_t *, char **cause);
 json_t		*alert_json(struct alert *);	/* raised alerts */
 void		 alert_metrics(struct alert *, struct evbuffer *);
-/* pause.c reports a pause it made (dry_run 0) or would have made
- * (dry_run 1), so on-call people learn it through the same channels. */
-void		 alert_pause(struct alert *, const struct finding *,
-		    int dry_run, const char *reason);
 
 /* webhook.c */
 struct webhook	*webhook_new(struct daemon *, char **cause);
@@ -209,10 +237,26 @@ int		 webhook_post(struct webhook *, const char *receiver,
 		    const char *id, json_t *body);
 void		 webhook_metrics(struct webhook *, struct evbuffer *);
 
-/* pause.c */
+/* pause.c: the policy and the delivery of auto-pauses. */
+enum pause_decision {
+	PAUSE_NONE,		/* not for the policy (SRM, pause_on_srm off) */
+	PAUSE_PAUSED,
+	PAUSE_DRY_RUN,
+	PAUSE_REFUSED_UNTRUSTED,
+	PAUSE_REFUSED_REPEAT,
+	PAUSE_REFUSED_RATE,
+	PAUSE_NDECISIONS
+};
+
 struct pause	*pause_new(struct daemon *, char **cause);
 void		 pause_free(struct pause *);
-void		 pause_finding(struct pause *, const struct finding *);
+/* Decide on a FINDING_PAUSE or an established SRM; every decision but
+ * PAUSE_NONE is audited and *reason set (free it). */
+enum pause_decision pause_decide(struct pause *, const struct finding *,
+		    char **reason);
+/* Deliver a PAUSE_PAUSED: HTTP (spooled, signed), Redis SET + PUBLISH. */
+void		 pause_deliver(struct pause *, const struct finding *,
+		    const char *reason);
 void		 pause_metrics(struct pause *, struct evbuffer *);
 
 /* http.c */

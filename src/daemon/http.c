@@ -763,6 +763,8 @@ http_metrics(struct http *h, struct evbuffer *b)
 		redis_in_metrics(d->redis, b);
 	if (d->webhook != NULL)
 		webhook_metrics(d->webhook, b);
+	if (d->dispatch != NULL)
+		dispatch_metrics(d->dispatch, b);
 	if (d->alert != NULL)
 		alert_metrics(d->alert, b);
 	if (d->pause != NULL)
@@ -788,6 +790,8 @@ http_request(struct evhttp_request *req, void *arg)
 	struct evbuffer *b;
 	int n, i;
 
+	/* Every view and action sees the alerts of every finding so far. */
+	dispatch_drain(h->d->dispatch);
 	n = http_split(uri != NULL ? evhttp_uri_get_path(uri) : NULL, seg);
 	if (n < 0) {
 		http_error(h, req, 404, "no such path");

@@ -155,6 +155,7 @@ daemon_checkpoint(struct daemon *d, const char *why)
 {
 	char *cause = NULL;
 
+	dispatch_drain(d->dispatch);	/* the alerts of the state saved */
 	if (ckpt_write(d, &cause) != 0) {
 		log_warnx("checkpoint failed (%s): %s", why, cause);
 		free(cause);
@@ -293,6 +294,7 @@ daemon_shutdown(struct daemon *d, int sig)
 		redis_in_stop(d->redis);
 	if (d->listen != NULL)
 		listen_drain(d->listen);
+	dispatch_drain(d->dispatch);
 	if (ckpt_write(d, &cause) != 0) {
 		log_crit("final checkpoint failed: %s", cause);
 		free(cause);
@@ -447,13 +449,14 @@ daemon_start(struct daemon *d)
 	d->alert = alert_new(d, &cause);
 	if (d->alert == NULL && cause != NULL)
 		daemon_fatal(d, SC_EX_CONFIG, "alerts: %s", cause);
+	d->dispatch = dispatch_new(d);
 
 	if (ckpt_restore(d, &cause) != 0)
 		daemon_fatal(d, SC_EX_DATAERR, "%s; refusing to start (move "
 		    "the file away to start afresh)", cause);
 	if (d->engine == NULL)
 		d->engine = engine_new(d->conf, d->hashkey);
-	engine_set_sink(d->engine, alert_finding, d->alert);
+	engine_set_sink(d->engine, dispatch_finding, d->dispatch);
 
 	d->http = http_new(d, &cause);
 	if (d->http == NULL && cause != NULL)
@@ -510,6 +513,7 @@ daemon_stop(struct daemon *d)
 	redis_in_free(d->redis);
 	listen_free(d->listen);
 	http_free(d->http);
+	dispatch_free(d->dispatch);	/* before the outputs it feeds */
 	alert_free(d->alert);
 	pause_free(d->pause);
 	webhook_free(d->webhook);

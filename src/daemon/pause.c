@@ -1,7 +1,9 @@
 /*
  * pause.c: auto-pause. The engine emits FINDING_PAUSE when a guardrail
- * with action = pause establishes harm at the stricter pause_alpha; here
- * the daemon decides whether to act on it and delivers the pause. The
+ * with action = pause establishes harm at the stricter pause_alpha (the
+ * finding carries that level); dispatch.c asks pause_decide whether to
+ * act on it, then pause_deliver delivers it and alert.c raises the
+ * pause alert. The
  * rules, in order: never on data that SRM made untrustworthy (unless the
  * pause is for SRM itself and pause_on_srm allows it), at most once per
  * experiment and epoch, at most pause_max_per_hour pauses in any hour,
@@ -44,19 +46,12 @@
 #define PAUSE_BACKOFF_MAX	30.0
 #define PAUSE_RATE_MAX		10000	/* cap on pause_max_per_hour */
 
-enum pause_decision {
-	PAUSE_PAUSED,
-	PAUSE_DRY_RUN,
-	PAUSE_REFUSED_UNTRUSTED,
-	PAUSE_REFUSED_REPEAT,
-	PAUSE_REFUSED_RATE,
-	PAUSE_NDECISIONS
-};
-
+/* By enum pause_decision (daemon.h); PAUSE_NONE is never audited. */
 static const struct {
 	const char	*decision;
 	const char	*reason;
-} pause_names[] = {
+} pause_names[PAUSE_NDECISIONS] = {
+	{ "none", "not for the pause policy" },
 	{ "paused", "harm established at pause_alpha" },
 	{ "dry_run", "dry run: would have paused" },
 	{ "refused", "untrusted" },
@@ -119,35 +114,7 @@ static void	pause_redis_connect(struct pause *);
 static void	pause_redis_flush(struct pause *);
 
 static json_t *
-pause_real(double v)
-{
-	return isfinite(v) ? json_real(v) : json_null();
-}
-
-static int
-pause_is_srm(const struct finding *f)
-{
-	return f->kind == FINDING_SRM || (f->test != NULL &&
-	    strcmp(f->test, "srm") == 0) || (f->guardrail != NULL &&
-	    strcmp(f->guardrail, "srm") == 0 && f->metric == NULL);
-}
-
-/* The level the pause was held to: pause_alpha (or a tenth of the
- * experiment's alpha), split over the family like the alerts. */
-static double
-pause_level(struct pause *p, const struct finding *f)
-{
-	double a = p->d->conf->pause_alpha;
-
-	if (pause_is_srm(f))
-		return f->alpha;
-	if (a <= 0)
-		a = f->alpha_total / 10;
-	return f->family > 0 ? a / f->family : a;
-}
-
-static json_t *
-pause_evidence(struct pause *p, const struct finding *f)
+pause_evidence(const struct finding *f)
 {
 	json_t *e, *arms;
 	int i;
@@ -156,35 +123,35 @@ pause_evidence(struct pause *p, const struct finding *f)
 	for (i = 0; i < f->narms; i++)
 		json_array_append_new(arms, json_pack("{s:s, s:o, s:I, s:o, "
 		    "s:o, s:o}", "variant", f->arms[i].variant, "weight",
-		    pause_real(f->arms[i].weight), "exposures",
+		    finding_num(f->arms[i].weight), "exposures",
 		    (json_int_t)f->arms[i].exposures, "n",
-		    pause_real(f->arms[i].n), "k", pause_real(f->arms[i].k),
-		    "value", pause_real(f->arms[i].value)));
+		    finding_num(f->arms[i].n), "k", finding_num(f->arms[i].k),
+		    "value", finding_num(f->arms[i].value)));
 	e = json_pack("{s:s?, s:s?, s:s?, s:o, s:o, s:o, s:i, s:o, s:o, s:o, "
 	    "s:o, s:o, s:o, s:b, s:o}", "metric", f->metric, "test", f->test,
-	    "harm", f->harm, "p", pause_real(f->p), "alpha",
-	    pause_real(f->alpha), "pause_alpha",
-	    pause_real(pause_level(p, f)), "family", f->family, "estimate",
-	    pause_real(f->estimate), "lower", pause_real(f->lower), "upper",
-	    pause_real(f->upper), "rel_estimate", pause_real(f->rel_estimate),
-	    "rel_lower", pause_real(f->rel_lower), "rel_upper",
-	    pause_real(f->rel_upper), "untrusted", f->untrusted, "arms", arms);
+	    "harm", f->harm, "p", finding_num(f->p), "alpha",
+	    finding_num(f->alpha), "pause_alpha",
+	    finding_num(f->pause_level), "family", f->family, "estimate",
+	    finding_num(f->estimate), "lower", finding_num(f->lower), "upper",
+	    finding_num(f->upper), "rel_estimate", finding_num(f->rel_estimate),
+	    "rel_lower", finding_num(f->rel_lower), "rel_upper",
+	    finding_num(f->rel_upper), "untrusted", f->untrusted, "arms", arms);
 	return e;
 }
 
 static char *
-pause_reason(struct pause *p, const struct finding *f)
+pause_reason(const struct finding *f)
 {
 	char *s;
 
-	if (pause_is_srm(f))
+	if (f->kind == FINDING_SRM)
 		xasprintf(&s, "sample ratio mismatch in experiment %s epoch %u "
 		    "(p=%.3g)", f->experiment, f->epoch, f->p);
 	else
 		xasprintf(&s, "guardrail %s shows harm for %s in experiment %s "
 		    "epoch %u (p=%.3g <= pause level %.3g)", f->guardrail,
 		    f->variant ? f->variant : "?", f->experiment, f->epoch,
-		    f->p, pause_level(p, f));
+		    f->p, f->pause_level);
 	return s;
 }
 
@@ -204,10 +171,10 @@ pause_audit(struct pause *p, const struct finding *f,
 	    "time", now, "experiment", f->experiment, "epoch",
 	    (json_int_t)f->epoch, "guardrail", f->guardrail, "variant",
 	    f->variant, "decision", pause_names[dec].decision, "reason",
-	    dec == PAUSE_PAUSED && pause_is_srm(f) ?
+	    dec == PAUSE_PAUSED && f->kind == FINDING_SRM ?
 	    "sample ratio mismatch (allow_srm)" : pause_names[dec].reason,
-	    "srm", pause_is_srm(f), "evidence",
-	    pause_evidence(p, f));
+	    "srm", f->kind == FINDING_SRM, "evidence",
+	    pause_evidence(f));
 	if (j == NULL || (text = json_dumps(j, JSON_COMPACT)) == NULL) {
 		json_decref(j);
 		p->audit_errors++;
@@ -651,16 +618,19 @@ pause_free(struct pause *p)
 }
 
 /* The pause itself: HTTP (spooled, signed) and Redis SET + PUBLISH. */
-static void
-pause_deliver(struct pause *p, const struct finding *f, const char *reason,
-    double now)
+void
+pause_deliver(struct pause *p, const struct finding *f, const char *reason)
 {
-	const struct conf *c = p->d->conf;
+	const struct conf *c;
+	double now = daemon_now();
 	unsigned char md[SHA256_DIGEST_LENGTH];
 	char id[3 + 32 + 1], *s, *key, *value;
 	json_t *j;
 	int i, n;
 
+	if (p == NULL || f == NULL || f->experiment == NULL)
+		return;
+	c = p->d->conf;
 	/* The webhook-id is stable per experiment and epoch. */
 	n = xasprintf(&s, "%s%c%u%cpause", f->experiment, 0, f->epoch, 0);
 	SHA256((unsigned char *)s, (size_t)n, md);
@@ -673,7 +643,7 @@ pause_deliver(struct pause *p, const struct finding *f, const char *reason,
 	    "id", id, "type", "stopcock.pause", "experiment", f->experiment,
 	    "epoch", (json_int_t)f->epoch, "guardrail", f->guardrail,
 	    "variant", f->variant, "paused_at", now, "reason", reason,
-	    "evidence", pause_evidence(p, f));
+	    "evidence", pause_evidence(f));
 	if (j == NULL) {
 		log_warnx("pause: cannot build the pause message");
 		return;
@@ -705,24 +675,24 @@ pause_deliver(struct pause *p, const struct finding *f, const char *reason,
 	json_decref(j);
 }
 
-void
-pause_finding(struct pause *p, const struct finding *f)
+enum pause_decision
+pause_decide(struct pause *p, const struct finding *f, char **reason)
 {
 	const struct conf *c;
 	enum pause_decision dec;
 	double now = daemon_now();
-	char *reason;
 	int srm;
 
+	*reason = NULL;
 	if (p == NULL || f == NULL || f->experiment == NULL)
-		return;
+		return PAUSE_NONE;
 	c = p->d->conf;
-	srm = pause_is_srm(f);
-	if (f->kind != FINDING_PAUSE && !(f->kind == FINDING_SRM &&
+	srm = f->kind == FINDING_SRM;
+	if (f->kind != FINDING_PAUSE && !(srm &&
 	    f->verdict != VERDICT_UNDECIDED))
-		return;
+		return PAUSE_NONE;
 	if (srm && !c->pause_on_srm)
-		return;	/* SRM alerts; it pauses only when allowed to */
+		return PAUSE_NONE;	/* SRM alerts; it pauses only when allowed */
 
 	if (f->untrusted && !srm)
 		dec = PAUSE_REFUSED_UNTRUSTED;
@@ -736,7 +706,7 @@ pause_finding(struct pause *p, const struct finding *f)
 		dec = PAUSE_PAUSED;
 	p->decisions[dec]++;
 	pause_audit(p, f, dec, now);
-	reason = pause_reason(p, f);
+	*reason = pause_reason(f);
 
 	switch (dec) {
 	case PAUSE_PAUSED:
@@ -746,8 +716,6 @@ pause_finding(struct pause *p, const struct finding *f)
 		    "variant=%s p=%.3g", f->experiment, f->epoch,
 		    f->guardrail ? f->guardrail : "srm",
 		    f->variant ? f->variant : "-", f->p);
-		pause_deliver(p, f, reason, now);
-		alert_pause(p->d->alert, f, 0, reason);
 		break;
 	case PAUSE_DRY_RUN:
 		pause_mark_done(p, f->experiment, f->epoch);
@@ -755,7 +723,6 @@ pause_finding(struct pause *p, const struct finding *f)
 		    "guardrail=%s variant=%s p=%.3g", f->experiment, f->epoch,
 		    f->guardrail ? f->guardrail : "srm",
 		    f->variant ? f->variant : "-", f->p);
-		alert_pause(p->d->alert, f, 1, reason);
 		break;
 	default:
 		log_warnx("pause: not pausing experiment=%s epoch=%u "
@@ -764,7 +731,7 @@ pause_finding(struct pause *p, const struct finding *f)
 		    f->variant ? f->variant : "-", pause_names[dec].reason);
 		break;
 	}
-	free(reason);
+	return dec;
 }
 
 void
@@ -776,7 +743,7 @@ pause_metrics(struct pause *p, struct evbuffer *b)
 		return;
 	metrics_family(b, "stopcock_pause_decisions_total", "counter",
 	    "Pause decisions, by decision and reason.");
-	for (i = 0; i < PAUSE_NDECISIONS; i++)
+	for (i = PAUSE_PAUSED; i < PAUSE_NDECISIONS; i++)
 		evbuffer_add_printf(b, "stopcock_pause_decisions_total"
 		    "{decision=\"%s\",reason=\"%s\"} %llu\n",
 		    pause_names[i].decision, i == PAUSE_PAUSED ? "harm" :
