@@ -12,6 +12,7 @@
 #include <string.h>
 #include <strings.h>
 
+#include "stopcock/addr.h"
 #include "stopcock/conf.h"
 #include "stopcock/log.h"
 #include "stopcock/proto.h"
@@ -386,30 +387,9 @@ conf_table_range_text(const struct conf_option *o, char *buf, size_t size)
 static int
 conf_table_hostport_ok(const char *s)
 {
-	const char *colon, *close, *h;
-	uint64_t port;
+	struct addr a;
 
-	if (*s == '[') {
-		if ((close = strchr(s, ']')) == NULL || close == s + 1)
-			return 0;
-		for (h = s + 1; h < close; h++) {
-			if (strchr("0123456789abcdefABCDEF:.%", *h) == NULL)
-				return 0;
-		}
-		colon = close + 1;
-		if (*colon != ':')
-			return 0;
-	} else {
-		if ((colon = strchr(s, ':')) == NULL || colon == s)
-			return 0;
-		for (h = s; h < colon; h++) {
-			if (*h == ' ' || *h == '/' || *h == '[' || *h == ']')
-				return 0;
-		}
-	}
-	if (parse_u64(colon + 1, 65535, &port) != 0 || port == 0)
-		return 0;
-	return 1;
+	return addr_parse(s, 0, &a, NULL) == 0;
 }
 
 /* "h1:9092,h2:9092": one or more host:port, no blanks, no empty item. */
@@ -570,6 +550,7 @@ conf_table_set(const struct conf_option *o, void *base, const char *v, char **wh
 {
 	char *field = (char *)base + o->offset, range[128];
 	const char *const *c;
+	struct addr addr;
 	double d;
 	int ok;
 	uint64_t u;
@@ -665,11 +646,7 @@ conf_table_set(const struct conf_option *o, void *base, const char *v, char **wh
 		ok = v[0] == '/' && conf_table_printable(v, 1) && strlen(v) <= o->max;
 		break;
 	case T_ADDRESS:
-		if (v[0] == '/')
-			ok = conf_table_printable(v, 1) &&
-			    strlen(v) <= CONF_UNIX_PATH_MAX;
-		else
-			ok = conf_table_hostport_ok(v);
+		ok = addr_parse(v, ADDR_PATH_OK, &addr, NULL) == 0;
 		break;
 	case T_URL:
 		ok = conf_table_url_ok(v) && strlen(v) <= CONF_STRING_MAX;

@@ -30,6 +30,7 @@
 #include <event2/keyvalq_struct.h>
 
 #include "daemon.h"
+#include "stopcock/addr.h"
 #include "stopcock/chart.h"
 #include "stopcock/log.h"
 
@@ -853,35 +854,12 @@ http_request(struct evhttp_request *req, void *arg)
 
 /* ---- life cycle ---- */
 
-/* "host:port", "[v6]:port" or ":port" (loopback) -> host, port. */
-static int
-http_parse_address(const char *s, char **host, uint16_t *port,
-    char **cause)
-{
-	const char *colon = strrchr(s, ':');
-	uint64_t p;
-
-	if (colon == NULL || parse_u64(colon + 1, 65535, &p) != 0) {
-		xasprintf(cause, "http address \"%s\" is not HOST:PORT", s);
-		return -1;
-	}
-	if (colon == s)
-		*host = xstrdup("127.0.0.1");
-	else if (s[0] == '[' && colon[-1] == ']')
-		*host = xstrndup(s + 1, (size_t)(colon - s - 2));
-	else
-		*host = xstrndup(s, (size_t)(colon - s));
-	*port = (uint16_t)p;
-	return 0;
-}
-
 struct http *
 http_new(struct daemon *d, char **cause)
 {
 	struct http *h = xcalloc(1, sizeof *h);
 	const char *addr = d->conf->http;
-	char *host;
-	uint16_t port;
+	struct addr a;
 
 	h->d = d;
 	if (addr == NULL || *addr == '\0') {
@@ -889,7 +867,7 @@ http_new(struct daemon *d, char **cause)
 		    "metrics are off");
 		return h;
 	}
-	if (http_parse_address(addr, &host, &port, cause) != 0) {
+	if (addr_parse(addr, 0, &a, cause) != 0) {
 		free(h);
 		return NULL;
 	}
@@ -904,17 +882,15 @@ http_new(struct daemon *d, char **cause)
 	    EVHTTP_REQ_POST | EVHTTP_REQ_PUT | EVHTTP_REQ_DELETE |
 	    EVHTTP_REQ_OPTIONS | EVHTTP_REQ_PATCH);
 	evhttp_set_gencb(h->evh, http_request, h);
-	h->sock = evhttp_bind_socket_with_handle(h->evh, host, port);
+	h->sock = evhttp_bind_socket_with_handle(h->evh, a.host, a.port);
 	if (h->sock == NULL) {
 		xasprintf(cause, "http: cannot listen on %s", addr);
-		free(host);
 		evhttp_free(h->evh);
 		free(h);
 		return NULL;
 	}
 	log_info("http: listening on %s%s", addr,
 	    d->conf->http_token != NULL ? "" : " (actions off: no token)");
-	free(host);
 	return h;
 }
 

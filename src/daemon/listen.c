@@ -40,6 +40,7 @@
 #include <event2/event.h>
 #include <event2/listener.h>
 
+#include "stopcock/addr.h"
 #include "stopcock/log.h"
 #include "daemon.h"
 
@@ -399,42 +400,31 @@ listen_accept_error_cb(struct evconnlistener *evl, void *arg)
 	    source_name(ls->src));
 }
 
-/* "host:port" or "[v6]:port" to an address; 0 or -1 with *cause. */
+/* "host:port" or "[v6]:port" (addr.h) to a socket address. */
 static int
 listen_resolve(const char *spec, int socktype, struct sockaddr_storage *ss,
     socklen_t *sslen, char **cause)
 {
 	struct addrinfo hints, *res;
-	char *host, *port, *copy;
+	struct addr a;
+	char port[8];
 	int rc;
 
-	copy = xstrdup(spec);
-	port = strrchr(copy, ':');
-	if (port == NULL || port[1] == '\0') {
-		xasprintf(cause, "%s: expected host:port", spec);
-		free(copy);
+	if (addr_parse(spec, 0, &a, cause) != 0)
 		return -1;
-	}
-	*port++ = '\0';
-	host = copy;
-	if (host[0] == '[' && host[strlen(host) - 1] == ']') {
-		host[strlen(host) - 1] = '\0';
-		host++;
-	}
+	snprintf(port, sizeof port, "%u", (unsigned)a.port);
 	memset(&hints, 0, sizeof hints);
 	hints.ai_family = AF_UNSPEC;
 	hints.ai_socktype = socktype;
 	hints.ai_flags = AI_PASSIVE | AI_NUMERICSERV;
-	rc = getaddrinfo(*host != '\0' ? host : NULL, port, &hints, &res);
+	rc = getaddrinfo(a.host, port, &hints, &res);
 	if (rc != 0) {
 		xasprintf(cause, "%s: %s", spec, gai_strerror(rc));
-		free(copy);
 		return -1;
 	}
 	memcpy(ss, res->ai_addr, res->ai_addrlen);
 	*sslen = res->ai_addrlen;
 	freeaddrinfo(res);
-	free(copy);
 	return 0;
 }
 

@@ -35,6 +35,7 @@
 #include <hiredis/adapters/libevent.h>
 #include <openssl/sha.h>
 
+#include "stopcock/addr.h"
 #include "stopcock/log.h"
 #include "daemon.h"
 
@@ -453,40 +454,25 @@ pause_redis_connect(struct pause *p)
 	p->state = REDIS_CONNECTING;
 }
 
-/* "host:port", "[v6]:port", "host" (port 6379), "/path" or "unix:/path". */
+/* The [redis] address: "host:port", "[v6]:port" or a socket path. */
 static int
 pause_redis_address(struct pause *p, const char *addr, char **cause)
 {
-	const char *colon, *host = addr;
-	size_t hostlen;
-	uint64_t port = 6379;
+	struct addr a;
+	char *why = NULL;
 
-	if (strncmp(addr, "redis://", 8) == 0)
-		host = addr + 8;
-	if (strncmp(host, "unix:", 5) == 0 || host[0] == '/') {
-		p->unix_path = xstrdup(host[0] == '/' ? host : host + 5);
-		return 0;
+	if (addr_parse(addr, ADDR_PATH_OK, &a, &why) != 0) {
+		xasprintf(cause, "pause: Redis %s", why);
+		free(why);
+		return -1;
 	}
-	if (host[0] == '[') {
-		if ((colon = strchr(host, ']')) == NULL)
-			goto bad;
-		hostlen = (size_t)(colon - host - 1);
-		host++;
-		colon = colon[1] == ':' ? colon + 1 : NULL;
-	} else {
-		colon = strrchr(host, ':');
-		hostlen = colon ? (size_t)(colon - host) : strlen(host);
+	if (a.is_path)
+		p->unix_path = xstrdup(a.path);
+	else {
+		p->host = xstrdup(a.host);
+		p->port = a.port;
 	}
-	if (colon != NULL && parse_u64(colon + 1, 65535, &port) == -1)
-		goto bad;
-	if (hostlen == 0 || port == 0)
-		goto bad;
-	p->host = xstrndup(host, hostlen);
-	p->port = (int)port;
 	return 0;
-bad:
-	xasprintf(cause, "pause: bad Redis address %s", addr);
-	return -1;
 }
 
 /* Rebuild once-per-epoch and the hourly window from the audit tail. */

@@ -44,6 +44,7 @@
 #include <hiredis/async.h>
 #include <hiredis/adapters/libevent.h>
 
+#include "stopcock/addr.h"
 #include "stopcock/log.h"
 #include "redis_in_int.h"
 
@@ -625,36 +626,20 @@ redis_in_next(struct redis_in *r)
 		r->reading = 1;
 }
 
-/* "host:port", "host" (port 6379), "/path" or "unix:/path". */
+/* "host:port", "[v6]:port" or an absolute socket path (addr.h). */
 static int
 redis_in_address(struct redis_in *r, const char *a, char **cause)
 {
-	const char *colon;
-	uint64_t port;
+	struct addr ad;
 
-	if (strncmp(a, "unix:", 5) == 0)
-		a += 5;
-	if (a[0] == '/') {
-		r->unix_path = xstrdup(a);
-		return 0;
-	}
-	colon = strrchr(a, ':');
-	if (colon == NULL) {
-		r->host = xstrdup(a);
-		r->port = 6379;
-		return 0;
-	}
-	if (parse_u64(colon + 1, 65535, &port) != 0 || port == 0 ||
-	    colon == a) {
-		xasprintf(cause, "redis address %s: expected host:port", a);
+	if (addr_parse(a, ADDR_PATH_OK, &ad, cause) != 0)
 		return -1;
+	if (ad.is_path)
+		r->unix_path = xstrdup(ad.path);
+	else {
+		r->host = xstrdup(ad.host);
+		r->port = ad.port;
 	}
-	r->host = xstrndup(a, (size_t)(colon - a));
-	if (r->host[0] == '[' && r->host[strlen(r->host) - 1] == ']') {
-		memmove(r->host, r->host + 1, strlen(r->host) - 2);
-		r->host[strlen(r->host) - 2] = '\0';
-	}
-	r->port = (int)port;
 	return 0;
 }
 
