@@ -6,12 +6,17 @@
  *  - dead letters: an entry is copied with its fields plus origin and
  *    reason to the dead-letter stream (XADD), and acknowledged only once
  *    the copy is stored;
- *  - entries delivered more than max_deliveries times (XPENDING IDLE with
- *    delivery counts, then XCLAIM to get their fields) become dead letters;
- *  - entries idle on dead consumers are reclaimed (XAUTOCLAIM) and applied
- *    like any other, the checkpoint's ID rule included;
- *  - lag (XINFO GROUPS, or counting entries after the group's last
- *    delivered one when Redis gives no lag) and pending counts (XPENDING
+ *  - entries idle on other consumers (dead ones, or this daemon under an
+ *    older name) are reclaimed: XPENDING IDLE lists them with their
+ *    owner, XCLAIM takes those that are not ours, and they are applied
+ *    like any other, the checkpoint's ID rule and the failure count
+ *    included. Our own pending entries are never claimed: they are
+ *    applied and wait for a checkpoint, and claiming them would only
+ *    raise Redis's delivery counter;
+ *  - lag (XINFO STREAM and GROUPS: Redis's lag, corrected for entries
+ *    trimmed before delivery, 0 once the group has read the last entry;
+ *    counting entries after the group's last delivered one when Redis
+ *    gives no lag), trims before delivery, and pending counts (XPENDING
  *    summary) for metrics and STATUS=.
  * Every command here counts in r->ops; the next read waits for zero.
  */
@@ -24,7 +29,11 @@
 #include "redis_in_int.h"
 
 const char *const redis_in_dead_names[DEAD_N] = {
-	"no_records", "max_deliveries"
+	"no_records", "apply_failed"
+};
+
+const char *const redis_in_trim_names[TRIM_N] = {
+	"pending", "undelivered"
 };
 
 /* Context of one dead-letter move (XADD then XACK). */
@@ -164,8 +173,6 @@ redis_house_dead_letter(struct redis_in *r, struct sid id,
 	free(alen);
 }
 
-/* Apply the lines of one entry's `records` field. */
-
 static void
 redis_house_sweep_cb(redisAsyncContext *ac, void *reply, void *priv)
 {
@@ -223,73 +230,24 @@ redis_house_sweep(struct redis_in *r)
 		r->ops++;
 }
 
+/* Wait before the next claim round: half claim_idle, 1 s to 30 s. */
 static void
-redis_house_autoclaim_cb(redisAsyncContext *ac, void *reply, void *priv)
+redis_house_claim_later(struct redis_in *r)
 {
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const redisReply *list;
-	struct sid next;
-	size_t i;
-	double every;
+	double every = r->d->conf->redis_claim_idle / 2;
 
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	every = r->d->conf->redis_claim_idle / 2;
 	every = every < 1 ? 1 : every > 30 ? 30 : every;
 	r->next_claim = daemon_now() + every;
-	if (rep->type != REDIS_REPLY_ARRAY || rep->elements < 2 ||
-	    redis_in_sid_reply(rep->element[0], &next) != 0 ||
-	    rep->element[1]->type != REDIS_REPLY_ARRAY) {
-		r->errors++;
-		log_warnx("redis: XAUTOCLAIM failed: %.*s", rep->str != NULL ?
-		    (int)rep->len : 0, rep->str != NULL ? rep->str : "");
-		redis_in_op_done(r);
-		return;
-	}
-	list = rep->element[1];
-	for (i = 0; i < list->elements; i++) {
-		/* Redis 6.2 answers nil for entries deleted meanwhile. */
-		if (list->element[i]->type == REDIS_REPLY_NIL)
-			continue;
-		r->claimed++;
-		if (redis_in_entry(r, list->element[i], 0) != 0) {
-			redis_in_fail(r, "XAUTOCLAIM (unexpected answer)",
-			    NULL);
-			return;
-		}
-	}
-	if (list->elements > 0)
-		log_info("redis: reclaimed idle entries count=%zu stream=%s",
-		    list->elements, r->stream);
-	r->claim_cursor = next;
-	if (next.ms != 0 || next.seq != 0)
-		r->next_claim = 0;	/* more to scan: go on soon */
-	redis_in_op_done(r);
+	r->claim_cursor.ms = r->claim_cursor.seq = 0;
 }
 
+/* XCLAIM answer: entries now ours, applied like any delivered one. */
 static void
-redis_house_autoclaim(struct redis_in *r)
-{
-	char cur[SID_BUF];
-
-	if (redis_in_cmd(r, redis_house_autoclaim_cb, NULL,
-	    "XAUTOCLAIM %s %s %s %lld %s COUNT %lld", r->stream, r->group,
-	    r->consumer, (long long)(r->d->conf->redis_claim_idle * 1000),
-	    redis_in_sid_fmt(r->claim_cursor, cur),
-	    (long long)r->d->conf->redis_batch) == 0)
-		r->ops++;
-}
-
-/* XCLAIM answer for entries over max_deliveries: dead-letter them. */
-static void
-redis_house_poison_claim_cb(redisAsyncContext *ac, void *reply, void *priv)
+redis_house_claimed_cb(redisAsyncContext *ac, void *reply, void *priv)
 {
 	struct redis_in *r = ac->data;
 	redisReply *rep = reply;
-	const redisReply *e;
-	struct sid id;
-	size_t i;
+	size_t i, n = 0;
 
 	if (redis_in_answer(r, rep) != 0)
 		return;
@@ -301,21 +259,29 @@ redis_house_poison_claim_cb(redisAsyncContext *ac, void *reply, void *priv)
 		return;
 	}
 	for (i = 0; i < rep->elements; i++) {
-		e = rep->element[i];
-		if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
-		    redis_in_sid_reply(e->element[0], &id) != 0)
+		/* Redis < 7 answers nil for entries deleted meanwhile. */
+		if (rep->element[i]->type == REDIS_REPLY_NIL)
 			continue;
-		if (e->element[1]->type == REDIS_REPLY_NIL) {
-			r->deleted++;
-			redis_house_ack_one(r, id);
-		} else
-			redis_house_dead_letter(r, id, e->element[1],
-			    DEAD_MAX_DELIVERIES);
+		n++;
+		if (redis_in_entry(r, rep->element[i]) != 0) {
+			redis_in_trim_flush(r);
+			redis_in_fail(r, "XCLAIM (unexpected answer)", NULL);
+			return;
+		}
 	}
+	redis_in_trim_flush(r);
+	r->claimed += n;
+	if (n > 0)
+		log_info("redis: reclaimed idle entries of other consumers "
+		    "count=%zu stream=%s", n, r->stream);
 	redis_in_op_done(r);
 }
 
-/* Idle entries of every consumer with their delivery counts. */
+/*
+ * A page of idle pending entries, [[id, consumer, idle ms, deliveries],
+ * ...]: claim the ones that belong to another consumer. Without the IDLE
+ * filter (Redis < 6.2) the idle time is checked here.
+ */
 static void
 redis_house_idle_cb(redisAsyncContext *ac, void *reply, void *priv)
 {
@@ -324,28 +290,29 @@ redis_house_idle_cb(redisAsyncContext *ac, void *reply, void *priv)
 	const redisReply *e;
 	const char **argv;
 	size_t *alen, i, n = 0;
+	long long idle_ms = (long long)(r->d->conf->redis_claim_idle * 1000);
 	struct sid id;
 	char idle[32];
 
 	if (redis_in_answer(r, rep) != 0)
 		return;
 	if (rep->type != REDIS_REPLY_ARRAY) {
-		/* Servers before 6.2 have no IDLE filter: skip the poison
-		 * check there, reclaiming still works. */
-		if (!r->no_idle_filter)
-			log_warnx("redis: XPENDING IDLE failed (%.*s); no "
-			    "delivery-count check", rep->str != NULL ?
-			    (int)rep->len : 0, rep->str != NULL ? rep->str :
-			    "");
-		r->no_idle_filter = 1;
-		redis_house_autoclaim(r);
+		if (!r->no_idle_filter && rep->type == REDIS_REPLY_ERROR) {
+			log_info("redis: XPENDING has no IDLE filter (%.*s): "
+			    "filtering idle entries here", (int)rep->len,
+			    rep->str);
+			r->no_idle_filter = 1;
+			r->next_claim = 0;
+		} else {
+			r->errors++;
+			redis_house_claim_later(r);
+		}
 		redis_in_op_done(r);
 		return;
 	}
 	argv = xreallocarray(NULL, rep->elements + 5, sizeof *argv);
 	alen = xreallocarray(NULL, rep->elements + 5, sizeof *alen);
-	snprintf(idle, sizeof idle, "%lld",
-	    (long long)(r->d->conf->redis_claim_idle * 1000));
+	snprintf(idle, sizeof idle, "%lld", idle_ms);
 	argv[n++] = "XCLAIM";
 	argv[n++] = r->stream;
 	argv[n++] = r->group;
@@ -357,37 +324,50 @@ redis_house_idle_cb(redisAsyncContext *ac, void *reply, void *priv)
 		e = rep->element[i];
 		if (e->type != REDIS_REPLY_ARRAY || e->elements < 4 ||
 		    redis_in_sid_reply(e->element[0], &id) != 0 ||
-		    e->element[3]->type != REDIS_REPLY_INTEGER)
+		    e->element[1]->type != REDIS_REPLY_STRING ||
+		    e->element[2]->type != REDIS_REPLY_INTEGER)
 			continue;
-		/* Claiming delivers it once more. Entries at or below our
-		 * last applied one are done, not poison. */
-		if (e->element[3]->integer <
-		    (long long)r->d->conf->redis_max_deliveries ||
-		    redis_in_sid_cmp(id, r->last) <= 0)
+		r->claim_cursor = id;
+		if (strcmp(e->element[1]->str, r->consumer) == 0 ||
+		    e->element[2]->integer < idle_ms)
 			continue;
 		argv[n] = e->element[0]->str;
 		alen[n++] = e->element[0]->len;
 	}
-	if (n > 5 && redis_in_argv(r, redis_house_poison_claim_cb, NULL, (int)n,
+	if (n > 5 && redis_in_argv(r, redis_house_claimed_cb, NULL, (int)n,
 	    argv, alen) == 0)
 		r->ops++;
 	free(argv);
 	free(alen);
-	redis_house_autoclaim(r);
+	/* A full page may hide more: go on soon, else rest. */
+	if (rep->elements < r->d->conf->redis_batch)
+		redis_house_claim_later(r);
+	else
+		r->next_claim = 0;
 	redis_in_op_done(r);
 }
 
 void
 redis_house_claim(struct redis_in *r)
 {
-	if (r->no_idle_filter) {
-		redis_house_autoclaim(r);
-		return;
-	}
-	if (redis_in_cmd(r, redis_house_idle_cb, NULL,
-	    "XPENDING %s %s IDLE %lld - + %lld", r->stream, r->group,
-	    (long long)(r->d->conf->redis_claim_idle * 1000),
-	    (long long)r->d->conf->redis_batch) == 0)
+	char from[SID_BUF];
+	long long batch = r->d->conf->redis_batch;
+	int rc;
+
+	if (r->claim_cursor.ms == 0 && r->claim_cursor.seq == 0)
+		strcpy(from, "-");
+	else
+		redis_in_sid_fmt(redis_in_sid_next(r->claim_cursor), from);
+	if (r->no_idle_filter)
+		rc = redis_in_cmd(r, redis_house_idle_cb, NULL,
+		    "XPENDING %s %s %s + %lld", r->stream, r->group, from,
+		    batch);
+	else
+		rc = redis_in_cmd(r, redis_house_idle_cb, NULL,
+		    "XPENDING %s %s IDLE %lld %s + %lld", r->stream, r->group,
+		    (long long)(r->d->conf->redis_claim_idle * 1000), from,
+		    batch);
+	if (rc == 0)
 		r->ops++;
 }
 
@@ -420,15 +400,86 @@ redis_house_field(const redisReply *map, const char *name)
 	return NULL;
 }
 
-/* XINFO GROUPS: lag when Redis 7 knows it, else count what is left. */
+/* XINFO STREAM: what lag and trims are judged against. */
+static void
+redis_house_stream_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *v, *first;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	r->info_ok = 0;
+	r->info_added = -1;
+	r->info_first.ms = r->info_first.seq = 0;
+	if (rep->type == REDIS_REPLY_ARRAY &&
+	    redis_in_sid_reply(redis_house_field(rep, "last-generated-id"),
+	    &r->info_lastgen) == 0 &&
+	    (v = redis_house_field(rep, "length")) != NULL &&
+	    v->type == REDIS_REPLY_INTEGER) {
+		r->info_ok = 1;
+		r->info_len = v->integer;
+		v = redis_house_field(rep, "entries-added");
+		if (v != NULL && v->type == REDIS_REPLY_INTEGER)
+			r->info_added = v->integer;
+		first = redis_house_field(rep, "first-entry");
+		if (first != NULL && first->type == REDIS_REPLY_ARRAY &&
+		    first->elements == 2)
+			redis_in_sid_reply(first->element[0], &r->info_first);
+	}
+	redis_in_op_done(r);
+}
+
+/*
+ * Entries trimmed before the group read them: seen when the first entry
+ * left is past the group's last delivered one. Redis 7 counts entries
+ * added and entries read; what neither the stream holds nor the group
+ * read was trimmed unread. trim_gap keeps what is already counted, as
+ * Redis keeps the gap in its lag for good.
+ */
+static void
+redis_house_trims(struct redis_in *r, struct sid delivered, int64_t read)
+{
+	char a[SID_BUF], b[SID_BUF];
+	int64_t gap, n;
+
+	if (r->info_added < 0 || read < 0)
+		return;
+	gap = r->info_added - read;
+	if (redis_in_sid_cmp(delivered, r->info_lastgen) >= 0) {
+		/* Caught up: the whole gap is old trims, counted or not. */
+		r->trim_gap = gap;
+		return;
+	}
+	if (r->info_first.ms == 0 && r->info_first.seq == 0)
+		return;
+	if (redis_in_sid_cmp(r->info_first, delivered) <= 0)
+		return;
+	n = gap - r->info_len - r->trim_gap;
+	if (n <= 0)
+		return;
+	r->trim_gap += n;
+	r->trimmed[TRIM_UNDELIVERED] += (uint64_t)n;
+	log_warnx("redis: entries trimmed before they were delivered count=%"
+	    PRId64 " after=%s before=%s stream=%s", n,
+	    redis_in_sid_fmt(delivered, a), redis_in_sid_fmt(r->info_first, b),
+	    r->stream);
+}
+
+/*
+ * XINFO GROUPS: Redis 7's lag less the trims it keeps counting, 0 once
+ * the group read the newest entry; without a lag, count what is left.
+ */
 static void
 redis_house_info_cb(redisAsyncContext *ac, void *reply, void *priv)
 {
 	struct redis_in *r = ac->data;
 	redisReply *rep = reply;
-	const redisReply *g, *name, *lag, *ld;
+	const redisReply *g, *name, *lag, *ld, *rd;
 	struct sid last;
 	char from[SID_BUF];
+	int64_t v;
 	size_t i;
 
 	if (redis_in_answer(r, rep) != 0)
@@ -444,16 +495,31 @@ redis_house_info_cb(redisAsyncContext *ac, void *reply, void *priv)
 		if (name == NULL || name->type != REDIS_REPLY_STRING ||
 		    strcmp(name->str, r->group) != 0)
 			continue;
-		lag = redis_house_field(g, "lag");
-		if (lag != NULL && lag->type == REDIS_REPLY_INTEGER) {
-			r->lag = lag->integer;
-			r->lag_capped = 0;
-			break;
-		}
 		ld = redis_house_field(g, "last-delivered-id");
-		if (redis_in_sid_reply(ld, &last) == 0 && redis_in_cmd(r,
-		    redis_house_lagscan_cb, NULL, "XRANGE %s %s + COUNT %d",
-		    r->stream, redis_in_sid_fmt(redis_in_sid_next(last), from),
+		if (redis_in_sid_reply(ld, &last) != 0)
+			break;
+		rd = redis_house_field(g, "entries-read");
+		if (r->info_ok)
+			redis_house_trims(r, last, rd != NULL &&
+			    rd->type == REDIS_REPLY_INTEGER ? rd->integer : -1);
+		lag = redis_house_field(g, "lag");
+		if (r->info_ok && redis_in_sid_cmp(last, r->info_lastgen) >= 0) {
+			r->lag = 0;
+			r->lag_capped = 0;
+		} else if (r->info_ok && (r->info_first.ms != 0 ||
+		    r->info_first.seq != 0) &&
+		    redis_in_sid_cmp(r->info_first, last) > 0) {
+			r->lag = r->info_len;	/* nothing left was read */
+			r->lag_capped = 0;
+		} else if (lag != NULL && lag->type == REDIS_REPLY_INTEGER) {
+			v = lag->integer - r->trim_gap;
+			if (r->info_ok && v > r->info_len)
+				v = r->info_len;
+			r->lag = v < 0 ? 0 : v;
+			r->lag_capped = 0;
+		} else if (redis_in_cmd(r, redis_house_lagscan_cb, NULL,
+		    "XRANGE %s %s + COUNT %d", r->stream,
+		    redis_in_sid_fmt(redis_in_sid_next(last), from),
 		    REDIS_IN_LAG_SCAN) == 0)
 			r->ops++;
 		break;
@@ -494,6 +560,9 @@ redis_house_summary_cb(redisAsyncContext *ac, void *reply, void *priv)
 void
 redis_house_info(struct redis_in *r)
 {
+	if (redis_in_cmd(r, redis_house_stream_cb, NULL, "XINFO STREAM %s",
+	    r->stream) == 0)
+		r->ops++;
 	if (redis_in_cmd(r, redis_house_info_cb, NULL, "XINFO GROUPS %s",
 	    r->stream) == 0)
 		r->ops++;
@@ -502,8 +571,3 @@ redis_house_info(struct redis_in *r)
 		r->ops++;
 }
 
-/*
- * The steady loop: one housekeeping step when one is due, else the next
- * blocking read. Nothing is sent while a read or a step is out, so the
- * steps never queue behind a block.
- */

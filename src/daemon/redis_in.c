@@ -19,9 +19,20 @@
  *
  * One connection carries everything. Between two blocking reads the
  * consumer runs its housekeeping (redis_house.c), one step at a time:
- * acknowledgements, dead letters, reclaiming idle entries, lag and
- * pending counts. Entries without `records` are poison and go to the
- * dead-letter stream at once.
+ * acknowledgements, dead letters, reclaiming entries idle on other
+ * consumers (never on itself: its own pending entries are applied and
+ * wait for a checkpoint), lag and pending counts.
+ *
+ * Poison: Redis's delivery counter is not used, because every restart
+ * re-reads our own pending entries and would raise it without anything
+ * having failed. The daemon counts failures itself: before applying an
+ * entry it writes the entry's ID to a small file in the state directory
+ * (redis-applying) and marks it done after; a start that finds an entry
+ * not done knows the last run died applying it. An entry that failed so
+ * max_deliveries times goes to the dead-letter stream instead of being
+ * applied once more, as does an entry without `records` (nothing to
+ * apply). Bad lines inside `records` cost only themselves: they are
+ * counted and logged by ingest.c like any input's.
  *
  * The connection comes back after any failure with exponential backoff
  * (100 ms doubling to 10 s); a watchdog drops it when an answer is late
@@ -30,6 +41,7 @@
  * deferred event.
  */
 #include <errno.h>
+#include <fcntl.h>
 #include <inttypes.h>
 #include <math.h>
 #include <limits.h>
@@ -261,26 +273,112 @@ redis_in_op_done(struct redis_in *r)
 	redis_in_next(r);
 }
 
-static int
-redis_in_is_poison(struct redis_in *r, struct sid id)
-{
-	size_t i;
+#define REDIS_IN_MARK_FILE "redis-applying"
+#define REDIS_IN_MARK_SIZE 64	/* "A <id> <failures>", space padded */
 
-	for (i = 0; i < r->npoison; i++)
-		if (redis_in_sid_cmp(r->poison[i], id) == 0)
-			return 1;
+/*
+ * The crash-loop guard's file: "A <id> <failures>" while an entry is
+ * being applied, "D" once it is. Written without fsync: it guards
+ * against the process dying, whose writes the kernel keeps; after a
+ * power cut it may say less, which only delays a dead letter.
+ */
+static void
+redis_in_mark_open(struct redis_in *r)
+{
+	char *path, buf[REDIS_IN_MARK_SIZE + 1], id[SID_BUF];
+	unsigned failures;
+	ssize_t n;
+
+	xasprintf(&path, "%s/%s", r->d->state_dir, REDIS_IN_MARK_FILE);
+	r->mark_fd = open(path, O_RDWR | O_CREAT | O_CLOEXEC, 0640);
+	if (r->mark_fd == -1) {
+		log_warn("redis: %s: no crash-loop guard", path);
+		free(path);
+		return;
+	}
+	free(path);
+	n = pread(r->mark_fd, buf, REDIS_IN_MARK_SIZE, 0);
+	if (n <= 0 || buf[0] != 'A')
+		return;
+	buf[n] = '\0';
+	if (sscanf(buf, "A %47s %u", id, &failures) != 2 ||
+	    redis_in_sid_parse(id, strlen(id), &r->suspect) != 0)
+		return;
+	r->suspect_failures = failures + 1;
+	log_warnx("redis: the last run died while applying an entry "
+	    "entry=%s failures=%u max_deliveries=%u", id, r->suspect_failures,
+	    (unsigned)r->d->conf->redis_max_deliveries);
+}
+
+static void
+redis_in_mark(struct redis_in *r, const char *text)
+{
+	char buf[REDIS_IN_MARK_SIZE];
+	size_t len = strlen(text);
+
+	if (r->mark_fd == -1)
+		return;
+	memset(buf, ' ', sizeof buf);
+	memcpy(buf, text, len < sizeof buf ? len : sizeof buf);
+	buf[sizeof buf - 1] = '\n';
+	if (pwrite(r->mark_fd, buf, sizeof buf, 0) != (ssize_t)sizeof buf) {
+		log_warn("redis: cannot write %s; no crash-loop guard",
+		    REDIS_IN_MARK_FILE);
+		close(r->mark_fd);
+		r->mark_fd = -1;
+	}
+}
+
+/* Failures to apply id so far: only the entry the last run died in. */
+static unsigned
+redis_in_failures(struct redis_in *r, struct sid id)
+{
+	if (r->suspect_failures > 0 && redis_in_sid_cmp(id, r->suspect) == 0)
+		return r->suspect_failures;
 	return 0;
+}
+
+static void
+redis_in_apply(struct redis_in *r, struct sid id, const redisReply *v)
+{
+	char text[REDIS_IN_MARK_SIZE], buf[SID_BUF];
+
+	snprintf(text, sizeof text, "A %s %u", redis_in_sid_fmt(id, buf),
+	    redis_in_failures(r, id));
+	redis_in_mark(r, text);
+	ingest_lines(r->d, SRC_REDIS, v->str, v->len);
+	redis_in_mark(r, "D");
+	r->last = id;
+	r->entries++;
+}
+
+void
+redis_in_trim_flush(struct redis_in *r)
+{
+	char a[SID_BUF], b[SID_BUF];
+
+	if (r->trim_n == 0)
+		return;
+	r->trimmed[TRIM_PENDING] += r->trim_n;
+	log_warnx("redis: entries trimmed before they were applied count=%"
+	    PRIu64 " first=%s last=%s stream=%s", r->trim_n,
+	    redis_in_sid_fmt(r->trim_first, a),
+	    redis_in_sid_fmt(r->trim_last, b), r->stream);
+	r->trim_n = 0;
 }
 
 /*
  * One delivered entry [id, [field, value, ...]] (or [id, nil] when it
- * was deleted after delivery). Returns -1 on a malformed reply.
+ * was deleted after delivery): applied, skipped (the checkpoint holds
+ * it), or dead-lettered. Returns -1 on a malformed reply.
  */
 int
-redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
+redis_in_entry(struct redis_in *r, const redisReply *e)
 {
 	const redisReply *fields, *f, *v;
 	struct sid id;
+	unsigned failures;
+	char buf[SID_BUF];
 	size_t i;
 
 	if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
@@ -288,8 +386,14 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 		return -1;
 	fields = e->element[1];
 	if (fields->type == REDIS_REPLY_NIL) {
-		/* Trimmed or deleted while pending: nothing to apply. */
+		/* Trimmed or deleted while pending: nothing to apply. Above
+		 * the checkpoint it is lost, and said so. */
 		r->deleted++;
+		if (redis_in_sid_cmp(id, r->last) > 0) {
+			if (r->trim_n++ == 0)
+				r->trim_first = id;
+			r->trim_last = id;
+		}
 		redis_house_ack_one(r, id);
 		return 0;
 	}
@@ -302,8 +406,12 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 		r->ack_due = 1;
 		return 0;
 	}
-	if (check_poison && redis_in_is_poison(r, id)) {
-		redis_house_dead_letter(r, id, fields, DEAD_MAX_DELIVERIES);
+	failures = redis_in_failures(r, id);
+	if (failures >= r->d->conf->redis_max_deliveries) {
+		log_warnx("redis: entry failed to apply %u times (the daemon "
+		    "died applying it): not applying it again entry=%s",
+		    failures, redis_in_sid_fmt(id, buf));
+		redis_house_dead_letter(r, id, fields, DEAD_APPLY_FAILED);
 		return 0;
 	}
 	for (i = 0; i + 1 < fields->elements; i += 2) {
@@ -312,9 +420,7 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 		if (f->type == REDIS_REPLY_STRING && f->len == 7 &&
 		    memcmp(f->str, "records", 7) == 0 &&
 		    v->type == REDIS_REPLY_STRING) {
-			ingest_lines(r->d, SRC_REDIS, v->str, v->len);
-			r->last = id;
-			r->entries++;
+			redis_in_apply(r, id, v);
 			return 0;
 		}
 	}
@@ -324,8 +430,8 @@ redis_in_entry(struct redis_in *r, const redisReply *e, int check_poison)
 
 /* Entries of an XREADGROUP answer: [[stream, [entry, ...]]] or nil. */
 static int
-redis_in_entries(struct redis_in *r, const redisReply *rep, int check_poison,
-    size_t *count, struct sid *lastseen)
+redis_in_entries(struct redis_in *r, const redisReply *rep, size_t *count,
+    struct sid *lastseen)
 {
 	const redisReply *s, *list;
 	size_t i, j;
@@ -342,15 +448,17 @@ redis_in_entries(struct redis_in *r, const redisReply *rep, int check_poison,
 			return -1;
 		list = s->element[1];
 		for (j = 0; j < list->elements; j++) {
-			if (redis_in_entry(r, list->element[j],
-			    check_poison) != 0)
+			if (redis_in_entry(r, list->element[j]) != 0) {
+				redis_in_trim_flush(r);
 				return -1;
+			}
 			if (lastseen != NULL)
 				redis_in_sid_reply(list->element[j]->element[0],
 				    lastseen);
 			(*count)++;
 		}
 	}
+	redis_in_trim_flush(r);
 	return 0;
 }
 
@@ -375,7 +483,7 @@ redis_in_read_cb(redisAsyncContext *ac, void *reply, void *priv)
 		redis_in_fail(r, "XREADGROUP", rep);
 		return;
 	}
-	if (redis_in_entries(r, rep, 0, &n, NULL) != 0) {
+	if (redis_in_entries(r, rep, &n, NULL) != 0) {
 		redis_in_fail(r, "XREADGROUP (unexpected answer)", NULL);
 		return;
 	}
@@ -398,11 +506,10 @@ redis_in_pel_read_cb(redisAsyncContext *ac, void *reply, void *priv)
 		redis_in_fail(r, "XREADGROUP (pending)", rep);
 		return;
 	}
-	if (redis_in_entries(r, rep, 1, &n, &r->pel_cursor) != 0) {
+	if (redis_in_entries(r, rep, &n, &r->pel_cursor) != 0) {
 		redis_in_fail(r, "XREADGROUP (unexpected answer)", NULL);
 		return;
 	}
-	r->npoison = 0;
 	if (n < r->d->conf->redis_batch || n == 0) {
 		log_info("redis: own pending entries read back stream=%s "
 		    "applied=%" PRIu64 " skipped=%" PRIu64, r->stream,
@@ -417,62 +524,19 @@ redis_in_pel_read_cb(redisAsyncContext *ac, void *reply, void *priv)
 	redis_in_pel_next(r);
 }
 
-/* Delivery counts of the next batch of our own pending entries. */
-static void
-redis_in_pel_count_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	const redisReply *e;
-	struct sid id;
-	size_t i;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type != REDIS_REPLY_ARRAY) {
-		redis_in_fail(r, "XPENDING (own)", rep);
-		return;
-	}
-	r->npoison = 0;
-	r->poison = xreallocarray(r->poison, rep->elements + 1,
-	    sizeof *r->poison);
-	for (i = 0; i < rep->elements; i++) {
-		e = rep->element[i];
-		if (e->type != REDIS_REPLY_ARRAY || e->elements < 4 ||
-		    redis_in_sid_reply(e->element[0], &id) != 0 ||
-		    e->element[3]->type != REDIS_REPLY_INTEGER)
-			continue;
-		/* The read after this one delivers it once more. */
-		if (e->element[3]->integer >=
-		    (long long)r->d->conf->redis_max_deliveries &&
-		    redis_in_sid_cmp(id, r->last) > 0)
-			r->poison[r->npoison++] = id;
-	}
-}
-
 /*
  * Next batch of our own pending entries (those delivered to us before a
- * crash or a lost connection): their delivery counts first, then the
- * entries, pipelined so both see the same batch.
+ * crash or a lost connection), from just after the cursor.
  */
 static void
 redis_in_pel_next(struct redis_in *r)
 {
-	char cur[SID_BUF], from[SID_BUF];
-	long long batch = r->d->conf->redis_batch;
+	char cur[SID_BUF];
 
-	redis_in_sid_fmt(r->pel_cursor, cur);
-	if (r->pel_cursor.ms == 0 && r->pel_cursor.seq == 0)
-		strcpy(from, "-");
-	else
-		redis_in_sid_fmt(redis_in_sid_next(r->pel_cursor), from);
-	if (redis_in_cmd(r, redis_in_pel_count_cb, NULL,
-	    "XPENDING %s %s %s + %lld %s", r->stream, r->group, from, batch,
-	    r->consumer) != 0)
-		return;
 	redis_in_cmd(r, redis_in_pel_read_cb, NULL,
 	    "XREADGROUP GROUP %s %s COUNT %lld STREAMS %s %s", r->group,
-	    r->consumer, batch, r->stream, cur);
+	    r->consumer, (long long)r->d->conf->redis_batch, r->stream,
+	    redis_in_sid_fmt(r->pel_cursor, cur));
 }
 
 static void
@@ -490,7 +554,6 @@ redis_in_group_cb(redisAsyncContext *ac, void *reply, void *priv)
 	}
 	r->backoff = REDIS_IN_BACKOFF_MIN;
 	r->pel_cursor.ms = r->pel_cursor.seq = 0;
-	r->npoison = 0;
 	redis_in_set_state(r, RS_PENDING);
 	redis_in_pel_next(r);
 }
@@ -595,7 +658,11 @@ redis_in_watchdog_cb(evutil_socket_t fd, short what, void *arg)
 	}
 }
 
-/* Acknowledge our pending entries at or below the covered ID. */
+/*
+ * The steady loop: one housekeeping step when one is due, else the next
+ * blocking read. Nothing is sent while a read or a step is out, so the
+ * steps never queue behind a block.
+ */
 void
 redis_in_next(struct redis_in *r)
 {
@@ -684,6 +751,7 @@ redis_in_new(struct daemon *d, const char *last_id, char **cause)
 	r->lag = -1;
 	r->pending = -1;
 	r->pending_own = -1;
+	r->mark_fd = -1;
 	r->backoff = REDIS_IN_BACKOFF_MIN;
 	r->address = xstrdup(conf->redis_address);
 	r->stream = xstrdup(conf->redis_stream);
@@ -703,6 +771,7 @@ redis_in_new(struct daemon *d, const char *last_id, char **cause)
 	}
 	/* The restored state covers everything up to its last ID. */
 	r->covered = r->last;
+	redis_in_mark_open(r);
 	r->retry_ev = evtimer_new(d->base, redis_in_retry_cb, r);
 	r->fail_ev = event_new(d->base, -1, 0, redis_in_fail_cb, r);
 	r->watchdog_ev = event_new(d->base, -1, EV_PERSIST,
@@ -753,7 +822,8 @@ redis_in_free(struct redis_in *r)
 	free(r->group);
 	free(r->consumer);
 	free(r->dead);
-	free(r->poison);
+	if (r->mark_fd != -1)
+		close(r->mark_fd);
 	free(r);
 }
 
@@ -808,7 +878,7 @@ redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 	metrics_counter(b, "stopcock_redis_skipped_total", "Entries read "
 	    "back that the checkpoint already covered.", r->skipped);
 	metrics_counter(b, "stopcock_redis_claimed_total", "Entries "
-	    "reclaimed from idle consumers.", r->claimed);
+	    "reclaimed from other, idle consumers.", r->claimed);
 	metrics_counter(b, "stopcock_redis_acked_total", "Entries "
 	    "acknowledged.", r->acked);
 	metrics_counter(b, "stopcock_redis_reconnects_total", "Connection "
@@ -822,6 +892,12 @@ redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 		evbuffer_add_printf(b, "stopcock_redis_dead_letter_total{"
 		    "reason=\"%s\"} %" PRIu64 "\n", redis_in_dead_names[i],
 		    r->dead_count[i]);
+	metrics_family(b, "stopcock_redis_trimmed_total", "counter",
+	    "Entries trimmed from the stream before they were applied: "
+	    "pending on us above the checkpoint, or never delivered.");
+	for (i = 0; i < TRIM_N; i++)
+		evbuffer_add_printf(b, "stopcock_redis_trimmed_total{when=\"%s\"} "
+		    "%" PRIu64 "\n", redis_in_trim_names[i], r->trimmed[i]);
 	metrics_counter(b, "stopcock_redis_dead_letter_failed_total",
 	    "Dead-letter moves that Redis refused.", r->dead_failed);
 }
@@ -829,7 +905,7 @@ redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 json_t *
 redis_in_json(struct redis_in *r)
 {
-	json_t *o = json_object(), *dead = json_object();
+	json_t *o = json_object(), *dead = json_object(), *trimmed;
 	char buf[SID_BUF];
 	int i;
 
@@ -855,6 +931,11 @@ redis_in_json(struct redis_in *r)
 	json_object_set_new(o, "entries", json_integer((json_int_t)r->entries));
 	json_object_set_new(o, "skipped", json_integer((json_int_t)r->skipped));
 	json_object_set_new(o, "deleted", json_integer((json_int_t)r->deleted));
+	trimmed = json_object();
+	for (i = 0; i < TRIM_N; i++)
+		json_object_set_new(trimmed, redis_in_trim_names[i],
+		    json_integer((json_int_t)r->trimmed[i]));
+	json_object_set_new(o, "trimmed", trimmed);
 	json_object_set_new(o, "claimed", json_integer((json_int_t)r->claimed));
 	json_object_set_new(o, "acked", json_integer((json_int_t)r->acked));
 	json_object_set_new(o, "reconnects",

@@ -31,7 +31,15 @@ enum redis_in_state {
 	RS_STOPPED	/* shutting down: never reconnect */
 };
 
-enum redis_in_dead { DEAD_NO_RECORDS, DEAD_MAX_DELIVERIES, DEAD_N };
+/*
+ * Why an entry went to the dead-letter stream: it had no `records` field
+ * (nothing to apply, ever), or applying it failed max_deliveries times
+ * (the daemon died while applying it that often: a crash loop).
+ */
+enum redis_in_dead { DEAD_NO_RECORDS, DEAD_APPLY_FAILED, DEAD_N };
+
+/* Where trimmed entries were found (for the trimmed counter's label). */
+enum redis_in_trim { TRIM_PENDING, TRIM_UNDELIVERED, TRIM_N };
 
 /* A stream entry ID. 0-0 is below every real entry. */
 struct sid {
@@ -63,8 +71,16 @@ struct redis_in {
 	int			 ack_due;
 	struct sid		 pel_cursor;
 	struct sid		 claim_cursor;
-	struct sid		*poison;	/* over max_deliveries */
-	size_t			 npoison;
+
+	/*
+	 * Failures to apply, counted by the daemon itself (never Redis's
+	 * delivery counter, which our own re-reads raise): a small file in
+	 * the state directory names the entry being applied; if it is still
+	 * there at start, the last run died applying that entry.
+	 */
+	int			 mark_fd;	/* -1: no crash-loop guard */
+	struct sid		 suspect;	/* entry the last run died in */
+	unsigned		 suspect_failures;
 
 	struct event		*retry_ev;
 	struct event		*watchdog_ev;
@@ -87,6 +103,17 @@ struct redis_in {
 	uint64_t		 entries;	/* applied */
 	uint64_t		 skipped;	/* at or below the checkpoint */
 	uint64_t		 deleted;	/* pending, gone from stream */
+	uint64_t		 trimmed[TRIM_N];	/* before being applied */
+	int64_t			 trim_gap;	/* undelivered trims counted */
+	/* XINFO STREAM, read just before XINFO GROUPS on each info round */
+	int			 info_ok;
+	struct sid		 info_lastgen;	/* last-generated-id */
+	struct sid		 info_first;	/* first entry left, 0-0 none */
+	int64_t			 info_added;	/* entries-added, -1 unknown */
+	int64_t			 info_len;
+	struct sid		 trim_first;	/* run being gathered */
+	struct sid		 trim_last;
+	uint64_t		 trim_n;
 	uint64_t		 dead_count[DEAD_N];
 	uint64_t		 dead_failed;
 	uint64_t		 claimed;
@@ -95,8 +122,9 @@ struct redis_in {
 	uint64_t		 errors;
 };
 
-/* Context of one dead-letter move (XADD then XACK). */
+/* Reason labels for metrics, JSON and the dead-letter entries. */
 extern const char *const redis_in_dead_names[DEAD_N];
+extern const char *const redis_in_trim_names[TRIM_N];
 
 /* redis_in.c */
 int		 redis_in_sid_parse(const char *, size_t, struct sid *);
@@ -112,8 +140,9 @@ int		 redis_in_cmd(struct redis_in *, redisCallbackFn *, void *,
 int		 redis_in_argv(struct redis_in *, redisCallbackFn *, void *,
 		    int argc, const char **argv, const size_t *lens);
 void		 redis_in_op_done(struct redis_in *);
-int		 redis_in_entry(struct redis_in *, const redisReply *,
-		    int check_poison);
+int		 redis_in_entry(struct redis_in *, const redisReply *);
+/* Log the run of trimmed pending entries redis_in_entry gathered. */
+void		 redis_in_trim_flush(struct redis_in *);
 void		 redis_in_next(struct redis_in *);
 
 /* redis_house.c */

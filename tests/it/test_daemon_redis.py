@@ -11,13 +11,15 @@ whose failed searches are far more frequent than the control's.
     the daemon reconnects and nothing is lost.
  3. Redis frozen (SIGSTOP) longer than block + 5 s: the watchdog drops the
     connection, and after SIGCONT records flow again.
- 4. An entry without a `records` field, and one delivered more than
-    max_deliveries times to a dead consumer, end in the dead-letter stream
-    with origin and reason; an entry idle on a dead consumer is reclaimed
-    and applied.
+ 4. An entry without a `records` field, and one the daemon died applying
+    max_deliveries times (its crash-loop guard file says four deaths, this
+    start is the fifth), end in the dead-letter stream with origin and
+    reason; an entry delivered six times to a dead consumer is reclaimed
+    and applied, not taken for poison.
 """
 import http.client
 import json
+import os
 import random
 import signal
 import threading
@@ -200,52 +202,68 @@ def poison_run(tap):
     with Redis("poison") as redis:
         stream, group = "stopcock:poison", "stopcock"
         dead = "stopcock:poison:dead"
+        consumer = "it-poison"
         redis.cmd("XGROUP", "CREATE", stream, group, "$", "MKSTREAM")
         redis.xadd(stream, {"records": "@%.1f plan %s control=50 "
                                       "fuzzy=50" % (t0, EXP)})
-        # Delivered to consumer "ghost" six times: above max_deliveries=5.
-        over_id = redis.xadd(stream, {"records": "@%.1f expose %s control"
-                                      % (t0, EXP), "origin_app": "mobile"})
-        redis.cmd("XREADGROUP", "GROUP", group, "ghost", "COUNT", "2",
+        # Delivered to us before "crashes": the daemon died applying it
+        # four times already (the crash-loop guard's file says so, as
+        # the daemon writes it), so this start makes the fifth failure.
+        crashy_id = redis.xadd(stream, {"records": "@%.1f expose %s control"
+                                        % (t0, EXP), "origin_app": "mobile"})
+        redis.cmd("XREADGROUP", "GROUP", group, consumer, "COUNT", "2",
+                  "STREAMS", stream, ">")
+        # Delivered six times to "ghost", which died: Redis's delivery
+        # counter is not a failure count, so it is reclaimed and applied.
+        busy_id = redis.xadd(stream, {"records": "@%.1f expose %s fuzzy 7"
+                                      % (t0, EXP)})
+        redis.cmd("XREADGROUP", "GROUP", group, "ghost", "COUNT", "1",
                   "STREAMS", stream, ">")
         for _ in range(5):
-            redis.cmd("XCLAIM", stream, group, "ghost", "0", over_id)
-        # Delivered once to a consumer that died: to be reclaimed.
-        redis.xadd(stream, {"records": "@%.1f expose %s fuzzy 7"
-                                      % (t0, EXP)})
-        redis.cmd("XREADGROUP", "GROUP", group, "ghost2", "COUNT", "1",
-                  "STREAMS", stream, ">")
+            redis.cmd("XCLAIM", stream, group, "ghost", "0", busy_id)
         time.sleep(1.2)	# older than claim_idle = 1s
         d = Daemon("poison", redis=redis, guardrails=GUARDRAILS, tcp=False,
                    udp=False, unix=False, start=False)
-        d.stream, d.dead = stream, dead
+        d.stream, d.dead, d.consumer = stream, dead, consumer
         d.write_conf(d._conf(GUARDRAILS, "", {}, {"stream": stream,
-                                                  "dead_letter": dead}))
+                                                  "dead_letter": dead,
+                                                  "consumer": consumer}))
+        os.makedirs(d.state)
+        with open(os.path.join(d.state, "redis-applying"), "w") as f:
+            f.write(("A %s 4" % crashy_id).ljust(63) + "\n")
         with d:
             d.start()
             no_rec_id = redis.xadd(stream, {"note": "no records here"})
             ck = d.wait_checkpoint(
                 lambda c: c["counters"]["redis"]["dead_lettered"]
-                ["max_deliveries"] == 1 and
+                ["apply_failed"] == 1 and
                 c["counters"]["redis"]["dead_lettered"]["no_records"] == 1
                 and Daemon.records(c) == 2, 15)
-            tap.ok(ck is not None, "both poison entries dead-lettered, the "
-                   "idle one reclaimed and applied")
+            tap.ok(ck is not None, "the entry that failed 5 times and the "
+                   "one without records dead-lettered, the idle one "
+                   "reclaimed and applied")
             ck = ck or d.read_checkpoint()
             tap.diag(json.dumps(ck["counters"]["redis"]))
             dl = {f.get("origin"): f for _, f in redis.xrange(dead)}
-            tap.ok(over_id in dl and dl[over_id].get("reason") ==
-                   "max_deliveries" and dl[over_id].get("origin_app") ==
-                   "mobile", "over-delivered entry in the dead-letter stream "
-                   "with its fields, origin and reason", dl)
+            tap.ok(crashy_id in dl and dl[crashy_id].get("reason") ==
+                   "apply_failed" and dl[crashy_id].get("origin_app") ==
+                   "mobile", "failed entry in the dead-letter stream with "
+                   "its fields, origin and reason", dl)
             tap.ok(no_rec_id in dl and dl[no_rec_id].get("reason") ==
                    "no_records" and dl[no_rec_id].get("note") ==
                    "no records here", "entry without records in the "
                    "dead-letter stream", dl)
-            tap.eq(summary_exposures(ck), {(EXP, "control"): 0, (EXP, "fuzzy"): 7},
-                   "reclaimed entry applied; the poison one was not")
+            tap.ok(busy_id not in dl, "the entry delivered 6 times to a "
+                   "dead consumer is not dead-lettered")
+            tap.eq(summary_exposures(ck), {(EXP, "control"): 0,
+                                           (EXP, "fuzzy"): 7},
+                   "reclaimed entry applied; the failed one was not")
             tap.ok(ck["counters"]["redis"]["claimed"] >= 1,
                    "reclaim counted")
+            log = d.log_text()
+            tap.ok("died while applying an entry entry=%s failures=5"
+                   % crashy_id in log and "failed to apply 5 times" in log,
+                   "the failure count and the dead letter are logged")
             gone = wait_for(lambda: d.checkpoint() and
                             redis.xpending(stream, group)[0] == 0, 10)
             tap.ok(gone, "nothing left pending", redis.xpending(stream, group))
