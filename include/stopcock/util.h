@@ -42,6 +42,10 @@ int parse_u64(const char *s, uint64_t max, uint64_t *out);
 /* "250ms", "1s", "5m", "2h", or a bare number of seconds. */
 int parse_duration(const char *s, double *seconds);
 
+/* digest.c: the first nbytes (at most 32) of SHA-256 over p as lowercase
+ * hex into out, which holds 2 * nbytes + 1. */
+void digest_sha256_hex(const void *p, size_t len, size_t nbytes, char *out);
+
 /* Constant-time comparison for secrets (bearer tokens). */
 int timingsafe_eq(const void *, size_t, const void *, size_t);
 

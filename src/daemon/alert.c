@@ -21,8 +21,6 @@
 #include <string.h>
 #include <syslog.h>
 
-#include <openssl/sha.h>
-
 #include "stopcock/log.h"
 #include "daemon.h"
 
@@ -132,18 +130,15 @@ static void
 alert_make_id(char *out, const char *experiment, uint32_t epoch,
     const char *guardrail, const char *variant, const char *what)
 {
-	unsigned char md[SHA256_DIGEST_LENGTH];
 	char *s;
-	int len, i;
+	int len;
 
 	/* NUL-separated so no two identities share a string. */
 	len = xasprintf(&s, "%s%c%u%c%s%c%s%c%s", experiment, 0, epoch, 0,
 	    guardrail, 0, variant, 0, what);
-	SHA256((unsigned char *)s, (size_t)len, md);
-	free(s);
 	memcpy(out, "sc_", 3);
-	for (i = 0; i < ALERT_ID_BYTES; i++)
-		snprintf(out + 3 + 2 * i, 3, "%02x", md[i]);
+	digest_sha256_hex(s, (size_t)len, ALERT_ID_BYTES, out + 3);
+	free(s);
 }
 
 /* <public_url>/?experiment=ID; names are URL-safe ([A-Za-z0-9._:-]). */

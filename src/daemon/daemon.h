@@ -149,6 +149,9 @@ void		 metrics_counter(struct evbuffer *, const char *name,
 		    const char *help, uint64_t);
 void		 metrics_gauge(struct evbuffer *, const char *name,
 		    const char *help, double);
+/* One label, its value escaped; first: no comma before it. */
+void		 metrics_label(struct evbuffer *, const char *key,
+		    const char *value, int first);
 
 /* durable.c: whole-or-nothing files (tmp, fsync, rename, fsync dir). */
 int		 durable_write(const char *dir, const char *path,

@@ -597,28 +597,6 @@ struct http_scrape {
 	struct evbuffer	*fam[FAM_N];
 };
 
-/* A label value as the exposition format wants it: backslash, double
- * quote and newline escaped. */
-static void
-http_label(struct evbuffer *b, const char *key, const char *value,
-    int first)
-{
-	const char *p;
-
-	evbuffer_add_printf(b, "%s%s=\"", first ? "" : ",", key);
-	for (p = value != NULL ? value : ""; *p != '\0'; p++) {
-		if (*p == '\\')
-			evbuffer_add(b, "\\\\", 2);
-		else if (*p == '"')
-			evbuffer_add(b, "\\\"", 2);
-		else if (*p == '\n')
-			evbuffer_add(b, "\\n", 2);
-		else
-			evbuffer_add(b, p, 1);
-	}
-	evbuffer_add(b, "\"", 1);
-}
-
 static void
 http_value(struct evbuffer *b, double v)
 {
@@ -637,11 +615,11 @@ http_sample(struct http_scrape *s, enum http_fam fam,
 	struct evbuffer *b = s->fam[fam];
 
 	evbuffer_add_printf(b, "%s{", http_fams[fam].name);
-	http_label(b, "experiment", f->experiment, 1);
+	metrics_label(b, "experiment", f->experiment, 1);
 	if (fam <= FAM_ALPHA)
-		http_label(b, "guardrail", f->guardrail, 0);
+		metrics_label(b, "guardrail", f->guardrail, 0);
 	if (variant != NULL)
-		http_label(b, "variant", variant, 0);
+		metrics_label(b, "variant", variant, 0);
 	http_value(b, v);
 }
 

@@ -33,7 +33,6 @@
 #include <hiredis/hiredis.h>
 #include <hiredis/async.h>
 #include <hiredis/adapters/libevent.h>
-#include <openssl/sha.h>
 
 #include "stopcock/addr.h"
 #include "stopcock/log.h"
@@ -46,6 +45,7 @@
 #define PAUSE_BACKOFF_MIN	0.5
 #define PAUSE_BACKOFF_MAX	30.0
 #define PAUSE_RATE_MAX		10000	/* cap on pause_max_per_hour */
+#define PAUSE_ID_BYTES		16	/* of SHA-256, as hex after "sp_" */
 
 /* By enum pause_decision (daemon.h); PAUSE_NONE is never audited. */
 static const struct {
@@ -609,21 +609,18 @@ pause_deliver(struct pause *p, const struct finding *f, const char *reason)
 {
 	const struct conf *c;
 	double now = daemon_now();
-	unsigned char md[SHA256_DIGEST_LENGTH];
-	char id[3 + 32 + 1], *s, *key, *value;
+	char id[3 + 2 * PAUSE_ID_BYTES + 1], *s, *key, *value;
 	json_t *j;
-	int i, n;
+	int n;
 
 	if (p == NULL || f == NULL || f->experiment == NULL)
 		return;
 	c = p->d->conf;
 	/* The webhook-id is stable per experiment and epoch. */
 	n = xasprintf(&s, "%s%c%u%cpause", f->experiment, 0, f->epoch, 0);
-	SHA256((unsigned char *)s, (size_t)n, md);
-	free(s);
 	memcpy(id, "sp_", 3);
-	for (i = 0; i < 16; i++)
-		snprintf(id + 3 + 2 * i, 3, "%02x", md[i]);
+	digest_sha256_hex(s, (size_t)n, PAUSE_ID_BYTES, id + 3);
+	free(s);
 
 	j = json_pack("{s:s, s:s, s:s, s:I, s:s?, s:s?, s:f, s:s, s:o}",
 	    "id", id, "type", "stopcock.pause", "experiment", f->experiment,

@@ -917,20 +917,6 @@ webhook_post(struct webhook *w, const char *receiver, const char *id,
 	return -1;
 }
 
-/* Prometheus label value escaping: backslash, quote, newline. */
-static void
-webhook_label(struct evbuffer *b, const char *s)
-{
-	for (; *s != '\0'; s++) {
-		if (*s == '\\' || *s == '"')
-			evbuffer_add_printf(b, "\\%c", *s);
-		else if (*s == '\n')
-			evbuffer_add(b, "\\n", 2);
-		else
-			evbuffer_add(b, s, 1);
-	}
-}
-
 void
 webhook_metrics(struct webhook *w, struct evbuffer *b)
 {
@@ -980,9 +966,9 @@ webhook_metrics(struct webhook *w, struct evbuffer *b)
 			case 5: v = r->nwaiting + r->ninflight; break;
 			default: v = r->spool_errors; break;
 			}
-			evbuffer_add_printf(b, "%s{receiver=\"", m[k].name);
-			webhook_label(b, r->name);
-			evbuffer_add_printf(b, "\"} %" PRIu64 "\n", v);
+			evbuffer_add_printf(b, "%s{", m[k].name);
+			metrics_label(b, "receiver", r->name, 1);
+			evbuffer_add_printf(b, "} %" PRIu64 "\n", v);
 		}
 	}
 }

@@ -34,12 +34,14 @@ Pieces:
                  summary, for comparing the daemon with the offline engine.
   exposures(lines)       count expose records per (experiment, variant)
                  straight from the text, as an outside check.
+  metrics(d)     the daemon's /metrics as {"name{labels}": value}.
 
 Environment: STOPCOCK_BUILD (directory holding stopcockd and stopcock,
 default "build") and STOPCOCK_TEST_OUT (logs; default BUILD/test-output).
 Daemon logs go to OUT/<name>-stopcockd.log, Redis logs to OUT/<name>-redis.log.
 """
 import hashlib
+import http.client
 import json
 import os
 import re
@@ -651,6 +653,23 @@ class Daemon:
     @staticmethod
     def rejected(ck, source):
         return ck["counters"]["ingest"]["rejected"][source]
+
+
+def metrics(d):
+    """{"name" or "name{labels}" (as written): value} from d's /metrics;
+    the full Prometheus parser is tested in test_metrics.py."""
+    c = http.client.HTTPConnection("127.0.0.1", d.http, timeout=10)
+    try:
+        c.request("GET", "/metrics")
+        text = c.getresponse().read().decode()
+    finally:
+        c.close()
+    out = {}
+    for line in text.splitlines():
+        if line and not line.startswith("#"):
+            name, _, value = line.rpartition(" ")
+            out[name] = float(value)
+    return out
 
 
 # --- outside references ----------------------------------------------------

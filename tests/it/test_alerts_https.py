@@ -15,12 +15,11 @@ http.server wrapped by the ssl module):
 Invented scenario: a recipe box's "box_v3" experiment whose error share
 goes from 2% to 9% (guardrail "errors", proportion).
 """
-import http.client
 import os
 import sys
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _lib import Daemon, Tap, wait_for  # noqa: E402
+from _lib import Daemon, Tap, metrics, wait_for  # noqa: E402
 from _alertlib import (SECRET, Receiver, harmful_records,  # noqa: E402
                        make_certs, namespace_wrap, unshare_ok)
 
@@ -30,17 +29,6 @@ metric = errors
 test = proportion
 harm = increase
 """
-
-
-def metrics(d):
-    c = http.client.HTTPConnection("127.0.0.1", d.http, timeout=10)
-    try:
-        c.request("GET", "/metrics")
-        text = c.getresponse().read().decode()
-    finally:
-        c.close()
-    return {l.rpartition(" ")[0]: float(l.rpartition(" ")[2])
-            for l in text.splitlines() if l and not l.startswith("#")}
 
 
 def main():

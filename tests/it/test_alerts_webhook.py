@@ -26,7 +26,7 @@ import sys
 import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _lib import Daemon, Tap, free_port, wait_for  # noqa: E402
+from _lib import Daemon, Tap, free_port, metrics, wait_for  # noqa: E402
 from _alertlib import (SECRET, Receiver, harmful_records,  # noqa: E402
                        verify)
 
@@ -46,21 +46,6 @@ def alert_id(experiment, epoch, guardrail, variant, kind):
     ident = b"\0".join(s.encode() for s in
                        (experiment, str(epoch), guardrail, variant, kind))
     return "sc_" + hashlib.sha256(ident).hexdigest()[:32]
-
-
-def metrics(d):
-    c = http.client.HTTPConnection("127.0.0.1", d.http, timeout=10)
-    try:
-        c.request("GET", "/metrics")
-        text = c.getresponse().read().decode()
-    finally:
-        c.close()
-    out = {}
-    for line in text.splitlines():
-        if line and not line.startswith("#"):
-            name, _, value = line.rpartition(" ")
-            out[name] = float(value)
-    return out
 
 
 def get_json(d, path):

@@ -20,6 +20,10 @@
 
 #include "stopcock/proto.h"
 
+/* xorshift64*: the random cases are the same on every run. */
+#define RNG_SEED 0x9e3779b97f4a7c15ULL
+#include "rng.h"
+
 struct pcase {
 	const char		*line;
 	enum proto_status	 want;
@@ -713,18 +717,6 @@ test_format_attrs(void **state)
 	memset(r.unit, 'a', PROTO_UNIT_MAX + 1);
 	r.unit_len = PROTO_UNIT_MAX + 1;
 	assert_int_equal(proto_format(&r, buf, sizeof buf), -1);
-}
-
-/* xorshift64*, so the random cases are the same on every run. */
-static uint64_t rng_state = 0x9e3779b97f4a7c15ULL;
-
-static uint64_t
-rng(void)
-{
-	rng_state ^= rng_state >> 12;
-	rng_state ^= rng_state << 25;
-	rng_state ^= rng_state >> 27;
-	return rng_state * 0x2545f4914f6cdd1dULL;
 }
 
 /* A random decimal string in the grammar, weighted toward the fast path. */

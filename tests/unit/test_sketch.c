@@ -19,16 +19,9 @@
 
 #include "stopcock/sketch.h"
 
-static uint64_t rng_state = 0x853c49e6748fea9bULL;
-
-static uint64_t
-rng(void)
-{
-	rng_state ^= rng_state >> 12;
-	rng_state ^= rng_state << 25;
-	rng_state ^= rng_state >> 27;
-	return rng_state * 0x2545f4914f6cdd1dULL;
-}
+/* xorshift64*: the random cases are the same on every run. */
+#define RNG_SEED 0x853c49e6748fea9bULL
+#include "rng.h"
 
 static double
 unif(void)
