@@ -118,6 +118,10 @@ struct engine_counters {
 	uint64_t	 findings;
 	uint64_t	 grouped_series;	/* series that began unit groups */
 	uint64_t	 srm_late;	/* exposures behind the watermark */
+	uint64_t	 metric_late;	/* metric records behind their metric's
+					 * watermark (applied at once) */
+	uint64_t	 held_forced;	/* applied early: ENGINE_HELD_MAX */
+	uint64_t	 held;		/* metric records waiting (gauge) */
 };
 
 struct engine;

@@ -2,8 +2,8 @@
  * change.c: change detection beside each guardrail's running test. The
  * running test weighs the whole epoch, so after a long healthy stretch a
  * new harm is diluted by the past and found late (its delay grows with the
- * square root of the history). Here every mean, proportion and rate test
- * also cuts its data into blocks, turns each block into one-sided harm
+ * square root of the history). Here every test (a quantile through the
+ * share of values beyond a frozen threshold) also cuts its data into blocks, turns each block into one-sided harm
  * evidence (score X = d / V, information I = 1 / V, with d the block's
  * excess beyond the margin in the harmful direction) and feeds an
  * e-detector: a mixture over excess sizes of Page's CUSUM (Page 1954;
@@ -69,28 +69,26 @@ change_threshold(const struct engine *eng, const struct experiment *e)
 }
 
 /*
- * Offer the test's current tallies. Returns 1 when the detector crossed
- * its threshold on a block closed now, else 0. sig2_t and sig2_c are the
- * per-record variances of each arm (mean: of a value; proportion: of a
- * trial, times the design effect, per trial; rate: of a record's ratio),
- * k the relative margin's factor on the control, m the absolute margin.
+ * One look's cumulative (records, numerator, denominator) per arm, a the
+ * control and b the treatment; prop: the numerator counts events among
+ * trials (variances are per trial), else values per record. s is +1 when
+ * a larger treatment numerator is harmful. Returns 1 when the detector
+ * crossed its threshold on a block closed now.
  */
-int
-change_offer(const struct engine *eng, const struct experiment *e,
-    struct test *t, const struct conf_guardrail *g, const struct series *a,
-    const struct series *b, double sig2_t, double sig2_c, double k,
-    double m)
+static int
+change_block(const struct engine *eng, const struct experiment *e,
+    struct test *t, const struct conf_guardrail *g, int prop,
+    const double ca[3], const double cb[3], double sig2_t, double sig2_c,
+    double k, double m, double s)
 {
-	double ca[3], cb[3], dn_a, dn_b, dr_a, dr_b, va, vb, V, d, s;
+	double dn_a, dn_b, dr_a, dr_b, va, vb, V, d;
 	double need = ENGINE_BLOCK_RECORDS, lo, hi, start;
 
-	change_cum(g, a, ca);
-	change_cum(g, b, cb);
 	if (isnan(t->blk_ts)) {
 		/* the first block starts at the first look */
 		t->blk_ts = eng->now;
-		memcpy(t->snap[0], ca, sizeof ca);
-		memcpy(t->snap[1], cb, sizeof cb);
+		memcpy(t->snap[0], ca, 3 * sizeof *ca);
+		memcpy(t->snap[1], cb, 3 * sizeof *cb);
 		return 0;
 	}
 	dr_a = ca[0] - t->snap[0][0];
@@ -102,7 +100,7 @@ change_offer(const struct engine *eng, const struct experiment *e,
 	dn_b = cb[2] - t->snap[1][2];
 	if (!(dn_a > 0) || !(dn_b > 0))
 		return 0;
-	if (g->test == TEST_PROPORTION) {
+	if (prop) {
 		double pool = (ca[1] + cb[1]) / (ca[2] + cb[2]);
 		if (fmin(dn_a, dn_b) * fmin(pool, 1 - pool) <
 		    ENGINE_EVENTS_MIN)
@@ -114,12 +112,11 @@ change_offer(const struct engine *eng, const struct experiment *e,
 		va = sig2_c / dr_a;
 		vb = sig2_t / dr_b;
 	}
-	s = g->harm == HARM_INCREASE ? 1 : -1;
 	d = s * ((cb[1] - t->snap[1][1]) / dn_b - k * (ca[1] -
 	    t->snap[0][1]) / dn_a) - m;
 	V = vb + k * k * va;
-	memcpy(t->snap[0], ca, sizeof ca);
-	memcpy(t->snap[1], cb, sizeof cb);
+	memcpy(t->snap[0], ca, 3 * sizeof *ca);
+	memcpy(t->snap[1], cb, 3 * sizeof *cb);
 	start = t->blk_ts;
 	t->blk_ts = eng->now;
 	if (!(V > 0) || !isfinite(V) || !isfinite(d))
@@ -145,6 +142,52 @@ change_offer(const struct engine *eng, const struct experiment *e,
 	t->det_alarm = 1;
 	t->det_start = stats_detect_change_start(&t->det);
 	return 1;
+}
+
+/*
+ * Offer a mean, proportion or rate test's current tallies. sig2_t and
+ * sig2_c are the per-record variances of each arm (mean: of a value;
+ * proportion: of a trial, times the design effect, per trial; rate: of a
+ * record's ratio), k the relative margin's factor on the control, m the
+ * absolute margin.
+ */
+int
+change_offer(const struct engine *eng, const struct experiment *e,
+    struct test *t, const struct conf_guardrail *g, const struct series *a,
+    const struct series *b, double sig2_t, double sig2_c, double k,
+    double m)
+{
+	double ca[3], cb[3];
+
+	change_cum(g, a, ca);
+	change_cum(g, b, cb);
+	return change_block(eng, e, t, g, g->test == TEST_PROPORTION, ca, cb,
+	    sig2_t, sig2_c, k, m, g->harm == HARM_INCREASE ? 1 : -1);
+}
+
+/*
+ * Quantile guardrails. A harmful shift of the treatment's q-quantile
+ * beyond the margin raises the share of its values beyond the control's
+ * quantile x0 (moved by the margin), so the detector watches that share:
+ * blocks of exceedance counts are proportions, tested as above with the
+ * pooled binomial variance times the design effect (1 / weight). x0 is
+ * frozen once, so the indicator is the same in every block; the counts
+ * come from the sketches' cumulative buckets (verdict.c), nothing is kept
+ * per record. ea and eb are the cumulative exceedances, na and nb the
+ * records.
+ */
+int
+change_offer_quantile(const struct engine *eng, const struct experiment *e,
+    struct test *t, const struct conf_guardrail *g, double na, double ea,
+    double nb, double eb, double deff)
+{
+	double ca[3] = { na, ea, na }, cb[3] = { nb, eb, nb };
+	double pool = (ea + eb) / (na + nb), sig2;
+
+	if (!(na > 0) || !(nb > 0))
+		return 0;
+	sig2 = pool * (1 - pool) * fmax(1, deff);
+	return change_block(eng, e, t, g, 1, ca, cb, sig2, sig2, 1, 0, 1);
 }
 
 /*

@@ -19,6 +19,8 @@
 #include "stopcock/util.h"
 #include "engine_int.h"
 
+static void	align_flush(struct engine *, struct experiment *);
+
 static const char *reject_names[ENGINE_NREJECT] = {
 	"ok", "unplanned", "unknown_variant", "cap_experiments",
 	"cap_variants", "cap_metrics", "kind_mismatch", "k_exceeds_n",
@@ -160,24 +162,24 @@ groups_new(uint32_t G)
  * a grouped series that name no unit are their own units: round robin.
  */
 static void
-groups_add(struct engine *eng, struct experiment *e, struct groups **gp,
-    const struct record *r, double num, double den)
+groups_add(struct engine *eng, struct groups **gp, uint64_t h, double num,
+    double den)
 {
 	uint32_t G, gi;
-	uint64_t h;
 
 	if (*gp == NULL) {
-		if (r->unit_len == 0)
+		if (h == 0)
 			return;
 		*gp = groups_new(eng->conf->unit_groups);
 		eng->counters.grouped_series++;
 	}
 	G = (*gp)->G;
-	if (r->unit_len > 0) {
-		h = siphash24(e->unit_key, r->unit, r->unit_len);
+	if (h != 0)
 		gi = (uint32_t)((h >> 32) % G);
-	} else
+	else
 		gi = (uint32_t)((*gp)->seq++ % G);
+	if ((*gp)->n[gi] == 0 && den != 0)
+		(*gp)->used++;
 	(*gp)->s[gi] += num;
 	(*gp)->n[gi] += den;
 }
@@ -190,7 +192,7 @@ groups_add(struct engine *eng, struct experiment *e, struct groups **gp,
  */
 static void
 groups_add_quantiles(struct engine *eng, struct experiment *e, int mi,
-    int arm, const struct record *r)
+    int arm, const struct held *r)
 {
 	const struct metric *m = &e->metrics[mi];
 	struct test *t;
@@ -209,8 +211,7 @@ groups_add_quantiles(struct engine *eng, struct experiment *e, int mi,
 			t->qx0[side] = sketch_quantile(m->arm[arm].sk,
 			    eng->conf->guardrails[t->g].quantile);
 		}
-		groups_add(eng, e, &t->qg[side], r, r->value > t->qx0[side],
-		    1);
+		groups_add(eng, &t->qg[side], r->h, r->a > t->qx0[side], 1);
 	}
 }
 
@@ -224,6 +225,7 @@ series_free(struct metric *m, int narms)
 	for (i = 0; i < narms; i++) {
 		sketch_free(m->arm[i].sk);
 		groups_free(m->arm[i].grp);
+		free(m->arm[i].hq.q);
 	}
 	free(m->arm);
 	m->arm = NULL;
@@ -236,6 +238,9 @@ engine_metric_alloc_series(struct engine *eng, struct experiment *e,
 	int i;
 
 	m->arm = xcalloc((size_t)e->narms, sizeof *m->arm);
+	for (i = 0; i < e->narms; i++)
+		m->arm[i].hq.latest = -INFINITY;
+	m->wm = -INFINITY;
 	if (m->want_sketch)
 		for (i = 0; i < e->narms; i++)
 			m->arm[i].sk = sketch_new(eng->conf->sketch_accuracy,
@@ -296,6 +301,7 @@ test_reset_epoch(struct test *t)
 	t->dirty = t->hist_dirty = 0;
 	t->by_detector = 0;
 	t->sig2_t = t->sig2_c = 0;
+	t->qd_x0 = NAN;
 	change_reset(t);
 	for (i = 0; i < 2; i++) {
 		groups_free(t->qg[i]);
@@ -524,8 +530,13 @@ exp_new_epoch(struct engine *eng, struct experiment *e,
 	struct finding f;
 	int i;
 
+	/* held records arrived in the closing epoch and belong to it (a
+	 * reset forgets them with the rest) */
+	if (!forget)
+		align_flush(eng, e);
 	for (i = 0; i < e->nmetrics; i++)
 		series_free(&e->metrics[i], e->narms);
+	e->held = 0;
 	e->narms = narms;
 	if (arms != e->arms)
 		memcpy(e->arms, arms, (size_t)narms * sizeof *arms);
@@ -763,6 +774,187 @@ evaluate_metric(struct engine *eng, struct experiment *e, int mi, int arm)
 	}
 }
 
+/* ---- event time for metric records ---- */
+
+/* Add one metric record to its arm's tallies and run the cheap tests. */
+static void
+fold_record(struct engine *eng, struct experiment *e, int mi, int arm,
+    const struct held *r)
+{
+	struct metric *m = &e->metrics[mi];
+	struct series *s = &m->arm[arm];
+
+	if (m->kind == METRIC_OBSERVE) {
+		tally_moments_add(&s->m, r->a);
+		if (s->sk != NULL)
+			sketch_add(s->sk, r->a, 1);
+		groups_add(eng, &s->grp, r->h, r->a, 1);
+		if (s->grp != NULL && m->want_sketch)
+			groups_add_quantiles(eng, e, mi, arm, r);
+	} else {
+		tally_ratio_add(&s->r, r->a, r->b);
+		groups_add(eng, &s->grp, r->h, r->a, r->b);
+	}
+	evaluate_metric(eng, e, mi, arm);
+}
+
+void
+engine_held_push(struct experiment *e, struct series *s, const struct held *r)
+{
+	struct heldq *q = &s->hq;
+	uint32_t i, cap;
+	struct held *nq;
+
+	if (q->n == q->cap) {
+		cap = q->cap ? q->cap * 2 : 16;
+		nq = xreallocarray(NULL, cap, sizeof *nq);
+		for (i = 0; i < q->n; i++)
+			nq[i] = q->q[(q->head + i) % q->cap];
+		free(q->q);
+		q->q = nq;
+		q->cap = cap;
+		q->head = 0;
+	}
+	q->q[(q->head + q->n) % q->cap] = *r;
+	q->n++;
+	e->held++;
+}
+
+/*
+ * Apply the held records of metric mi with event time at or before w,
+ * oldest first across the arms, so each look between two of them sees
+ * the arms up to about the same time.
+ */
+static void
+align_drain(struct engine *eng, struct experiment *e, int mi, double w)
+{
+	struct metric *m = &e->metrics[mi];
+	struct heldq *q;
+	struct held r;
+	int i, best;
+
+	if (m->arm == NULL)
+		return;
+	if (w > m->wm)
+		m->wm = w;
+	for (;;) {
+		best = -1;
+		for (i = 0; i < e->narms; i++) {
+			q = &m->arm[i].hq;
+			if (q->n > 0 && q->q[q->head].t <= w && (best < 0 ||
+			    q->q[q->head].t <
+			    m->arm[best].hq.q[m->arm[best].hq.head].t))
+				best = i;
+		}
+		if (best < 0)
+			return;
+		q = &m->arm[best].hq;
+		r = q->q[q->head];
+		q->head = (q->head + 1) % q->cap;
+		q->n--;
+		e->held--;
+		fold_record(eng, e, mi, best, &r);
+	}
+}
+
+/*
+ * The watermark of a metric: the oldest of its arms' newest record times
+ * (an arm whose records are delivered late holds the others back), but
+ * never more than the allowed lateness behind the newest, so a silent or
+ * sparse arm cannot hold the rest for ever. A producer promises that a
+ * record arrives no later than that (the same promise as for exposures).
+ */
+static double
+align_watermark(const struct engine *eng, const struct experiment *e,
+    const struct metric *m)
+{
+	double lo = INFINITY, hi = -INFINITY, t;
+	int i;
+
+	for (i = 0; i < e->narms; i++) {
+		t = m->arm[i].hq.latest;
+		if (t < lo)
+			lo = t;
+		if (t > hi)
+			hi = t;
+	}
+	t = hi - eng->conf->lateness;
+	return lo > t ? lo : t;
+}
+
+/*
+ * A metric record at event time t. One behind the watermark (later than
+ * the producer promised) is applied at once and counted, never dropped;
+ * the rest wait in their arm's queue until every arm has reached their
+ * time. Past ENGINE_HELD_MAX held records in the experiment the oldest
+ * of this metric are applied early, and counted.
+ */
+static void
+align_offer(struct engine *eng, struct experiment *e, int mi, int arm,
+    const struct held *r, int stamped)
+{
+	struct metric *m = &e->metrics[mi];
+	struct series *s = &m->arm[arm];
+
+	m->arrived = eng->now;
+	if (stamped)
+		m->stamped = 1;
+	if (r->t < m->wm) {
+		eng->counters.metric_late++;
+		fold_record(eng, e, mi, arm, r);
+		return;
+	}
+	if (r->t > s->hq.latest)
+		s->hq.latest = r->t;
+	while (e->held >= ENGINE_HELD_MAX) {
+		double oldest = INFINITY;
+		int i;
+		for (i = 0; i < e->narms; i++)
+			if (m->arm[i].hq.n > 0 && m->arm[i].hq.q[
+			    m->arm[i].hq.head].t < oldest)
+				oldest = m->arm[i].hq.q[m->arm[i].hq.head].t;
+		eng->counters.held_forced++;
+		if (oldest == INFINITY) {
+			fold_record(eng, e, mi, arm, r);
+			return;
+		}
+		align_drain(eng, e, mi, oldest);
+	}
+	engine_held_push(e, s, r);
+	align_drain(eng, e, mi, align_watermark(eng, e, m));
+}
+
+/*
+ * On a tick: records stamped on arrival come in time order, so once the
+ * clock is the lateness past them nothing can still arrive before them;
+ * and a metric silent for the lateness has nothing more in flight.
+ */
+static void
+align_tick(struct engine *eng, struct experiment *e, double now)
+{
+	int i;
+
+	if (e->held == 0)
+		return;
+	for (i = 0; i < e->nmetrics; i++) {
+		struct metric *m = &e->metrics[i];
+		if (now - m->arrived > eng->conf->lateness)
+			align_drain(eng, e, i, INFINITY);
+		else if (!m->stamped)
+			align_drain(eng, e, i, now - eng->conf->lateness);
+	}
+}
+
+/* End of input or of the epoch: every held record is applied. */
+static void
+align_flush(struct engine *eng, struct experiment *e)
+{
+	int i;
+
+	for (i = 0; e->held > 0 && i < e->nmetrics; i++)
+		align_drain(eng, e, i, INFINITY);
+}
+
 /*
  * Apply every SRM interval that ends at or before the watermark, each as
  * one exact Dirichlet-multinomial batch (Lindon & Malek 2022): the Bayes
@@ -905,8 +1097,10 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 {
 	struct experiment *e;
 	struct metric *m;
+	struct held h;
+	enum metric_kind kind;
 	enum engine_reject rc = ENGINE_OK;
-	int arm, mi;
+	int arm;
 
 	eng->now = now;
 	eng->event = event;
@@ -944,30 +1138,22 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 		srm_expose(eng, e, arm, r->units, r->has_ts ? r->ts : now);
 		break;
 	case PROTO_OBSERVE:
-		if ((rc = metric_for(eng, e, r->metric, METRIC_OBSERVE,
-		    &m)) != ENGINE_OK)
-			goto done;
-		tally_moments_add(&m->arm[arm].m, r->value);
-		if (m->arm[arm].sk != NULL)
-			sketch_add(m->arm[arm].sk, r->value, 1);
-		groups_add(eng, e, &m->arm[arm].grp, r, r->value, 1);
-		mi = (int)(m - e->metrics);
-		if (m->arm[arm].grp != NULL && m->want_sketch)
-			groups_add_quantiles(eng, e, mi, arm, r);
-		evaluate_metric(eng, e, mi, arm);
-		break;
 	case PROTO_COUNT:
-		if ((rc = metric_for(eng, e, r->metric, METRIC_COUNT, &m)) !=
+		kind = r->kind == PROTO_OBSERVE ? METRIC_OBSERVE : METRIC_COUNT;
+		if ((rc = metric_for(eng, e, r->metric, kind, &m)) !=
 		    ENGINE_OK)
 			goto done;
-		if (m->want_k_le_n && r->k > r->n) {
+		if (kind == METRIC_COUNT && m->want_k_le_n && r->k > r->n) {
 			rc = ENGINE_E_K_GT_N;
 			goto done;
 		}
-		tally_ratio_add(&m->arm[arm].r, r->k, r->n);
-		groups_add(eng, e, &m->arm[arm].grp, r, r->k, r->n);
-		mi = (int)(m - e->metrics);
-		evaluate_metric(eng, e, mi, arm);
+		h.t = r->has_ts ? r->ts : now;
+		h.a = kind == METRIC_OBSERVE ? r->value : r->k;
+		h.b = kind == METRIC_OBSERVE ? 1 : r->n;
+		h.h = r->unit_len > 0 ?
+		    siphash24(e->unit_key, r->unit, r->unit_len) | 1 : 0;
+		align_offer(eng, e, (int)(m - e->metrics), arm, &h,
+		    r->has_ts);
 		break;
 	default:
 		break;
@@ -996,6 +1182,7 @@ tick_experiment(struct engine *eng, struct experiment *e, double now)
 	 * (and fires) at the time the data describe.
 	 */
 	eng->now = e->last_ts > 0 ? e->last_ts : now;
+	align_tick(eng, e, now);
 	for (j = 0; j < e->ntests; j++) {
 		t = &e->tests[j];
 		kind = eng->conf->guardrails[t->g].test;
@@ -1065,8 +1252,10 @@ engine_finish(struct engine *eng, double now)
 {
 	uint32_t i;
 
-	for (i = 0; i < eng->nexps; i++)
+	for (i = 0; i < eng->nexps; i++) {
+		align_flush(eng, eng->exps[i]);
 		srm_flush(eng, eng->exps[i]);
+	}
 	eng->force = 1;
 	engine_tick(eng, now);
 	eng->force = 0;
@@ -1150,7 +1339,7 @@ engine_counters(const struct engine *eng, struct engine_counters *c)
 	int j, k;
 	size_t bytes = sizeof *eng + nmap_bytes(eng->index) +
 	    eng->capexps * sizeof *eng->exps;
-	uint64_t tests = 0;
+	uint64_t tests = 0, held = 0;
 
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
@@ -1170,6 +1359,8 @@ engine_counters(const struct engine *eng, struct engine_counters *c)
 				continue;
 			bytes += (size_t)e->narms * sizeof(struct series);
 			for (k = 0; k < e->narms; k++) {
+				bytes += (size_t)e->metrics[j].arm[k].hq.cap *
+				    sizeof(struct held);
 				if (e->metrics[j].arm[k].sk)
 					bytes += sketch_bytes(
 					    e->metrics[j].arm[k].sk);
@@ -1182,8 +1373,10 @@ engine_counters(const struct engine *eng, struct engine_counters *c)
 			bytes += e->tests[j].hist.cap *
 			    sizeof(struct hist_point);
 		tests += (uint64_t)e->ntests;
+		held += e->held;
 	}
 	*c = eng->counters;
+	c->held = held;
 	c->experiments = eng->nexps;
 	c->tests = tests;
 	c->bytes = bytes;

@@ -23,6 +23,12 @@
 #define ENGINE_BURN_IN 30
 /* Filled unit groups before a group variance is used (our choice). */
 #define ENGINE_GROUPS_MIN 30
+/* The design effect of a grouped series is recomputed (an O(groups) pass
+ * and a t quantile) when its records grew by this fraction, and at least
+ * ENGINE_DEFF_STEP records: it moves slowly, and the per-record variance it multiplies is
+ * always current. */
+#define ENGINE_DEFF_REFRESH 64
+#define ENGINE_DEFF_STEP 16
 /* Expected events and non-events per arm before a proportion is tested
  * (common practice for normal approximations to the binomial). */
 #define ENGINE_EVENTS_MIN 5
@@ -40,6 +46,9 @@
 #define ENGINE_SRM_HEADROOM 64
 /* Records in an arm's sketch before its exceedance threshold is frozen. */
 #define ENGINE_QUANTILE_FREEZE 500
+/* Metric records held for the event-time watermark, per experiment, at
+ * most (memory bound; beyond it the oldest are applied, counted). */
+#define ENGINE_HELD_MAX 65536
 
 enum metric_kind { METRIC_UNSET, METRIC_OBSERVE, METRIC_COUNT };
 
@@ -56,6 +65,26 @@ struct groups {
 	uint64_t	 seq;		/* records without unit=: round robin */
 	double		*s;		/* [G] numerator: values, events */
 	double		*n;		/* [G] denominator: records, trials */
+	uint32_t	 used;		/* groups with n != 0 */
+	/* verdict.c group_var: the design effect, refreshed as the series
+	 * grows by 1/ENGINE_DEFF_REFRESH (derived, not saved) */
+	double		 deff_at;	/* records at the refresh, 0 never */
+	double		 deff;		/* group over record-level variance */
+	double		 gv;		/* group variance at the refresh */
+};
+
+/* A metric record waiting for the event-time watermark of its metric. */
+struct held {
+	double		 t;		/* event time */
+	double		 a, b;		/* value; or k and n */
+	uint64_t	 h;		/* unit hash | 1; 0: no unit= */
+};
+
+/* One arm's held records, in arrival order (a ring that grows). */
+struct heldq {
+	struct held	*q;
+	uint32_t	 head, n, cap;
+	double		 latest;	/* newest event time, -inf none */
 };
 
 struct series {
@@ -63,6 +92,7 @@ struct series {
 	struct tally_ratio	 r;	/* count records */
 	struct sketch		*sk;	/* when a quantile guardrail reads it */
 	struct groups		*grp;	/* once a unit= record arrives */
+	struct heldq		 hq;	/* records newer than the watermark */
 };
 
 struct metric {
@@ -71,6 +101,15 @@ struct metric {
 	enum metric_kind kind;
 	int		 want_sketch;
 	int		 want_k_le_n;	/* a proportion guardrail reads it */
+	/*
+	 * Event time (engine.c align_*): records are applied to the tallies
+	 * only up to the watermark, the oldest of the arms' newest record
+	 * times (but no older than the newest less the lateness), so the
+	 * arms are compared on data complete for all of them.
+	 */
+	double		 wm;		/* applied up to here, -inf */
+	double		 arrived;	/* caller's clock at the last record */
+	int		 stamped;	/* a record carried its own time */
 	struct series	*arm;		/* [narms] */
 };
 
@@ -122,6 +161,8 @@ struct test {
 	 * control and treatment (engine.c groups_add_quantiles) */
 	struct groups	*qg[2];
 	double		 qx0[2];
+	/* quantile detection: the control's quantile, frozen (change.c) */
+	double		 qd_x0;
 	/* per-record variances and margin of the last look (change.c) */
 	double		 sig2_t, sig2_c, kfac, mlin;
 	/* change detection (change.c) */
@@ -176,6 +217,7 @@ struct experiment {
 	double		 srm_floor;	/* exposures before it: late */
 	int		 srm_stamped;	/* an exposure carried its own time */
 	uint64_t	 late_epoch;	/* records naming a closed epoch */
+	uint32_t	 held;		/* metric records held, all series */
 	uint8_t		 unit_key[16];	/* unit-group hash key, kept */
 	double		 srm_log_e, srm_max_log_e;
 	int		 srm_fired;	/* untrusted this epoch */
@@ -235,6 +277,8 @@ void		 engine_emit(struct engine *, const struct finding *);
 int		 engine_metric_alloc_series(struct engine *,
 		    struct experiment *, struct metric *);
 void		 engine_metric_needs(const struct conf *, struct metric *);
+void		 engine_held_push(struct experiment *, struct series *,
+		    const struct held *);
 void		 engine_link_tests(const struct engine *, struct experiment *);
 void		 hist_offer(struct hist *, uint32_t cap, double t, double a,
 		    double b, double c, double p);
@@ -248,6 +292,10 @@ int		 change_offer(const struct engine *, const struct experiment *,
 		    struct test *, const struct conf_guardrail *,
 		    const struct series *, const struct series *, double sig2_t,
 		    double sig2_c, double k, double m);
+int		 change_offer_quantile(const struct engine *,
+		    const struct experiment *, struct test *,
+		    const struct conf_guardrail *, double na, double ea,
+		    double nb, double eb, double deff);
 
 void		 change_window_offer(const struct engine *, struct test *,
 		    const struct conf_guardrail *, const struct series *,

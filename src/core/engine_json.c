@@ -423,6 +423,47 @@ groups_save(const struct groups *g)
 	    "n", na);
 }
 
+/* Held metric records: [t, a, b, h] each, h's bits as a signed integer. */
+static json_t *
+held_save(const struct heldq *q)
+{
+	json_t *a = json_array();
+	const struct held *r;
+	json_int_t h;
+	uint32_t i;
+
+	for (i = 0; i < q->n; i++) {
+		r = &q->q[(q->head + i) % q->cap];
+		memcpy(&h, &r->h, sizeof h);
+		json_array_append_new(a, json_pack("[o, o, o, I]", sreal(r->t),
+		    sreal(r->a), sreal(r->b), h));
+	}
+	return a;
+}
+
+static int
+held_load(struct experiment *e, struct series *s, const json_t *a)
+{
+	const json_t *v;
+	struct held r;
+	json_int_t h;
+	size_t i;
+
+	json_array_foreach(a, i, v) {
+		if (e->held >= ENGINE_HELD_MAX || json_array_size(v) != 4)
+			return -1;
+		r.t = aget(v, 0);
+		r.a = aget(v, 1);
+		r.b = aget(v, 2);
+		h = json_integer_value(json_array_get(v, 3));
+		memcpy(&r.h, &h, sizeof r.h);
+		if (!isfinite(r.t) || !isfinite(r.a) || !isfinite(r.b))
+			return -1;
+		engine_held_push(e, s, &r);
+	}
+	return 0;
+}
+
 /* Groups of a series, at the count they were saved with (a changed
  * unit_groups applies to series that start after it). */
 static int
@@ -446,6 +487,7 @@ groups_load(struct series *sr, const json_t *o, uint32_t Gmax)
 		sr->grp->n[i] = aget(na, i);
 		if (!isfinite(sr->grp->s[i]) || !isfinite(sr->grp->n[i]))
 			return -1;
+		sr->grp->used += sr->grp->n[i] != 0;
 	}
 	return 0;
 }
@@ -548,6 +590,7 @@ change_save(const struct test *t)
 	    "log_m", sreal(t->det_log_m), "start", sreal(t->det_start),
 	    "block_ts", sreal(t->blk_ts), "snap", reals_save(&t->snap[0][0],
 	    6), "k", t->det.k, "blocks", sreal(t->det.blocks));
+	json_object_set_new(o, "quantile_x0", sreal(t->qd_x0));
 	json_object_set_new(o, "lambda", reals_save(t->det.lambda,
 	    STATS_DETECT_GRID));
 	json_object_set_new(o, "log_w", reals_save(t->det.log_w,
@@ -592,6 +635,9 @@ change_load(struct test *t, const json_t *o)
 		return -1;
 	if (t->det_on && stats_detect_check(&t->det) != 0)
 		return -1;
+	/* images from before quantile detection have none: it restarts */
+	if (get_real(o, "quantile_x0", &t->qd_x0) != 0)
+		t->qd_x0 = NAN;
 	w = json_object_get(o, "windows");
 	if (json_array_size(w) != CHANGE_WINDOWS)
 		return -1;
@@ -689,10 +735,16 @@ exp_save(const struct experiment *e, const struct conf *conf)
 			if (s->grp)
 				json_object_set_new(m, "groups",
 				    groups_save(s->grp));
+			json_object_set_new(m, "latest", sreal(s->hq.latest));
+			if (s->hq.n > 0)
+				json_object_set_new(m, "held",
+				    held_save(&s->hq));
 			json_array_append_new(arms, m);
 		}
-		json_array_append_new(a, json_pack("{s:s, s:i, s:o}", "name",
-		    mt->name, "kind", (int)mt->kind, "series", arms));
+		json_array_append_new(a, json_pack("{s:s, s:i, s:o, s:o, s:o, "
+		    "s:b}", "name", mt->name, "kind", (int)mt->kind, "series",
+		    arms, "wm", sreal(mt->wm), "arrived", sreal(mt->arrived),
+		    "stamped", mt->stamped));
 	}
 	json_object_set_new(o, "metrics", a);
 	tests = json_array();
@@ -923,6 +975,12 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 		engine_metric_needs(eng->conf, m);
 		engine_metric_alloc_series(eng, e, m);
 		eng->counters.series += (uint64_t)e->narms;
+		/* images from before event-time alignment have none */
+		if (get_real(v, "wm", &m->wm) != 0)
+			m->wm = -INFINITY;
+		if (get_real(v, "arrived", &m->arrived) != 0)
+			m->arrived = 0;
+		m->stamped = json_is_true(json_object_get(v, "stamped"));
 		ser = json_object_get(v, "series");
 		json_array_foreach(ser, j, sv) {
 			struct series *s;
@@ -949,6 +1007,13 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 			    eng->conf->unit_groups) != 0) {
 				xasprintf(cause, "experiment %s: metric %s: "
 				    "bad unit groups", id, name);
+				return -1;
+			}
+			if (get_real(sv, "latest", &s->hq.latest) != 0)
+				s->hq.latest = -INFINITY;
+			if (held_load(e, s, json_object_get(sv, "held")) != 0) {
+				xasprintf(cause, "experiment %s: metric %s: "
+				    "bad held records", id, name);
 				return -1;
 			}
 			if (b64 != NULL && s->sk != NULL) {

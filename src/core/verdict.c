@@ -118,18 +118,40 @@ static double
 group_var(const struct engine *eng, const struct series *sr, double q)
 {
 	const struct groups *gp = sr->grp;
-	uint32_t i, used = 0;
 	double R, v, kappa;
+
+	if (gp == NULL || gp->used < ENGINE_GROUPS_MIN)
+		return NAN;
+	v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
+	kappa = stats_group_kappa(gp->used - 1, q);
+	return isfinite(kappa) && kappa > 1 ? v * kappa : v;
+}
+
+/*
+ * The group variance of an arm whose record-level variance is var, at
+ * recs records: computed afresh when the series grew by a 1/64th (and 16
+ * records) since the last time, else the design effect of then times today's var (the
+ * hot path of means and proportions looks after every record).
+ */
+static double
+group_var_cached(const struct engine *eng, const struct series *sr,
+    double q, double recs, double var)
+{
+	struct groups *gp = sr->grp;
+	double gv;
 
 	if (gp == NULL)
 		return NAN;
-	for (i = 0; i < gp->G; i++)
-		used += gp->n[i] != 0;
-	if (used < ENGINE_GROUPS_MIN)
-		return NAN;
-	v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
-	kappa = stats_group_kappa(used - 1, q);
-	return isfinite(kappa) && kappa > 1 ? v * kappa : v;
+	if (gp->deff_at > 0 && recs < gp->deff_at + fmax(ENGINE_DEFF_STEP,
+	    gp->deff_at / ENGINE_DEFF_REFRESH))
+		return var > 0 && gp->deff > 0 ? gp->deff * var : gp->gv;
+	gv = group_var(eng, sr, q);
+	if (!isfinite(gv))
+		return gv;	/* too few groups: look again next record */
+	gp->deff_at = recs;
+	gp->gv = gv;
+	gp->deff = var > 0 ? gv / var : 0;
+	return gv;
 }
 
 /*
@@ -170,7 +192,7 @@ arm_estimate(const struct engine *eng, const struct conf_guardrail *g,
 	if (!isfinite(out->value))
 		return -1;
 	out->deff = 1;
-	gv = group_var(eng, sr, q);
+	gv = group_var_cached(eng, sr, q, out->recs, out->var);
 	if (isfinite(gv) && out->var > 0) {
 		out->deff = gv / out->var;
 		if (gv > out->var)
@@ -576,6 +598,66 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	return 0;
 }
 
+/* Records of a sketch beyond x (above, or below when !above). */
+static double
+tail_count(struct engine *eng, const struct sketch *sk, double x, int above)
+{
+	size_t i, n;
+	double c = 0;
+
+	scratch_reserve(eng, sketch_nbuckets(sk) + 1);
+	n = sketch_buckets(sk, eng->scratch_v, eng->scratch_c,
+	    eng->scratch_n / 2);
+	for (i = 0; i < n; i++)
+		if (above ? eng->scratch_v[i] > x : eng->scratch_v[i] < x)
+			c += (double)eng->scratch_c[i];
+	return c;
+}
+
+/*
+ * The quantile's change detector (change.c change_offer_quantile): the
+ * share of each arm's values beyond the control's quantile x0, frozen
+ * once the control holds ENGINE_QUANTILE_FREEZE records. The treatment's
+ * threshold is x0 moved by the margin and put on the conservative side of
+ * the resolution (both bucket edges), so an effect at the margin does not
+ * raise the treatment's share; without a margin both arms share one
+ * bucket grid and the comparison is exact. Returns 1 on an alarm.
+ */
+static int
+quantile_detect(struct engine *eng, struct experiment *e, struct test *t,
+    const struct conf_guardrail *g, const struct series *a,
+    const struct series *b)
+{
+	double acc, x0, xb, r = g->margin, wt[2] = { 1, 1 }, deff;
+	int up = g->harm == HARM_INCREASE;
+
+	if (isnan(t->qd_x0)) {
+		if (sketch_count(a->sk) < ENGINE_QUANTILE_FREEZE)
+			return 0;
+		t->qd_x0 = sketch_quantile(a->sk, g->quantile);
+	}
+	x0 = t->qd_x0;
+	if (!isfinite(x0))
+		return 0;
+	if ((a->grp != NULL || b->grp != NULL) &&
+	    quantile_weights(t, wt) != 0)
+		return 0;
+	deff = 1 / fmin(wt[0] > 0 ? wt[0] : 1, wt[1] > 0 ? wt[1] : 1);
+	acc = r == 0 ? 0 : fmax(sketch_accuracy(a->sk),
+	    sketch_accuracy(b->sk));
+	if (!(acc >= 0 && acc < 1))
+		acc = eng->conf->sketch_accuracy;
+	if (up)
+		xb = g->margin_relative ? x0 * (1 + acc) * (1 + r) /
+		    (1 - acc) : (x0 * (1 + acc) + r) / (1 - acc);
+	else
+		xb = g->margin_relative ? x0 * (1 - acc) * (1 - r) /
+		    (1 + acc) : (x0 * (1 - acc) - r) / (1 + acc);
+	return change_offer_quantile(eng, e, t, g,
+	    (double)sketch_count(a->sk), tail_count(eng, a->sk, x0, up),
+	    (double)sketch_count(b->sk), tail_count(eng, b->sk, xb, up), deff);
+}
+
 /*
  * At a quantile harm verdict, tighten the lower bound to what the test
  * itself established: the largest relative (or absolute) shift m of the
@@ -682,7 +764,7 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	struct finding f;
 	double level = verdict_level(e), s, p, n;
 	enum verdict old = t->verdict, nv;
-	int rc, want_cs = 1, det;
+	int rc, want_cs = 1, det, qdet = 0;
 
 	if (t->metric < 0 || t->arm <= 0)
 		return;
@@ -718,6 +800,7 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
 		    VERDICT_CS_MIN_STEP);
 		rc = eval_quantile(eng, e, t, g, a, b, level, want_cs);
+		qdet = rc == 0 && quantile_detect(eng, e, t, g, a, b);
 		break;
 	default:
 		return;
@@ -733,9 +816,11 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 
 	s = harm_sign(g);
 	p = stats_p_from_log_e(t->max_log_e);
-	det = g->test != TEST_QUANTILE && t->sig2_t > 0 && t->sig2_c > 0 &&
-	    change_offer(eng, e, t, g, a, b, t->sig2_t, t->sig2_c, t->kfac,
-	    t->mlin);
+	if (g->test == TEST_QUANTILE)
+		det = qdet;
+	else
+		det = t->sig2_t > 0 && t->sig2_c > 0 && change_offer(eng, e,
+		    t, g, a, b, t->sig2_t, t->sig2_c, t->kfac, t->mlin);
 	change_window_offer(eng, t, g, a, b);
 	nv = old;
 	/*

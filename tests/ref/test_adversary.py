@@ -208,14 +208,10 @@ STREAMS = [
          guards=[guard("crash", "crash", "rate")],
          cells={"crash": "x11 rare crashes (0.05/h), 1/99 small control "
                          "without events, harm = increase"}),
-    # Known gap (open, issue 10 item 3 for metric tests): metric records
-    # are compared in arrival order, not up to an event-time watermark
-    # common to both arms, so one arm's lagging delivery during a drift
-    # biases the difference. Its rate is measured and printed every run,
-    # as a SKIP while it fails, so the closing line shows it.
+    # Metric records are applied up to an event-time watermark common to
+    # the arms, so one arm's lagging delivery during a drift compares
+    # like with like (was the open gap of round 2: mean 1.00, p50 0.47).
     dict(id="x12", gen=A.g_lagged_arm, cost=40, level=0.01, plan=10000,
-         gap="metric records are not aligned to a common event time "
-             "across arms (open)",
          params=dict(n=20000, dur=400, lag=25),
          guards=[guard("lat_mean", "lat", "mean"),
                  guard("lat_p50", "lat", "quantile", extra=Q50)],

@@ -61,6 +61,11 @@ stats_prop_null(double x_t, double n_t, double x_c, double n_c, double D,
 	if (!(n_t >= 0) || !(n_c >= 0) || n_t + n_c <= 0 || !isfinite(D) ||
 	    fabs(D) >= 1)
 		return -1;
+	/* no margin: the restricted MLE is the pooled proportion */
+	if (D == 0) {
+		*p_t = *p_c = (x_t + x_c) / (n_t + n_c);
+		return 0;
+	}
 	lo = D < 0 ? -D : 0;
 	hi = D > 0 ? 1 - D : 1;
 	for (i = 0; i < VAR_BISECT && hi > lo; i++) {
