@@ -39,6 +39,8 @@
 
 enum source { SRC_TCP, SRC_UDP, SRC_UNIX, SRC_REDIS, SRC_HTTP, SRC_N };
 
+struct daemon_main;
+struct ingest;
 struct listen;
 struct redis_in;
 struct dispatch;
@@ -62,13 +64,6 @@ struct ingest_counters {
 	uint64_t	engine_rejected[SRC_N][ENGINE_NREJECT];
 };
 
-/* Rate limit of rejection logging, per source (ingest.c). */
-struct ingest_log {
-	double		window;		/* start of the current minute */
-	unsigned	logged;		/* lines logged in this window */
-	uint64_t	suppressed;	/* not logged in this window */
-};
-
 enum ingest_status {
 	INGEST_OK,		/* applied */
 	INGEST_SKIP,		/* blank or comment line */
@@ -79,10 +74,11 @@ enum ingest_status {
 struct daemon {
 	struct event_base	*base;
 	struct conf		*conf;		/* owned; swapped on reload */
-	char			*conf_path;
 	struct engine		*engine;
 	uint8_t			 hashkey[16];
 
+	struct daemon_main	*main;		/* main.c's own: the loop */
+	struct ingest		*ingest;
 	struct listen		*listen;
 	struct redis_in		*redis;
 	struct dispatch		*dispatch;
@@ -91,29 +87,15 @@ struct daemon {
 	struct pause		*pause;
 	struct http		*http;
 
-	struct ingest_counters	 counters;
 	double			 started;	/* wall time */
 	double			 last_checkpoint;	/* wall time, 0 never */
 	uint64_t		 checkpoints;
 	int			 draining;	/* SIGTERM seen */
-	int			 debug;
-	int			 log_stderr;	/* -d or -f: not syslog */
 
-	/* main.c: fixed at start; see the comment on d->conf. */
+	/* Fixed at start; see the comment on d->conf. */
 	char			*state_dir;
-	char			*restored_redis_id;	/* from the checkpoint */
+	char			*restored_redis_id;	/* checkpoint's */
 	char			*restored_redis_stream;
-	int			 exit_code;
-	uint64_t		 seq;		/* engine event numbers */
-	struct ingest_log	 ingest_log[SRC_N];
-	struct event		*ev_signal[5];
-	struct event		*ev_tick;
-	struct event		*ev_checkpoint;
-	struct event		*ev_status;
-	struct event		*ev_watchdog;
-	uint64_t		 status_records;	/* for the ingest rate */
-	double			 status_time;
-	double			 ingest_rate;	/* records/s, last status period */
 };
 
 const char	*source_name(enum source);
@@ -121,7 +103,13 @@ double		 daemon_now(void);	/* wall clock, seconds */
 /* Number of record inputs configured (tcp, udp, unix, redis). */
 int		 daemon_inputs(const struct conf *);
 
-/* ingest.c: every input hands complete lines here. 0 applied or skipped,
+/* ingest.c: its counters, rejection log budget and event numbers. */
+struct ingest	*ingest_new(void);
+void		 ingest_free(struct ingest *);
+/* The counters (they were d->counters): inputs add what they refuse
+ * before a line exists, e.g. an oversized message. */
+struct ingest_counters *ingest_counters(struct daemon *);
+/* Every input hands complete lines here. 0 applied or skipped,
  * -1 rejected (counted and, for the first few, logged). */
 int		 ingest_line(struct daemon *, enum source, const char *line,
 		    size_t len);

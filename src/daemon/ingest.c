@@ -13,6 +13,7 @@
  */
 #include <inttypes.h>
 #include <stdio.h>
+#include <stdlib.h>
 #include <string.h>
 #include <sys/time.h>
 
@@ -24,6 +25,37 @@
 
 #define INGEST_LOG_PER_MINUTE 5	/* rejections logged per source */
 #define INGEST_SAMPLE 80	/* bytes of a bad line shown in the log */
+
+/* Rate limit of rejection logging, per source. */
+struct ingest_log {
+	double		window;		/* start of the current minute */
+	unsigned	logged;		/* lines logged in this window */
+	uint64_t	suppressed;	/* not logged in this window */
+};
+
+struct ingest {
+	struct ingest_counters	 counters;
+	struct ingest_log	 log[SRC_N];
+	uint64_t		 seq;		/* engine event numbers */
+};
+
+struct ingest *
+ingest_new(void)
+{
+	return xcalloc(1, sizeof(struct ingest));
+}
+
+void
+ingest_free(struct ingest *in)
+{
+	free(in);
+}
+
+struct ingest_counters *
+ingest_counters(struct daemon *d)
+{
+	return &d->ingest->counters;
+}
 
 static double
 ingest_now(struct daemon *d)
@@ -69,7 +101,7 @@ static void
 ingest_log_reject(struct daemon *d, enum source src, const char *reason,
     const char *why, const char *line, size_t len, size_t total)
 {
-	struct ingest_log *lg = &d->ingest_log[src];
+	struct ingest_log *lg = &d->ingest->log[src];
 	double now = ingest_now(d);
 	char sample[INGEST_SAMPLE * 4 + 8];
 
@@ -102,7 +134,7 @@ void
 ingest_reject(struct daemon *d, enum source src, enum proto_status st,
     size_t len, const char *sample, size_t samplelen)
 {
-	struct ingest_counters *c = &d->counters;
+	struct ingest_counters *c = &d->ingest->counters;
 
 	if (st <= PROTO_SKIP || st >= PROTO_NSTATUS)
 		st = PROTO_E_BYTES;
@@ -117,7 +149,7 @@ enum ingest_status
 ingest_line_status(struct daemon *d, enum source src, const char *line,
     size_t len)
 {
-	struct ingest_counters *c = &d->counters;
+	struct ingest_counters *c = &d->ingest->counters;
 	struct record rec;
 	enum proto_status st;
 	enum engine_reject er;
@@ -136,7 +168,7 @@ ingest_line_status(struct daemon *d, enum source src, const char *line,
 		return INGEST_BAD_LINE;
 	}
 	er = engine_apply(d->engine, &rec, rec.has_ts ? rec.ts : ingest_now(d),
-	    ++d->seq);
+	    ++d->ingest->seq);
 	if (er != ENGINE_OK) {
 		if (er >= ENGINE_NREJECT)
 			er = ENGINE_E_UNPLANNED;
@@ -193,14 +225,14 @@ ingest_records_total(struct daemon *d)
 	int s;
 
 	for (s = 0; s < SRC_N; s++)
-		n += d->counters.records[s];
+		n += d->ingest->counters.records[s];
 	return n;
 }
 
 void
 ingest_metrics(struct daemon *d, struct evbuffer *b)
 {
-	struct ingest_counters *c = &d->counters;
+	struct ingest_counters *c = &d->ingest->counters;
 	int s, r;
 
 	metrics_family(b, "stopcock_lines_total", "counter",
@@ -241,7 +273,7 @@ ingest_metrics(struct daemon *d, struct evbuffer *b)
 json_t *
 ingest_json(struct daemon *d)
 {
-	struct ingest_counters *c = &d->counters;
+	struct ingest_counters *c = &d->ingest->counters;
 	json_t *o = json_object(), *rec = json_object(), *lines = json_object();
 	json_t *bytes = json_object(), *rej = json_object(), *rs;
 	int s, r;
@@ -287,7 +319,7 @@ ingest_get(const json_t *o, const char *key)
 void
 ingest_restore(struct daemon *d, const json_t *o)
 {
-	struct ingest_counters *c = &d->counters;
+	struct ingest_counters *c = &d->ingest->counters;
 	json_t *rec, *lines, *bytes, *rej, *rs;
 	int s, r;
 

@@ -35,8 +35,28 @@
 
 #define DAEMON_CONF "/etc/stopcock/stopcock.conf"
 #define DAEMON_STATUS_EVERY 5	/* seconds between STATUS= lines */
+#define DAEMON_NSIGNALS 4	/* daemon_signals */
 
-static const int daemon_signals[] = { SIGTERM, SIGINT, SIGHUP, SIGUSR1 };
+/* What only this file uses: how the process logs and exits, the loop's
+ * signals and timers, the STATUS= line's rate. */
+struct daemon_main {
+	char		*conf_path;
+	int		 debug;
+	int		 log_stderr;	/* -d or -f: not syslog */
+	int		 exit_code;
+	struct event	*ev_signal[DAEMON_NSIGNALS];
+	struct event	*ev_tick;
+	struct event	*ev_checkpoint;
+	struct event	*ev_status;
+	struct event	*ev_watchdog;
+	uint64_t	 status_records;	/* for the ingest rate */
+	double		 status_time;
+	double		 ingest_rate;	/* records/s, last status period */
+};
+
+static const int daemon_signals[DAEMON_NSIGNALS] = {
+	SIGTERM, SIGINT, SIGHUP, SIGUSR1
+};
 
 const char *
 source_name(enum source s)
@@ -98,7 +118,7 @@ daemon_fatal(struct daemon *d, int code, const char *fmt, ...)
 		msg = NULL;
 	va_end(ap);
 	log_crit("%s", msg != NULL ? msg : fmt);
-	if (!d->log_stderr)
+	if (!d->main->log_stderr)
 		fprintf(stderr, "stopcockd: %s\n", msg != NULL ? msg : fmt);
 	free(msg);
 	exit(code);
@@ -173,7 +193,6 @@ daemon_differs(const char *a, const char *b)
 	return strcmp(a, b) != 0;
 }
 
-/* Settings copied at start: say which changes wait for a restart. */
 /*
  * The mixture parameters are fixed before monitoring from the
  * configuration and never retuned from the data; say which, once per
@@ -199,6 +218,7 @@ daemon_log_tuning(struct daemon *d)
 	json_decref(t);
 }
 
+/* Settings copied at start: say which changes wait for a restart. */
 static void
 daemon_reload_notes(const struct conf *old, const struct conf *new)
 {
@@ -243,8 +263,8 @@ daemon_reload(struct daemon *d)
 	double tick, every;
 
 	sd_notify(0, "RELOADING=1");
-	log_info("reload: reading path=%s", d->conf_path);
-	if (conf_load(d->conf_path, &nc, &cause) != 0 ||
+	log_info("reload: reading path=%s", d->main->conf_path);
+	if (conf_load(d->main->conf_path, &nc, &cause) != 0 ||
 	    daemon_check(nc, &cause) != 0) {
 		daemon_log_lines("reload: ", cause);
 		log_warnx("reload: failed; keeping the running configuration");
@@ -263,11 +283,11 @@ daemon_reload(struct daemon *d)
 	nc = NULL;
 	conf_free(old);
 	if (d->conf->tick != tick)
-		daemon_timer(d->ev_tick, d->conf->tick);
+		daemon_timer(d->main->ev_tick, d->conf->tick);
 	if (d->conf->checkpoint_every != every)
-		daemon_timer(d->ev_checkpoint, d->conf->checkpoint_every);
+		daemon_timer(d->main->ev_checkpoint, d->conf->checkpoint_every);
 	log_info("reload: configuration in force path=%s guardrails=%d "
-	    "experiments=%d", d->conf_path, d->conf->nguardrails,
+	    "experiments=%d", d->main->conf_path, d->conf->nguardrails,
 	    d->conf->nexperiments);
 	daemon_log_tuning(d);
 done:
@@ -298,7 +318,7 @@ daemon_shutdown(struct daemon *d, int sig)
 	if (ckpt_write(d, &cause) != 0) {
 		log_crit("final checkpoint failed: %s", cause);
 		free(cause);
-		d->exit_code = SC_EX_IOERR;
+		d->main->exit_code = SC_EX_IOERR;
 	} else
 		log_info("final checkpoint written records=%" PRIu64,
 		    ingest_records_total(d));
@@ -358,16 +378,17 @@ static void
 daemon_status_cb(evutil_socket_t fd, short what, void *arg)
 {
 	struct daemon *d = arg;
+	struct daemon_main *m = d->main;
 	struct engine_counters ec;
 	uint64_t total = ingest_records_total(d);
-	double now = daemon_now(), dt = now - d->status_time;
+	double now = daemon_now(), dt = now - m->status_time;
 	int64_t lag = d->redis != NULL ? redis_in_lag(d->redis) : -1;
 	char lagbuf[32];
 
 	if (dt > 0)
-		d->ingest_rate = (double)(total - d->status_records) / dt;
-	d->status_records = total;
-	d->status_time = now;
+		m->ingest_rate = (double)(total - m->status_records) / dt;
+	m->status_records = total;
+	m->status_time = now;
 	engine_counters(d->engine, &ec);
 	if (d->redis == NULL)
 		strcpy(lagbuf, "no redis");
@@ -376,7 +397,7 @@ daemon_status_cb(evutil_socket_t fd, short what, void *arg)
 	else
 		snprintf(lagbuf, sizeof lagbuf, "redis lag %" PRId64, lag);
 	sd_notifyf(0, "STATUS=%.0f records/s, %s, %u experiments, "
-	    "%" PRIu64 " records", d->ingest_rate, lagbuf, ec.experiments,
+	    "%" PRIu64 " records", m->ingest_rate, lagbuf, ec.experiments,
 	    total);
 }
 
@@ -474,21 +495,22 @@ daemon_start(struct daemon *d)
 	}
 
 	for (i = 0; i < SC_NELEM(daemon_signals); i++) {
-		d->ev_signal[i] = evsignal_new(d->base, daemon_signals[i],
+		d->main->ev_signal[i] = evsignal_new(d->base, daemon_signals[i],
 		    daemon_signal_cb, d);
-		if (d->ev_signal[i] == NULL ||
-		    event_add(d->ev_signal[i], NULL) != 0)
+		if (d->main->ev_signal[i] == NULL ||
+		    event_add(d->main->ev_signal[i], NULL) != 0)
 			daemon_fatal(d, SC_EX_OSERR, "cannot watch signal %d",
 			    daemon_signals[i]);
 	}
-	d->ev_tick = daemon_every(d, daemon_tick_cb, d->conf->tick);
-	d->ev_checkpoint = daemon_every(d, daemon_checkpoint_cb,
+	d->main->ev_tick = daemon_every(d, daemon_tick_cb, d->conf->tick);
+	d->main->ev_checkpoint = daemon_every(d, daemon_checkpoint_cb,
 	    d->conf->checkpoint_every);
-	d->status_time = daemon_now();
-	d->status_records = ingest_records_total(d);
-	d->ev_status = daemon_every(d, daemon_status_cb, DAEMON_STATUS_EVERY);
+	d->main->status_time = daemon_now();
+	d->main->status_records = ingest_records_total(d);
+	d->main->ev_status = daemon_every(d, daemon_status_cb,
+	    DAEMON_STATUS_EVERY);
 	if (sd_watchdog_enabled(0, &usec) > 0) {
-		d->ev_watchdog = daemon_every(d, daemon_watchdog_cb,
+		d->main->ev_watchdog = daemon_every(d, daemon_watchdog_cb,
 		    usec / 2e6);
 		log_info("systemd watchdog every %.1fs", usec / 2e6);
 	}
@@ -499,17 +521,17 @@ daemon_stop(struct daemon *d)
 {
 	size_t i;
 
-	for (i = 0; i < SC_NELEM(d->ev_signal); i++)
-		if (d->ev_signal[i] != NULL)
-			event_free(d->ev_signal[i]);
-	if (d->ev_tick != NULL)
-		event_free(d->ev_tick);
-	if (d->ev_checkpoint != NULL)
-		event_free(d->ev_checkpoint);
-	if (d->ev_status != NULL)
-		event_free(d->ev_status);
-	if (d->ev_watchdog != NULL)
-		event_free(d->ev_watchdog);
+	for (i = 0; i < SC_NELEM(d->main->ev_signal); i++)
+		if (d->main->ev_signal[i] != NULL)
+			event_free(d->main->ev_signal[i]);
+	if (d->main->ev_tick != NULL)
+		event_free(d->main->ev_tick);
+	if (d->main->ev_checkpoint != NULL)
+		event_free(d->main->ev_checkpoint);
+	if (d->main->ev_status != NULL)
+		event_free(d->main->ev_status);
+	if (d->main->ev_watchdog != NULL)
+		event_free(d->main->ev_watchdog);
 	redis_in_free(d->redis);
 	listen_free(d->listen);
 	http_free(d->http);
@@ -520,7 +542,8 @@ daemon_stop(struct daemon *d)
 	engine_free(d->engine);
 	conf_free(d->conf);
 	event_base_free(d->base);
-	free(d->conf_path);
+	free(d->main->conf_path);
+	ingest_free(d->ingest);
 	free(d->state_dir);
 	free(d->restored_redis_id);
 	free(d->restored_redis_stream);
@@ -530,24 +553,28 @@ int
 main(int argc, char **argv)
 {
 	struct daemon daemon, *d = &daemon;
+	struct daemon_main dmain;
 	const char *path = DAEMON_CONF;
 	char *cause = NULL;
 	int ch, check = 0, code;
 
 	memset(d, 0, sizeof *d);
+	memset(&dmain, 0, sizeof dmain);
+	d->main = &dmain;
+	d->ingest = ingest_new();
 	while ((ch = getopt(argc, argv, "c:dfht")) != -1) {
 		switch (ch) {
 		case 'c':
 			path = optarg;
 			break;
 		case 'd':
-			d->debug = 1;
-			d->log_stderr = 1;
+			d->main->debug = 1;
+			d->main->log_stderr = 1;
 			break;
 		case 'f':
 			/* Always in the foreground; -f only keeps the log
 			 * on stderr (journald reads it there too). */
-			d->log_stderr = 1;
+			d->main->log_stderr = 1;
 			break;
 		case 'h':
 			printf("usage: stopcockd [-dfht] [-c file]\n\n"
@@ -579,8 +606,8 @@ main(int argc, char **argv)
 		return SC_EX_OK;
 	}
 	if (log_init(d->conf->syslog_ident != NULL ? d->conf->syslog_ident :
-	    "stopcockd", d->conf->syslog_facility, d->log_stderr,
-	    d->debug) != 0) {
+	    "stopcockd", d->conf->syslog_facility, d->main->log_stderr,
+	    d->main->debug) != 0) {
 		fprintf(stderr, "stopcockd: unknown syslog facility %s\n",
 		    d->conf->syslog_facility);
 		return SC_EX_CONFIG;
@@ -588,7 +615,7 @@ main(int argc, char **argv)
 	/* A peer that goes away must cost an EPIPE, not the process. */
 	signal(SIGPIPE, SIG_IGN);
 
-	d->conf_path = xstrdup(path);
+	d->main->conf_path = xstrdup(path);
 	d->state_dir = xstrdup(d->conf->state_dir);
 	d->started = daemon_now();
 	daemon_hashkey(d);
@@ -598,14 +625,14 @@ main(int argc, char **argv)
 	daemon_start(d);
 
 	log_info("stopcockd ready pid=%ld config=%s state=%s records=%" PRIu64,
-	    (long)getpid(), d->conf_path, d->state_dir,
+	    (long)getpid(), d->main->conf_path, d->state_dir,
 	    ingest_records_total(d));
 	daemon_log_tuning(d);
 	sd_notify(0, "READY=1\nSTATUS=running");
 
 	if (event_base_dispatch(d->base) == -1)
 		daemon_fatal(d, SC_EX_SOFTWARE, "event loop failed");
-	code = d->exit_code;
+	code = d->main->exit_code;
 	log_info("stopcockd exiting code=%d", code);
 	daemon_stop(d);
 	return code;
