@@ -594,8 +594,28 @@ sim_levels(struct sim *sim)
 	return sim->alpha_total;
 }
 
-int
-cmd_simulate(int argc, char **argv)
+/* The defaults before options: 200 runs of one experiment, 5 looks. */
+static void
+sim_defaults(struct sim *sim, struct scenario_opts *o, int argc,
+    char **argv)
+{
+	memset(sim, 0, sizeof *sim);
+	memset(o, 0, sizeof *o);
+	scenario_init(&sim->s);
+	snprintf(sim->s.experiment, sizeof sim->s.experiment, "sim");
+	scenario_preset(&sim->s, argc, argv);
+	sim->s.records = 0;
+	sim->seed = 1;
+	sim->runs = 200;
+	sim->jobs = 1;
+	sim->looks = 5;
+	sim->power = 0.8;
+}
+
+/* The command line into sim and o. -1 to go on, else the exit code. */
+static int
+sim_options(struct sim *sim, struct scenario_opts *o, int argc, char **argv,
+    const char **confpath)
 {
 	static const struct option longopts[] = {
 		SCENARIO_LONGOPTS,
@@ -610,76 +630,56 @@ cmd_simulate(int argc, char **argv)
 		{ "help", no_argument, NULL, 'h' },
 		{ NULL, 0, NULL, 0 }
 	};
-	const char *confpath = "/etc/stopcock/stopcock.conf";
-	const struct conf_experiment *ce;
-	struct scenario_opts o;
-	struct sim sim;
-	struct conf *conf;
 	char *cause = NULL;
 	uint64_t u;
-	double plan_units, alpha_total;
-	size_t mapsize;
-	void *map;
-	json_t *root;
-	int ch, rc;
+	int ch;
 
-	memset(&sim, 0, sizeof sim);
-	memset(&o, 0, sizeof o);
-	scenario_init(&sim.s);
-	snprintf(sim.s.experiment, sizeof sim.s.experiment, "sim");
-	scenario_preset(&sim.s, argc, argv);
-	sim.s.records = 0;
-	sim.seed = 1;
-	sim.runs = 200;
-	sim.jobs = 1;
-	sim.looks = 5;
-	sim.power = 0.8;
 	optind = 1;
 	while ((ch = getopt_long(argc, argv, "c:j:h", longopts, NULL)) != -1) {
 		switch (ch) {
 		case 'c':
-			confpath = optarg;
+			*confpath = optarg;
 			break;
 		case 'r':
-			if (parse_u64(optarg, SIM_RUNS_MAX, &sim.runs) != 0 ||
-			    sim.runs == 0)
+			if (parse_u64(optarg, SIM_RUNS_MAX, &sim->runs) != 0 ||
+			    sim->runs == 0)
 				goto bad;
 			break;
 		case 't':
 			if (parse_u64(optarg, UINT64_C(1) << 40,
-			    &sim.tick_every) != 0 || sim.tick_every == 0)
+			    &sim->tick_every) != 0 || sim->tick_every == 0)
 				goto bad;
 			break;
 		case 'k':
 			if (parse_u64(optarg, SIM_LOOKS_MAX, &u) != 0 || u == 0)
 				goto bad;
-			sim.looks = (int)u;
+			sim->looks = (int)u;
 			break;
 		case 'p':
-			if (parse_double(optarg, 0.01, 0.999, &sim.power) != 0)
+			if (parse_double(optarg, 0.01, 0.999, &sim->power) != 0)
 				goto bad;
 			break;
 		case 'S':
-			if (parse_u64(optarg, UINT64_MAX, &sim.seed) != 0)
+			if (parse_u64(optarg, UINT64_MAX, &sim->seed) != 0)
 				goto bad;
 			break;
 		case 'j':
 			if (parse_u64(optarg, SIM_JOBS_MAX, &u) != 0)
 				goto bad;
-			sim.jobs = u == 0 ? (int)sysconf(_SC_NPROCESSORS_ONLN) :
-			    (int)u;
-			if (sim.jobs < 1)
-				sim.jobs = 1;
+			sim->jobs = u == 0 ?
+			    (int)sysconf(_SC_NPROCESSORS_ONLN) : (int)u;
+			if (sim->jobs < 1)
+				sim->jobs = 1;
 			break;
 		case 'J':
-			sim.json = 1;
+			sim->json = 1;
 			break;
 		case 'h':
 			sim_usage(stdout);
 			return SC_EX_OK;
 		default:
 			if (ch >= SOPT_EXPERIMENTS && ch < SOPT_LAST) {
-				if (scenario_option(&sim.s, &o, ch, optarg,
+				if (scenario_option(&sim->s, o, ch, optarg,
 				    &cause) == 0)
 					break;
 				fprintf(stderr, "stopcock simulate: %s\n",
@@ -695,50 +695,124 @@ cmd_simulate(int argc, char **argv)
 		sim_usage(stderr);
 		return SC_EX_USAGE;
 	}
-	if (sim.s.nexperiments != 1) {
+	if (sim->s.nexperiments != 1) {
 		fprintf(stderr, "stopcock simulate: a run is one experiment; "
 		    "use --runs\n");
 		return SC_EX_USAGE;
 	}
+	return -1;
+bad:
+	fprintf(stderr, "stopcock simulate: bad value '%s'\n", optarg);
+	return SC_EX_USAGE;
+}
+
+/*
+ * The scenario against the loaded configuration: its metrics, the
+ * default horizon (the planned units of every arm), the cap on tests and
+ * the default tick. -1 to go on, else the exit code.
+ */
+static int
+sim_plan(struct sim *sim, struct scenario_opts *o, const char *confpath)
+{
+	const struct conf *conf = sim->conf;
+	const struct conf_experiment *ce;
+	double plan_units;
+	char *cause = NULL;
+	int default_horizon;
+
+	if (conf->nguardrails == 0) {
+		fprintf(stderr, "stopcock simulate: %s has no guardrails\n",
+		    confpath);
+		return SC_EX_USAGE;
+	}
+	default_horizon = sim->s.records == 0;
+	if (default_horizon)
+		sim->s.records = 2;	/* until the metrics are known */
+	if (scenario_finish(&sim->s, conf, o, &cause) != 0) {
+		fprintf(stderr, "stopcock simulate: %s\n", cause);
+		free(cause);
+		return SC_EX_USAGE;
+	}
+	if (default_horizon) {
+		ce = conf_experiment_find(conf, sim->s.experiment);
+		plan_units = ce && ce->plan_units > 0 ? ce->plan_units :
+		    conf->plan_units;
+		sim->s.records = (uint64_t)(plan_units * sim->s.narms) *
+		    (uint64_t)scenario_records_per_unit(&sim->s) + 1;
+	}
+	if (conf->nguardrails * (sim->s.narms - 1) > SIM_TESTS_MAX) {
+		fprintf(stderr, "stopcock simulate: at most %d guardrail x "
+		    "arm tests\n", SIM_TESTS_MAX);
+		return SC_EX_USAGE;
+	}
+	if (sim->tick_every == 0) {
+		sim->tick_every = sim->s.rate > 0 ? (uint64_t)llround(
+		    sim->s.rate * conf->tick) : 1000;
+		if (sim->tick_every == 0)
+			sim->tick_every = 1;
+	}
+	return -1;
+}
+
+/* Every run into a table shared with the workers, then the report. */
+static int
+sim_execute(struct sim *sim, double alpha_total)
+{
+	size_t mapsize;
+	void *map;
+	json_t *root;
+	int rc;
+
+	mapsize = sizeof(struct sim_run) * sim->runs + 64;
+	map = mmap(NULL, mapsize, PROT_READ | PROT_WRITE,
+	    MAP_SHARED | MAP_ANONYMOUS, -1, 0);
+	if (map == MAP_FAILED) {
+		fprintf(stderr, "stopcock simulate: mmap: %s\n",
+		    strerror(errno));
+		return SC_EX_OSERR;
+	}
+	sim->done = map;
+	sim->res = (struct sim_run *)((char *)map + 64);
+	if (sim_run_all(sim) != 0) {
+		fprintf(stderr, "stopcock simulate: a worker failed\n");
+		rc = SC_EX_SOFTWARE;
+	} else {
+		root = simreport_json(sim, alpha_total);
+		if (sim->json) {
+			json_dumpf(root, stdout, JSON_INDENT(2) |
+			    JSON_REAL_PRECISION(8));
+			fputc('\n', stdout);
+		} else
+			simreport_print(sim, root, stdout);
+		json_decref(root);
+		rc = fflush(stdout) == 0 ? SC_EX_OK : SC_EX_IOERR;
+	}
+	munmap(map, mapsize);
+	return rc;
+}
+
+int
+cmd_simulate(int argc, char **argv)
+{
+	const char *confpath = "/etc/stopcock/stopcock.conf";
+	struct scenario_opts o;
+	struct sim sim;
+	struct conf *conf;
+	char *cause = NULL;
+	double alpha_total;
+	int rc;
+
+	sim_defaults(&sim, &o, argc, argv);
+	if ((rc = sim_options(&sim, &o, argc, argv, &confpath)) != -1)
+		return rc;
 	if (conf_load(confpath, &conf, &cause) != 0) {
 		fprintf(stderr, "%s\n", cause);
 		free(cause);
 		return SC_EX_CONFIG;
 	}
 	sim.conf = conf;
-	rc = SC_EX_USAGE;
-	if (conf->nguardrails == 0) {
-		fprintf(stderr, "stopcock simulate: %s has no guardrails\n",
-		    confpath);
+	if ((rc = sim_plan(&sim, &o, confpath)) != -1)
 		goto out;
-	}
-	if (sim.s.records == 0)
-		sim.s.records = 2;	/* placeholder until metrics are known */
-	u = sim.s.records;
-	if (scenario_finish(&sim.s, conf, &o, &cause) != 0) {
-		fprintf(stderr, "stopcock simulate: %s\n", cause);
-		free(cause);
-		goto out;
-	}
-	if (u == 2) {
-		/* default horizon: the planned units of every arm */
-		ce = conf_experiment_find(conf, sim.s.experiment);
-		plan_units = ce && ce->plan_units > 0 ? ce->plan_units :
-		    conf->plan_units;
-		sim.s.records = (uint64_t)(plan_units * sim.s.narms) *
-		    (uint64_t)scenario_records_per_unit(&sim.s) + 1;
-	}
-	if (conf->nguardrails * (sim.s.narms - 1) > SIM_TESTS_MAX) {
-		fprintf(stderr, "stopcock simulate: at most %d guardrail x "
-		    "arm tests\n", SIM_TESTS_MAX);
-		goto out;
-	}
-	if (sim.tick_every == 0) {
-		sim.tick_every = sim.s.rate > 0 ? (uint64_t)llround(
-		    sim.s.rate * conf->tick) : 1000;
-		if (sim.tick_every == 0)
-			sim.tick_every = 1;
-	}
 	sim.tty = isatty(STDERR_FILENO);
 	sim_tests(&sim);
 	if (!isfinite(alpha_total = sim_levels(&sim))) {
@@ -748,37 +822,8 @@ cmd_simulate(int argc, char **argv)
 		goto out;
 	}
 	sim_fixed(&sim);
-
-	mapsize = sizeof(struct sim_run) * sim.runs + 64;
-	map = mmap(NULL, mapsize, PROT_READ | PROT_WRITE,
-	    MAP_SHARED | MAP_ANONYMOUS, -1, 0);
-	if (map == MAP_FAILED) {
-		fprintf(stderr, "stopcock simulate: mmap: %s\n",
-		    strerror(errno));
-		rc = SC_EX_OSERR;
-		goto out;
-	}
-	sim.done = map;
-	sim.res = (struct sim_run *)((char *)map + 64);
-	if (sim_run_all(&sim) != 0) {
-		fprintf(stderr, "stopcock simulate: a worker failed\n");
-		rc = SC_EX_SOFTWARE;
-	} else {
-		root = simreport_json(&sim, alpha_total);
-		if (sim.json) {
-			json_dumpf(root, stdout, JSON_INDENT(2) |
-			    JSON_REAL_PRECISION(8));
-			fputc('\n', stdout);
-		} else
-			simreport_print(&sim, root, stdout);
-		json_decref(root);
-		rc = fflush(stdout) == 0 ? SC_EX_OK : SC_EX_IOERR;
-	}
-	munmap(map, mapsize);
+	rc = sim_execute(&sim, alpha_total);
 out:
 	conf_free(conf);
 	return rc;
-bad:
-	fprintf(stderr, "stopcock simulate: bad value '%s'\n", optarg);
-	return SC_EX_USAGE;
 }

@@ -60,7 +60,13 @@ static const struct {
 	{ "refused", "rate_limited" },
 };
 
-enum pause_redis_state { REDIS_OFF, REDIS_DOWN, REDIS_CONNECTING, REDIS_UP };
+/* The pause connection to Redis; changed only by pause_redis_set_state. */
+enum pause_redis_state {
+	PAUSE_REDIS_OFF,	/* no Redis delivery configured */
+	PAUSE_REDIS_DOWN,	/* waiting for the reconnect timer */
+	PAUSE_REDIS_CONNECTING,
+	PAUSE_REDIS_UP
+};
 
 struct pause_op {
 	TAILQ_ENTRY(pause_op)	 entry;
@@ -113,6 +119,39 @@ struct pause {
 
 static void	pause_redis_connect(struct pause *);
 static void	pause_redis_flush(struct pause *);
+
+static const char *
+pause_redis_state_name(enum pause_redis_state st)
+{
+	switch (st) {
+	case PAUSE_REDIS_OFF:
+		return "off";
+	case PAUSE_REDIS_DOWN:
+		return "down";
+	case PAUSE_REDIS_CONNECTING:
+		return "connecting";
+	case PAUSE_REDIS_UP:
+		return "up";
+	}
+	return "?";
+}
+
+/* Every change of the connection state goes through here, logged. */
+static void
+pause_redis_set_state(struct pause *p, enum pause_redis_state new)
+{
+	if (p->state == new)
+		return;
+	if (new == PAUSE_REDIS_UP || p->state == PAUSE_REDIS_UP)
+		log_info("pause: Redis %s -> %s queued=%u",
+		    pause_redis_state_name(p->state),
+		    pause_redis_state_name(new), p->nqueue);
+	else
+		log_debug("pause: Redis %s -> %s",
+		    pause_redis_state_name(p->state),
+		    pause_redis_state_name(new));
+	p->state = new;
+}
 
 static json_t *
 pause_evidence(const struct finding *f)
@@ -343,7 +382,8 @@ pause_redis_flush(struct pause *p)
 {
 	struct pause_op *op;
 
-	while (p->state == REDIS_UP && (op = TAILQ_FIRST(&p->queue)) != NULL) {
+	while (p->state == PAUSE_REDIS_UP &&
+	    (op = TAILQ_FIRST(&p->queue)) != NULL) {
 		TAILQ_REMOVE(&p->queue, op, entry);
 		p->nqueue--;
 		if (redisAsyncCommand(p->rc, pause_redis_reply, op, "%s %s %s",
@@ -377,7 +417,7 @@ pause_redis_later(struct pause *p)
 {
 	struct timeval tv;
 
-	p->state = REDIS_DOWN;
+	pause_redis_set_state(p, PAUSE_REDIS_DOWN);
 	tv.tv_sec = (time_t)p->backoff;
 	tv.tv_usec = (suseconds_t)((p->backoff - (double)tv.tv_sec) * 1e6);
 	evtimer_add(p->reconnect, &tv);
@@ -398,8 +438,7 @@ pause_redis_connected(const redisAsyncContext *ac, int status)
 		pause_redis_later(p);
 		return;
 	}
-	log_info("pause: Redis connected");
-	p->state = REDIS_UP;
+	pause_redis_set_state(p, PAUSE_REDIS_UP);
 	p->backoff = PAUSE_BACKOFF_MIN;
 	pause_redis_flush(p);
 }
@@ -451,7 +490,7 @@ pause_redis_connect(struct pause *p)
 		return;
 	}
 	p->rc = ac;
-	p->state = REDIS_CONNECTING;
+	pause_redis_set_state(p, PAUSE_REDIS_CONNECTING);
 }
 
 /* The [redis] address: "host:port", "[v6]:port" or a socket path. */
@@ -509,7 +548,8 @@ pause_audit_reload(struct pause *p)
 		    "experiment", &exp, "epoch", &epoch, "decision", &dec) ==
 		    0 && epoch > 0 && epoch <= UINT32_MAX &&
 		    strlen(exp) <= PROTO_NAME_MAX &&
-		    (strcmp(dec, "paused") == 0 || strcmp(dec, "dry_run") == 0)) {
+		    (strcmp(dec, "paused") == 0 ||
+		    strcmp(dec, "dry_run") == 0)) {
 			pause_mark_done(p, exp, (uint32_t)epoch);
 			if (strcmp(dec, "paused") == 0 && now - t < 3600)
 				pause_rate_add(p, t);
@@ -526,7 +566,7 @@ pause_new(struct daemon *d, char **cause)
 	struct pause *p;
 	int redis_wanted;
 
-	p = xcalloc(1, sizeof *p);
+	p = xcalloc(1, sizeof *p);	/* state PAUSE_REDIS_OFF */
 	p->d = d;
 	p->audit_fd = -1;
 	TAILQ_INIT(&p->queue);
@@ -567,8 +607,7 @@ pause_new(struct daemon *d, char **cause)
 		    p)) == NULL)
 			fatalx("pause: evtimer_new failed");
 		pause_redis_connect(p);
-	} else
-		p->state = REDIS_OFF;
+	}
 	return p;
 }
 
@@ -638,7 +677,7 @@ pause_deliver(struct pause *p, const struct finding *f, const char *reason)
 			log_warnx("pause: no webhook machinery for %s",
 			    c->pause_url);
 	}
-	if (p->state != REDIS_OFF &&
+	if (p->state != PAUSE_REDIS_OFF &&
 	    (value = json_dumps(j, JSON_COMPACT)) != NULL) {
 		if (c->pause_redis_key != NULL && *c->pause_redis_key != '\0') {
 			if ((key = pause_expand(c->pause_redis_key,
@@ -675,7 +714,7 @@ pause_decide(struct pause *p, const struct finding *f, char **reason)
 	    f->verdict != VERDICT_UNDECIDED))
 		return PAUSE_NONE;
 	if (srm && !c->pause_on_srm)
-		return PAUSE_NONE;	/* SRM alerts; it pauses only when allowed */
+		return PAUSE_NONE;	/* it alerts; it pauses if allowed */
 
 	if (f->untrusted && !srm)
 		dec = PAUSE_REFUSED_UNTRUSTED;
@@ -744,7 +783,7 @@ pause_metrics(struct pause *p, struct evbuffer *b)
 	metrics_gauge(b, "stopcock_pause_redis_pending", "Redis commands for "
 	    "pauses not yet answered.", p->nqueue);
 	metrics_gauge(b, "stopcock_pause_redis_up", "1 when the pause Redis "
-	    "connection is up.", p->state == REDIS_UP);
+	    "connection is up.", p->state == PAUSE_REDIS_UP);
 	metrics_counter(b, "stopcock_pause_http_queued_total", "Pauses handed "
 	    "to the pause URL's queue.", p->http_queued);
 	metrics_counter(b, "stopcock_pause_audit_errors_total", "Audit lines "
