@@ -19,7 +19,7 @@ CC	= cc
 endif
 
 PKGS_CORE	= gsl jansson inih libcrypto
-PKGS_DAEMON	= libevent hiredis libcurl libsystemd
+PKGS_DAEMON	= libevent hiredis libcurl libsystemd rdkafka
 PKGS_CLI	= libcurl
 PKGS_TEST	= cmocka
 
@@ -112,6 +112,13 @@ $(BUILD)/tests/%: tests/tools/%.c $(LIBCORE)
 	@mkdir -p $(@D)
 	$(CC) $(CPPFLAGS) $(CFLAGS) $(LDFLAGS) -o $@ $< $(LIBCORE) \
 	    $(LDLIBS_CORE)
+
+# The mock Kafka cluster and producer of tests/it/test_kafka.py: the one
+# probe that links librdkafka (and nothing of the core).
+$(BUILD)/tests/kafkamock: tests/tools/kafkamock.c
+	@mkdir -p $(@D)
+	$(CC) $(CPPFLAGS) $(CFLAGS) $(LDFLAGS) -o $@ $< \
+	    $(shell pkg-config --libs rdkafka 2>/dev/null)
 
 $(BUILD)/fuzz_%: tests/fuzz/fuzz_%.c $(LIBCORE)
 	@mkdir -p $(@D)

@@ -6,8 +6,9 @@
 # recommended by clang, and recommends are not installed here).
 PKGS="build-essential pkg-config clang libclang-rt-dev libevent-dev libgsl-dev
 libhiredis-dev libjansson-dev libinih-dev libcmocka-dev libcurl4-openssl-dev
-libssl-dev libsystemd-dev redis-server redis-tools python3 python3-scipy python3-numpy
-python3-prometheus-client chromium systemd mawk curl openssl"
+libssl-dev libsystemd-dev librdkafka-dev redis-server redis-tools python3
+python3-scipy python3-numpy python3-prometheus-client chromium systemd mawk
+curl openssl"
 missing=""
 for p in $PKGS; do
 	dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "ok installed" ||

@@ -2,11 +2,11 @@
 # Layer check for `make check`, in TAP. The layering DEVELOPERS.md
 # describes, checked on the #include lines and on the binaries' links:
 #   - nothing under src/core includes a shell library (libevent, hiredis,
-#     libcurl, libsystemd, syslog, sockets, polling) or a header of
+#     libcurl, libsystemd, librdkafka, syslog, sockets, polling) or a header of
 #     src/daemon or src/cli;
 #   - src/daemon and src/cli never include each other's headers;
-#   - for each BUILD given: BUILD/stopcock needs no libevent, hiredis or
-#     libsystemd, and BUILD/stopcockd does need them (which also proves
+#   - for each BUILD given: BUILD/stopcock needs no libevent, hiredis,
+#     libsystemd or librdkafka, and BUILD/stopcockd does need them (which also proves
 #     the check reads the dynamic section at all).
 # A quoted include is resolved as the compiler does (the including file's
 # directory, then include/), so a header is judged by where it lives.
@@ -16,6 +16,7 @@ cd "$(dirname "$0")/.." || exit 1
 
 # Shell libraries, as patterns on the text between <> or "".
 SHELL_LIBS='^(event2/|event\.h$|evhttp\.h$|hiredis|adapters/|curl/|systemd/'
+SHELL_LIBS=$SHELL_LIBS'|librdkafka/'
 SHELL_LIBS=$SHELL_LIBS'|syslog\.h$|sys/socket\.h$|sys/un\.h$|netinet/|arpa/'
 SHELL_LIBS=$SHELL_LIBS'|netdb\.h$|ifaddrs\.h$|poll\.h$|sys/poll\.h$'
 SHELL_LIBS=$SHELL_LIBS'|sys/epoll\.h$|sys/select\.h$|sys/event\.h$|pthread\.h$'
@@ -117,7 +118,7 @@ needed() {
 	readelf -d "$1" 2>/dev/null | sed -n 's/.*(NEEDED).*\[\(.*\)\]/\1/p'
 }
 
-DAEMON_LIBS='^lib(event|hiredis|systemd)'
+DAEMON_LIBS='^lib(event|hiredis|systemd|rdkafka)'
 for b in "$@"; do
 	: >"$tmp/diag"
 	if [ -f "$b/stopcock" ]; then
@@ -127,16 +128,18 @@ for b in "$@"; do
 		ok=0
 		echo "$b/stopcock: no such file" >"$tmp/diag"
 	fi
-	result $ok "$b/stopcock needs no libevent, hiredis or libsystemd" \
+	result $ok "$b/stopcock needs no libevent, hiredis, libsystemd or \
+librdkafka" \
 	    "$tmp/diag"
 	ok=0
 	if [ -f "$b/stopcockd" ]; then
 		needed "$b/stopcockd" >"$tmp/diag"
-		[ "$(grep -cE "$DAEMON_LIBS" "$tmp/diag")" -eq 3 ] && ok=1
+		[ "$(grep -cE "$DAEMON_LIBS" "$tmp/diag")" -eq 4 ] && ok=1
 	else
 		echo "$b/stopcockd: no such file" >"$tmp/diag"
 	fi
-	result $ok "$b/stopcockd needs libevent, hiredis and libsystemd" \
+	result $ok "$b/stopcockd needs libevent, hiredis, libsystemd and \
+librdkafka" \
 	    "$tmp/diag"
 done
 [ "$nfail" -eq 0 ]

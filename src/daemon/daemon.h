@@ -10,6 +10,8 @@
  *   redis_in.c  the Redis stream consumer (hiredis async)    (redis_in_*)
  *   redis_house.c  its housekeeping: acks, dead letters, reclaiming,
  *               lag (redis_house_*; shares redis_in_int.h)
+ *   kafka_in.c  the Kafka consumer: partitions, exactly-once state
+ *               and offsets in transactions (librdkafka)  (kafka_*)
  *   ckpt.c      checkpoint write/restore, atomic and checksummed (ckpt_*)
  *   dispatch.c  the engine's sink: findings queued, then drained on
  *               the loop to pause, alert and webhooks    (dispatch_*)
@@ -37,12 +39,15 @@
 #include "stopcock/proto.h"
 #include "stopcock/util.h"
 
-enum source { SRC_TCP, SRC_UDP, SRC_UNIX, SRC_REDIS, SRC_HTTP, SRC_N };
+enum source {
+	SRC_TCP, SRC_UDP, SRC_UNIX, SRC_REDIS, SRC_HTTP, SRC_KAFKA, SRC_N
+};
 
 struct daemon_main;
 struct ingest;
 struct listen;
 struct redis_in;
+struct kafka_in;
 struct dispatch;
 struct alert;
 struct webhook;
@@ -81,6 +86,7 @@ struct daemon {
 	struct ingest		*ingest;
 	struct listen		*listen;
 	struct redis_in		*redis;
+	struct kafka_in		*kafka;
 	struct dispatch		*dispatch;
 	struct alert		*alert;
 	struct webhook		*webhook;
@@ -100,8 +106,11 @@ struct daemon {
 
 const char	*source_name(enum source);
 double		 daemon_now(void);	/* wall clock, seconds */
-/* Number of record inputs configured (tcp, udp, unix, redis). */
+/* Number of record inputs configured (tcp, udp, unix, redis, kafka). */
 int		 daemon_inputs(const struct conf *);
+/* Make e the daemon's engine (its findings to the sink), freeing the
+ * one before: kafka_in.c merges partitions in and out this way. */
+void		 daemon_engine_replace(struct daemon *, struct engine *e);
 
 /* ingest.c: its counters, rejection log budget and event numbers. */
 struct ingest	*ingest_new(void);
@@ -184,6 +193,13 @@ void		 dispatch_free(struct dispatch *);
 void		 dispatch_finding(void *dispatch, const struct finding *);
 void		 dispatch_drain(struct dispatch *);
 void		 dispatch_metrics(struct dispatch *, struct evbuffer *);
+
+/* kafka_in.c: the consumer of [kafka] topic. kafka_in_stop (shutdown)
+ * commits every owned partition's state and offset, then leaves. */
+struct kafka_in	*kafka_in_new(struct daemon *, char **cause);
+void		 kafka_in_free(struct kafka_in *);
+void		 kafka_in_stop(struct kafka_in *);
+void		 kafka_in_metrics(struct kafka_in *, struct evbuffer *);
 
 /* alert.c */
 enum alert_kind {

@@ -740,6 +740,8 @@ http_metrics(struct http *h, struct evbuffer *b)
 		listen_metrics(d->listen, b);
 	if (d->redis != NULL)
 		redis_in_metrics(d->redis, b);
+	if (d->kafka != NULL)
+		kafka_in_metrics(d->kafka, b);
 	if (d->webhook != NULL)
 		webhook_metrics(d->webhook, b);
 	if (d->dispatch != NULL)

@@ -72,6 +72,8 @@ source_name(enum source s)
 		return "redis";
 	case SRC_HTTP:
 		return "http";
+	case SRC_KAFKA:
+		return "kafka";
 	case SRC_N:
 		break;
 	}
@@ -91,7 +93,20 @@ int
 daemon_inputs(const struct conf *conf)
 {
 	return (conf->tcp != NULL) + (conf->udp != NULL) +
-	    (conf->unix_path != NULL) + (conf->redis_address != NULL);
+	    (conf->unix_path != NULL) + (conf->redis_address != NULL) +
+	    (conf->kafka_brokers != NULL);
+}
+
+void
+daemon_engine_replace(struct daemon *d, struct engine *e)
+{
+	struct engine *old = d->engine;
+
+	/* queued findings may point into the old engine */
+	dispatch_drain(d->dispatch);
+	d->engine = e;
+	engine_set_sink(d->engine, dispatch_finding, d->dispatch);
+	engine_free(old);
 }
 
 static void SC_NORETURN
@@ -130,7 +145,7 @@ daemon_check(const struct conf *conf, char **cause)
 {
 	if (daemon_inputs(conf) == 0) {
 		xasprintf(cause, "%s: no input: set at least one of [daemon] "
-		    "tcp, udp, unix or [redis] address",
+		    "tcp, udp, unix, [redis] address or [kafka] brokers",
 		    conf->path != NULL ? conf->path : "configuration");
 		return -1;
 	}
@@ -237,6 +252,14 @@ daemon_reload_notes(const struct conf *old, const struct conf *new)
 		{ "[redis] consumer", offsetof(struct conf, redis_consumer) },
 		{ "[redis] dead_letter",
 		    offsetof(struct conf, redis_dead_letter) },
+		{ "[kafka] brokers", offsetof(struct conf, kafka_brokers) },
+		{ "[kafka] topic", offsetof(struct conf, kafka_topic) },
+		{ "[kafka] group", offsetof(struct conf, kafka_group) },
+		{ "[kafka] state_topic",
+		    offsetof(struct conf, kafka_state_topic) },
+		{ "[kafka] client_id", offsetof(struct conf, kafka_client_id) },
+		{ "[kafka] instance_id",
+		    offsetof(struct conf, kafka_instance_id) },
 		{ "[syslog] ident", offsetof(struct conf, syslog_ident) },
 		{ "[syslog] facility", offsetof(struct conf, syslog_facility) },
 	};
@@ -312,6 +335,7 @@ daemon_shutdown(struct daemon *d, int sig)
 	log_info("shutting down signal=%s", strsignal(sig));
 	if (d->redis != NULL)
 		redis_in_stop(d->redis);
+	kafka_in_stop(d->kafka);
 	if (d->listen != NULL)
 		listen_drain(d->listen);
 	dispatch_drain(d->dispatch);
@@ -475,6 +499,12 @@ daemon_start(struct daemon *d)
 	if (ckpt_restore(d, &cause) != 0)
 		daemon_fatal(d, SC_EX_DATAERR, "%s; refusing to start (move "
 		    "the file away to start afresh)", cause);
+	if (d->engine != NULL && d->conf->kafka_brokers != NULL) {
+		/* Kafka experiments come back from the state topic, which
+		 * also says where to resume; a local copy would be stale. */
+		engine_free(d->engine);
+		d->engine = NULL;
+	}
 	if (d->engine == NULL)
 		d->engine = engine_new(d->conf, d->hashkey);
 	engine_set_sink(d->engine, dispatch_finding, d->dispatch);
@@ -492,6 +522,11 @@ daemon_start(struct daemon *d)
 		d->redis = redis_in_new(d, d->restored_redis_id, &cause);
 		if (d->redis == NULL)
 			daemon_fatal(d, SC_EX_CONFIG, "redis: %s", cause);
+	}
+	if (d->conf->kafka_brokers != NULL) {
+		d->kafka = kafka_in_new(d, &cause);
+		if (d->kafka == NULL)
+			daemon_fatal(d, SC_EX_CONFIG, "kafka: %s", cause);
 	}
 
 	for (i = 0; i < SC_NELEM(daemon_signals); i++) {
@@ -533,6 +568,7 @@ daemon_stop(struct daemon *d)
 	if (d->main->ev_watchdog != NULL)
 		event_free(d->main->ev_watchdog);
 	redis_in_free(d->redis);
+	kafka_in_free(d->kafka);
 	listen_free(d->listen);
 	http_free(d->http);
 	dispatch_free(d->dispatch);	/* before the outputs it feeds */

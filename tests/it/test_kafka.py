@@ -1,0 +1,313 @@
+"""stopcockd's Kafka input against librdkafka's mock cluster.
+
+There is no Kafka broker in Debian and no Python Kafka client, so
+build/tests/kafkamock (tests/tools/kafkamock.c) is both the cluster (three
+mock brokers on loopback that speak the Kafka protocol, with consumer
+groups and transactions) and the producer this test drives. The daemons
+under test are the real stopcockd.
+
+Invented scenario: a bakery's web shop runs a dozen experiments at once
+(new basket page, cheaper delivery banner, ...) and watches the share of
+failed checkouts on each.
+
+ 1. One daemon owns all 8 partitions; it is killed with SIGKILL while
+    records flow, just after it read part of a batch, and restarted with
+    the same group.instance.id. In the end every experiment's exposures
+    and failed-checkout sums equal the produced ones exactly (no loss, no
+    double count), and so do the messages counted per partition, which
+    travel in the partition's state.
+ 2. A second daemon joins the group: the partitions split between the
+    two (disjoint, together all 8); more records flow; each experiment
+    lives in exactly one daemon, with its whole tally, and the union of
+    the two daemons' tallies is the produced one, exactly.
+ 3. A group whose partition 0 has a committed offset but no state: the
+    daemon refuses that partition loudly (logged, counted, not consumed)
+    and runs the others.
+"""
+import http.client
+import json
+import os
+import random
+import re
+import subprocess
+import threading
+import time
+
+from _lib import Tap, Daemon, wait_for, BUILD, OUT
+
+KAFKAMOCK = os.path.join(BUILD, "tests", "kafkamock")
+NPART = 8
+GUARDRAILS = """
+[guardrail failed_checkout]
+metric = failed_checkout
+test = proportion
+harm = increase
+margin = 0
+"""
+EXPS = ["shop_%s" % n for n in (
+    "basket_page", "delivery_banner", "pastry_photos", "search_box",
+    "loyalty_nudge", "checkout_steps", "gift_wrap", "pickup_slots",
+    "bread_subscription", "recipe_cards", "cake_builder", "night_menu")]
+
+
+class Mock:
+    """kafkamock: the cluster, the producer and an offset committer."""
+
+    def __init__(self):
+        self.log = open(os.path.join(OUT, "kafka-mock.log"), "w")
+        self.proc = subprocess.Popen(
+            [KAFKAMOCK, "-b", "3", "-t", "rec:%d" % NPART,
+             "-t", "st:%d" % NPART, "-t", "st2:%d" % NPART],
+            stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=self.log,
+            text=True, bufsize=1)
+        line = self.proc.stdout.readline().split()
+        if len(line) != 2 or line[0] != "bootstrap":
+            raise RuntimeError("kafkamock did not start: %r" % line)
+        self.bootstrap = line[1]
+        self.sent = 0
+
+    def cmd(self, line, payload=()):
+        self.proc.stdin.write(line + "\n")
+        for p in payload:
+            self.proc.stdin.write(p + "\n")
+        self.proc.stdin.flush()
+        return self.proc.stdout.readline().strip()
+
+    def send(self, key, lines):
+        r = self.cmd("msg %s %d" % (key, len(lines)), lines)
+        if r != "ok":
+            raise RuntimeError("kafkamock: %s" % r)
+        self.sent += 1
+
+    def flush(self):
+        r = self.cmd("flush").split()
+        return int(r[1]), int(r[2])
+
+    def close(self):
+        try:
+            self.cmd("quit")
+            self.proc.wait(timeout=20)
+        except Exception:
+            self.proc.kill()
+            self.proc.wait()
+        self.log.close()
+
+
+def kafka_daemon(name, mock, group, instance, state_topic="st",
+                 commit_every="200ms"):
+    d = Daemon(name, tcp=False, udp=False, unix=False, http=True,
+               conf="", start=False)
+    d.write_conf(
+        "[defaults]\nalpha = 0.05\nplan_units = 2000\nlateness = 0\n"
+        "srm_interval = 1ms\n" + GUARDRAILS +
+        "\n[daemon]\nstate = %s\ntick = 200ms\ncheckpoint_every = 1s\n"
+        "http = 127.0.0.1:%d\n" % (d.state, d.http) +
+        "\n[kafka]\nbrokers = %s\ntopic = rec\nstate_topic = %s\n"
+        "group = %s\ninstance_id = %s\ncommit_every = %s\n"
+        "session_timeout = 6s\n" % (mock.bootstrap, state_topic, group,
+                                    instance, commit_every))
+    d.start()
+    return d
+
+
+def get(d, path):
+    c = http.client.HTTPConnection("127.0.0.1", d.http, timeout=10)
+    try:
+        c.request("GET", path)
+        r = c.getresponse()
+        return r.status, r.read().decode()
+    finally:
+        c.close()
+
+
+def metrics(d):
+    """[(name, {label: value}, value)] of the daemon's /metrics."""
+    st, body = get(d, "/metrics")
+    out = []
+    for line in body.splitlines():
+        if not line or line.startswith("#"):
+            continue
+        head, val = line.rsplit(" ", 1)
+        labels = {}
+        if "{" in head:
+            name, rest = head.split("{", 1)
+            for kv in rest.rstrip("}").split(","):
+                k, v = kv.split("=", 1)
+                labels[k] = v.strip('"')
+        else:
+            name = head
+        out.append((name, labels, float(val)))
+    return out
+
+
+def partitions(d, state="running"):
+    if not d.alive():
+        return set()
+    return {int(l["partition"]) for n, l, v in metrics(d)
+            if n == "stopcock_kafka_partition_owned" and l["state"] == state}
+
+
+def messages(d):
+    if not d.alive():
+        return 0
+    return sum(v for n, l, v in metrics(d)
+               if n == "stopcock_kafka_messages_total")
+
+
+def tallies(d):
+    """{(exp, arm): [exposures, k, n]} of every experiment the daemon has."""
+    st, body = get(d, "/api/experiments")
+    out = {}
+    for e in json.loads(body)["experiments"]:
+        st, one = get(d, "/api/experiments/" + e["id"])
+        one = json.loads(one)
+        for a in e["arms"]:
+            out[(e["id"], a["variant"])] = [a["exposures"], 0, 0]
+        for t in one.get("tests", []):
+            if t["guardrail"] != "failed_checkout":
+                continue
+            for a in t["arms"]:
+                out[(e["id"], a["variant"])][1:] = [a["k"], a["n"]]
+    return out
+
+
+class Feed:
+    """Generated records, counted on the way out as the reference."""
+
+    def __init__(self, mock, seed):
+        self.mock = mock
+        self.rng = random.Random(seed)
+        self.want = {}
+        self.planned = set()
+
+    def message(self, exp):
+        lines = []
+        if exp not in self.planned:
+            lines.append("plan %s control=50 treatment=50" % exp)
+            self.planned.add(exp)
+            for arm in ("control", "treatment"):
+                self.want[(exp, arm)] = [0, 0, 0]
+        for _ in range(self.rng.randint(1, 6)):
+            arm = self.rng.choice(("control", "treatment"))
+            k = 1 if self.rng.random() < 0.1 else 0
+            lines.append("expose %s %s" % (exp, arm))
+            lines.append("count %s %s failed_checkout %d 1" % (exp, arm, k))
+            w = self.want[(exp, arm)]
+            w[0] += 1
+            w[1] += k
+            w[2] += 1
+        self.mock.send(exp, lines)
+
+    def batch(self, n):
+        for _ in range(n):
+            self.message(self.rng.choice(EXPS))
+        return self.mock.flush()
+
+
+def compare(tap, got, want, name):
+    bad = [(k, got.get(k), w) for k, w in sorted(want.items())
+           if got.get(k) != w]
+    extra = sorted(set(got) - set(want))
+    tap.ok(not bad and not extra, name,
+           "first differences: %r; unexpected: %r" % (bad[:4], extra[:4]))
+
+
+def main():
+    tap = Tap()
+    mock = Mock()
+    a = b = c = None
+    try:
+        feed = Feed(mock, seed=14)
+        # commits 1 s apart: a kill lands after reads not yet committed
+        a = kafka_daemon("kafka-a", mock, "bakery", "it-a",
+                         commit_every="1s")
+        tap.ok(wait_for(lambda: partitions(a) == set(range(NPART)), 30),
+               "one daemon is assigned all %d partitions" % NPART)
+
+        # 1. kill -9 in the middle of a run, restart, exact tallies
+        delivered, failed = feed.batch(300)
+        tap.eq((delivered, failed), (300, 0), "300 messages produced")
+        tap.ok(wait_for(lambda: messages(a) >= 300, 30),
+               "the daemon read the first 300 messages")
+
+        def paced(n):	# about 100 messages a second
+            for i in range(n):
+                feed.message(feed.rng.choice(EXPS))
+                if i % 10 == 9:
+                    feed.mock.flush()
+                    time.sleep(0.1)
+            feed.mock.flush()
+        producer = threading.Thread(target=paced, args=(300,))
+        producer.start()
+        wait_for(lambda: messages(a) > 400, 30, 0.02)
+        seen = messages(a)
+        a.kill9()
+        producer.join()
+        tap.ok(400 < seen < 600, "killed with SIGKILL part way through the "
+               "second batch (%d of 600 read)" % seen)
+        a.start()
+        total = mock.sent
+        tap.ok(wait_for(lambda: messages(a) == total, 60),
+               "after the restart the partitions' message counts add up to "
+               "the %d produced, exactly" % total,
+               "counted %r" % messages(a))
+        compare(tap, tallies(a), feed.want, "exposures and failed-checkout "
+                "sums equal the produced ones exactly after SIGKILL")
+        restored = [int(m) for m in re.findall(
+            r"restored from the state topic .* messages=(\d+)",
+            a.log_text())]
+        tap.ok(restored and sum(restored) < seen,
+               "the restarted daemon rebuilt its partitions from the state "
+               "topic, %d messages in, and read the %d after again"
+               % (sum(restored), seen - sum(restored)),
+               "restored %r, seen %r" % (restored, seen))
+
+        # 2. a second daemon: the partitions split, each owns its own
+        b = kafka_daemon("kafka-b", mock, "bakery", "it-b")
+
+        def split():
+            pa, pb = partitions(a), partitions(b)
+            return pa and pb and not (pa & pb) and \
+                pa | pb == set(range(NPART))
+        tap.ok(wait_for(split, 60), "two daemons split the %d partitions, "
+               "disjoint and complete" % NPART,
+               "a=%r b=%r" % (partitions(a), partitions(b)))
+        feed.batch(300)
+        total = mock.sent
+        tap.ok(wait_for(lambda: messages(a) + messages(b) == total, 60),
+               "the two daemons' message counts add up to the %d produced"
+               % total, "a=%r b=%r" % (messages(a), messages(b)))
+        ta, tb = tallies(a), tallies(b)
+        ea = {e for e, _ in ta}
+        eb = {e for e, _ in tb}
+        tap.ok(ea and eb and not (ea & eb), "each experiment lives in one "
+               "daemon only", "both: %r" % sorted(ea & eb))
+        union = dict(ta)
+        union.update(tb)
+        compare(tap, union, feed.want, "the union of the two daemons' "
+                "tallies equals the produced records exactly")
+
+        # 3. committed offset, no state: refused loudly
+        tap.eq(mock.cmd("commit pantry 0 3"), "ok",
+               "offset 3 committed for partition 0 of a fresh group")
+        c = kafka_daemon("kafka-c", mock, "pantry", "it-c", "st2")
+        tap.ok(wait_for(lambda: 0 in partitions(c, "refused"), 30),
+               "partition 0 is refused (committed offset, no state)")
+        refused = [v for n, l, v in metrics(c)
+                   if n == "stopcock_kafka_refused_total" and
+                   l["reason"] == "no_state"]
+        tap.eq(refused, [1.0], "the refusal is counted (reason no_state)")
+        tap.ok(wait_for(lambda: partitions(c) == set(range(1, NPART)), 30),
+               "the other partitions run")
+        tap.ok("partition REFUSED" in c.log_text(),
+               "the refusal is logged")
+    finally:
+        for d in (a, b, c):
+            if d is not None:
+                d.close()
+        mock.close()
+    tap.done()
+
+
+if __name__ == "__main__":
+    main()
