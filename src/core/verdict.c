@@ -323,6 +323,11 @@ eval_normal(const struct engine *eng, struct experiment *e, struct test *t,
  * one-sided factor (prior truncated to the harmful side) is a test
  * supermartingale for every ratio on the good side of r0.
  */
+/* Events per arm after which the rate's ratio test decides alone (our
+ * choice; validity measured by tests/ref/test_adversary.py, cells 11a,
+ * 11b, x8, x10, x11). */
+#define VERDICT_RATE_ROBUST_EVENTS 50
+
 static int
 eval_rate(const struct engine *eng, struct experiment *e, struct test *t,
     const struct conf_guardrail *g, const struct series *a,
@@ -354,9 +359,14 @@ eval_rate(const struct engine *eng, struct experiment *e, struct test *t,
 	 * The conditional test is exact only for Poisson events; a crash
 	 * loop makes one unit's events share a label. The ratio test with a
 	 * record- or unit-level variance holds whatever the dependence within
-	 * units, but only asymptotically. Harm needs both: the smaller of two
-	 * e-processes is below each, so it keeps the guarantee of whichever
-	 * one's assumptions hold.
+	 * units, but only asymptotically. While counts are small harm needs
+	 * both: the smaller of two e-processes is below each, so it keeps the
+	 * guarantee of whichever one's assumptions hold. Once both arms have
+	 * VERDICT_RATE_ROBUST_EVENTS events the ratio test's normal limit is
+	 * what we rely on and it decides alone: the evidence is then never
+	 * above the ratio test's, so the pair is as valid as that test, and
+	 * the minimum's cost in power (measured: 1.11 -> 0.90 of the
+	 * fixed-horizon size) goes.
 	 */
 	saved_lo = t->cs_lo;
 	saved_hi = t->cs_hi;
@@ -370,7 +380,7 @@ eval_rate(const struct engine *eng, struct experiment *e, struct test *t,
 		t->log_e = stats_rate_log_bf(kb, ka, 1 - th0, k, 1);
 	if (!isfinite(robust))
 		return -1;
-	if (robust < t->log_e)
+	if (robust < t->log_e || fmin(ka, kb) >= VERDICT_RATE_ROBUST_EVENTS)
 		t->log_e = robust;
 	t->ctl_value = ra;
 	t->trt_value = rb;

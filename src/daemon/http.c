@@ -730,6 +730,20 @@ http_metrics(struct http *h, struct evbuffer *b)
 	    "watermark, stamped before their epoch, or beyond its ring.");
 	evbuffer_add_printf(b, "stopcock_engine_srm_late_exposures_total "
 	    "%llu\n", (unsigned long long)ec.srm_late);
+	metrics_family(b, "stopcock_engine_metric_late_records_total",
+	    "counter", "Metric records older than their metric's event-time "
+	    "watermark: applied at once.");
+	evbuffer_add_printf(b, "stopcock_engine_metric_late_records_total "
+	    "%llu\n", (unsigned long long)ec.metric_late);
+	metrics_family(b, "stopcock_engine_held_forced_total", "counter",
+	    "Metric records applied before their watermark because an "
+	    "experiment held the most it may.");
+	evbuffer_add_printf(b, "stopcock_engine_held_forced_total %llu\n",
+	    (unsigned long long)ec.held_forced);
+	metrics_family(b, "stopcock_engine_held_records", "gauge",
+	    "Metric records waiting for their metric's watermark.");
+	evbuffer_add_printf(b, "stopcock_engine_held_records %llu\n",
+	    (unsigned long long)ec.held);
 	metrics_family(b, "stopcock_engine_grouped_series_total", "counter",
 	    "Series that began to use unit groups (their records name units).");
 	evbuffer_add_printf(b, "stopcock_engine_grouped_series_total %llu\n",
