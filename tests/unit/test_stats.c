@@ -40,6 +40,16 @@ near(const char *what, double got, double want, int dec)
 
 #define NEAR(what, got, want, dec) assert_true(near(what, got, want, dec))
 
+/* "what, row NAME": a table row's failure names the row. */
+static const char *
+row_label(char *buf, size_t size, const char *what, const char *row)
+{
+	snprintf(buf, size, "%s, row \"%s\"", what, row);
+	return buf;
+}
+
+#define ROW(what, row) row_label(label, sizeof label, what, row)
+
 /* ---- 10.1 normal mixtures (HRMS 2021), v_opt = 100, alpha = 0.05 ---- */
 static void
 test_nm_hrms(void **state)
@@ -62,16 +72,18 @@ test_nm_hrms(void **state)
 
 /* ---- 10.2 mSPRT (JPW 2022), paired, theta0 = 0, alpha = 0.05 [C] ---- */
 static const struct {
+	const char *name;
 	double n, diff, sigma2, tau2, lambda, hw;
 } msprt_rows[] = {
-	{ 100, 0.3, 1, 0.01, 1.728523, 0.619529 },	/* 10.2 row 1 [C] */
-	{ 1000, 0.1, 1, 0.01, 3.278722, 0.136674 },	/* 10.2 row 2 [C] */
-	{ 400, 0.0, 4, 0.05, 0.534522, 0.450376 },	/* 10.2 row 3 [C] */
+	{ "n=100 d=0.3", 100, 0.3, 1, 0.01, 1.728523, 0.619529 },  /* row 1 */
+	{ "n=1000 d=0.1", 1000, 0.1, 1, 0.01, 3.278722, 0.136674 }, /* row 2 */
+	{ "n=400 d=0", 400, 0.0, 4, 0.05, 0.534522, 0.450376 },    /* row 3 */
 };
 
 static void
 test_msprt_table(void **state)
 {
+	char label[128];
 	size_t i;
 	double V, l;
 
@@ -79,9 +91,11 @@ test_msprt_table(void **state)
 		V = 2 * msprt_rows[i].sigma2 / msprt_rows[i].n;
 		l = stats_msprt_log_lr(msprt_rows[i].diff, 0, V,
 		    msprt_rows[i].tau2);
-		NEAR("Lambda_n [10.2 C]", exp(l), msprt_rows[i].lambda, 6);
-		NEAR("half-width [10.2 C]", stats_msprt_halfwidth(V,
-		    msprt_rows[i].tau2, 0.05), msprt_rows[i].hw, 6);
+		NEAR(ROW("Lambda_n [10.2 C]", msprt_rows[i].name), exp(l),
+		    msprt_rows[i].lambda, 6);
+		NEAR(ROW("half-width [10.2 C]", msprt_rows[i].name),
+		    stats_msprt_halfwidth(V, msprt_rows[i].tau2, 0.05),
+		    msprt_rows[i].hw, 6);
 	}
 	/* 1/Lambda column of rows 1 and 2 [10.2 C] */
 	NEAR("1/Lambda row 1 [10.2 C]", exp(-stats_msprt_log_lr(0.3, 0, 0.02,
@@ -117,18 +131,21 @@ test_msprt_sequence(void **state)
 	static const double pv[8] = { 1, 1, 1, 0.889265, 0.738934, 0.491809,
 	    0.463443, 0.257295 };
 	double sum = 0, maxl = 0, lo = -INFINITY, hi = INFINITY, V, m, l, hw;
+	char label[128], step[8];
 	int n;
 
 	for (n = 1; n <= 8; n++) {
+		snprintf(step, sizeof step, "n=%d", n);
 		sum += z[n - 1];
 		m = sum / n;
 		V = 2.0 / n;
 		l = stats_msprt_log_lr(m, 0, V, 1);
 		if (l > maxl)
 			maxl = l;
-		NEAR("Lambda_n sequence [10.2 C]", exp(l), lam[n - 1], 6);
-		NEAR("p_n sequence [10.2 C]", stats_p_from_log_e(maxl),
-		    pv[n - 1], 6);
+		NEAR(ROW("Lambda_n sequence [10.2 C]", step), exp(l),
+		    lam[n - 1], 6);
+		NEAR(ROW("p_n sequence [10.2 C]", step),
+		    stats_p_from_log_e(maxl), pv[n - 1], 6);
 		hw = stats_msprt_halfwidth(V, 1, 0.05);
 		if (m - hw > lo)
 			lo = m - hw;
@@ -177,29 +194,36 @@ test_msprt_edges(void **state)
 
 /* ---- 10.3 SRM Dirichlet-multinomial (Lindon & Malek 2022) [C] ---- */
 static const struct {
+	const char *name;
 	int K;
 	double c[3], th[3], a0[3], logbf;
 } dm_rows[] = {
-	{ 2, { 3, 1 }, { .5, .5 }, { 1, 1 }, -0.223144 },
-	{ 2, { 10, 0 }, { .5, .5 }, { 1, 1 }, 4.533577 },
-	{ 2, { 5000, 5300 }, { .5, .5 }, { 50, 50 }, 2.003268 },
-	{ 2, { 50000, 50600 }, { .5, .5 }, { 50, 50 }, -1.672347 },
-	{ 2, { 50000, 51000 }, { .5, .5 }, { 50, 50 }, 1.483883 },
-	{ 2, { 50000, 51000 }, { .5, .5 }, { 629.5, 629.5 }, 2.690879 },
-	{ 3, { 190, 310, 500 }, { .2, .3, .5 }, { 20, 30, 50 }, -2.015817 },
-	{ 3, { 1000, 1000, 1000 }, { 1. / 3, 1. / 3, 1. / 3 }, { 10, 10, 10 },
-	    -4.637115 },
+	{ "3:1", 2, { 3, 1 }, { .5, .5 }, { 1, 1 }, -0.223144 },
+	{ "10:0", 2, { 10, 0 }, { .5, .5 }, { 1, 1 }, 4.533577 },
+	{ "5000:5300 a0=50", 2, { 5000, 5300 }, { .5, .5 }, { 50, 50 },
+	    2.003268 },
+	{ "50000:50600 a0=50", 2, { 50000, 50600 }, { .5, .5 }, { 50, 50 },
+	    -1.672347 },
+	{ "50000:51000 a0=50", 2, { 50000, 51000 }, { .5, .5 }, { 50, 50 },
+	    1.483883 },
+	{ "50000:51000 a0=629.5", 2, { 50000, 51000 }, { .5, .5 },
+	    { 629.5, 629.5 }, 2.690879 },
+	{ "three arms 2:3:5", 3, { 190, 310, 500 }, { .2, .3, .5 },
+	    { 20, 30, 50 }, -2.015817 },
+	{ "three equal arms", 3, { 1000, 1000, 1000 },
+	    { 1. / 3, 1. / 3, 1. / 3 }, { 10, 10, 10 }, -4.637115 },
 };
 
 static void
 test_dm_table(void **state)
 {
+	char label[128];
 	size_t i;
 
 	for (i = 0; i < sizeof dm_rows / sizeof dm_rows[0]; i++)
-		NEAR("DM log BF [10.3 C]", stats_dm_log_bf(dm_rows[i].K,
-		    dm_rows[i].c, dm_rows[i].th, dm_rows[i].a0),
-		    dm_rows[i].logbf, 6);
+		NEAR(ROW("DM log BF [10.3 C]", dm_rows[i].name),
+		    stats_dm_log_bf(dm_rows[i].K, dm_rows[i].c, dm_rows[i].th,
+		    dm_rows[i].a0), dm_rows[i].logbf, 6);
 	/* exact forms printed beside rows 1 and 2 [10.3 C] */
 	NEAR("BF (3,1) = 16 B(4,2) [10.3 C]", exp(stats_dm_log_bf(2,
 	    dm_rows[0].c, dm_rows[0].th, dm_rows[0].a0)), 0.8, 12);
@@ -216,13 +240,15 @@ test_dm_stream(void **state)
 	    0.533333, 0.609524, 0.761905, 0.507937, 0.609524, 0.775758 };
 	double a[2] = { 1, 1 }, th[2] = { .5, .5 }, x[2], lbf = 0;
 	double c37[2] = { 3, 7 }, a0[2] = { 1, 1 };
+	char label[128], unit[16];
 	int i;
 
 	for (i = 0; i < 10; i++) {
 		x[0] = arm[i] == 0;
 		x[1] = arm[i] == 1;
 		lbf += stats_dm_update(2, a, x, th);
-		NEAR("DM stream BF [10.3 C]", exp(lbf), bf[i], 6);
+		snprintf(unit, sizeof unit, "unit %d", i + 1);
+		NEAR(ROW("DM stream BF [10.3 C]", unit), exp(lbf), bf[i], 6);
 	}
 	assert_true(a[0] == 4 && a[1] == 8);
 	NEAR("stream = batch (3,7) [10.3 C]", lbf, stats_dm_log_bf(2, c37, th,
@@ -280,7 +306,15 @@ test_huge_counts(void **state)
 		sum += stats_dm_update(2, a, x, th);
 	}
 	NEAR("10 batches = 1 batch at 1e9", sum, dm, 6);
-	/* HRMS beta-binomial at N = 1e9, p = .2: equals the BB Bayes factor */
+	/*
+	 * HRMS beta-binomial at N = 1e9, p = .2: equals the BB Bayes factor.
+	 * k0 = rho / (g h) - 1 with rho = v_opt / (2 log(1/alpha) +
+	 * log(1 + 2 log(1/alpha))) (Howard, Ramdas, McAuliffe & Sekhon 2021,
+	 * sec. 3.5), v_opt = 100, alpha = 0.05, g h = 0.16: numpy gives
+	 * 77.75350612; scipy.optimize.brentq on scipy.special.betaln's
+	 * Bayes factor for N = 625, k = 135 set equal to confseq's
+	 * -0.6941012 (docs/methods.md sec. 10.4) gives 77.7535011 [C].
+	 */
 	k0 = 77.753506;
 	bb = stats_bb_logm(30000, 1e9 * 0.16, 0.2,
 	    0.8, k0 * 0.16, 0);
@@ -325,14 +359,15 @@ test_bb(void **state)
  * rounded digits [C].
  */
 static const struct {
+	const char *name;
 	double k, n, t_opt, lo, hi;
 	int dec;
 } bern_rows[] = {
-	{ 700, 1000, 100, 0.651629, 0.745949, 6 },	/* 10.4 [L=C] */
-	{ 15, 50, 50, 0.129556, 0.511896, 6 },		/* 10.4 [L=C] */
-	{ 5, 50, 50, 0.013021, 0.269264, 6 },		/* 10.4 [L=C] */
-	{ 1, 50, 50, 0, 0.13489, 5 },			/* 10.4 [L=C] */
-	{ 100, 200, 1, 0.328923, 0.671076, 6 },		/* 10.4 [L=C] */
+	{ "700/1000", 700, 1000, 100, 0.651629, 0.745949, 6 },
+	{ "15/50", 15, 50, 50, 0.129556, 0.511896, 6 },
+	{ "5/50", 5, 50, 50, 0.013021, 0.269264, 6 },
+	{ "1/50", 1, 50, 50, 0, 0.13489, 5 },
+	{ "100/200 t_opt=1", 100, 200, 1, 0.328923, 0.671076, 6 },
 };
 
 static int
@@ -349,16 +384,17 @@ truncated_to(const char *what, double got, double want, int dec)
 static void
 test_bernoulli_cs(void **state)
 {
+	char label[128];
 	double lo, hi;
 	size_t i;
 
 	for (i = 0; i < sizeof bern_rows / sizeof bern_rows[0]; i++) {
 		assert_int_equal(stats_bernoulli_cs(bern_rows[i].k,
 		    bern_rows[i].n, bern_rows[i].t_opt, 0.05, &lo, &hi), 0);
-		assert_true(truncated_to("Bernoulli CS lo [10.4 L=C]", lo,
-		    bern_rows[i].lo, bern_rows[i].dec));
-		assert_true(truncated_to("Bernoulli CS hi [10.4 L=C]", hi,
-		    bern_rows[i].hi, bern_rows[i].dec));
+		assert_true(truncated_to(ROW("Bernoulli CS lo [10.4 L=C]",
+		    bern_rows[i].name), lo, bern_rows[i].lo, bern_rows[i].dec));
+		assert_true(truncated_to(ROW("Bernoulli CS hi [10.4 L=C]",
+		    bern_rows[i].name), hi, bern_rows[i].hi, bern_rows[i].dec));
 	}
 	/* our own rounded digits for row 1 [10.4 C] */
 	assert_int_equal(stats_bernoulli_cs(700, 1000, 100, 0.05, &lo, &hi), 0);
@@ -376,28 +412,30 @@ test_bernoulli_cs(void **state)
 
 /* ---- 10.5 rates with exposure [C] ---- */
 static const struct {
+	const char *name;
 	double na, ea, nb, eb, k, bf2, bf1;
 } rate_rows[] = {
-	{ 20, 1000, 40, 1000, 100, 2.78777, 5.26212 },
-	{ 30, 1500, 30, 500, 100, 23.6857, 48.6611 },
-	{ 100, 1000, 100, 1000, 100, 0.576389, 0.576389 },
-	{ 0, 1000, 10, 1000, 2, 93.0909, 186.091 },
+	{ "20 vs 40", 20, 1000, 40, 1000, 100, 2.78777, 5.26212 },
+	{ "30 vs 30, 3x exposure", 30, 1500, 30, 500, 100, 23.6857, 48.6611 },
+	{ "100 vs 100", 100, 1000, 100, 1000, 100, 0.576389, 0.576389 },
+	{ "0 vs 10 k=2", 0, 1000, 10, 1000, 2, 93.0909, 186.091 },
 };
 
 static void
 test_rate_table(void **state)
 {
+	char label[128];
 	double th;
 	size_t i;
 
 	for (i = 0; i < sizeof rate_rows / sizeof rate_rows[0]; i++) {
 		th = rate_rows[i].eb / (rate_rows[i].ea + rate_rows[i].eb);
-		NEAR("rate two-sided BF [10.5 C]", exp(stats_rate_log_bf(
-		    rate_rows[i].na, rate_rows[i].nb, th, rate_rows[i].k, 0)),
-		    rate_rows[i].bf2, 4);
-		NEAR("rate one-sided BF [10.5 C]", exp(stats_rate_log_bf(
-		    rate_rows[i].na, rate_rows[i].nb, th, rate_rows[i].k, 1)),
-		    rate_rows[i].bf1, 3);
+		NEAR(ROW("rate two-sided BF [10.5 C]", rate_rows[i].name),
+		    exp(stats_rate_log_bf(rate_rows[i].na, rate_rows[i].nb, th,
+		    rate_rows[i].k, 0)), rate_rows[i].bf2, 4);
+		NEAR(ROW("rate one-sided BF [10.5 C]", rate_rows[i].name),
+		    exp(stats_rate_log_bf(rate_rows[i].na, rate_rows[i].nb, th,
+		    rate_rows[i].k, 1)), rate_rows[i].bf1, 3);
 	}
 }
 
@@ -475,13 +513,14 @@ seq_free(struct seq_blocks *s)
 
 /* Fixed-quantile CS on data 1..N, alpha = alpha_opt = 0.05 [10.4 C]. */
 static const struct {
+	const char *name;
 	size_t N;
 	double p, t_opt, u_lo, u_up, lo, hi;
 } qcs_rows[] = {
-	{ 1000, 0.5, 100, 51.4665, 51.4665, 449, 552 },
-	{ 1000, 0.9, 100, 32.8105, 29.1763, 868, 930 },
-	{ 10000, 0.99, 10000, 32.0231, 28.3620, 9868, 9929 },
-	{ 100, 0.5, 100, 15.0484, 15.0484, 35, 66 },
+	{ "median of 1000", 1000, 0.5, 100, 51.4665, 51.4665, 449, 552 },
+	{ "p90 of 1000", 1000, 0.9, 100, 32.8105, 29.1763, 868, 930 },
+	{ "p99 of 10000", 10000, 0.99, 10000, 32.0231, 28.3620, 9868, 9929 },
+	{ "median of 100", 100, 0.5, 100, 15.0484, 15.0484, 35, 66 },
 };
 
 static void
@@ -489,22 +528,27 @@ test_quantile_cs(void **state)
 {
 	struct seq_blocks s;
 	double lo, hi, p, v, r;
+	char label[128];
+	const char *name;
 	size_t i;
 
 	for (i = 0; i < sizeof qcs_rows / sizeof qcs_rows[0]; i++) {
+		name = qcs_rows[i].name;
 		p = qcs_rows[i].p;
 		v = p * (1 - p) * (double)qcs_rows[i].N;
 		r = stats_bb_r(p * (1 - p) * qcs_rows[i].t_opt, p, 1 - p, 0.05,
 		    0);
-		NEAR("quantile u_lo [10.4 C]", stats_bb_bound(v, 1 - p, p, r,
-		    0.05, 0), qcs_rows[i].u_lo, 4);
-		NEAR("quantile u_up [10.4 C]", stats_bb_bound(v, p, 1 - p, r,
-		    0.05, 0), qcs_rows[i].u_up, 4);
+		NEAR(ROW("quantile u_lo [10.4 C]", name), stats_bb_bound(v,
+		    1 - p, p, r, 0.05, 0), qcs_rows[i].u_lo, 4);
+		NEAR(ROW("quantile u_up [10.4 C]", name), stats_bb_bound(v, p,
+		    1 - p, r, 0.05, 0), qcs_rows[i].u_up, 4);
 		seq_make(&s, qcs_rows[i].N, 0);
 		assert_int_equal(stats_quantile_cs(&s.b, p, qcs_rows[i].t_opt,
 		    0.05, &lo, &hi), 0);
-		NEAR("quantile CS lo [10.4 C]", lo, qcs_rows[i].lo, 0);
-		NEAR("quantile CS hi [10.4 C]", hi, qcs_rows[i].hi, 0);
+		NEAR(ROW("quantile CS lo [10.4 C]", name), lo, qcs_rows[i].lo,
+		    0);
+		NEAR(ROW("quantile CS hi [10.4 C]", name), hi, qcs_rows[i].hi,
+		    0);
 		seq_free(&s);
 	}
 	/* ranks outside the data: infinite ends; empty: error */
@@ -539,31 +583,34 @@ test_quantile_cs_ties(void **state)
  * alpha_opt = 0.05. Two-sided [10.4 L=C], one-sided [10.4 C].
  */
 static const struct {
+	const char *name;
 	double p, off, p2, p1;
 } q2_rows[] = {
-	{ 0.5, 70, 0.814704, 0.1660327 },
-	{ 0.5, 85, 0.0838055, 0.0168254 },
-	{ 0.5, 100, 0.0054947, 0.0011056 },
-	{ 0.9, 55, 0.0340463, 0.0064739 },
-	{ 0.5, -100, -1, 1.0 },
+	{ "median +70", 0.5, 70, 0.814704, 0.1660327 },
+	{ "median +85", 0.5, 85, 0.0838055, 0.0168254 },
+	{ "median +100", 0.5, 100, 0.0054947, 0.0011056 },
+	{ "p90 +55", 0.9, 55, 0.0340463, 0.0064739 },
+	{ "median -100", 0.5, -100, -1, 1.0 },
 };
 
 static void
 test_quantile_two_sample(void **state)
 {
 	struct seq_blocks a, b;
+	char label[128];
 	size_t i;
 
 	seq_make(&a, 1000, 0);
 	for (i = 0; i < sizeof q2_rows / sizeof q2_rows[0]; i++) {
 		seq_make(&b, 1000, q2_rows[i].off);
 		if (q2_rows[i].p2 >= 0)
-			NEAR("two-sample two-sided p [10.4 L=C]",
-			    stats_p_from_log_e(stats_quantile_log_e2(&a.b, &b.b,
-			    q2_rows[i].p, 100)), q2_rows[i].p2, 7);
-		NEAR("two-sample one-sided p [10.4 C]", stats_p_from_log_e(
-		    stats_quantile_log_e1(&a.b, &b.b, q2_rows[i].p, 100)),
-		    q2_rows[i].p1, 7);
+			NEAR(ROW("two-sample two-sided p [10.4 L=C]",
+			    q2_rows[i].name), stats_p_from_log_e(
+			    stats_quantile_log_e2(&a.b, &b.b, q2_rows[i].p,
+			    100)), q2_rows[i].p2, 7);
+		NEAR(ROW("two-sample one-sided p [10.4 C]", q2_rows[i].name),
+		    stats_p_from_log_e(stats_quantile_log_e1(&a.b, &b.b,
+		    q2_rows[i].p, 100)), q2_rows[i].p1, 7);
 		seq_free(&b);
 	}
 	seq_free(&a);
@@ -672,40 +719,48 @@ test_special(void **state)
 
 /* ---- 10.8 classical [L scipy] ---- */
 static const struct {
+	const char *name;
 	int K;
 	double c[3], th[3], x2, p;
 } chi2_rows[] = {
-	{ 2, { 50000, 50600 }, { .5, .5 }, 3.578529, 0.058531 },
-	{ 2, { 1000, 1100 }, { .5, .5 }, 4.761905, 0.0290963 },
-	{ 2, { 821, 1179 }, { .4, .6 }, 0.918750, 0.337803 },
-	{ 3, { 3300, 3350, 3350 }, { 1. / 3, 1. / 3, 1. / 3 }, 0.5, 0.778801 },
+	{ "50000:50600", 2, { 50000, 50600 }, { .5, .5 }, 3.578529, 0.058531 },
+	{ "1000:1100", 2, { 1000, 1100 }, { .5, .5 }, 4.761905, 0.0290963 },
+	{ "821:1179 at 40:60", 2, { 821, 1179 }, { .4, .6 }, 0.918750,
+	    0.337803 },
+	{ "three arms", 3, { 3300, 3350, 3350 }, { 1. / 3, 1. / 3, 1. / 3 },
+	    0.5, 0.778801 },
 };
 
 static const struct {
+	const char *name;
 	double xa, na, xb, nb, z, p;
 } z_rows[] = {
-	{ 200, 10000, 250, 10000, 2.383995, 0.0171258 },
-	{ 500, 10000, 580, 10000, 2.502837, 0.0123202 },
-	{ 30, 1000, 45, 1200, 0.965280, 0.334405 },
+	{ "200 vs 250 of 10000", 200, 10000, 250, 10000, 2.383995, 0.0171258 },
+	{ "500 vs 580 of 10000", 500, 10000, 580, 10000, 2.502837, 0.0123202 },
+	{ "30/1000 vs 45/1200", 30, 1000, 45, 1200, 0.965280, 0.334405 },
 };
 
 static void
 test_classical(void **state)
 {
 	double x2, p, z;
+	char label[128];
 	size_t i;
 
 	for (i = 0; i < sizeof chi2_rows / sizeof chi2_rows[0]; i++) {
 		p = stats_srm_chi2(chi2_rows[i].K, chi2_rows[i].c,
 		    chi2_rows[i].th, &x2);
-		NEAR("SRM X2 [10.8 L]", x2, chi2_rows[i].x2, 6);
-		NEAR("SRM p [10.8 L]", p, chi2_rows[i].p, 6);
+		NEAR(ROW("SRM X2 [10.8 L]", chi2_rows[i].name), x2,
+		    chi2_rows[i].x2, 6);
+		NEAR(ROW("SRM p [10.8 L]", chi2_rows[i].name), p,
+		    chi2_rows[i].p, 6);
 	}
 	for (i = 0; i < sizeof z_rows / sizeof z_rows[0]; i++) {
 		p = stats_ztest_prop(z_rows[i].xa, z_rows[i].na, z_rows[i].xb,
 		    z_rows[i].nb, &z);
-		NEAR("z [10.8 L]", z, z_rows[i].z, 6);
-		NEAR("z-test p [10.8 L]", p, z_rows[i].p, 7);
+		NEAR(ROW("z [10.8 L]", z_rows[i].name), z, z_rows[i].z, 6);
+		NEAR(ROW("z-test p [10.8 L]", z_rows[i].name), p,
+		    z_rows[i].p, 7);
 	}
 	/* z^2 = 2x2 chi-square without Yates [10.8 L] */
 	stats_ztest_prop(200, 10000, 250, 10000, &z);
@@ -728,6 +783,69 @@ test_classical(void **state)
 }
 
 /*
+ * stats_ztest, the two-sided Wald z-test the simulator repeats at several
+ * looks to show the peeking inflation (from test_ztest.c). Check values
+ * are scipy's 2 * norm.sf(|z|) [L scipy]; one test ties it to the pooled
+ * two-proportion test of docs/methods.md sec. 10.8.
+ */
+static const struct {
+	const char *name;
+	double est, var, z, p;
+} ztest_rows[] = {
+	{ "z=1.96", 1.959963984540054, 1, 1.959963984540054, 0.05 },
+	{ "z=-1.5", -3, 4, -1.5, 0.13361440253771614 },
+	{ "z=0.5", 0.25, 0.25, 0.5, 0.6170750774519738 },
+	{ "z=8", 8e-3, 1e-6, 8, 1.244192114854348e-15 },
+};
+
+static void
+test_ztest_scipy(void **state)
+{
+	double z, p;
+	size_t i;
+
+	(void)state;
+	for (i = 0; i < sizeof ztest_rows / sizeof ztest_rows[0]; i++) {
+		p = stats_ztest(ztest_rows[i].est, ztest_rows[i].var, &z);
+		/* z to 1e-9 relative, p to 1e-6 relative */
+		if (!(fabs(z - ztest_rows[i].z) <= 1e-9 * fabs(ztest_rows[i].z))
+		    || !(fabs(p - ztest_rows[i].p) <= 1e-6 * ztest_rows[i].p))
+			fail_msg("Wald z-test [L scipy], row \"%s\": z %.17g "
+			    "(want %.17g), p %.17g (want %.17g)",
+			    ztest_rows[i].name, z, ztest_rows[i].z, p,
+			    ztest_rows[i].p);
+	}
+}
+
+/* The pooled two-proportion test is a Wald test with the pooled variance:
+ * 200/10000 vs 250/10000 (docs/methods.md sec. 10.8; z = 2.383995,
+ * p = 0.0171258 [L scipy]). */
+static void
+test_ztest_prop(void **state)
+{
+	double pool = 450.0 / 20000, var = pool * (1 - pool) * 2 / 10000, z;
+	double p = stats_ztest(0.025 - 0.02, var, &z);
+
+	(void)state;
+	NEAR("pooled Wald z [10.8 L]", z, 2.383995, 6);
+	NEAR("pooled Wald p [10.8 L]", p, 0.0171258, 7);
+	assert_true(fabs(p - stats_ztest_prop(200, 10000, 250, 10000, NULL)) <=
+	    1e-12);
+}
+
+static void
+test_ztest_guards(void **state)
+{
+	double z = -1;
+
+	(void)state;
+	assert_true(stats_ztest(1, 0, &z) == 1 && z == 0);
+	assert_true(stats_ztest(1, -1, NULL) == 1);
+	assert_true(stats_ztest(NAN, 1, &z) == 1 && z == 0);
+	assert_true(stats_ztest(0, 1, &z) == 1 && z == 0);
+}
+
+/*
  * One-sided harm mixture (docs/methods.md, harm evidence). Values [L]:
  * scipy.special.log_ndtr in the closed form and scipy.integrate.quad of
  * the half-normal mixture integral agree with these to 1e-10; the
@@ -736,28 +854,37 @@ test_classical(void **state)
 static void
 test_harm_table(void **state)
 {
-	static const struct { double d, V, tau2, want; } row[] = {
-		{ 0.02, 1e-4, 4e-4, 1.45091415358 },
-		{ 0, 1e-4, 4e-4, -0.804718956217 },	/* -0.5 log 5 */
-		{ -0.03, 1e-4, 4e-4, -2.12592156946 },
-		{ 0.05, 1e-4, 1e-3, 10.8578349743 },
-		{ -0.5, 1e-4, 1e-3, -5.28954642162 },	/* z = -47.67 */
+	static const struct {
+		const char *name;
+		double d, V, tau2, want;
+	} row[] = {
+		{ "d=0.02", 0.02, 1e-4, 4e-4, 1.45091415358 },
+		{ "d=0", 0, 1e-4, 4e-4, -0.804718956217 },	/* -0.5 log 5 */
+		{ "d=-0.03", -0.03, 1e-4, 4e-4, -2.12592156946 },
+		{ "d=0.05 tau2=1e-3", 0.05, 1e-4, 1e-3, 10.8578349743 },
+		{ "d=-0.5 tau2=1e-3", -0.5, 1e-4, 1e-3,
+		    -5.28954642162 },			/* z = -47.67 */
 	};
-	static const struct { double V, tau2, alpha, want; } bnd[] = {
-		{ 1e-4, 4e-4, 0.0125, 0.0335222191304 },
-		{ 1e-4, 1e-3, 0.0125, 0.0327950664043 },
-		{ 2.5e-5, 4e-4, 0.05, 0.0140624082796 },
+	static const struct {
+		const char *name;
+		double V, tau2, alpha, want;
+	} bnd[] = {
+		{ "V=1e-4 tau2=4e-4", 1e-4, 4e-4, 0.0125, 0.0335222191304 },
+		{ "V=1e-4 tau2=1e-3", 1e-4, 1e-3, 0.0125, 0.0327950664043 },
+		{ "V=2.5e-5 alpha=.05", 2.5e-5, 4e-4, 0.05, 0.0140624082796 },
 	};
+	char label[128];
 	size_t i;
 	int ok = 1;
 
 	(void)state;
 	for (i = 0; i < sizeof row / sizeof row[0]; i++)
-		ok &= near("harm log E", stats_harm_log_e(row[i].d, row[i].V,
-		    row[i].tau2), row[i].want, 11);
+		ok &= near(ROW("harm log E", row[i].name), stats_harm_log_e(
+		    row[i].d, row[i].V, row[i].tau2), row[i].want, 11);
 	for (i = 0; i < sizeof bnd / sizeof bnd[0]; i++)
-		ok &= near("harm boundary", stats_harm_boundary(bnd[i].V,
-		    bnd[i].tau2, bnd[i].alpha), bnd[i].want, 13);
+		ok &= near(ROW("harm boundary", bnd[i].name),
+		    stats_harm_boundary(bnd[i].V, bnd[i].tau2, bnd[i].alpha),
+		    bnd[i].want, 13);
 	/* a better treatment is never evidence of harm: log E falls with d */
 	ok &= stats_harm_log_e(-10, 1e-4, 1e-3) < stats_harm_log_e(-1, 1e-4,
 	    1e-3);
@@ -773,15 +900,21 @@ test_harm_table(void **state)
 static void
 test_prop_null(void **state)
 {
-	static const struct { double xt, nt, xc, nc, D, pt, pc; } row[] = {
-		{ 3, 321, 22, 2461, 0, 0.00898634076204, 0.00898634076204 },
-		{ 0, 50, 200, 10000, 0, 0.0199004975124, 0.0199004975124 },
-		{ 2, 400, 100, 10000, 0.005, 0.0147412079472,
+	static const struct {
+		const char *name;
+		double xt, nt, xc, nc, D, pt, pc;
+	} row[] = {
+		{ "pooled 25/2782", 3, 321, 22, 2461, 0, 0.00898634076204,
+		    0.00898634076204 },
+		{ "pooled, no treatment events", 0, 50, 200, 10000, 0,
+		    0.0199004975124, 0.0199004975124 },
+		{ "D=0.005", 2, 400, 100, 10000, 0.005, 0.0147412079472,
 		    0.00974120794723 },
-		{ 30, 1000, 200, 10000, 0.002, 0.0226697250452,
+		{ "D=0.002", 30, 1000, 200, 10000, 0.002, 0.0226697250452,
 		    0.0206697250452 },
-		{ 0, 200, 0, 20000, 0.003, 0.003, 0 },
+		{ "no events, D=0.003", 0, 200, 0, 20000, 0.003, 0.003, 0 },
 	};
+	char label[128];
 	size_t i;
 	double pt, pc;
 	int ok = 1;
@@ -790,8 +923,8 @@ test_prop_null(void **state)
 	for (i = 0; i < sizeof row / sizeof row[0]; i++) {
 		assert_int_equal(stats_prop_null(row[i].xt, row[i].nt,
 		    row[i].xc, row[i].nc, row[i].D, &pt, &pc), 0);
-		ok &= near("p~_T", pt, row[i].pt, 13);
-		ok &= near("p~_C", pc, row[i].pc, 13);
+		ok &= near(ROW("p~_T", row[i].name), pt, row[i].pt, 13);
+		ok &= near(ROW("p~_C", row[i].name), pc, row[i].pc, 13);
 	}
 	assert_int_equal(stats_prop_null(0, 0, 0, 0, 0, &pt, &pc), -1);
 	assert_true(ok);
@@ -860,6 +993,9 @@ main(void)
 		cmocka_unit_test(test_quantile_huge),
 		cmocka_unit_test(test_special),
 		cmocka_unit_test(test_classical),
+		cmocka_unit_test(test_ztest_scipy),
+		cmocka_unit_test(test_ztest_prop),
+		cmocka_unit_test(test_ztest_guards),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);
