@@ -19,12 +19,28 @@
  * fsync, rename over `checkpoint`, fsync of the directory. A crash at any
  * moment leaves either the old file or the new one, never a mix.
  *
+ * The periodic and requested checkpoints never stall the loop: the
+ * daemon forks, and the child, holding a copy-on-write snapshot of every
+ * structure as it was at that instant, builds the JSON, hashes it and
+ * writes it while the parent goes on with ingest, HTTP and Redis. The
+ * parent learns the outcome when the child's pipe closes; only then does
+ * it count the checkpoint and let the Redis consumer acknowledge the
+ * entries it covers (the last ID applied at the fork, not now). One child
+ * at a time: a request meanwhile is run when it ends. The child dies
+ * with the parent (PR_SET_PDEATHSIG), so a killed daemon never has an
+ * old snapshot renamed over a newer checkpoint after its restart. The
+ * last checkpoint at shutdown is written in the process itself, after
+ * any child ended. Memory: pages the parent changes while the child
+ * writes are copied, at most the state's size.
+ *
  * Restore is all-or-nothing: a wrong magic, version, length or checksum,
  * unreadable JSON or state the engine refuses ends start-up with a clear
  * error (the operator may move the file away to start afresh); a missing
  * file is a fresh start.
  */
+#include <sys/prctl.h>
 #include <sys/stat.h>
+#include <sys/wait.h>
 
 #include <errno.h>
 #include <fcntl.h>
@@ -34,7 +50,9 @@
 #include <string.h>
 #include <unistd.h>
 
-#include <openssl/evp.h>
+#include <signal.h>
+
+#include <event2/event.h>
 
 #include "stopcock/log.h"
 #include "daemon.h"
@@ -46,19 +64,21 @@
 #define CKPT_TEMP "checkpoint.tmp"
 #define CKPT_HEADER_MAX 256
 #define CKPT_SIZE_MAX ((off_t)2 << 30)	/* refuse bigger files */
+#define CKPT_CAUSE_MAX 1024	/* bytes of a child's error text */
 
-static int
-ckpt_sha256(const void *p, size_t len, char hex[65])
-{
-	unsigned char md[EVP_MAX_MD_SIZE];
-	unsigned int n, i;
-
-	if (EVP_Digest(p, len, md, &n, EVP_sha256(), NULL) != 1 || n != 32)
-		return -1;
-	for (i = 0; i < n; i++)
-		snprintf(hex + 2 * i, 3, "%02x", md[i]);
-	return 0;
-}
+/* The writer child, when one runs. */
+struct ckpt {
+	struct daemon	*d;
+	pid_t		 pid;		/* 0: none running */
+	int		 fd;		/* read end of the child's pipe */
+	struct event	*ev;
+	char		*covered;	/* Redis ID applied at the fork */
+	char		*why;
+	double		 start;
+	char		 cause[CKPT_CAUSE_MAX];
+	size_t		 causelen;
+	int		 again;		/* requested while one ran */
+};
 
 static json_t *
 ckpt_build(struct daemon *d, char **cause)
@@ -102,53 +122,254 @@ ckpt_build(struct daemon *d, char **cause)
 	return root;
 }
 
-int
-ckpt_write(struct daemon *d, char **cause)
+/* Build, hash and store the checkpoint; the caller's snapshot. */
+static int
+ckpt_store(struct daemon *d, char **cause)
 {
 	json_t *root;
-	char *payload = NULL, *header = NULL, *path;
+	char *payload, *header = NULL, *path;
 	const char *parts[2];
 	size_t lens[2], len;
 	char sha[65];
-	double start = daemon_now();
 	int rc = -1;
 
-	xasprintf(&path, "%s/%s", d->state_dir, CKPT_FILE);
 	if ((root = ckpt_build(d, cause)) == NULL)
-		goto out;
+		return -1;
 	payload = json_dumps(root, JSON_COMPACT | JSON_REAL_PRECISION(17));
 	json_decref(root);
 	if (payload == NULL) {
 		*cause = xstrdup("cannot serialise the checkpoint");
-		goto out;
+		return -1;
 	}
 	len = strlen(payload);
-	if (ckpt_sha256(payload, len, sha) != 0) {
-		*cause = xstrdup("SHA-256 failed");
-		goto out;
-	}
+	digest_sha256_hex(payload, len, 32, sha);
 	xasprintf(&header, "%s %d %zu %s\n", CKPT_MAGIC, CKPT_VERSION, len,
 	    sha);
 	parts[0] = header;
 	lens[0] = strlen(header);
 	parts[1] = payload;
 	lens[1] = len;
+	xasprintf(&path, "%s/%s", d->state_dir, CKPT_FILE);
 	if (durable_write(d->state_dir, path, parts, lens, 2, 0640,
-	    cause) != 0)
-		goto out;
-	rc = 0;
-	d->checkpoints++;
-	d->last_checkpoint = daemon_now();
-	log_debug("checkpoint written bytes=%zu ms=%.1f redis_last_id=%s",
-	    len, (d->last_checkpoint - start) * 1e3,
-	    d->redis != NULL ? redis_in_last_id(d->redis) : "");
-	if (d->redis != NULL)
-		redis_in_covered(d->redis);
-out:
+	    cause) == 0)
+		rc = 0;
+	free(path);
 	free(payload);
 	free(header);
-	free(path);
 	return rc;
+}
+
+/* A checkpoint holding everything up to Redis ID covered is on disk. */
+static void
+ckpt_done(struct daemon *d, const char *covered, double start)
+{
+	d->checkpoints++;
+	d->last_checkpoint = daemon_now();
+	log_debug("checkpoint written ms=%.1f redis_last_id=%s",
+	    (d->last_checkpoint - start) * 1e3, covered);
+	if (d->redis != NULL)
+		redis_in_covered(d->redis, covered);
+}
+
+static void	ckpt_reap(struct ckpt *, int wait);
+
+/* Synchronous: shutdown's last checkpoint, or when fork fails. */
+int
+ckpt_write(struct daemon *d, char **cause)
+{
+	char *covered;
+	double start = daemon_now();
+
+	if (d->ckpt != NULL && d->ckpt->pid != 0) {
+		d->ckpt->again = 0;	/* this write serves it */
+		ckpt_reap(d->ckpt, 1);
+	}
+	covered = xstrdup(d->redis != NULL ? redis_in_last_id(d->redis) : "");
+	if (ckpt_store(d, cause) != 0) {
+		free(covered);
+		return -1;
+	}
+	ckpt_done(d, covered, start);
+	free(covered);
+	return 0;
+}
+
+/* In the child: nothing of the parent's but memory, then _exit. */
+static void SC_NORETURN
+ckpt_child(struct daemon *d, pid_t parent, int wfd)
+{
+	static const int sigs[] = { SIGTERM, SIGINT, SIGHUP, SIGUSR1 };
+	char *cause = NULL;
+	size_t i;
+	int rc;
+
+	/* Die with the parent: a killed daemon's restart must not see an
+	 * older snapshot renamed over its own newer checkpoint. */
+	if (prctl(PR_SET_PDEATHSIG, SIGKILL) != 0 || getppid() != parent)
+		_exit(2);
+	for (i = 0; i < SC_NELEM(sigs); i++)
+		signal(sigs[i], SIG_DFL);
+	/* Sockets of clients, Redis and receivers stay the parent's alone
+	 * (a client's close must not wait for this child to exit). */
+	if (wfd != 3) {
+		if (dup2(wfd, 3) == -1)
+			_exit(2);
+		wfd = 3;
+	}
+	close_range(4, ~0U, 0);
+	rc = ckpt_store(d, &cause);
+	if (rc != 0 && cause != NULL) {
+		size_t len = strlen(cause);
+
+		if (len > CKPT_CAUSE_MAX - 1)
+			len = CKPT_CAUSE_MAX - 1;
+		if (write(wfd, cause, len) < 0)
+			rc = 3;
+	}
+	_exit(rc == 0 ? 0 : 1);
+}
+
+/* The child's outcome: count the checkpoint or log why it failed. */
+static void
+ckpt_reap(struct ckpt *c, int wait)
+{
+	struct daemon *d = c->d;
+	int status = 0;
+	pid_t pid;
+
+	do
+		pid = waitpid(c->pid, &status, wait ? 0 : WNOHANG);
+	while (pid == -1 && errno == EINTR);
+	if (pid == 0)
+		return;		/* pipe closed, exit not seen yet */
+	event_del(c->ev);
+	close(c->fd);
+	c->fd = -1;
+	c->pid = 0;
+	if (pid == -1)
+		log_warn("checkpoint: waitpid");
+	else if (WIFEXITED(status) && WEXITSTATUS(status) == 0)
+		ckpt_done(d, c->covered, c->start);
+	else
+		log_warnx("checkpoint failed (%s): %.*s", c->why,
+		    c->causelen > 0 ? (int)c->causelen : 40, c->causelen > 0 ?
+		    c->cause : WIFSIGNALED(status) ? "the writer was killed" :
+		    "the writer failed");
+	free(c->covered);
+	c->covered = NULL;
+	c->causelen = 0;
+	if (c->again && !d->draining) {
+		c->again = 0;
+		ckpt_start(d, "again");
+	}
+}
+
+static void
+ckpt_pipe_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct ckpt *c = arg;
+	ssize_t n;
+
+	n = read(c->fd, c->cause + c->causelen,
+	    sizeof c->cause - 1 - c->causelen);
+	if (n > 0) {
+		c->causelen += (size_t)n;
+		if (c->causelen < sizeof c->cause - 1)
+			return;
+	} else if (n == -1 && (errno == EINTR || errno == EAGAIN))
+		return;
+	ckpt_reap(c, 1);	/* EOF: the child is gone or going */
+}
+
+static struct ckpt *
+ckpt_get(struct daemon *d)
+{
+	struct ckpt *c = d->ckpt;
+
+	if (c == NULL) {
+		c = d->ckpt = xcalloc(1, sizeof *c);
+		c->d = d;
+		c->fd = -1;
+	}
+	return c;
+}
+
+/*
+ * Start a checkpoint in a child process; why goes to the log. Returns at
+ * once. When fork fails the checkpoint is written here, stalling the
+ * loop once rather than going without.
+ */
+void
+ckpt_start(struct daemon *d, const char *why)
+{
+	struct ckpt *c = ckpt_get(d);
+	char *cause = NULL;
+	int p[2];
+	pid_t pid, parent = getpid();
+
+	if (c->pid != 0) {
+		c->again = 1;
+		return;
+	}
+	if (pipe2(p, O_CLOEXEC) != 0) {
+		log_warn("checkpoint: pipe; writing it in the loop");
+		goto inline_write;
+	}
+	c->covered = xstrdup(d->redis != NULL ? redis_in_last_id(d->redis) :
+	    "");
+	c->start = daemon_now();
+	free(c->why);
+	c->why = xstrdup(why);
+	pid = fork();
+	if (pid == -1) {
+		log_warn("checkpoint: fork; writing it in the loop");
+		close(p[0]);
+		close(p[1]);
+		free(c->covered);
+		c->covered = NULL;
+		goto inline_write;
+	}
+	if (pid == 0) {
+		close(p[0]);
+		ckpt_child(d, parent, p[1]);
+	}
+	close(p[1]);
+	c->pid = pid;
+	c->fd = p[0];
+	c->causelen = 0;
+	if (c->ev != NULL)
+		event_free(c->ev);
+	c->ev = event_new(d->base, c->fd, EV_READ | EV_PERSIST, ckpt_pipe_cb,
+	    c);
+	if (c->ev == NULL || event_add(c->ev, NULL) != 0) {
+		log_warnx("checkpoint: cannot watch the writer; waiting "
+		    "for it");
+		ckpt_reap(c, 1);
+	}
+	return;
+inline_write:
+	if (ckpt_write(d, &cause) != 0) {
+		log_warnx("checkpoint failed (%s): %s", why, cause);
+		free(cause);
+	}
+}
+
+/* Wait for a running writer (shutdown), then free. */
+void
+ckpt_free(struct daemon *d)
+{
+	struct ckpt *c = d->ckpt;
+
+	if (c == NULL)
+		return;
+	if (c->pid != 0)
+		ckpt_reap(c, 1);
+	if (c->ev != NULL)
+		event_free(c->ev);
+	free(c->covered);
+	free(c->why);
+	free(c);
+	d->ckpt = NULL;
 }
 
 static int
@@ -271,10 +492,7 @@ ckpt_frame(const char *path, char *buf, size_t len, char **payload,
 		xasprintf(cause, "%s: malformed checksum in the header", path);
 		return -1;
 	}
-	if (ckpt_sha256(buf + hlen, len - hlen, sha) != 0) {
-		xasprintf(cause, "%s: SHA-256 failed", path);
-		return -1;
-	}
+	digest_sha256_hex(buf + hlen, len - hlen, 32, sha);
 	if (strcmp(sha, fields[3]) != 0) {
 		xasprintf(cause, "%s: checkpoint checksum mismatch (corrupt)",
 		    path);
@@ -285,92 +503,150 @@ ckpt_frame(const char *path, char *buf, size_t len, char **payload,
 	return 0;
 }
 
+/*
+ * Read, frame and parse the checkpoint at path into *root. 1 when there
+ * is no file (a fresh start), 0 with *root set, -1 with a cause.
+ */
+static int
+ckpt_load(const char *path, json_t **root, size_t *size, char **cause)
+{
+	char *buf = NULL, *payload;
+	size_t len, plen;
+	json_error_t jerr;
+	json_t *v;
+	int r;
+
+	*root = NULL;
+	r = ckpt_read(path, &buf, &len, cause);
+	if (r != 0)
+		return r;
+	*size = len;
+	if (ckpt_frame(path, buf, len, &payload, &plen, cause) != 0) {
+		free(buf);
+		return -1;
+	}
+	*root = json_loadb(payload, plen, JSON_REJECT_DUPLICATES, &jerr);
+	free(buf);
+	if (*root == NULL) {
+		xasprintf(cause, "%s: bad checkpoint JSON: %s (line %d)", path,
+		    jerr.text, jerr.line);
+		return -1;
+	}
+	v = json_object_get(*root, "format");
+	if (!json_is_string(v) || strcmp(json_string_value(v),
+	    CKPT_FORMAT) != 0 || json_integer_value(json_object_get(*root,
+	    "version")) != CKPT_VERSION) {
+		xasprintf(cause, "%s: not a stopcock checkpoint (format)",
+		    path);
+		json_decref(*root);
+		*root = NULL;
+		return -1;
+	}
+	return 0;
+}
+
+/*
+ * The Redis position: the last applied entry ID and its stream. A
+ * position on another stream than the configured one is dropped (the
+ * group's own position is used), with a warning.
+ */
+static int
+ckpt_redis_position(struct daemon *d, const char *path, json_t *root,
+    const char **last_id, char **cause)
+{
+	const char *stream = NULL;
+	json_t *v;
+
+	*last_id = "";
+	v = json_object_get(root, "redis_last_id");
+	if (v != NULL) {
+		if (!json_is_string(v) ||
+		    !ckpt_entry_id(json_string_value(v))) {
+			xasprintf(cause, "%s: bad redis_last_id", path);
+			return -1;
+		}
+		*last_id = json_string_value(v);
+	}
+	v = json_object_get(root, "redis_stream");
+	if (json_is_string(v))
+		stream = json_string_value(v);
+	if (**last_id != '\0' && stream != NULL &&
+	    d->conf->redis_stream != NULL && d->conf->redis_address != NULL &&
+	    strcmp(stream, d->conf->redis_stream) != 0) {
+		log_warnx("checkpoint: its Redis position belongs to stream "
+		    "%s, not %s: reading %s from the group's position", stream,
+		    d->conf->redis_stream, d->conf->redis_stream);
+		*last_id = "";
+	}
+	free(d->restored_redis_id);
+	free(d->restored_redis_stream);
+	d->restored_redis_id = xstrdup(*last_id);
+	d->restored_redis_stream = stream != NULL ? xstrdup(stream) : NULL;
+	return 0;
+}
+
+/* Engine, alert states and counters, all or nothing. */
+static int
+ckpt_restore_state(struct daemon *d, const char *path, json_t *root,
+    char **cause)
+{
+	json_t *v, *counters;
+	char *why = NULL;
+
+	v = json_object_get(root, "engine");
+	if (!json_is_object(v)) {
+		xasprintf(cause, "%s: no engine state", path);
+		return -1;
+	}
+	d->engine = engine_restore(d->conf, d->hashkey, v, &why);
+	if (d->engine == NULL) {
+		xasprintf(cause, "%s: engine state refused: %s", path,
+		    why != NULL ? why : "unknown error");
+		free(why);
+		return -1;
+	}
+	v = json_object_get(root, "alerts");
+	if (d->alert != NULL && v != NULL &&
+	    alert_restore(d->alert, v, &why) != 0) {
+		xasprintf(cause, "%s: alert state refused: %s", path,
+		    why != NULL ? why : "unknown error");
+		free(why);
+		engine_free(d->engine);
+		d->engine = NULL;
+		return -1;
+	}
+	counters = json_object_get(root, "counters");
+	ingest_restore(d, json_object_get(counters, "ingest"));
+	d->checkpoints = (uint64_t)json_integer_value(json_object_get(counters,
+	    "checkpoints"));
+	return 0;
+}
+
 int
 ckpt_restore(struct daemon *d, char **cause)
 {
-	char *path, *tmp, *buf = NULL, *payload, *why = NULL;
-	size_t len, plen;
-	json_t *root = NULL, *v, *alerts, *counters;
-	json_error_t jerr;
-	struct engine *engine;
-	const char *last_id = "", *stream = NULL;
+	char *path, *tmp;
+	const char *last_id;
+	json_t *root = NULL, *v;
+	size_t len = 0;
 	double written = 0;
 	int rc = -1, r;
 
 	xasprintf(&path, "%s/%s", d->state_dir, CKPT_FILE);
 	xasprintf(&tmp, "%s/%s", d->state_dir, CKPT_TEMP);
 	(void)unlink(tmp);	/* left by a crash mid-write */
-	r = ckpt_read(path, &buf, &len, cause);
+	r = ckpt_load(path, &root, &len, cause);
 	if (r == 1) {
 		log_info("no checkpoint: fresh start path=%s", path);
 		rc = 0;
 		goto out;
 	}
-	if (r != 0 || ckpt_frame(path, buf, len, &payload, &plen, cause) != 0)
+	if (r != 0)
 		goto out;
-	root = json_loadb(payload, plen, JSON_REJECT_DUPLICATES, &jerr);
-	if (root == NULL) {
-		xasprintf(cause, "%s: bad checkpoint JSON: %s (line %d)", path,
-		    jerr.text, jerr.line);
+	/* The position is checked before any state is taken. */
+	if (ckpt_redis_position(d, path, root, &last_id, cause) != 0 ||
+	    ckpt_restore_state(d, path, root, cause) != 0)
 		goto out;
-	}
-	v = json_object_get(root, "format");
-	if (!json_is_string(v) || strcmp(json_string_value(v),
-	    CKPT_FORMAT) != 0 || json_integer_value(json_object_get(root,
-	    "version")) != CKPT_VERSION) {
-		xasprintf(cause, "%s: not a stopcock checkpoint (format)",
-		    path);
-		goto out;
-	}
-	v = json_object_get(root, "redis_last_id");
-	if (v != NULL) {
-		if (!json_is_string(v) ||
-		    !ckpt_entry_id(json_string_value(v))) {
-			xasprintf(cause, "%s: bad redis_last_id", path);
-			goto out;
-		}
-		last_id = json_string_value(v);
-	}
-	v = json_object_get(root, "redis_stream");
-	if (json_is_string(v))
-		stream = json_string_value(v);
-	v = json_object_get(root, "engine");
-	if (!json_is_object(v)) {
-		xasprintf(cause, "%s: no engine state", path);
-		goto out;
-	}
-	engine = engine_restore(d->conf, d->hashkey, v, &why);
-	if (engine == NULL) {
-		xasprintf(cause, "%s: engine state refused: %s", path,
-		    why != NULL ? why : "unknown error");
-		goto out;
-	}
-	d->engine = engine;
-	alerts = json_object_get(root, "alerts");
-	if (d->alert != NULL && alerts != NULL &&
-	    alert_restore(d->alert, alerts, &why) != 0) {
-		xasprintf(cause, "%s: alert state refused: %s", path,
-		    why != NULL ? why : "unknown error");
-		engine_free(d->engine);
-		d->engine = NULL;
-		goto out;
-	}
-	counters = json_object_get(root, "counters");
-	ingest_restore(d, json_object_get(counters, "ingest"));
-	d->checkpoints = (uint64_t)json_integer_value(json_object_get(counters,
-	    "checkpoints"));
-	if (*last_id != '\0' && stream != NULL &&
-	    d->conf->redis_stream != NULL && d->conf->redis_address != NULL &&
-	    strcmp(stream, d->conf->redis_stream) != 0) {
-		log_warnx("checkpoint: its Redis position belongs to stream "
-		    "%s, not %s: reading %s from the group's position", stream,
-		    d->conf->redis_stream, d->conf->redis_stream);
-		last_id = "";
-	}
-	free(d->restored_redis_id);
-	free(d->restored_redis_stream);
-	d->restored_redis_id = xstrdup(last_id);
-	d->restored_redis_stream = stream != NULL ? xstrdup(stream) : NULL;
 	v = json_object_get(root, "written");
 	if (json_is_number(v))
 		written = json_number_value(v);
@@ -380,8 +656,6 @@ ckpt_restore(struct daemon *d, char **cause)
 	rc = 0;
 out:
 	json_decref(root);
-	free(why);
-	free(buf);
 	free(path);
 	free(tmp);
 	return rc;

@@ -53,6 +53,8 @@ struct alert;
 struct webhook;
 struct pause;
 struct http;
+struct notify;
+struct ckpt;
 
 /*
  * d->conf is replaced on SIGHUP (all-or-nothing). Read it afresh in each
@@ -92,6 +94,8 @@ struct daemon {
 	struct webhook		*webhook;
 	struct pause		*pause;
 	struct http		*http;
+	struct notify		*notify;	/* NULL: not under systemd */
+	struct ckpt		*ckpt;		/* ckpt.c's writer child */
 
 	double			 started;	/* wall time */
 	double			 last_checkpoint;	/* wall time, 0 never */
@@ -156,8 +160,12 @@ int		 durable_write(const char *dir, const char *path,
 		    int mode, char **cause);
 int		 durable_mkdirs(const char *path, int mode, char **cause);
 
-/* ckpt.c */
+/* ckpt.c: ckpt_start forks a writer and returns at once (the loop
+ * never waits for the disk); ckpt_write writes in the process itself
+ * (shutdown), after any writer ended; ckpt_free waits for one. */
+void		 ckpt_start(struct daemon *, const char *why);
 int		 ckpt_write(struct daemon *, char **cause);
+void		 ckpt_free(struct daemon *);
 int		 ckpt_restore(struct daemon *, char **cause);
 
 /* listen.c */
@@ -170,13 +178,14 @@ json_t		*listen_json(struct listen *);
 void		 listen_drain(struct listen *);
 
 /* redis_in.c: last_id is the last entry applied (restored from the
- * checkpoint); redis_in_covered() is called after each checkpoint so the
+ * checkpoint); redis_in_covered() is called after each checkpoint, with
+ * the last ID it holds, so the
  * consumer may XACK what it covers. */
 struct redis_in	*redis_in_new(struct daemon *, const char *last_id,
 		    char **cause);
 void		 redis_in_free(struct redis_in *);
 const char	*redis_in_last_id(struct redis_in *);
-void		 redis_in_covered(struct redis_in *);
+void		 redis_in_covered(struct redis_in *, const char *last_id);
 /* Shutdown: drop the connection and stop reconnecting. Delivered but
  * unapplied entries stay pending in Redis for the next start. */
 void		 redis_in_stop(struct redis_in *);
@@ -269,5 +278,14 @@ void		 pause_metrics(struct pause *, struct evbuffer *);
 /* http.c */
 struct http	*http_new(struct daemon *, char **cause);
 void		 http_free(struct http *);
+
+/* notify.c: systemd notifications that never block the loop. */
+struct notify	*notify_new(void);
+void		 notify_free(struct notify *);
+void		 notify_send(struct notify *, const char *fmt, ...)
+		    SC_PRINTF(2, 3);
+/* READY=1 again if the socket refused it (status timer). */
+void		 notify_retry(struct notify *);
+uint64_t	 notify_dropped(struct notify *);
 
 #endif

@@ -188,16 +188,8 @@ daemon_timer(struct event *ev, double seconds)
 static void
 daemon_checkpoint(struct daemon *d, const char *why)
 {
-	char *cause = NULL;
-
 	dispatch_drain(d->dispatch);	/* the alerts of the state saved */
-	if (ckpt_write(d, &cause) != 0) {
-		log_warnx("checkpoint failed (%s): %s", why, cause);
-		free(cause);
-		return;
-	}
-	log_debug("checkpoint done reason=%s count=%" PRIu64, why,
-	    d->checkpoints);
+	ckpt_start(d, why);
 }
 
 static int
@@ -285,7 +277,7 @@ daemon_reload(struct daemon *d)
 	char *cause = NULL;
 	double tick, every;
 
-	sd_notify(0, "RELOADING=1");
+	notify_send(d->notify, "RELOADING=1");
 	log_info("reload: reading path=%s", d->main->conf_path);
 	if (conf_load(d->main->conf_path, &nc, &cause) != 0 ||
 	    daemon_check(nc, &cause) != 0) {
@@ -317,7 +309,7 @@ done:
 	if (nc != NULL)
 		conf_free(nc);
 	free(cause);
-	sd_notify(0, "READY=1");
+	notify_send(d->notify, "READY=1");
 }
 
 /* SIGTERM/SIGINT: stop the inputs, apply what they hold, save, leave. */
@@ -331,7 +323,7 @@ daemon_shutdown(struct daemon *d, int sig)
 		return;
 	}
 	d->draining = 1;
-	sd_notify(0, "STOPPING=1");
+	notify_send(d->notify, "STOPPING=1");
 	log_info("shutting down signal=%s", strsignal(sig));
 	if (d->redis != NULL)
 		redis_in_stop(d->redis);
@@ -393,8 +385,7 @@ daemon_watchdog_cb(evutil_socket_t fd, short what, void *arg)
 {
 	struct daemon *d = arg;
 
-	(void)d;
-	sd_notify(0, "WATCHDOG=1");
+	notify_send(d->notify, "WATCHDOG=1");
 }
 
 /* STATUS= for systemctl status: ingest rate and Redis lag. */
@@ -420,7 +411,9 @@ daemon_status_cb(evutil_socket_t fd, short what, void *arg)
 		strcpy(lagbuf, "redis lag unknown");
 	else
 		snprintf(lagbuf, sizeof lagbuf, "redis lag %" PRId64, lag);
-	sd_notifyf(0, "STATUS=%.0f records/s, %s, %u experiments, "
+	notify_retry(d->notify);
+	notify_send(d->notify, "STATUS=%.0f records/s, %s, %u "
+	    "experiments, "
 	    "%" PRIu64 " records", m->ingest_rate, lagbuf, ec.experiments,
 	    total);
 }
@@ -556,6 +549,7 @@ daemon_stop(struct daemon *d)
 {
 	size_t i;
 
+	ckpt_free(d);	/* a writer still running ends first */
 	for (i = 0; i < SC_NELEM(d->main->ev_signal); i++)
 		if (d->main->ev_signal[i] != NULL)
 			event_free(d->main->ev_signal[i]);
@@ -575,6 +569,7 @@ daemon_stop(struct daemon *d)
 	alert_free(d->alert);
 	pause_free(d->pause);
 	webhook_free(d->webhook);
+	notify_free(d->notify);
 	engine_free(d->engine);
 	conf_free(d->conf);
 	event_base_free(d->base);
@@ -657,6 +652,7 @@ main(int argc, char **argv)
 	daemon_hashkey(d);
 	if ((d->base = event_base_new()) == NULL)
 		daemon_fatal(d, SC_EX_OSERR, "cannot create the event loop");
+	d->notify = notify_new();
 	daemon_state_dir(d);
 	daemon_start(d);
 
@@ -664,7 +660,7 @@ main(int argc, char **argv)
 	    (long)getpid(), d->main->conf_path, d->state_dir,
 	    ingest_records_total(d));
 	daemon_log_tuning(d);
-	sd_notify(0, "READY=1\nSTATUS=running");
+	notify_send(d->notify, "READY=1\nSTATUS=running");
 
 	if (event_base_dispatch(d->base) == -1)
 		daemon_fatal(d, SC_EX_SOFTWARE, "event loop failed");

@@ -503,7 +503,8 @@ redis_house_info_cb(redisAsyncContext *ac, void *reply, void *priv)
 			redis_house_trims(r, last, rd != NULL &&
 			    rd->type == REDIS_REPLY_INTEGER ? rd->integer : -1);
 		lag = redis_house_field(g, "lag");
-		if (r->info_ok && redis_in_sid_cmp(last, r->info_lastgen) >= 0) {
+		if (r->info_ok &&
+		    redis_in_sid_cmp(last, r->info_lastgen) >= 0) {
 			r->lag = 0;
 			r->lag_capped = 0;
 		} else if (r->info_ok && (r->info_first.ms != 0 ||

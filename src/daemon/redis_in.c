@@ -839,11 +839,15 @@ redis_in_last_id(struct redis_in *r)
 }
 
 void
-redis_in_covered(struct redis_in *r)
+redis_in_covered(struct redis_in *r, const char *last_id)
 {
-	if (r == NULL || redis_in_sid_cmp(r->last, r->covered) == 0)
+	struct sid id;
+
+	if (r == NULL || *last_id == '\0' ||
+	    redis_in_sid_parse(last_id, strlen(last_id), &id) != 0 ||
+	    redis_in_sid_cmp(id, r->covered) <= 0)
 		return;
-	r->covered = r->last;
+	r->covered = id;
 	r->covered_gen++;
 	r->ack_due = 1;
 	redis_in_next(r);
@@ -896,8 +900,9 @@ redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 	    "Entries trimmed from the stream before they were applied: "
 	    "pending on us above the checkpoint, or never delivered.");
 	for (i = 0; i < TRIM_N; i++)
-		evbuffer_add_printf(b, "stopcock_redis_trimmed_total{when=\"%s\"} "
-		    "%" PRIu64 "\n", redis_in_trim_names[i], r->trimmed[i]);
+		evbuffer_add_printf(b, "stopcock_redis_trimmed_total{"
+		    "when=\"%s\"} %" PRIu64 "\n", redis_in_trim_names[i],
+		    r->trimmed[i]);
 	metrics_counter(b, "stopcock_redis_dead_letter_failed_total",
 	    "Dead-letter moves that Redis refused.", r->dead_failed);
 }

@@ -23,7 +23,9 @@ Pieces:
                  start() again on the same port and directory.
   Daemon         stopcockd with a generated configuration (or your own
                  text), readiness through systemd's NOTIFY_SOCKET (READY=1
-                 is awaited, every notification is kept in .notices), send
+                 is awaited; a thread drains the socket as systemd does,
+                 every notification is kept in .notices; hold_notify()
+                 stops the draining), send
                  lines over TCP, UDP and the Unix socket, checkpoint() to
                  request one (SIGUSR1) and read it, wait_checkpoint(pred),
                  stop() (SIGTERM, returns the exit code), kill9(), start()
@@ -51,6 +53,7 @@ import socket
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 
 BUILD = os.environ.get("STOPCOCK_BUILD", "build")
@@ -386,6 +389,8 @@ class Daemon:
         self.proc = None
         self.notices = []
         self.notify = None
+        self.notify_held = False
+        self._notify_lock = threading.Lock()
         self.logpath = os.path.join(OUT, "%s-stopcockd.log" % name)
         self.log = None
         if conf is None:
@@ -446,6 +451,12 @@ class Daemon:
         self.notify.bind(self.notify_path)
         self.notify.setblocking(False)
         self.notices = []
+        # systemd reads its notify socket all the time; so does this
+        # thread (a full queue would cost the daemon its notifications),
+        # unless a test holds it to play a reader that never reads.
+        self._drain_stop = threading.Event()
+        self._drainer = threading.Thread(target=self._drain, daemon=True)
+        self._drainer.start()
         env = dict(os.environ)
         env["NOTIFY_SOCKET"] = self.notify_path
         env.update(self.env)
@@ -483,13 +494,24 @@ class Daemon:
 
     def read_notices(self):
         """Collect pending sd_notify datagrams into self.notices."""
-        while self.notify is not None:
-            try:
-                data = self.notify.recv(4096)
-            except (BlockingIOError, InterruptedError):
-                break
-            self.notices += data.decode().split("\n")
+        with self._notify_lock:
+            while self.notify is not None:
+                try:
+                    data = self.notify.recv(4096)
+                except (BlockingIOError, InterruptedError):
+                    break
+                self.notices += data.decode().split("\n")
         return self.notices
+
+    def hold_notify(self, hold=True):
+        """Stop (or resume) draining the notify socket in the background,
+        to test a reader that never reads."""
+        self.notify_held = hold
+
+    def _drain(self):
+        while not self._drain_stop.wait(0.05):
+            if not self.notify_held:
+                self.read_notices()
 
     def wait_notice(self, prefix, timeout=10):
         """Wait for a notification starting with prefix; the line or None."""
@@ -542,6 +564,8 @@ class Daemon:
 
     def _closed(self):
         if self.notify is not None:
+            self._drain_stop.set()
+            self._drainer.join()
             self.read_notices()
             self.notify.close()
             self.notify = None
