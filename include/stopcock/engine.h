@@ -68,6 +68,7 @@ struct finding {
 	const char	*guardrail;	/* configured name, or "srm" */
 	const char	*metric;	/* NULL for srm */
 	const char	*test;		/* "mean", ..., "srm" */
+	enum conf_test	 test_kind;	/* test as the enum; unset for srm */
 	double		 quantile;	/* for quantile tests, else 0 */
 	const char	*variant;	/* treatment arm (NULL for srm) */
 	const char	*control;

@@ -79,6 +79,7 @@ finding_fill(const struct engine *eng, const struct experiment *e,
 	f->guardrail = g->name;
 	f->metric = g->metric;
 	f->test = conf_test_name(g->test);
+	f->test_kind = g->test;
 	f->quantile = g->test == TEST_QUANTILE ? g->quantile : 0;
 	f->variant = t->variant;
 	f->control = e->arms[0].name;

@@ -289,8 +289,8 @@ alert_fields(const struct finding *f, const char *id, enum alert_kind kind,
 			continue;
 		snprintf(key, sizeof key, "n.%s", arm->variant);
 		alert_num(&l, key, arm->n);
-		if (f->test != NULL && (strcmp(f->test, "proportion") == 0 ||
-		    strcmp(f->test, "rate") == 0)) {
+		if (f->test_kind == TEST_PROPORTION ||
+		    f->test_kind == TEST_RATE) {
 			snprintf(key, sizeof key, "k.%s", arm->variant);
 			alert_num(&l, key, arm->k);
 		}

@@ -548,10 +548,11 @@ pause_audit_reload(struct pause *p)
 		    "experiment", &exp, "epoch", &epoch, "decision", &dec) ==
 		    0 && epoch > 0 && epoch <= UINT32_MAX &&
 		    strlen(exp) <= PROTO_NAME_MAX &&
-		    (strcmp(dec, "paused") == 0 ||
-		    strcmp(dec, "dry_run") == 0)) {
+		    (strcmp(dec, pause_names[PAUSE_PAUSED].decision) == 0 ||
+		    strcmp(dec, pause_names[PAUSE_DRY_RUN].decision) == 0)) {
 			pause_mark_done(p, exp, (uint32_t)epoch);
-			if (strcmp(dec, "paused") == 0 && now - t < 3600)
+			if (strcmp(dec, pause_names[PAUSE_PAUSED].decision) ==
+			    0 && now - t < 3600)
 				pause_rate_add(p, t);
 		}
 		json_decref(j);
