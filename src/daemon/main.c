@@ -592,7 +592,6 @@ main(int argc, char **argv)
 	memset(d, 0, sizeof *d);
 	memset(&dmain, 0, sizeof dmain);
 	d->main = &dmain;
-	d->ingest = ingest_new();
 	while ((ch = getopt(argc, argv, "c:dfht")) != -1) {
 		switch (ch) {
 		case 'c':
@@ -647,6 +646,7 @@ main(int argc, char **argv)
 	signal(SIGPIPE, SIG_IGN);
 
 	d->main->conf_path = xstrdup(path);
+	d->ingest = ingest_new();
 	d->state_dir = xstrdup(d->conf->state_dir);
 	d->started = daemon_now();
 	daemon_hashkey(d);
