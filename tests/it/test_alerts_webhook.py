@@ -169,6 +169,17 @@ max_attempts = 100
                m.get('stopcock_webhook_queued{receiver="late"}') == 1.0,
                "metrics: late is retrying one queued alert",
                repr({k: v for k, v in m.items() if "late" in k}))
+        # The harm went through the dispatcher's queue: every finding
+        # queued was handed on (GET drains it first), none was lost.
+        tap.ok(m.get("stopcock_dispatch_queued_total", 0) >= 1 and
+               m.get("stopcock_dispatch_handled_total") ==
+               m.get("stopcock_dispatch_queued_total") and
+               (m.get("stopcock_dispatch_queue"),
+                m.get("stopcock_dispatch_dropped_total"),
+                m.get("stopcock_dispatch_overflow_total")) ==
+               (0.0, 0.0, 0.0),
+               "metrics: the dispatcher handed on every finding it queued",
+               repr({k: v for k, v in m.items() if "dispatch" in k}))
         spool = os.path.join(d.state, "spool", "late")
         files = [f for f in os.listdir(spool) if f.endswith(".json")]
         tap.eq(len(files), 1, "late: the alert is spooled to disk")
