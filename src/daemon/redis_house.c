@@ -258,18 +258,19 @@ redis_house_claimed_cb(redisAsyncContext *ac, void *reply, void *priv)
 		redis_in_op_done(r);
 		return;
 	}
+	redis_in_batch_begin(r, rep);
 	for (i = 0; i < rep->elements; i++) {
 		/* Redis < 7 answers nil for entries deleted meanwhile. */
 		if (rep->element[i]->type == REDIS_REPLY_NIL)
 			continue;
 		n++;
 		if (redis_in_entry(r, rep->element[i]) != 0) {
-			redis_in_trim_flush(r);
+			redis_in_batch_end(r);
 			redis_in_fail(r, "XCLAIM (unexpected answer)", NULL);
 			return;
 		}
 	}
-	redis_in_trim_flush(r);
+	redis_in_batch_end(r);
 	r->claimed += n;
 	if (n > 0)
 		log_info("redis: reclaimed idle entries of other consumers "

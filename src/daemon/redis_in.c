@@ -25,10 +25,12 @@
  *
  * Poison: Redis's delivery counter is not used, because every restart
  * re-reads our own pending entries and would raise it without anything
- * having failed. The daemon counts failures itself: before applying an
- * entry it writes the entry's ID to a small file in the state directory
- * (redis-applying) and marks it done after; a start that finds an entry
- * not done knows the last run died applying it. An entry that failed so
+ * having failed. The daemon counts failures itself: before applying a
+ * batch of entries it writes their ID range to a small file in the state
+ * directory (redis-applying) and marks it done after; a start that finds
+ * a batch not done knows the last run died applying one of its entries,
+ * and marks that batch entry by entry when it comes again, so a second
+ * death names the entry. An entry that failed so
  * max_deliveries times goes to the dead-letter stream instead of being
  * applied once more, as does an entry without `records` (nothing to
  * apply). Bad lines inside `records` cost only themselves: they are
@@ -61,6 +63,7 @@
 #include "redis_in_int.h"
 
 static void	redis_in_connect(struct redis_in *);
+static void	redis_in_trim_flush(struct redis_in *);
 
 int
 redis_in_sid_parse(const char *s, size_t len, struct sid *out)
@@ -274,18 +277,20 @@ redis_in_op_done(struct redis_in *r)
 }
 
 #define REDIS_IN_MARK_FILE "redis-applying"
-#define REDIS_IN_MARK_SIZE 64	/* "A <id> <failures>", space padded */
+#define REDIS_IN_MARK_SIZE 128	/* "A <first> <last> <failures>", padded */
 
 /*
- * The crash-loop guard's file: "A <id> <failures>" while an entry is
- * being applied, "D" once it is. Written without fsync: it guards
- * against the process dying, whose writes the kernel keeps; after a
- * power cut it may say less, which only delays a dead letter.
+ * The crash-loop guard's file: "A <first> <last> <failures>" while a
+ * batch of entries is being applied, "D" once it is. Two writes per
+ * batch, not per entry, keep it cheap for producers of one-record
+ * entries. Written without fsync: it guards against the process dying,
+ * whose writes the kernel keeps; after a power cut it may say less,
+ * which only delays a dead letter.
  */
 static void
 redis_in_mark_open(struct redis_in *r)
 {
-	char *path, buf[REDIS_IN_MARK_SIZE + 1], id[SID_BUF];
+	char *path, buf[REDIS_IN_MARK_SIZE + 1], a[SID_BUF], b[SID_BUF];
 	unsigned failures;
 	ssize_t n;
 
@@ -301,13 +306,16 @@ redis_in_mark_open(struct redis_in *r)
 	if (n <= 0 || buf[0] != 'A')
 		return;
 	buf[n] = '\0';
-	if (sscanf(buf, "A %47s %u", id, &failures) != 2 ||
-	    redis_in_sid_parse(id, strlen(id), &r->suspect) != 0)
+	if (sscanf(buf, "A %47s %47s %u", a, b, &failures) != 3 ||
+	    redis_in_sid_parse(a, strlen(a), &r->suspect) != 0 ||
+	    redis_in_sid_parse(b, strlen(b), &r->suspect_last) != 0 ||
+	    failures >= UINT_MAX - 1)
 		return;
 	r->suspect_failures = failures + 1;
 	log_warnx("redis: the last run died while applying an entry "
-	    "entry=%s failures=%u max_deliveries=%u", id, r->suspect_failures,
-	    (unsigned)r->d->conf->redis_max_deliveries);
+	    "entry=%s%s%s failures=%u max_deliveries=%u", a,
+	    strcmp(a, b) != 0 ? ".." : "", strcmp(a, b) != 0 ? b : "",
+	    r->suspect_failures, (unsigned)r->d->conf->redis_max_deliveries);
 }
 
 static void
@@ -329,30 +337,74 @@ redis_in_mark(struct redis_in *r, const char *text)
 	}
 }
 
-/* Failures to apply id so far: only the entry the last run died in. */
+static void
+redis_in_mark_range(struct redis_in *r, struct sid a, struct sid b,
+    unsigned failures)
+{
+	char text[REDIS_IN_MARK_SIZE], x[SID_BUF], y[SID_BUF];
+
+	snprintf(text, sizeof text, "A %s %s %u", redis_in_sid_fmt(a, x),
+	    redis_in_sid_fmt(b, y), failures);
+	redis_in_mark(r, text);
+}
+
+/*
+ * Failures to apply id so far: the deaths in the batch (or the entry)
+ * the last run died in, charged to each of its entries until a second
+ * death, marked entry by entry, names one.
+ */
 static unsigned
 redis_in_failures(struct redis_in *r, struct sid id)
 {
-	if (r->suspect_failures > 0 && redis_in_sid_cmp(id, r->suspect) == 0)
+	if (r->suspect_failures > 0 &&
+	    redis_in_sid_cmp(id, r->suspect) >= 0 &&
+	    redis_in_sid_cmp(id, r->suspect_last) <= 0)
 		return r->suspect_failures;
 	return 0;
+}
+
+void
+redis_in_batch_begin(struct redis_in *r, const redisReply *list)
+{
+	struct sid id, first = { 0, 0 }, last = { 0, 0 };
+	size_t i, n = 0;
+
+	r->mark_each = 0;
+	for (i = 0; i < list->elements; i++) {
+		const redisReply *e = list->element[i];
+
+		if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
+		    redis_in_sid_reply(e->element[0], &id) != 0)
+			continue;
+		if (n++ == 0)
+			first = id;
+		last = id;
+		if (redis_in_failures(r, id) > 0)
+			r->mark_each = 1;
+	}
+	if (n > 0 && !r->mark_each)
+		redis_in_mark_range(r, first, last, 0);
+}
+
+void
+redis_in_batch_end(struct redis_in *r)
+{
+	redis_in_mark(r, "D");
+	r->mark_each = 0;
+	redis_in_trim_flush(r);
 }
 
 static void
 redis_in_apply(struct redis_in *r, struct sid id, const redisReply *v)
 {
-	char text[REDIS_IN_MARK_SIZE], buf[SID_BUF];
-
-	snprintf(text, sizeof text, "A %s %u", redis_in_sid_fmt(id, buf),
-	    redis_in_failures(r, id));
-	redis_in_mark(r, text);
+	if (r->mark_each)
+		redis_in_mark_range(r, id, id, redis_in_failures(r, id));
 	ingest_lines(r->d, SRC_REDIS, v->str, v->len);
-	redis_in_mark(r, "D");
 	r->last = id;
 	r->entries++;
 }
 
-void
+static void
 redis_in_trim_flush(struct redis_in *r)
 {
 	char a[SID_BUF], b[SID_BUF];
@@ -447,9 +499,10 @@ redis_in_entries(struct redis_in *r, const redisReply *rep, size_t *count,
 		    s->element[1]->type != REDIS_REPLY_ARRAY)
 			return -1;
 		list = s->element[1];
+		redis_in_batch_begin(r, list);
 		for (j = 0; j < list->elements; j++) {
 			if (redis_in_entry(r, list->element[j]) != 0) {
-				redis_in_trim_flush(r);
+				redis_in_batch_end(r);
 				return -1;
 			}
 			if (lastseen != NULL)
@@ -457,8 +510,8 @@ redis_in_entries(struct redis_in *r, const redisReply *rep, size_t *count,
 				    lastseen);
 			(*count)++;
 		}
+		redis_in_batch_end(r);
 	}
-	redis_in_trim_flush(r);
 	return 0;
 }
 

@@ -75,11 +75,15 @@ struct redis_in {
 	/*
 	 * Failures to apply, counted by the daemon itself (never Redis's
 	 * delivery counter, which our own re-reads raise): a small file in
-	 * the state directory names the entry being applied; if it is still
-	 * there at start, the last run died applying that entry.
+	 * the state directory names the batch of entries being applied; if
+	 * it is still there at start, the last run died applying one of
+	 * them. Batches holding such an entry are marked entry by entry,
+	 * so a second death names the very entry.
 	 */
 	int			 mark_fd;	/* -1: no crash-loop guard */
-	struct sid		 suspect;	/* entry the last run died in */
+	int			 mark_each;	/* this batch: entry by entry */
+	struct sid		 suspect;	/* the last run died in */
+	struct sid		 suspect_last;	/* [suspect, suspect_last] */
 	unsigned		 suspect_failures;
 
 	struct event		*retry_ev;
@@ -141,8 +145,10 @@ int		 redis_in_argv(struct redis_in *, redisCallbackFn *, void *,
 		    int argc, const char **argv, const size_t *lens);
 void		 redis_in_op_done(struct redis_in *);
 int		 redis_in_entry(struct redis_in *, const redisReply *);
-/* Log the run of trimmed pending entries redis_in_entry gathered. */
-void		 redis_in_trim_flush(struct redis_in *);
+/* Around every list of entries handed to redis_in_entry: the crash-loop
+ * guard's mark, and the log of the trimmed ones it gathered. */
+void		 redis_in_batch_begin(struct redis_in *, const redisReply *);
+void		 redis_in_batch_end(struct redis_in *);
 void		 redis_in_next(struct redis_in *);
 
 /* redis_house.c */

@@ -230,7 +230,8 @@ def poison_run(tap):
                                                   "consumer": consumer}))
         os.makedirs(d.state)
         with open(os.path.join(d.state, "redis-applying"), "w") as f:
-            f.write(("A %s 4" % crashy_id).ljust(63) + "\n")
+            f.write(("A %s %s 4" % (crashy_id, crashy_id)).ljust(127) +
+                    "\n")
         with d:
             d.start()
             no_rec_id = redis.xadd(stream, {"note": "no records here"})
