@@ -77,6 +77,7 @@ struct conf {
 	uint32_t	tick_budget;	/* costly looks per tick, 0: no limit */
 	/* event time: the SRM test reads only complete intervals */
 	double		lateness;	/* allowed lateness of an exposure, s */
+	double		epoch_grace;	/* previous epoch open to epoch=, s */
 	double		srm_interval;	/* SRM interval length, s */
 	uint32_t	unit_groups;	/* variance groups per arm (unit=) */
 	double		detect_arl;	/* s of record time between false

@@ -123,6 +123,7 @@ struct engine_counters {
 					 * watermark (applied at once) */
 	uint64_t	 held_forced;	/* applied early: ENGINE_HELD_MAX */
 	uint64_t	 held;		/* metric records waiting (gauge) */
+	uint64_t	 closing_records;	/* epoch= of the closing epoch */
 };
 
 struct engine;

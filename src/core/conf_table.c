@@ -79,6 +79,10 @@ const struct conf_option conf_options[] = {
 	  F_ZERO_OK, "30s", NULL, "how far behind the newest exposure of an "
 	  "experiment (in record time) an exposure may arrive and still "
 	  "count in the SRM test; later ones are counted as late" },
+	{ S_DEFAULTS, "epoch_grace", T_DURATION, C(epoch_grace), 0, 86400,
+	  F_ZERO_OK, "10m", NULL, "after a ramp step, how long (in the "
+	  "daemon's clock) records naming the previous epoch with epoch= "
+	  "still count in it; later ones are refused and counted; 0: none" },
 	{ S_DEFAULTS, "srm_interval", T_DURATION, C(srm_interval), 0.001,
 	  3600, 0, "5s", NULL, "the SRM test adds exposures one complete "
 	  "interval of record time at a time, so arrival order inside an "

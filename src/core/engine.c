@@ -302,6 +302,7 @@ test_reset_epoch(struct test *t)
 	t->by_detector = 0;
 	t->sig2_t = t->sig2_c = 0;
 	t->qd_x0 = NAN;
+	t->est_closing = 0;
 	change_reset(t);
 	for (i = 0; i < 2; i++) {
 		groups_free(t->qg[i]);
@@ -468,8 +469,9 @@ exp_unit_key(const struct engine *eng, struct experiment *e)
 	memcpy(e->unit_key + 8, &b, 8);
 }
 
+/* A new experiment in its first epoch, not yet in the engine's index. */
 struct experiment *
-engine_exp_new(struct engine *eng, const char *id,
+engine_exp_make(struct engine *eng, const char *id,
     const struct proto_arm *arms, int narms, double now)
 {
 	struct experiment *e;
@@ -485,6 +487,15 @@ engine_exp_new(struct engine *eng, const char *id,
 	exp_push_epoch(e, now);
 	exp_ensure_tests(eng, e);
 	e->last_ts = now;
+	return e;
+}
+
+struct experiment *
+engine_exp_new(struct engine *eng, const char *id,
+    const struct proto_arm *arms, int narms, double now)
+{
+	struct experiment *e = engine_exp_make(eng, id, arms, narms, now);
+
 	if (eng->nexps == eng->capexps) {
 		eng->capexps = eng->capexps ? eng->capexps * 2 : 16;
 		eng->exps = xreallocarray(eng->exps, eng->capexps,
@@ -503,6 +514,7 @@ engine_exp_free(struct experiment *e)
 
 	if (e == NULL)
 		return;
+	engine_exp_free(e->closing);
 	for (i = 0; i < e->nmetrics; i++)
 		series_free(&e->metrics[i], e->narms);
 	free(e->metrics);
@@ -519,6 +531,73 @@ engine_exp_free(struct experiment *e)
 }
 
 /*
+ * The closing epoch: at a ramp step the finished epoch's tallies and
+ * tests move, as they are, into a closing experiment owned by the live
+ * one, and records naming that epoch (epoch=) keep counting there for
+ * epoch_grace. Its tests gather evidence only; what their factor gains
+ * joins the live test's product of closed epochs (verdict.c
+ * verdict_closing). The live experiment keeps the tests' histories and
+ * alert state and starts the new epoch with fresh tallies.
+ */
+static void
+closing_open(struct engine *eng, struct experiment *e, double now)
+{
+	struct experiment *c = xcalloc(1, sizeof *c);
+	int i;
+
+	*c = *e;
+	c->is_closing = 1;
+	c->owner = e;
+	c->closing = NULL;
+	c->closing_until = now + eng->conf->epoch_grace;
+	c->closing_records = 0;
+	/* the live experiment keeps the epoch list and the charts */
+	c->epochs = NULL;
+	c->nepochs = 0;
+	memset(&c->srm_hist, 0, sizeof c->srm_hist);
+	/* the closing one takes the tallies (series, groups, held records)
+	 * and the SRM ring; the live one gets empty metrics by name */
+	e->metrics = xcalloc((size_t)(e->nmetrics > 0 ? e->nmetrics : 1),
+	    sizeof *e->metrics);
+	for (i = 0; i < e->nmetrics; i++) {
+		e->metrics[i] = c->metrics[i];
+		e->metrics[i].arm = NULL;
+	}
+	e->srm_ring = NULL;
+	e->held = 0;
+	/* tests: a copy whose per-epoch parts (quantile groups) it owns */
+	c->tests = xreallocarray(NULL, (size_t)(e->ntests > 0 ? e->ntests : 1),
+	    sizeof *c->tests);
+	memcpy(c->tests, e->tests, (size_t)e->ntests * sizeof *c->tests);
+	c->testcap = e->ntests;
+	for (i = 0; i < e->ntests; i++) {
+		memset(&c->tests[i].hist, 0, sizeof c->tests[i].hist);
+		c->tests[i].late_base = c->tests[i].log_e;
+		e->tests[i].qg[0] = e->tests[i].qg[1] = NULL;
+	}
+	e->closing = c;
+}
+
+/* Close the closing epoch: apply what it holds, take its last costly
+ * looks (their evidence joins the live tests), free it. */
+static void
+closing_retire(struct engine *eng, struct experiment *e)
+{
+	struct experiment *c = e->closing;
+	int i, force = eng->force;
+
+	if (c == NULL)
+		return;
+	align_flush(eng, c);
+	eng->force = 1;
+	for (i = 0; i < c->ntests; i++)
+		verdict_evaluate(eng, c, &c->tests[i], 1);
+	eng->force = force;
+	e->closing = NULL;
+	engine_exp_free(c);
+}
+
+/*
  * Start a new epoch: tallies and SRM start afresh (never pooled across
  * weights, the trap that turns a ramp into Simpson's paradox); each
  * test's finished epoch martingale is folded into closed_log_e.
@@ -530,9 +609,16 @@ exp_new_epoch(struct engine *eng, struct experiment *e,
 	struct finding f;
 	int i;
 
-	/* held records arrived in the closing epoch and belong to it (a
-	 * reset forgets them with the rest) */
-	if (!forget)
+	/* an epoch still closing closes now; a reset forgets it */
+	if (forget) {
+		engine_exp_free(e->closing);
+		e->closing = NULL;
+	} else
+		closing_retire(eng, e);
+	/* held records arrived in the finished epoch and belong to it */
+	if (!forget && eng->conf->epoch_grace > 0)
+		closing_open(eng, e, now);
+	else if (!forget)
 		align_flush(eng, e);
 	for (i = 0; i < e->nmetrics; i++)
 		series_free(&e->metrics[i], e->narms);
@@ -672,6 +758,9 @@ engine_reconfigure(struct engine *eng, const struct conf *conf, char **cause)
 	uint32_t i;
 	int j, k, ntests;
 
+	/* closing epochs' tests index the old guardrails: close them first */
+	for (i = 0; i < eng->nexps; i++)
+		closing_retire(eng, eng->exps[i]);
 	eng->conf = conf_dup(conf);
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
@@ -1113,23 +1202,38 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 		rc = ENGINE_E_UNPLANNED;
 		goto done;
 	}
+	e->last_ts = now;
+	e->last_event = event;
+	/*
+	 * A record names the epoch its unit was exposed in (epoch=): one of
+	 * the epoch still closing counts there; one of an epoch closed for
+	 * good must not land in the current one's tallies.
+	 */
+	if (r->epoch != 0 && r->epoch != e->epoch) {
+		if (e->closing == NULL || r->epoch != e->closing->epoch) {
+			rc = r->epoch < e->epoch ? ENGINE_E_CLOSED_EPOCH :
+			    ENGINE_E_FUTURE_EPOCH;
+			if (rc == ENGINE_E_CLOSED_EPOCH)
+				e->late_epoch++;
+			goto done;
+		}
+		e = e->closing;
+	}
 	if ((arm = arm_find(e, r->variant)) < 0) {
 		rc = ENGINE_E_VARIANT;
 		goto done;
 	}
-	e->last_ts = now;
-	e->last_event = event;
-	/* a record names the epoch its unit was exposed in (epoch=); one
-	 * of a closed epoch must not land in the current one's tallies */
-	if (r->epoch != 0 && r->epoch != e->epoch) {
-		rc = r->epoch < e->epoch ? ENGINE_E_CLOSED_EPOCH :
-		    ENGINE_E_FUTURE_EPOCH;
-		if (rc == ENGINE_E_CLOSED_EPOCH)
-			e->late_epoch++;
-		goto done;
+	if (e->is_closing) {
+		e->closing_records++;
+		eng->counters.closing_records++;
 	}
 	switch (r->kind) {
 	case PROTO_EXPOSE:
+		/* a closing epoch's SRM test is over: counted only */
+		if (e->is_closing) {
+			e->exposures[arm] += r->units;
+			break;
+		}
 		e->exposures[arm] += r->units;
 		/* event time: the record's own stamp, even when a caller's
 		 * clock (replay: the newest record time) runs ahead of it */
@@ -1181,6 +1285,12 @@ tick_experiment(struct engine *eng, struct experiment *e, double now)
 	 * reflects, not the tick's clock, so a backlog replayed late charts
 	 * (and fires) at the time the data describe.
 	 */
+	if (e->closing != NULL) {
+		if (now >= e->closing->closing_until)
+			closing_retire(eng, e);
+		else
+			looks += tick_experiment(eng, e->closing, now);
+	}
 	eng->now = e->last_ts > 0 ? e->last_ts : now;
 	align_tick(eng, e, now);
 	for (j = 0; j < e->ntests; j++) {
@@ -1194,7 +1304,7 @@ tick_experiment(struct engine *eng, struct experiment *e, double now)
 			}
 			t->dirty = 0;
 		}
-		if (t->hist_dirty) {
+		if (t->hist_dirty && !e->is_closing) {
 			hist_offer(&t->hist, cap, eng->now, t->est, t->cs_lo,
 			    t->cs_hi, stats_p_from_log_e(t->max_log_e));
 			t->hist_dirty = 0;
@@ -1206,6 +1316,8 @@ tick_experiment(struct engine *eng, struct experiment *e, double now)
 	 * land in it, so the tick completes it even when no newer exposure
 	 * arrives. Producer-stamped ones (a backlog) wait for newer ones.
 	 */
+	if (e->is_closing)
+		return looks;
 	if (!e->srm_stamped && !isnan(e->srm_newest))
 		srm_complete(eng, e, srm_interval_of(eng, now -
 		    eng->conf->lateness));
@@ -1253,6 +1365,7 @@ engine_finish(struct engine *eng, double now)
 	uint32_t i;
 
 	for (i = 0; i < eng->nexps; i++) {
+		closing_retire(eng, eng->exps[i]);
 		align_flush(eng, eng->exps[i]);
 		srm_flush(eng, eng->exps[i]);
 	}

@@ -190,8 +190,11 @@ groups_save(const struct groups *g)
 		json_array_append_new(sa, sreal(g->s[i]));
 		json_array_append_new(na, sreal(g->n[i]));
 	}
-	return json_pack("{s:I, s:o, s:o}", "seq", (json_int_t)g->seq, "s", sa,
-	    "n", na);
+	/* the design effect's cache too, so a restored engine looks with
+	 * the same variances as the one that saved it */
+	return json_pack("{s:I, s:o, s:o, s:[o, o, o]}", "seq",
+	    (json_int_t)g->seq, "s", sa, "n", na, "deff", sreal(g->deff_at),
+	    sreal(g->deff), sreal(g->gv));
 }
 
 /* Held metric records: [t, a, b, h] each, h's bits as a signed integer. */
@@ -241,7 +244,7 @@ static int
 groups_load(struct series *sr, const json_t *o, uint32_t Gmax)
 {
 	const json_t *sa = json_object_get(o, "s"), *na = json_object_get(o,
-	    "n");
+	    "n"), *d;
 	size_t G = json_array_size(sa);
 	uint32_t i;
 
@@ -259,6 +262,13 @@ groups_load(struct series *sr, const json_t *o, uint32_t Gmax)
 		if (!isfinite(sr->grp->s[i]) || !isfinite(sr->grp->n[i]))
 			return -1;
 		sr->grp->used += sr->grp->n[i] != 0;
+	}
+	if ((d = json_object_get(o, "deff")) != NULL) {
+		sr->grp->deff_at = aget(d, 0);
+		sr->grp->deff = aget(d, 1);
+		sr->grp->gv = aget(d, 2);
+		if (!(sr->grp->deff_at >= 0) || !isfinite(sr->grp->deff))
+			sr->grp->deff_at = sr->grp->deff = sr->grp->gv = 0;
 	}
 	return 0;
 }
@@ -450,6 +460,7 @@ static const struct test_field {
 	F(trt_lo, FIELD_REAL), F(trt_hi, FIELD_REAL), F(first_ts, FIELD_REAL),
 	F(first_event, FIELD_COUNT), F(pause_sent, FIELD_BOOL),
 	F(dirty, FIELD_BOOL), F(cs_n, FIELD_LOOKS), F(ev_n, FIELD_LOOKS),
+	F(late_base, FIELD_REAL), F(est_closing, FIELD_BOOL),
 #undef F
 };
 
@@ -625,6 +636,14 @@ exp_save(const struct experiment *e, const struct conf *conf)
 	json_object_set_new(o, "last_ts", sreal(e->last_ts));
 	json_object_set_new(o, "last_event",
 	    json_integer((json_int_t)e->last_event));
+	if (e->closing != NULL) {
+		json_t *c = exp_save(e->closing, conf);
+		json_object_set_new(c, "until",
+		    sreal(e->closing->closing_until));
+		json_object_set_new(c, "records", json_integer(
+		    (json_int_t)e->closing->closing_records));
+		json_object_set_new(o, "closing", c);
+	}
 	return o;
 }
 
@@ -672,6 +691,9 @@ restore_guardrail(const struct conf *conf, const json_t *to)
 			return g;
 	return -1;
 }
+
+static int	closing_fill(struct engine *, struct experiment *,
+		    const json_t *, char **);
 
 /*
  * Fill a freshly made experiment (its id and plan set) from its image:
@@ -889,6 +911,38 @@ exp_fill(struct engine *eng, struct experiment *e, const json_t *o,
 	get_real(o, "last_ts", &e->last_ts);
 	e->last_event = (uint64_t)json_integer_value(json_object_get(o,
 	    "last_event"));
+	if ((v = json_object_get(o, "closing")) != NULL)
+		return closing_fill(eng, e, v, cause);
+	return 0;
+}
+
+/* The epoch still closing when the image was written (engine.c). */
+static int
+closing_fill(struct engine *eng, struct experiment *e, const json_t *o,
+    char **cause)
+{
+	struct proto_arm arms[PROTO_PLAN_MAX];
+	struct experiment *c;
+	int narms;
+
+	if (json_object_get(o, "closing") != NULL ||
+	    arms_load(json_object_get(o, "arms"), arms, &narms) != 0) {
+		xasprintf(cause, "experiment %s: bad closing epoch", e->id);
+		return -1;
+	}
+	c = engine_exp_make(eng, e->id, arms, narms, 0);
+	c->is_closing = 1;
+	c->owner = e;
+	e->closing = c;
+	if (exp_fill(eng, c, o, cause) != 0)
+		return -1;
+	if (get_real(o, "until", &c->closing_until) != 0 ||
+	    !isfinite(c->closing_until)) {
+		xasprintf(cause, "experiment %s: bad closing epoch", e->id);
+		return -1;
+	}
+	c->closing_records = (uint64_t)json_integer_value(json_object_get(o,
+	    "records"));
 	return 0;
 }
 

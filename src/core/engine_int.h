@@ -161,6 +161,10 @@ struct test {
 	 * control and treatment (engine.c groups_add_quantiles) */
 	struct groups	*qg[2];
 	double		 qx0[2];
+	/* closing epoch (engine.c closing_*): log_e already added to the
+	 * live test's closed part */
+	double		 late_base;
+	int		 est_closing;	/* est and bounds are the closing's */
 	/* quantile detection: the control's quantile, frozen (change.c) */
 	double		 qd_x0;
 	/* per-record variances and margin of the last look (change.c) */
@@ -236,6 +240,18 @@ struct experiment {
 
 	double		 last_ts;
 	uint64_t	 last_event;
+
+	/*
+	 * The previous epoch stays open for epoch_grace after a ramp step, so
+	 * records naming it (epoch=) count there: a closing experiment holds
+	 * that epoch's tallies and tests, gathers evidence for its owner's
+	 * product of epoch factors and emits nothing itself.
+	 */
+	struct experiment *closing;	/* owned; NULL none */
+	struct experiment *owner;	/* of a closing one */
+	int		 is_closing;
+	double		 closing_until;	/* engine clock */
+	uint64_t	 closing_records;	/* counted in it */
 };
 
 #define ENGINE_EPOCHS_KEPT 32
@@ -264,6 +280,8 @@ struct engine {
 
 /* engine.c */
 struct experiment *engine_exp_new(struct engine *, const char *id,
+		    const struct proto_arm *, int narms, double now);
+struct experiment *engine_exp_make(struct engine *, const char *id,
 		    const struct proto_arm *, int narms, double now);
 void		 engine_exp_free(struct experiment *);
 json_t		*finding_num(double);

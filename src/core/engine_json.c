@@ -234,5 +234,11 @@ engine_json_experiment(const struct engine *eng, const char *id)
 	    (json_int_t)e->late_epoch, "lateness",
 	    finding_num(eng->conf->lateness), "srm_interval",
 	    finding_num(eng->conf->srm_interval)));
+	/* the previous epoch, still counting records that name it */
+	json_object_set_new(json_object_get(o, "late"), "closing_epoch",
+	    e->closing == NULL ? json_null() : json_pack("{s:i, s:o, s:I}",
+	    "epoch", (int)e->closing->epoch, "until",
+	    finding_num(e->closing->closing_until), "records",
+	    (json_int_t)e->closing->closing_records));
 	return o;
 }

@@ -764,75 +764,23 @@ rate_concentration(const struct engine *eng)
 	    eng->conf->rate_concentration : 100;
 }
 
-void
-verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
-    int costly)
+/*
+ * The verdict rule, one place for every kind: harm when the running
+ * test's always-valid p is at or below the level or the change detector
+ * alarmed (det); safe when the confidence sequence excludes harm beyond
+ * the margin. Every change is emitted with the verdict it replaces.
+ * want_cs: the bounds of this look are fresh.
+ */
+static void
+verdict_set(struct engine *eng, struct experiment *e, struct test *t,
+    const struct conf_guardrail *g, const struct series *a,
+    const struct series *b, int want_cs, int det)
 {
-	const struct conf_guardrail *g = &eng->conf->guardrails[t->g];
-	const struct metric *m;
-	const struct series *a, *b;
 	struct finding f;
-	double level = verdict_level(e), s, p, n;
-	enum verdict old = t->verdict, nv;
-	int rc, want_cs = 1, det, qdet = 0;
+	double level = verdict_level(e), s = harm_sign(g), p;
+	enum verdict old = t->verdict, nv = old;
 
-	if (t->metric < 0 || t->arm <= 0)
-		return;
-	m = &e->metrics[t->metric];
-	if (m->arm == NULL)
-		return;
-	a = &m->arm[0];
-	b = &m->arm[t->arm];
-	switch (g->test) {
-	case TEST_MEAN:
-	case TEST_PROPORTION:
-		rc = eval_normal(eng, e, t, g, a, b, level);
-		break;
-	case TEST_RATE:
-		/* an incomplete beta per record is too dear for the hot
-		 * path; a subsequence of looks keeps Ville's bound */
-		n = (double)(a->r.records + b->r.records);
-		if (!costly || !grown(eng, &t->ev_n, n, VERDICT_EV_GROWTH,
-		    VERDICT_EV_MIN_STEP))
-			return;
-		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
-		    VERDICT_CS_MIN_STEP);
-		rc = eval_rate(eng, e, t, g, a, b, level, rate_concentration(eng),
-		    want_cs);
-		break;
-	case TEST_QUANTILE:
-		if (!costly || a->sk == NULL || b->sk == NULL)
-			return;
-		n = (double)(sketch_count(a->sk) + sketch_count(b->sk));
-		if (!grown(eng, &t->ev_n, n, VERDICT_EV_GROWTH,
-		    VERDICT_EV_MIN_STEP))
-			return;
-		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
-		    VERDICT_CS_MIN_STEP);
-		rc = eval_quantile(eng, e, t, g, a, b, level, want_cs);
-		qdet = rc == 0 && quantile_detect(eng, e, t, g, a, b);
-		break;
-	default:
-		return;
-	}
-	if (costly)
-		t->dirty = 0;
-	if (rc != 0)
-		return;
-	t->hist_dirty = 1;
-	if (t->closed_log_e + t->log_e > t->max_log_e)
-		t->max_log_e = t->closed_log_e + t->log_e;
-	set_relative(t);
-
-	s = harm_sign(g);
 	p = stats_p_from_log_e(t->max_log_e);
-	if (g->test == TEST_QUANTILE)
-		det = qdet;
-	else
-		det = t->sig2_t > 0 && t->sig2_c > 0 && change_offer(eng, e,
-		    t, g, a, b, t->sig2_t, t->sig2_c, t->kfac, t->mlin);
-	change_window_offer(eng, t, g, a, b);
-	nv = old;
 	/*
 	 * The evidence is one-sided: it points at harm beyond the margin
 	 * only, so no sign check of the latest estimate. Harm may follow
@@ -881,6 +829,139 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	}
 }
 
+/* The control's and this treatment's series of a test; -1 without. */
+static int
+test_series(const struct experiment *e, const struct test *t,
+    const struct series **a, const struct series **b)
+{
+	const struct metric *m;
+
+	if (t->metric < 0 || t->arm <= 0)
+		return -1;
+	m = &e->metrics[t->metric];
+	if (m->arm == NULL)
+		return -1;
+	*a = &m->arm[0];
+	*b = &m->arm[t->arm];
+	return 0;
+}
+
+/*
+ * Evidence from a closing epoch's test (late records naming it, engine.c
+ * closing_*) joins its experiment's product of epoch factors: the live
+ * test's closed part grows by what the closing factor gained since the
+ * last transfer, and the live verdict rule looks again.
+ */
+static void
+verdict_closing(struct engine *eng, struct experiment *c, struct test *ct)
+{
+	struct experiment *e = c->owner;
+	const struct series *a, *b;
+	struct test *t = NULL;
+	int i;
+
+	for (i = 0; e != NULL && i < e->ntests; i++)
+		if (e->tests[i].g == ct->g &&
+		    strcmp(e->tests[i].variant, ct->variant) == 0)
+			t = &e->tests[i];
+	if (t == NULL || ct->log_e == ct->late_base)
+		return;
+	t->closed_log_e += ct->log_e - ct->late_base;
+	ct->late_base = ct->log_e;
+	/* before the new epoch has an estimate of its own, an alert shows
+	 * the one its evidence came from */
+	if (isnan(t->est) || t->est_closing) {
+		t->est_closing = 1;
+		t->est = ct->est;
+		t->lo = ct->lo;
+		t->hi = ct->hi;
+		t->ctl_value = ct->ctl_value;
+		t->trt_value = ct->trt_value;
+		t->ctl_lo = ct->ctl_lo;
+		t->ctl_hi = ct->ctl_hi;
+		t->trt_lo = ct->trt_lo;
+		t->trt_hi = ct->trt_hi;
+		t->margin_abs = ct->margin_abs;
+		t->V = ct->V;
+		t->tau2 = ct->tau2;
+		t->deff = ct->deff;
+		set_relative(t);
+	}
+	if (t->closed_log_e + t->log_e > t->max_log_e)
+		t->max_log_e = t->closed_log_e + t->log_e;
+	t->hist_dirty = 1;
+	if (test_series(e, t, &a, &b) != 0)
+		return;
+	verdict_set(eng, e, t, &eng->conf->guardrails[t->g], a, b, 0, 0);
+}
+
+void
+verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
+    int costly)
+{
+	const struct conf_guardrail *g = &eng->conf->guardrails[t->g];
+	const struct series *a, *b;
+	double level = verdict_level(e), n;
+	int rc, want_cs = 1, det, qdet = 0;
+
+	if (test_series(e, t, &a, &b) != 0)
+		return;
+	switch (g->test) {
+	case TEST_MEAN:
+	case TEST_PROPORTION:
+		rc = eval_normal(eng, e, t, g, a, b, level);
+		break;
+	case TEST_RATE:
+		/* an incomplete beta per record is too dear for the hot
+		 * path; a subsequence of looks keeps Ville's bound */
+		n = (double)(a->r.records + b->r.records);
+		if (!costly || !grown(eng, &t->ev_n, n, VERDICT_EV_GROWTH,
+		    VERDICT_EV_MIN_STEP))
+			return;
+		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
+		    VERDICT_CS_MIN_STEP);
+		rc = eval_rate(eng, e, t, g, a, b, level, rate_concentration(eng),
+		    want_cs);
+		break;
+	case TEST_QUANTILE:
+		if (!costly || a->sk == NULL || b->sk == NULL)
+			return;
+		n = (double)(sketch_count(a->sk) + sketch_count(b->sk));
+		if (!grown(eng, &t->ev_n, n, VERDICT_EV_GROWTH,
+		    VERDICT_EV_MIN_STEP))
+			return;
+		want_cs = grown(eng, &t->cs_n, n, VERDICT_CS_GROWTH,
+		    VERDICT_CS_MIN_STEP);
+		rc = eval_quantile(eng, e, t, g, a, b, level, want_cs);
+		qdet = rc == 0 && !e->is_closing &&
+		    quantile_detect(eng, e, t, g, a, b);
+		break;
+	default:
+		return;
+	}
+	if (costly)
+		t->dirty = 0;
+	if (rc != 0)
+		return;
+	/* a closing epoch only gathers evidence for its experiment */
+	if (e->is_closing) {
+		verdict_closing(eng, e, t);
+		return;
+	}
+	t->est_closing = 0;
+	t->hist_dirty = 1;
+	if (t->closed_log_e + t->log_e > t->max_log_e)
+		t->max_log_e = t->closed_log_e + t->log_e;
+	set_relative(t);
+	if (g->test == TEST_QUANTILE)
+		det = qdet;
+	else
+		det = t->sig2_t > 0 && t->sig2_c > 0 && change_offer(eng, e,
+		    t, g, a, b, t->sig2_t, t->sig2_c, t->kfac, t->mlin);
+	change_window_offer(eng, t, g, a, b);
+	verdict_set(eng, e, t, g, a, b, want_cs, det);
+}
+
 /*
  * SRM: the Dirichlet-multinomial Bayes factor against the epoch's
  * weights (Lindon & Malek 2022; docs/methods.md sec. 3) is updated by
@@ -892,6 +973,8 @@ verdict_srm(struct engine *eng, struct experiment *e)
 {
 	struct finding f;
 
+	if (e->is_closing)
+		return;
 	if (e->srm_log_e > e->srm_max_log_e)
 		e->srm_max_log_e = e->srm_log_e;
 	e->srm_dirty = 1;

@@ -376,6 +376,79 @@ test_aligned_arms(void **state)
 	gsl_rng_free(rng);
 }
 
+/*
+ * Records naming the previous epoch (epoch=) after a ramp step count in
+ * that epoch while it is closing (epoch_grace, 10 min by default), and
+ * its evidence joins the experiment's: a treatment harmful on the late
+ * records of epoch 1 is found after the step. The closing epoch is in the
+ * state image; after the grace such records are refused and counted.
+ */
+static void
+test_closing_epoch(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	uint8_t key[16] = { 1, 2, 3 };
+	struct engine_counters c;
+	struct engine *copy;
+	char *cause = NULL;
+	json_t *a, *b, *j, *late;
+	int i;
+
+	gsl_rng_set(rng, 5);
+	assert_int_equal(feed(fx, "plan ramp control=50 treatment=50"), 0);
+	for (i = 0; i < 100; i++) {
+		feed(fx, "observe ramp control render_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+		feed(fx, "observe ramp treatment render_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+	}
+	assert_int_equal(feed(fx, "plan ramp control=40 treatment=60"), 0);
+	for (i = 0; i < 400 && fx->seen.harms == 0; i++) {
+		assert_int_equal(feed(fx, "observe ramp control render_ms %.4f "
+		    "epoch=1", 100 + gsl_ran_gaussian(rng, 10)), 0);
+		assert_int_equal(feed(fx, "observe ramp treatment render_ms "
+		    "%.4f epoch=1", 108 + gsl_ran_gaussian(rng, 10)), 0);
+		if (i == 150) {
+			/* the closing epoch survives a checkpoint */
+			a = engine_save(fx->eng);
+			copy = engine_restore(fx->conf, key, a, &cause);
+			if (copy == NULL)
+				fail_msg("restore: %s", cause);
+			b = engine_save(copy);
+			assert_true(json_equal(a, b));
+			json_decref(a);
+			json_decref(b);
+			engine_free(copy);
+		}
+	}
+	/* found on epoch 1's late records, reported by the live epoch */
+	assert_int_equal(fx->seen.harms, 1);
+	assert_string_equal(fx->seen.last_guardrail, "render");
+	/* the alert shows the estimate its evidence came from: about +8 */
+	assert_true(fx->seen.last_est > 2 && fx->seen.last_est < 14);
+	j = engine_json_experiment(fx->eng, "ramp");
+	late = json_object_get(j, "late");
+	assert_int_equal(json_integer_value(json_object_get(late,
+	    "closed_epoch_records")), 0);
+	assert_int_equal(json_integer_value(json_object_get(json_object_get(
+	    late, "closing_epoch"), "records")), 2 * i);
+	json_decref(j);
+	engine_counters(fx->eng, &c);
+	assert_int_equal(c.closing_records, (uint64_t)(2 * i));
+	/* past the grace the epoch is closed for good */
+	engine_tick(fx->eng, fx->now + 601);
+	assert_int_equal(feed(fx, "observe ramp control render_ms 100 "
+	    "epoch=1"), ENGINE_E_CLOSED_EPOCH);
+	j = engine_json_experiment(fx->eng, "ramp");
+	late = json_object_get(j, "late");
+	assert_true(json_is_null(json_object_get(late, "closing_epoch")));
+	assert_int_equal(json_integer_value(json_object_get(late,
+	    "closed_epoch_records")), 1);
+	json_decref(j);
+	gsl_rng_free(rng);
+}
+
 /* A clearly slower treatment: the mean guardrail must find harm, with
  * the CS beyond zero and the estimate inside it. */
 static void
@@ -680,6 +753,122 @@ test_late_harm_after_safe(void **state)
 	assert_int_equal(fx->seen.safes, before.safes);
 }
 
+/*
+ * Outliers in a quantile test (issue 12, item 3): 1% of records at 1e7,
+ * 1e9 and 1e300 in turn. Before the sketch's edges, 1% at 1e7 in one arm
+ * folded that arm's body into one bucket (p90 read 361.5 for 108.1) and
+ * harm was declared at p = 2.7e-132. Three experiments, p50 and p90
+ * guardrails with a 5% margin, lognormal(4.6, 0.5) latencies:
+ *   null: the outliers in both arms: no harm;
+ *   one: in the treatment only; its true p90 is the body's
+ *        0.9 / 0.99 quantile, exp(0.5 (z(0.90909) - z(0.9))) = 1.027 times
+ *        the control's (z from scipy.stats.norm.ppf: 1.33518, 1.28155),
+ *        p50 1.006 times: inside the margin, so no harm;
+ *   real: both arms with outliers, the treatment's body 1.3 times
+ *        slower: harm on both guardrails (outliers do not hide it).
+ */
+struct outlier_seen {
+	int	harm[3][2];	/* experiment x guardrail (p50, p90) */
+	double	p[3][2];
+};
+
+static void
+outlier_sink(void *arg, const struct finding *f)
+{
+	struct outlier_seen *o = arg;
+	int e, g;
+
+	if (f->kind != FINDING_VERDICT)
+		return;
+	e = strcmp(f->experiment, "null") == 0 ? 0 :
+	    strcmp(f->experiment, "one") == 0 ? 1 : 2;
+	g = strcmp(f->guardrail, "p50") == 0 ? 0 : 1;
+	if (f->verdict == VERDICT_HARM) {
+		o->harm[e][g]++;
+		o->p[e][g] = f->p;
+	}
+}
+
+static void
+test_quantile_outliers(void **state)
+{
+	static const char *text =
+	    "[defaults]\n"
+	    "alpha = 0.05\n"
+	    "plan_units = 20000\n"
+	    "[guardrail p50]\n"
+	    "metric = latency_ms\n"
+	    "test = quantile\n"
+	    "quantile = 0.5\n"
+	    "margin = 5%\n"
+	    "[guardrail p90]\n"
+	    "metric = latency_ms\n"
+	    "test = quantile\n"
+	    "quantile = 0.9\n"
+	    "margin = 5%\n";
+	static const double out[3] = { 1e7, 1e9, 1e300 };
+	static const char *exps[3] = { "null", "one", "real" };
+	struct outlier_seen seen;
+	struct conf *c;
+	struct engine *eng;
+	struct record r;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	char line[PROTO_LINE_MAX + 1], *cause = NULL;
+	uint8_t key[16] = { 4 };
+	double now = 1700000000, x;
+	uint64_t ev = 0;
+	int i, e, arm, g;
+
+	(void)state;
+	if (conf_parse(text, "outliers.conf", &c, &cause) != 0)
+		fail_msg("config: %s", cause);
+	eng = engine_new(c, key);
+	memset(&seen, 0, sizeof seen);
+	engine_set_sink(eng, outlier_sink, &seen);
+	gsl_rng_set(rng, 12);
+	for (e = 0; e < 3; e++) {
+		snprintf(line, sizeof line, "plan %s control=50 treatment=50",
+		    exps[e]);
+		assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+		assert_int_equal(engine_apply(eng, &r, now, ++ev), ENGINE_OK);
+	}
+	for (i = 0; i < 20000; i++) {
+		for (e = 0; e < 3; e++) {
+			for (arm = 0; arm < 2; arm++) {
+				x = exp(4.6 + 0.5 * gsl_ran_gaussian(rng, 1));
+				if (e == 2 && arm == 1)
+					x *= 1.3;
+				/* every 100th record an outlier, cycling */
+				if (i % 100 == 37 && (e != 1 || arm == 1))
+					x = out[i / 100 % 3];
+				snprintf(line, sizeof line,
+				    "observe %s %s latency_ms %.17g", exps[e],
+				    arm ? "treatment" : "control", x);
+				assert_int_equal(proto_parse(line, strlen(line),
+				    &r), PROTO_OK);
+				now += 0.001;
+				assert_int_equal(engine_apply(eng, &r, now,
+				    ++ev), ENGINE_OK);
+			}
+		}
+		if (i % 500 == 499)
+			engine_tick(eng, now);
+	}
+	engine_finish(eng, now);
+	for (g = 0; g < 2; g++) {
+		if (seen.harm[0][g] != 0 || seen.harm[1][g] != 0)
+			fail_msg("%s: false harm (null %d, p=%g; one arm %d, "
+			    "p=%g)", g ? "p90" : "p50", seen.harm[0][g],
+			    seen.p[0][g], seen.harm[1][g], seen.p[1][g]);
+		if (seen.harm[2][g] != 1)
+			fail_msg("%s: real harm not found once (%d)",
+			    g ? "p90" : "p50", seen.harm[2][g]);
+	}
+	engine_free(eng);
+	conf_free(c);
+	gsl_rng_free(rng);
+}
+
 int
 main(void)
 {
@@ -693,6 +882,8 @@ main(void)
 		cmocka_unit_test_setup_teardown(test_late_harm_after_safe,
 		    setup, teardown),
 		cmocka_unit_test_setup_teardown(test_aligned_arms, setup,
+		    teardown),
+		cmocka_unit_test_setup_teardown(test_closing_epoch, setup,
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_mean_harm, setup,
 		    teardown),
@@ -708,6 +899,7 @@ main(void)
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_guardrail_plan_units,
 		    setup, teardown),
+		cmocka_unit_test(test_quantile_outliers),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);
