@@ -2,18 +2,39 @@
  * sketch.c: the quantile sketch behind latency guardrails, after DDSketch
  * (C. Masson, J. E. Rim, H. K. Lee, "DDSketch: a fast and fully-mergeable
  * quantile sketch with relative-error guarantees", PVLDB 12(12), 2019;
- * docs/methods.md section 7). One sketch per arm and metric; the quantile tests
- * read it through sketch_quantile and sketch_buckets, checkpoints through
- * sketch_encode.
+ * docs/methods.md section 7). One sketch per arm and metric; the quantile
+ * tests read it through sketch_quantile and the bucket views, checkpoints
+ * through sketch_encode.
  *
  * Positive values go to bucket key ceil(log x / log gamma); a negative
  * value x goes to key -ceil(log|x| / log gamma) of a second store, so in
  * both stores a lower key is a lower value, and zeros have a counter of
- * their own. Each store is a dense array of counts covering the keys seen,
- * grown by doubling. A store never spans more than max_buckets keys: past
- * that, everything below the top max_buckets keys folds into the lowest
- * kept bucket. Which keys survive depends only on the highest key, so
- * sketching in any order, or merging, gives the same buckets.
+ * their own.
+ *
+ * A store holds its first values exactly, as a short sorted list of
+ * (key, count) ("warm"). Then it places a window: a dense array of at most
+ * max_buckets consecutive keys. A value beyond the window goes to one of
+ * two edges, each an exact count over a range of keys, so its bounds stay
+ * known:
+ *  - the low edge takes what DDSketch folds: a window never spans more
+ *    than max_buckets keys below its highest one, so a body of values too
+ *    wide for the cap loses its low end, not its high quantiles (Masson et
+ *    al. 2019, sec. 2.2; p99 is what latency guardrails test);
+ *  - the high edge takes outliers. When the window has no room, either
+ *    its low end folds or an "island" goes: the keys above a gap of a
+ *    factor SKETCH_ISLAND (and 8 mean spacings) from everything below
+ *    them. The island goes when it holds clearly fewer values than the
+ *    fold would move (sketch_evict). One value of 1e300 then costs one
+ *    count in the high edge instead of folding every normal value into
+ *    one bucket, as the plain DDSketch rule did (issue 12: 1% at 1e7 read
+ *    p90 = 361.5 for 108.1). Later values at or above the island's keys
+ *    join the high edge.
+ * The warm list lets the first placement see the body's mass, so that a
+ * few outliers arriving first cannot anchor the window; outliers making
+ * up most of a store's first values still can (then the body's values
+ * land in the low edge: counted, bounded, no longer resolved). Counts
+ * are exact everywhere; only the edges' values are known as ranges,
+ * which sketch_bounds and sketch_buckets_side give to the tests.
  */
 #include <float.h>
 #include <math.h>
@@ -26,19 +47,47 @@
 #define SKETCH_ACCURACY_MIN 1e-6	/* keys then fit in 32 bits */
 #define SKETCH_BUCKETS_MIN 16
 #define SKETCH_BUCKETS_MAX (1u << 24)
-#define SKETCH_INITIAL 32		/* buckets at a store's first value */
+#define SKETCH_INITIAL 32		/* buckets at a window's first value */
+#define SKETCH_WARM_COUNT 128		/* values held exactly before a window */
+#define SKETCH_WARM_KEYS 64		/* distinct keys held so (at most cap) */
+#define SKETCH_WARM_FIRST 16		/* warm entries allocated at first */
+#define SKETCH_ISLAND 64.0		/* gap ratio that makes an outlier */
+#define SKETCH_ISLAND_SPACING 8		/* and times the keys' mean spacing */
+/* edge bounds are widened by this relative amount: log and exp round */
+#define SKETCH_BOUND_SLACK 1e-11
 
 #define SKETCH_MAGIC "SCSK"
-#define SKETCH_VERSION 1
+#define SKETCH_VERSION SKETCH_ENCODING_VERSION
 #define SKETCH_HEADER 32		/* bytes before the stores */
-#define SKETCH_STORE_HEADER 8
+
+#define SKETCH_F_WARM 1u
+#define SKETCH_F_LOW 2u
+#define SKETCH_F_HIGH 4u
+
+#define SKETCH_NOKEY_LO INT32_MIN	/* no low edge: nothing routes there */
+#define SKETCH_NOKEY_HI INT32_MAX	/* no high edge */
+
+/* Values beyond the window: an exact count over keys kmin..kmax. */
+struct sketch_edge {
+	uint64_t	 count;
+	int32_t		 kmin, kmax;
+};
 
 struct sketch_store {
+	/*
+	 * Dense: len counts, counts[0] at key offset. Warm: len entries of
+	 * a capacity of cap counts followed by cap int32 keys, ascending.
+	 */
 	uint64_t	*counts;
-	int64_t		 offset;	/* key of counts[0] */
-	uint32_t	 len;		/* buckets allocated; 0: none */
-	int64_t		 lo, hi;	/* lowest, highest non-empty key (len > 0) */
-	uint64_t	 total;
+	uint64_t	 total;		/* window (or list) and both edges */
+	struct sketch_edge low, high;
+	int32_t		 lowkey;	/* keys <= lowkey go to the low edge */
+	int32_t		 offset;
+	int32_t		 lo, hi;	/* lowest, highest non-empty window key;
+					 * INT32_MAX, INT32_MIN when empty */
+	uint32_t	 len;
+	uint16_t	 cap;		/* warm capacity in entries */
+	uint16_t	 flags;
 };
 
 struct sketch {
@@ -46,18 +95,38 @@ struct sketch {
 	double		 lng;		/* log gamma */
 	double		 inv_lng;
 	double		 lrep;		/* log(2 / (gamma + 1)) */
-	int64_t		 kmin, kmax;	/* keys of DBL_TRUE_MIN and DBL_MAX */
-	uint32_t	 max_buckets;
 	uint64_t	 zero;
 	uint64_t	 count;
+	uint32_t	 max_buckets;
 	struct sketch_store pos, neg;
 };
+
+/* One block of the ordered view: an edge, a bucket or the zeros. */
+enum sketch_kind { SK_LOW, SK_KEY, SK_HIGH, SK_ZERO };
+
+struct sketch_block {
+	enum sketch_kind kind;
+	int		 neg;
+	int32_t		 kmin, kmax;
+	uint64_t	 count;
+};
+
+static void
+sketch_store_init(struct sketch_store *st)
+{
+	memset(st, 0, sizeof *st);
+	st->lowkey = SKETCH_NOKEY_LO;
+	st->low.kmin = st->low.kmax = 0;
+	st->high.kmin = SKETCH_NOKEY_HI;
+	st->lo = INT32_MAX;
+	st->hi = INT32_MIN;
+	st->flags = SKETCH_F_WARM;
+}
 
 struct sketch *
 sketch_new(double accuracy, uint32_t max_buckets)
 {
 	struct sketch *s;
-	double gamma;
 
 	if (!(accuracy >= SKETCH_ACCURACY_MIN && accuracy <= 0.5) ||
 	    max_buckets < SKETCH_BUCKETS_MIN ||
@@ -66,22 +135,13 @@ sketch_new(double accuracy, uint32_t max_buckets)
 	s = xcalloc(1, sizeof *s);
 	s->accuracy = accuracy;
 	/* gamma = (1 + a) / (1 - a), so (gamma - 1) / (gamma + 1) = a. */
-	gamma = (1 + accuracy) / (1 - accuracy);
 	s->lng = log1p(2 * accuracy / (1 - accuracy));
 	s->inv_lng = 1 / s->lng;
-	s->lrep = log(2 / (gamma + 1));
-	/* The keys any finite double can reach, for checking decoded input. */
-	s->kmin = (int64_t)ceil(log(DBL_TRUE_MIN) * s->inv_lng);
-	s->kmax = (int64_t)ceil(log(DBL_MAX) * s->inv_lng);
+	s->lrep = log(2 / ((1 + accuracy) / (1 - accuracy) + 1));
 	s->max_buckets = max_buckets;
+	sketch_store_init(&s->pos);
+	sketch_store_init(&s->neg);
 	return s;
-}
-
-static void
-sketch_store_clear(struct sketch_store *st)
-{
-	free(st->counts);
-	memset(st, 0, sizeof *st);
 }
 
 void
@@ -97,99 +157,468 @@ sketch_free(struct sketch *s)
 void
 sketch_reset(struct sketch *s)
 {
-	sketch_store_clear(&s->pos);
-	sketch_store_clear(&s->neg);
+	free(s->pos.counts);
+	free(s->neg.counts);
+	sketch_store_init(&s->pos);
+	sketch_store_init(&s->neg);
 	s->zero = 0;
 	s->count = 0;
 }
 
-/*
- * Make the store able to take a count at key: grow or re-place the array
- * and fold whatever falls below the top cap keys into the lowest kept
- * one. Returns the key the count belongs to (key itself, or the lowest
- * kept key when key is below it). Updates lo and hi as if the count were
- * already there. A store with len > 0 always has valid lo and hi (a merge
- * reserves both ends of the other store before adding to either).
- */
-static int64_t
-sketch_store_room(struct sketch_store *st, int64_t key, uint32_t cap)
+/* The keys any finite double can reach in a store. */
+static void
+sketch_key_range(const struct sketch *s, int neg, int64_t *kmin,
+    int64_t *kmax)
 {
-	int64_t lo, hi, a, k, noff;
-	uint64_t span, newlen, *nc, folded = 0;
+	int64_t a = (int64_t)ceil(log(DBL_TRUE_MIN) * s->inv_lng);
+	int64_t b = (int64_t)ceil(log(DBL_MAX) * s->inv_lng);
 
-	lo = st->len ? (key < st->lo ? key : st->lo) : key;
-	hi = st->len ? (key > st->hi ? key : st->hi) : key;
-	a = hi - (int64_t)cap + 1;
-	if (a < lo)
-		a = lo;
-	span = (uint64_t)(hi - a + 1);
-
-	if (st->len > 0 && a >= st->offset &&
-	    hi < st->offset + (int64_t)st->len) {
-		/* Covered: only a fold of the low end remains. */
-		for (k = st->lo; k < a; k++) {
-			folded += st->counts[k - st->offset];
-			st->counts[k - st->offset] = 0;
-		}
-		st->counts[a - st->offset] += folded;
-	} else {
-		if (st->len == 0)
-			newlen = SKETCH_INITIAL;
-		else if (span + span / 4 <= st->len)
-			newlen = st->len;	/* re-place, room is plenty */
-		else
-			newlen = 2 * (uint64_t)st->len;
-		if (newlen < span)
-			newlen = span;
-		if (newlen > cap)
-			newlen = cap;
-		if (st->len == 0)
-			noff = key - (int64_t)newlen / 2;
-		else if (key < st->lo)
-			noff = hi - (int64_t)newlen + 1;	/* room below */
-		else
-			noff = a;				/* room above */
-		nc = xcalloc(newlen, sizeof *nc);
-		if (st->len != 0) {
-			for (k = st->lo; k <= st->hi; k++)
-				nc[(k < a ? a : k) - noff] +=
-				    st->counts[k - st->offset];
-		}
-		free(st->counts);
-		st->counts = nc;
-		st->offset = noff;
-		st->len = (uint32_t)newlen;
-	}
-	st->lo = lo < a ? a : lo;
-	st->hi = hi;
-	return key < a ? a : key;
+	*kmin = neg ? -b : a;
+	*kmax = neg ? -a : b;
 }
 
-static inline void
-sketch_store_add(struct sketch_store *st, int64_t key, uint64_t c,
+/*
+ * Keys of the gap that makes an island among n distinct keys spanning
+ * width keys: a ratio of SKETCH_ISLAND at least, and SKETCH_ISLAND_SPACING
+ * times their mean spacing, so that the chance gaps of a sparse sample of
+ * a wide body (n points over width keys: about n exp(-8) of them) are
+ * not taken for outliers.
+ */
+static int64_t
+sketch_gap(const struct sketch *s, int64_t width, uint64_t n)
+{
+	int64_t g = (int64_t)ceil(log(SKETCH_ISLAND) * s->inv_lng), m;
+
+	if (g < (int64_t)s->max_buckets / 4)
+		g = (int64_t)s->max_buckets / 4;
+	if (n > 1) {
+		m = SKETCH_ISLAND_SPACING * width / (int64_t)(n - 1);
+		if (m > g)
+			g = m;
+	}
+	return g;
+}
+
+static int32_t *
+sketch_warm_keys(const struct sketch_store *st)
+{
+	if (st->counts == NULL)
+		return NULL;
+	return (int32_t *)(void *)(st->counts + st->cap);
+}
+
+static void
+sketch_edge_put(struct sketch_edge *e, int32_t kmin, int32_t kmax,
+    uint64_t c)
+{
+	if (e->count == 0) {
+		e->kmin = kmin;
+		e->kmax = kmax;
+	} else {
+		if (kmin < e->kmin)
+			e->kmin = kmin;
+		if (kmax > e->kmax)
+			e->kmax = kmax;
+	}
+	e->count += c;
+}
+
+static void
+sketch_low_put(struct sketch_store *st, int32_t kmin, int32_t kmax,
+    uint64_t c, int32_t route)
+{
+	sketch_edge_put(&st->low, kmin, kmax, c);
+	if (route > st->lowkey)
+		st->lowkey = route;
+}
+
+/* Window keys <= k move to the low edge; lowkey rises to k. */
+static void
+sketch_fold_low(struct sketch_store *st, int32_t k)
+{
+	int32_t j, stop;
+	uint64_t *p;
+
+	if (st->lo <= st->hi && st->lo <= k) {
+		stop = k < st->hi ? k : st->hi;
+		for (j = st->lo; j <= stop; j++) {
+			p = &st->counts[j - st->offset];
+			if (*p != 0) {
+				sketch_edge_put(&st->low, j, j, *p);
+				*p = 0;
+			}
+		}
+		for (j = stop + 1; j <= st->hi &&
+		    st->counts[j - st->offset] == 0; j++)
+			;
+		if (j > st->hi) {
+			st->lo = INT32_MAX;
+			st->hi = INT32_MIN;
+		} else
+			st->lo = j;
+	}
+	if (st->low.count != 0 && k > st->lowkey)
+		st->lowkey = k;
+}
+
+/* Window keys >= k move to the high edge. */
+static void
+sketch_fold_high(struct sketch_store *st, int32_t k)
+{
+	int32_t j, stop;
+	uint64_t *p;
+
+	if (st->lo > st->hi || st->hi < k)
+		return;
+	stop = k > st->lo ? k : st->lo;
+	for (j = st->hi; j >= stop; j--) {
+		p = &st->counts[j - st->offset];
+		if (*p != 0) {
+			sketch_edge_put(&st->high, j, j, *p);
+			*p = 0;
+		}
+	}
+	for (j = stop - 1; j >= st->lo && st->counts[j - st->offset] == 0;
+	    j--)
+		;
+	if (j < st->lo) {
+		st->lo = INT32_MAX;
+		st->hi = INT32_MIN;
+	} else
+		st->hi = j;
+}
+
+/*
+ * Make the dense array cover keys nlo..nhi (nhi - nlo < cap): grow by
+ * doubling, re-place when the room is plenty, leave the spare room on the
+ * side the window grows towards.
+ */
+static void
+sketch_place(struct sketch_store *st, int32_t nlo, int32_t nhi, uint32_t cap)
+{
+	uint64_t span = (uint64_t)((int64_t)nhi - nlo + 1), newlen, *nc;
+	int64_t noff;
+	int32_t k;
+
+	if (st->len > 0 && nlo >= st->offset &&
+	    (int64_t)nhi < (int64_t)st->offset + st->len)
+		return;
+	if (st->len == 0)
+		newlen = SKETCH_INITIAL;
+	else if (span + span / 4 <= st->len)
+		newlen = st->len;
+	else
+		newlen = 2 * (uint64_t)st->len;
+	if (newlen < span)
+		newlen = span;
+	if (newlen > cap)
+		newlen = cap;
+	if (st->lo > st->hi)
+		noff = (int64_t)nlo - (int64_t)(newlen - span) / 2;
+	else if (nlo < st->lo)
+		noff = (int64_t)nhi - (int64_t)newlen + 1;	/* room below */
+	else
+		noff = nlo;					/* room above */
+	/* keep every index of the array a valid int32 key */
+	if (noff < INT32_MIN)
+		noff = INT32_MIN;
+	if (noff + (int64_t)newlen - 1 > INT32_MAX)
+		noff = INT32_MAX - (int64_t)newlen + 1;
+	nc = xcalloc(newlen, sizeof *nc);
+	if (st->lo <= st->hi) {
+		for (k = st->lo; k <= st->hi; k++)
+			nc[k - noff] = st->counts[k - st->offset];
+	}
+	free(st->counts);
+	st->counts = nc;
+	st->offset = (int32_t)noff;
+	st->len = (uint32_t)newlen;
+}
+
+static void
+sketch_window_put(struct sketch_store *st, int32_t key, uint64_t c,
     uint32_t cap)
 {
-	uint64_t i = (uint64_t)(key - st->offset);
+	int32_t nlo = key < st->lo ? key : st->lo;
+	int32_t nhi = key > st->hi ? key : st->hi;
 
-	if (i < st->len) {
-		/* len > 0, so lo and hi are valid. */
+	sketch_place(st, nlo, nhi, cap);
+	st->counts[key - st->offset] += c;
+	st->lo = nlo;
+	st->hi = nhi;
+	/* DDSketch's rule: nothing more than cap keys below the top */
+	if (st->low.count != 0 && (int64_t)nhi - cap > st->lowkey)
+		sketch_fold_low(st, (int32_t)((int64_t)nhi - cap));
+}
+
+/*
+ * The topmost island of the window together with a new key (above hi
+ * when top, else below lo): the keys above the highest gap of more than
+ * gap keys. Returns its lowest key, or INT32_MAX when there is no gap;
+ * *mass is its count.
+ */
+static int32_t
+sketch_island(const struct sketch *s, const struct sketch_store *st,
+    int32_t key, uint64_t c, int top, uint64_t *mass)
+{
+	int64_t prev, gap;
+	int32_t j;
+	uint64_t m = 0, v, n = 1;
+
+	for (j = st->lo; j <= st->hi; j++)
+		n += st->counts[j - st->offset] != 0;
+	gap = sketch_gap(s, top ? (int64_t)key - st->lo :
+	    (int64_t)st->hi - key, n);
+	if (top) {
+		prev = key;
+		m = c;
+	} else
+		prev = INT64_MAX;
+	for (j = st->hi; j >= st->lo; j--) {
+		if ((v = st->counts[j - st->offset]) == 0)
+			continue;
+		if (prev != INT64_MAX && prev - j > gap) {
+			*mass = m;
+			return (int32_t)prev;
+		}
+		prev = j;
+		m += v;
+	}
+	if (!top && prev != INT64_MAX && prev - key > gap) {
+		*mass = m;
+		return (int32_t)prev;
+	}
+	*mass = 0;
+	return INT32_MAX;
+}
+
+/*
+ * Whether an island of mass values should go to the high edge rather
+ * than fold values into the low edge: only when it is clearly the
+ * smaller loss, twice its count (the upper quantiles are what latency
+ * guardrails read) and three standard errors (sqrt of a count) below,
+ * so that few values cannot flip the choice by chance.
+ */
+static int
+sketch_evict(uint64_t mass, uint64_t fold)
+{
+	double m = (double)mass;
+
+	return 2 * m + 3 * sqrt(m) + 1 < (double)fold;
+}
+
+/* A count for a key outside the window's fast path, dense store. */
+static void
+sketch_dense_put(const struct sketch *s, struct sketch_store *st,
+    int32_t key, uint64_t c)
+{
+	uint32_t cap = s->max_buckets;
+	int32_t b, j;
+	uint64_t mass, fold, n;
+
+	for (;;) {
+		if (key <= st->lowkey) {
+			sketch_low_put(st, key, key, c, st->lowkey);
+			return;
+		}
+		if (key >= st->high.kmin) {
+			sketch_edge_put(&st->high, key, key, c);
+			return;
+		}
+		if (st->lo > st->hi || (int64_t)(key > st->hi ? key : st->hi) -
+		    (key < st->lo ? key : st->lo) < (int64_t)cap) {
+			sketch_window_put(st, key, c, cap);
+			return;
+		}
+		/*
+		 * No room: some values lose their buckets. Either the low
+		 * end folds (DDSketch) or an island above goes to the high
+		 * edge, when it holds clearly fewer values.
+		 */
+		if (key > st->hi) {
+			for (j = st->lo, n = 1, fold = 0; j <= st->hi; j++) {
+				n += st->counts[j - st->offset] != 0;
+				if ((int64_t)j < (int64_t)key - cap + 1)
+					fold += st->counts[j - st->offset];
+			}
+			if ((int64_t)key - st->hi >
+			    sketch_gap(s, (int64_t)key - st->lo, n)) {
+				/* alone beyond a gap */
+				if (sketch_evict(c, fold)) {
+					sketch_edge_put(&st->high, key, key, c);
+					return;
+				}
+			} else if ((b = sketch_island(s, st, key, c, 1,
+			    &mass)) != INT32_MAX && sketch_evict(mass, fold)) {
+				sketch_fold_high(st, b);
+				sketch_edge_put(&st->high, key, key, c);
+				return;
+			}
+			sketch_fold_low(st, (int32_t)((int64_t)key - cap));
+			sketch_window_put(st, key, c, cap);
+			return;
+		}
+		/* below the window: what folds is this count */
+		if ((b = sketch_island(s, st, key, c, 0, &mass)) !=
+		    INT32_MAX && sketch_evict(mass, c)) {
+			sketch_fold_high(st, b);
+			continue;
+		}
+		sketch_low_put(st, key, key, c,
+		    (int32_t)((int64_t)st->hi - cap));
+		return;
+	}
+}
+
+/*
+ * Place the first window from the warm list (keys ascending): while the
+ * keys span more than cap, send the topmost island to the high edge when
+ * sketch_evict says so, else fold the low end.
+ */
+static void
+sketch_commit(const struct sketch *s, struct sketch_store *st)
+{
+	uint64_t *wc = st->counts, mass, fold;
+	int32_t *wk = sketch_warm_keys(st);
+	size_t n = st->len, l = 0, r, i, top;
+	int64_t gap, cap = s->max_buckets;
+
+	st->counts = NULL;
+	st->len = 0;
+	st->cap = 0;
+	st->flags &= (uint16_t)~SKETCH_F_WARM;
+	st->lo = INT32_MAX;
+	st->hi = INT32_MIN;
+	if (n == 0) {
+		free(wc);
+		return;
+	}
+	r = n - 1;
+	while ((int64_t)wk[r] - wk[l] >= cap) {
+		gap = sketch_gap(s, (int64_t)wk[r] - wk[l], r - l + 1);
+		for (i = r, top = n, mass = wc[r]; i > l; i--) {
+			if ((int64_t)wk[i] - wk[i - 1] > gap) {
+				top = i;
+				break;
+			}
+			mass += wc[i - 1];
+		}
+		for (i = l, fold = 0; i <= r &&
+		    (int64_t)wk[i] < (int64_t)wk[r] - cap + 1; i++)
+			fold += wc[i];
+		/* as in sketch_dense_put: the fewer values lose buckets */
+		if (top < n && sketch_evict(mass, fold)) {
+			for (i = top; i <= r; i++)
+				sketch_edge_put(&st->high, wk[i], wk[i], wc[i]);
+			r = top - 1;
+			continue;
+		}
+		while ((int64_t)wk[r] - wk[l] >= cap) {
+			sketch_edge_put(&st->low, wk[l], wk[l], wc[l]);
+			l++;
+		}
+		st->lowkey = (int32_t)((int64_t)wk[r] - cap);
+	}
+	for (i = l; i <= r; i++)
+		sketch_window_put(st, wk[i], wc[i], (uint32_t)cap);
+	free(wc);
+}
+
+/*
+ * A count into a warm store. Returns 1 when taken, 0 when the store had
+ * to commit first (the caller then adds to the dense store).
+ */
+static int
+sketch_warm_put(const struct sketch *s, struct sketch_store *st,
+    int32_t key, uint64_t c)
+{
+	uint32_t limit = s->max_buckets < SKETCH_WARM_KEYS ? s->max_buckets :
+	    SKETCH_WARM_KEYS;
+	size_t lo = 0, hi = st->len, mid, ncap;
+	int32_t *wk = sketch_warm_keys(st);
+	uint64_t *nc;
+
+	while (lo < hi) {
+		mid = lo + (hi - lo) / 2;
+		if (wk[mid] < key)
+			lo = mid + 1;
+		else
+			hi = mid;
+	}
+	if (lo < st->len && wk[lo] == key) {
+		st->counts[lo] += c;
+		st->total += c;
+	} else {
+		if (st->len == limit) {
+			sketch_commit(s, st);
+			return 0;
+		}
+		if (st->len == st->cap) {
+			ncap = st->cap ? 2 * (size_t)st->cap : SKETCH_WARM_FIRST;
+			if (ncap > limit)
+				ncap = limit;
+			nc = xcalloc(ncap, sizeof *nc + sizeof *wk);
+			if (st->len != 0) {
+				memcpy(nc, st->counts, st->len * sizeof *nc);
+				memcpy(nc + ncap, wk, st->len * sizeof *wk);
+			}
+			free(st->counts);
+			st->counts = nc;
+			st->cap = (uint16_t)ncap;
+			wk = sketch_warm_keys(st);
+		}
+		memmove(st->counts + lo + 1, st->counts + lo,
+		    (st->len - lo) * sizeof *st->counts);
+		memmove(wk + lo + 1, wk + lo, (st->len - lo) * sizeof *wk);
+		st->counts[lo] = c;
+		wk[lo] = key;
+		st->len++;
+		st->total += c;
+	}
+	if (st->total >= SKETCH_WARM_COUNT)
+		sketch_commit(s, st);
+	return 1;
+}
+
+static void
+sketch_store_add(const struct sketch *s, struct sketch_store *st,
+    int32_t key, uint64_t c)
+{
+	uint64_t i = (uint64_t)((int64_t)key - st->offset);
+
+	if (i < st->len && !(st->flags & SKETCH_F_WARM) &&
+	    key > st->lowkey && key < st->high.kmin) {
 		st->counts[i] += c;
+		st->total += c;
 		if (key < st->lo)
 			st->lo = key;
-		if (key > st->hi)
+		if (key > st->hi) {
 			st->hi = key;
-	} else {
-		key = sketch_store_room(st, key, cap);
-		st->counts[key - st->offset] += c;
+			/* keep the window within cap keys of its top */
+			if (st->low.count != 0 &&
+			    (int64_t)key - s->max_buckets > st->lowkey)
+				sketch_fold_low(st, (int32_t)((int64_t)key -
+				    s->max_buckets));
+		}
+		return;
 	}
+	if ((st->flags & SKETCH_F_WARM) && sketch_warm_put(s, st, key, c))
+		return;
+	sketch_dense_put(s, st, key, c);
 	st->total += c;
+}
+
+static int32_t
+sketch_key(const struct sketch *s, double x)
+{
+	double k = ceil(log(fabs(x)) * s->inv_lng);
+
+	return x > 0 ? (int32_t)k : -(int32_t)k;
 }
 
 int
 sketch_add(struct sketch *s, double x, uint64_t c)
 {
-	int64_t key;
-
 	if (!isfinite(x))
 		return -1;
 	if (s->count + c < s->count)
@@ -197,34 +626,348 @@ sketch_add(struct sketch *s, double x, uint64_t c)
 	if (c == 0)
 		return 0;
 	s->count += c;
-	if (x > 0) {
-		key = (int64_t)ceil(log(x) * s->inv_lng);
-		sketch_store_add(&s->pos, key, c, s->max_buckets);
-	} else if (x < 0) {
-		key = -(int64_t)ceil(log(-x) * s->inv_lng);
-		sketch_store_add(&s->neg, key, c, s->max_buckets);
-	} else
+	if (x > 0)
+		sketch_store_add(s, &s->pos, sketch_key(s, x), c);
+	else if (x < 0)
+		sketch_store_add(s, &s->neg, sketch_key(s, x), c);
+	else
 		s->zero += c;
 	return 0;
 }
 
-static void
-sketch_store_merge(struct sketch_store *st, const struct sketch_store *o,
-    uint32_t cap)
+/*
+ * Ordered walk over one store: low edge, keys, high edge. *pos is the
+ * walker's state (start at 0); returns 0 at the end.
+ */
+static int
+sketch_store_next(const struct sketch_store *st, int neg, int64_t *pos,
+    struct sketch_block *b)
 {
-	int64_t k, kfloor;
-	uint64_t c;
+	const int32_t *wk;
+	int64_t p = *pos, k;
+
+	b->neg = neg;
+	if (p == INT64_MAX)
+		return 0;
+	if (p == 0) {
+		*pos = p = 1;
+		if (st->low.count != 0) {
+			b->kind = SK_LOW;
+			b->kmin = st->low.kmin;
+			b->kmax = st->low.kmax;
+			b->count = st->low.count;
+			return 1;
+		}
+	}
+	if (st->flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		if (p - 1 < (int64_t)st->len) {
+			b->kind = SK_KEY;
+			b->kmin = b->kmax = wk[p - 1];
+			b->count = st->counts[p - 1];
+			*pos = p + 1;
+			return 1;
+		}
+	} else if (st->lo <= st->hi) {
+		/* p - 1 counts keys from lo */
+		for (k = st->lo + (p - 1); k <= st->hi; k++) {
+			if (st->counts[k - st->offset] != 0) {
+				b->kind = SK_KEY;
+				b->kmin = b->kmax = (int32_t)k;
+				b->count = st->counts[k - st->offset];
+				*pos = k - st->lo + 2;
+				return 1;
+			}
+		}
+	}
+	if (st->high.count != 0) {
+		*pos = INT64_MAX;
+		b->kind = SK_HIGH;
+		b->kmin = st->high.kmin;
+		b->kmax = st->high.kmax;
+		b->count = st->high.count;
+		return 1;
+	}
+	*pos = INT64_MAX;
+	return 0;
+}
+
+/* The whole sketch in increasing order: negatives, zeros, positives. */
+struct sketch_walk {
+	int	 part;		/* 0 negatives, 1 zero, 2 positives, 3 done */
+	int64_t	 pos;
+};
+
+static int
+sketch_next(const struct sketch *s, struct sketch_walk *w,
+    struct sketch_block *b)
+{
+	for (;;) {
+		switch (w->part) {
+		case 0:
+			if (s->neg.total != 0 &&
+			    sketch_store_next(&s->neg, 1, &w->pos, b))
+				return 1;
+			w->part = 1;
+			break;
+		case 1:
+			w->part = 2;
+			w->pos = 0;
+			if (s->zero != 0) {
+				b->kind = SK_ZERO;
+				b->neg = 0;
+				b->kmin = b->kmax = 0;
+				b->count = s->zero;
+				return 1;
+			}
+			break;
+		case 2:
+			if (s->pos.total != 0 &&
+			    sketch_store_next(&s->pos, 0, &w->pos, b))
+				return 1;
+			w->part = 3;
+			break;
+		default:
+			return 0;
+		}
+	}
+}
+
+/* exp(x) capped at DBL_MAX */
+static double
+sketch_exp(double x)
+{
+	double v = exp(x);
+
+	return v > DBL_MAX ? DBL_MAX : v;
+}
+
+/* Representative 2 gamma^k / (gamma + 1) = gamma^k (1 - a), in logs. */
+static double
+sketch_value(const struct sketch *s, int32_t key, int negative)
+{
+	double v;
+
+	if (negative)
+		key = -key;
+	v = sketch_exp((double)key * s->lng + s->lrep);
+	return negative ? -v : v;
+}
+
+/*
+ * The block's representative: a bucket's own; an edge's is that of its
+ * key nearest the window (within a of that bucket's values; the edge's
+ * others lie beyond it).
+ */
+static double
+sketch_block_value(const struct sketch *s, const struct sketch_block *b)
+{
+	switch (b->kind) {
+	case SK_ZERO:
+		return 0.0;
+	case SK_LOW:
+		return sketch_value(s, b->kmax, b->neg);
+	default:
+		return sketch_value(s, b->kmin, b->neg);
+	}
+}
+
+/*
+ * Every value of the block lies in [*lo, *hi]: bucket k of the positive
+ * store holds (gamma^(k-1), gamma^k], of the negative store
+ * [-gamma^(-k), -gamma^(-k-1)); widened by a hair for rounding.
+ */
+static void
+sketch_block_bounds(const struct sketch *s, const struct sketch_block *b,
+    double *lo, double *hi)
+{
+	double l, h;
+
+	if (b->kind == SK_ZERO) {
+		*lo = *hi = 0.0;
+		return;
+	}
+	if (!b->neg) {
+		l = sketch_exp(((double)b->kmin - 1) * s->lng);
+		h = sketch_exp((double)b->kmax * s->lng);
+		*lo = l * (1 - SKETCH_BOUND_SLACK);
+		*hi = fmin(h * (1 + SKETCH_BOUND_SLACK), DBL_MAX);
+	} else {
+		l = sketch_exp(-(double)b->kmin * s->lng);
+		h = sketch_exp((-(double)b->kmax - 1) * s->lng);
+		*lo = -fmin(l * (1 + SKETCH_BOUND_SLACK), DBL_MAX);
+		*hi = -h * (1 - SKETCH_BOUND_SLACK);
+	}
+}
+
+/*
+ * Rank q(n - 1) (0-based), and the first block whose running count
+ * exceeds it, scanning from the lowest value up (docs/methods.md sec. 7).
+ */
+double
+sketch_quantile(const struct sketch *s, double q)
+{
+	struct sketch_walk w = { 0, 0 };
+	struct sketch_block b, last = { SK_ZERO, 0, 0, 0, 0 };
+	double rank;
+	uint64_t cum = 0;
+	int any = 0;
+
+	if (s->count == 0 || !(q >= 0 && q <= 1))
+		return NAN;
+	rank = q * (double)(s->count - 1);
+	while (sketch_next(s, &w, &b)) {
+		cum += b.count;
+		if ((double)cum > rank)
+			return sketch_block_value(s, &b);
+		last = b;
+		any = 1;
+	}
+	/* Only reached through rounding of rank near n - 1. */
+	return any ? sketch_block_value(s, &last) : NAN;
+}
+
+uint64_t
+sketch_count(const struct sketch *s)
+{
+	return s->count;
+}
+
+double
+sketch_accuracy(const struct sketch *s)
+{
+	return s->accuracy;
+}
+
+uint64_t
+sketch_edge_count(const struct sketch *s)
+{
+	return s->pos.low.count + s->pos.high.count + s->neg.low.count +
+	    s->neg.high.count;
+}
+
+static size_t
+sketch_store_bytes(const struct sketch_store *st)
+{
+	if (st->flags & SKETCH_F_WARM)
+		return (size_t)st->cap * (sizeof *st->counts + sizeof(int32_t));
+	return (size_t)st->len * sizeof *st->counts;
+}
+
+size_t
+sketch_bytes(const struct sketch *s)
+{
+	return sizeof *s + sketch_store_bytes(&s->pos) +
+	    sketch_store_bytes(&s->neg);
+}
+
+size_t
+sketch_buckets_side(const struct sketch *s, int side, double *value,
+    uint64_t *count, size_t max)
+{
+	struct sketch_walk w = { 0, 0 };
+	struct sketch_block b;
+	double lo, hi;
+	size_t n = 0;
+
+	while (n < max && sketch_next(s, &w, &b)) {
+		if (side != 0 && (b.kind == SK_LOW || b.kind == SK_HIGH)) {
+			sketch_block_bounds(s, &b, &lo, &hi);
+			value[n] = side < 0 ? lo : hi;
+		} else
+			value[n] = sketch_block_value(s, &b);
+		count[n++] = b.count;
+	}
+	return n;
+}
+
+size_t
+sketch_buckets(const struct sketch *s, double *value, uint64_t *count,
+    size_t max)
+{
+	return sketch_buckets_side(s, 0, value, count, max);
+}
+
+size_t
+sketch_bounds(const struct sketch *s, double *lo, double *hi,
+    uint64_t *count, size_t max)
+{
+	struct sketch_walk w = { 0, 0 };
+	struct sketch_block b;
+	size_t n = 0;
+
+	while (n < max && sketch_next(s, &w, &b)) {
+		sketch_block_bounds(s, &b, &lo[n], &hi[n]);
+		count[n++] = b.count;
+	}
+	return n;
+}
+
+size_t
+sketch_nbuckets(const struct sketch *s)
+{
+	struct sketch_walk w = { 0, 0 };
+	struct sketch_block b;
+	size_t n = 0;
+
+	while (sketch_next(s, &w, &b))
+		n++;
+	return n;
+}
+
+/* Merging o's edges into st: an edge overlapping the other side folds. */
+static void
+sketch_merge_edges(const struct sketch *s, struct sketch_store *st,
+    const struct sketch_store *o)
+{
+	int32_t k;
+
+	if (o->low.count == 0 && o->high.count == 0)
+		return;
+	if (st->flags & SKETCH_F_WARM)
+		sketch_commit(s, st);
+	if (o->low.count != 0) {
+		sketch_low_put(st, o->low.kmin, o->low.kmax, o->low.count,
+		    o->lowkey);
+		sketch_fold_low(st, st->lowkey);
+	}
+	if (o->high.count != 0) {
+		sketch_edge_put(&st->high, o->high.kmin, o->high.kmax,
+		    o->high.count);
+		sketch_fold_high(st, st->high.kmin);
+	}
+	if (st->low.count != 0 && st->high.count != 0 &&
+	    st->lowkey >= st->high.kmin) {
+		/* the ranges meet: one low edge holds everything */
+		k = st->high.kmax > st->lowkey ? st->high.kmax : st->lowkey;
+		sketch_fold_low(st, k);
+		sketch_low_put(st, st->high.kmin, st->high.kmax,
+		    st->high.count, k);
+		st->high.count = 0;
+		st->high.kmin = SKETCH_NOKEY_HI;
+		st->high.kmax = 0;
+	}
+	if (st->low.count != 0 && st->lo <= st->hi &&
+	    (int64_t)st->hi - s->max_buckets > st->lowkey)
+		sketch_fold_low(st, (int32_t)((int64_t)st->hi -
+		    s->max_buckets));
+	st->total += o->low.count + o->high.count;
+}
+
+static void
+sketch_store_merge(const struct sketch *s, struct sketch_store *st,
+    const struct sketch_store *o)
+{
+	struct sketch_block b;
+	int64_t pos = 0;
 
 	if (o->total == 0)
 		return;
-	sketch_store_room(st, o->hi, cap);
-	sketch_store_room(st, o->lo, cap);
-	kfloor = st->lo;
-	for (k = o->lo; k <= o->hi; k++) {
-		if ((c = o->counts[k - o->offset]) != 0)
-			st->counts[(k < kfloor ? kfloor : k) - st->offset] += c;
+	sketch_merge_edges(s, st, o);
+	while (sketch_store_next(o, 0, &pos, &b)) {
+		if (b.kind == SK_KEY)
+			sketch_store_add(s, st, b.kmin, b.count);
 	}
-	st->total += o->total;
 }
 
 int
@@ -242,147 +985,42 @@ sketch_merge(struct sketch *s, const struct sketch *o)
 		sketch_merge(copy, o);
 		o = copy;
 	}
-	sketch_store_merge(&s->pos, &o->pos, s->max_buckets);
-	sketch_store_merge(&s->neg, &o->neg, s->max_buckets);
+	sketch_store_merge(s, &s->pos, &o->pos);
+	sketch_store_merge(s, &s->neg, &o->neg);
 	s->zero += o->zero;
 	s->count += o->count;
 	sketch_free(copy);
 	return 0;
 }
 
-/* Representative 2 gamma^k / (gamma + 1), computed in log space. */
-static double
-sketch_value(const struct sketch *s, int64_t key, int negative)
-{
-	double v;
-
-	if (negative)
-		key = -key;
-	v = exp((double)key * s->lng + s->lrep);
-	if (v > DBL_MAX)
-		v = DBL_MAX;
-	return negative ? -v : v;
-}
-
-/*
- * Rank q(n - 1) (0-based), and the first bucket whose running count
- * exceeds it, scanning from the lowest value up (docs/methods.md section 7).
- */
-double
-sketch_quantile(const struct sketch *s, double q)
-{
-	double rank;
-	uint64_t cum = 0;
-	int64_t k;
-	const struct sketch_store *st;
-
-	if (s->count == 0 || !(q >= 0 && q <= 1))
-		return NAN;
-	rank = q * (double)(s->count - 1);
-	st = &s->neg;
-	if (st->total != 0) {
-		for (k = st->lo; k <= st->hi; k++) {
-			cum += st->counts[k - st->offset];
-			if ((double)cum > rank)
-				return sketch_value(s, k, 1);
-		}
-	}
-	cum += s->zero;
-	if (s->zero != 0 && (double)cum > rank)
-		return 0.0;
-	st = &s->pos;
-	if (st->total != 0) {
-		for (k = st->lo; k <= st->hi; k++) {
-			cum += st->counts[k - st->offset];
-			if ((double)cum > rank)
-				return sketch_value(s, k, 0);
-		}
-		return sketch_value(s, st->hi, 0);
-	}
-	/* Only reached through rounding of rank near n - 1. */
-	if (s->zero != 0)
-		return 0.0;
-	return sketch_value(s, s->neg.hi, 1);
-}
-
-uint64_t
-sketch_count(const struct sketch *s)
-{
-	return s->count;
-}
-
-double
-sketch_accuracy(const struct sketch *s)
-{
-	return s->accuracy;
-}
-
-size_t
-sketch_bytes(const struct sketch *s)
-{
-	return sizeof *s +
-	    ((size_t)s->pos.len + s->neg.len) * sizeof *s->pos.counts;
-}
-
-size_t
-sketch_buckets(const struct sketch *s, double *value, uint64_t *count,
-    size_t max)
-{
-	const struct sketch_store *st;
-	size_t n = 0;
-	int64_t k;
-	uint64_t c;
-	int neg;
-
-	for (neg = 1; neg >= 0; neg--) {
-		st = neg ? &s->neg : &s->pos;
-		if (!neg && s->zero != 0 && n < max) {
-			value[n] = 0.0;
-			count[n++] = s->zero;
-		}
-		if (st->total == 0)
-			continue;
-		for (k = st->lo; k <= st->hi && n < max; k++) {
-			if ((c = st->counts[k - st->offset]) == 0)
-				continue;
-			value[n] = sketch_value(s, k, neg);
-			count[n++] = c;
-		}
-	}
-	return n;
-}
-
-size_t
-sketch_nbuckets(const struct sketch *s)
-{
-	const struct sketch_store *st[2] = { &s->neg, &s->pos };
-	size_t n = s->zero != 0;
-	int64_t k;
-	int i;
-
-	for (i = 0; i < 2; i++) {
-		if (st[i]->total == 0)
-			continue;
-		for (k = st[i]->lo; k <= st[i]->hi; k++)
-			n += st[i]->counts[k - st[i]->offset] != 0;
-	}
-	return n;
-}
-
 /*
  * Encoding, all little-endian:
- *   0  "SCSK"   4  version (1)   5  three zero bytes
+ *   0  "SCSK"   4  version (2)   5  three zero bytes
  *   8  accuracy (IEEE double)   16  max_buckets (u32)   20  zero (u32)
  *   24 zero count (u64)
  *   32 positive store, then negative store, each:
- *      lowest key (i32), span (u32), span counts (u64), the first and
- *      last non-zero.
+ *      flags (u32: 1 warm, 2 low edge, 4 high edge);
+ *      low edge: route key, kmin, kmax (i32), count (u64);
+ *      high edge: kmin, kmax (i32), count (u64);
+ *      warm: n (u32), n times key (i32) and count (u64), keys ascending;
+ *      else: lowest key (i32), span (u32), span counts (u64), the first
+ *      and last non-zero (span 0, key 0: an empty window).
+ * Version 1 (no edges, the lowest bucket holding what was folded) is
+ * refused: sketch_encoded_version tells the caller why.
  */
 static size_t
 sketch_store_size(const struct sketch_store *st)
 {
-	return SKETCH_STORE_HEADER +
-	    (st->total ? (size_t)(st->hi - st->lo + 1) * 8 : 0);
+	size_t n = 4;
+
+	if (st->low.count != 0)
+		n += 20;
+	if (st->high.count != 0)
+		n += 16;
+	if (st->flags & SKETCH_F_WARM)
+		return n + 4 + (size_t)st->len * 12;
+	return n + 8 + (st->lo <= st->hi ?
+	    (size_t)((int64_t)st->hi - st->lo + 1) * 8 : 0);
 }
 
 size_t
@@ -414,14 +1052,54 @@ sketch_get(const uint8_t *p, int bytes)
 }
 
 static uint8_t *
+sketch_put_key(uint8_t *p, int32_t k)
+{
+	return sketch_put(p, (uint32_t)k, 4);
+}
+
+static int32_t
+sketch_get_key(const uint8_t *p)
+{
+	return (int32_t)(uint32_t)sketch_get(p, 4);
+}
+
+static uint8_t *
 sketch_store_put(uint8_t *p, const struct sketch_store *st)
 {
-	int64_t k;
+	const int32_t *wk;
+	uint32_t flags = st->flags & SKETCH_F_WARM;
+	int32_t k;
+	size_t i;
 
-	if (st->total == 0)
+	if (st->low.count != 0)
+		flags |= SKETCH_F_LOW;
+	if (st->high.count != 0)
+		flags |= SKETCH_F_HIGH;
+	p = sketch_put(p, flags, 4);
+	if (flags & SKETCH_F_LOW) {
+		p = sketch_put_key(p, st->lowkey);
+		p = sketch_put_key(p, st->low.kmin);
+		p = sketch_put_key(p, st->low.kmax);
+		p = sketch_put(p, st->low.count, 8);
+	}
+	if (flags & SKETCH_F_HIGH) {
+		p = sketch_put_key(p, st->high.kmin);
+		p = sketch_put_key(p, st->high.kmax);
+		p = sketch_put(p, st->high.count, 8);
+	}
+	if (flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		p = sketch_put(p, st->len, 4);
+		for (i = 0; i < st->len; i++) {
+			p = sketch_put_key(p, wk[i]);
+			p = sketch_put(p, st->counts[i], 8);
+		}
+		return p;
+	}
+	if (st->lo > st->hi)
 		return sketch_put(sketch_put(p, 0, 4), 0, 4);
-	p = sketch_put(p, (uint32_t)(int32_t)st->lo, 4);
-	p = sketch_put(p, (uint64_t)(st->hi - st->lo + 1), 4);
+	p = sketch_put_key(p, st->lo);
+	p = sketch_put(p, (uint64_t)((int64_t)st->hi - st->lo + 1), 4);
 	for (k = st->lo; k <= st->hi; k++)
 		p = sketch_put(p, st->counts[k - st->offset], 8);
 	return p;
@@ -449,50 +1127,155 @@ sketch_encode(const struct sketch *s, uint8_t *buf, size_t size)
 	return (size_t)(p - buf);
 }
 
-/* Read one store; -1 on anything a correct encoder could not write. */
+int
+sketch_encoded_version(const uint8_t *buf, size_t size)
+{
+	if (size < 5 || memcmp(buf, SKETCH_MAGIC, 4) != 0)
+		return -1;
+	return buf[4];
+}
+
+static int
+sketch_add_total(uint64_t *total, uint64_t c)
+{
+	if (*total + c < *total)
+		return -1;
+	*total += c;
+	return 0;
+}
+
+/* An edge read from an image: ordered keys a store can hold, count > 0. */
+static int
+sketch_edge_ok(const struct sketch_edge *e, int64_t kmin, int64_t kmax)
+{
+	return e->count != 0 && e->kmin <= e->kmax && e->kmin >= kmin &&
+	    e->kmax <= kmax;
+}
+
+/*
+ * Read one store; -1 on anything a correct encoder could not write: the
+ * state the image describes must be one the code above can reach in its
+ * invariants (ordered edges around the window, a warm list short,
+ * ascending and light enough to be still warm).
+ */
 static int
 sketch_store_get(struct sketch *s, struct sketch_store *st, int negative,
     const uint8_t **pp, const uint8_t *end, uint64_t *total)
 {
 	const uint8_t *p = *pp;
-	int64_t lo, kmin = s->kmin, kmax = s->kmax;
-	uint64_t span, i, c, sum = 0;
+	int64_t kmin, kmax, lo, span, i;
+	uint32_t flags, limit;
+	uint64_t c, sum = 0;
+	int32_t *wk;
 
-	if (end - p < SKETCH_STORE_HEADER)
+	sketch_key_range(s, negative, &kmin, &kmax);
+	if (end - p < 4)
 		return -1;
-	lo = (int32_t)(uint32_t)sketch_get(p, 4);
-	span = sketch_get(p + 4, 4);
-	p += SKETCH_STORE_HEADER;
-	if (span == 0) {
-		*pp = p;
-		return lo == 0 ? 0 : -1;
-	}
-	if (negative) {
-		kmin = -s->kmax;
-		kmax = -s->kmin;
-	}
-	if (span > s->max_buckets || lo < kmin ||
-	    lo + (int64_t)span - 1 > kmax ||
-	    (uint64_t)(end - p) / 8 < span)
+	flags = (uint32_t)sketch_get(p, 4);
+	p += 4;
+	if (flags & ~(uint32_t)(SKETCH_F_WARM | SKETCH_F_LOW | SKETCH_F_HIGH))
 		return -1;
-	if (sketch_get(p, 8) == 0 || sketch_get(p + 8 * (span - 1), 8) == 0)
+	if ((flags & SKETCH_F_WARM) && (flags & ~SKETCH_F_WARM))
 		return -1;
-	st->counts = xcalloc(span, sizeof *st->counts);
-	for (i = 0; i < span; i++) {
-		c = sketch_get(p + 8 * i, 8);
-		if (sum + c < sum)
+	if (flags & SKETCH_F_LOW) {
+		if (end - p < 20)
 			return -1;
-		sum += c;
-		st->counts[i] = c;
+		st->lowkey = sketch_get_key(p);
+		st->low.kmin = sketch_get_key(p + 4);
+		st->low.kmax = sketch_get_key(p + 8);
+		st->low.count = sketch_get(p + 12, 8);
+		p += 20;
+		if (!sketch_edge_ok(&st->low, kmin, kmax) ||
+		    st->lowkey < st->low.kmax || st->lowkey > kmax ||
+		    sketch_add_total(&sum, st->low.count) != 0)
+			return -1;
 	}
-	st->offset = st->lo = lo;
-	st->hi = lo + (int64_t)span - 1;
-	st->len = (uint32_t)span;
+	if (flags & SKETCH_F_HIGH) {
+		if (end - p < 16)
+			return -1;
+		st->high.kmin = sketch_get_key(p);
+		st->high.kmax = sketch_get_key(p + 4);
+		st->high.count = sketch_get(p + 8, 8);
+		p += 16;
+		if (!sketch_edge_ok(&st->high, kmin, kmax) ||
+		    sketch_add_total(&sum, st->high.count) != 0)
+			return -1;
+		if ((flags & SKETCH_F_LOW) && st->lowkey >= st->high.kmin)
+			return -1;
+	}
+	st->flags = (uint16_t)(flags & SKETCH_F_WARM);
+	if (flags & SKETCH_F_WARM) {
+		limit = s->max_buckets < SKETCH_WARM_KEYS ? s->max_buckets :
+		    SKETCH_WARM_KEYS;
+		if (end - p < 4)
+			return -1;
+		span = (int64_t)sketch_get(p, 4);
+		p += 4;
+		if (span > limit || (end - p) / 12 < span)
+			return -1;
+		if (span > 0) {
+			for (i = SKETCH_WARM_FIRST; i < span; i *= 2)
+				;
+			if (i > limit)
+				i = limit;
+			st->cap = (uint16_t)i;
+			st->counts = xcalloc((size_t)i, sizeof *st->counts +
+			    sizeof *wk);
+			wk = sketch_warm_keys(st);
+		} else
+			wk = NULL;
+		for (i = 0; i < span; i++) {
+			wk[i] = sketch_get_key(p + 12 * i);
+			c = sketch_get(p + 12 * i + 4, 8);
+			st->counts[i] = c;
+			if (c == 0 || wk[i] < kmin || wk[i] > kmax ||
+			    (i > 0 && wk[i] <= wk[i - 1]) ||
+			    sketch_add_total(&sum, c) != 0)
+				return -1;
+		}
+		st->len = (uint32_t)span;
+		if (sum >= SKETCH_WARM_COUNT)
+			return -1;
+		p += 12 * span;
+	} else {
+		if (end - p < 8)
+			return -1;
+		lo = sketch_get_key(p);
+		span = (int64_t)sketch_get(p + 4, 4);
+		p += 8;
+		if (span == 0) {
+			if (lo != 0 || !(flags & (SKETCH_F_LOW | SKETCH_F_HIGH)))
+				return -1;
+		} else {
+			if (span > s->max_buckets || lo < kmin ||
+			    lo + span - 1 > kmax || (end - p) / 8 < span)
+				return -1;
+			if (sketch_get(p, 8) == 0 ||
+			    sketch_get(p + 8 * (span - 1), 8) == 0)
+				return -1;
+			if ((flags & SKETCH_F_LOW) && (lo <= st->lowkey ||
+			    lo + span - 1 - st->lowkey > s->max_buckets))
+				return -1;
+			if ((flags & SKETCH_F_HIGH) &&
+			    lo + span - 1 >= st->high.kmin)
+				return -1;
+			st->counts = xcalloc((size_t)span, sizeof *st->counts);
+			for (i = 0; i < span; i++) {
+				c = sketch_get(p + 8 * i, 8);
+				if (sketch_add_total(&sum, c) != 0)
+					return -1;
+				st->counts[i] = c;
+			}
+			st->offset = st->lo = (int32_t)lo;
+			st->hi = (int32_t)(lo + span - 1);
+			st->len = (uint32_t)span;
+			p += 8 * span;
+		}
+	}
 	st->total = sum;
-	if (*total + sum < *total)
+	if (sketch_add_total(total, sum) != 0)
 		return -1;
-	*total += sum;
-	*pp = p + 8 * span;
+	*pp = p;
 	return 0;
 }
 

@@ -753,6 +753,122 @@ test_late_harm_after_safe(void **state)
 	assert_int_equal(fx->seen.safes, before.safes);
 }
 
+/*
+ * Outliers in a quantile test (issue 12, item 3): 1% of records at 1e7,
+ * 1e9 and 1e300 in turn. Before the sketch's edges, 1% at 1e7 in one arm
+ * folded that arm's body into one bucket (p90 read 361.5 for 108.1) and
+ * harm was declared at p = 2.7e-132. Three experiments, p50 and p90
+ * guardrails with a 5% margin, lognormal(4.6, 0.5) latencies:
+ *   null: the outliers in both arms: no harm;
+ *   one: in the treatment only; its true p90 is the body's
+ *        0.9 / 0.99 quantile, exp(0.5 (z(0.90909) - z(0.9))) = 1.027 times
+ *        the control's (z from scipy.stats.norm.ppf: 1.33518, 1.28155),
+ *        p50 1.006 times: inside the margin, so no harm;
+ *   real: both arms with outliers, the treatment's body 1.3 times
+ *        slower: harm on both guardrails (outliers do not hide it).
+ */
+struct outlier_seen {
+	int	harm[3][2];	/* experiment x guardrail (p50, p90) */
+	double	p[3][2];
+};
+
+static void
+outlier_sink(void *arg, const struct finding *f)
+{
+	struct outlier_seen *o = arg;
+	int e, g;
+
+	if (f->kind != FINDING_VERDICT)
+		return;
+	e = strcmp(f->experiment, "null") == 0 ? 0 :
+	    strcmp(f->experiment, "one") == 0 ? 1 : 2;
+	g = strcmp(f->guardrail, "p50") == 0 ? 0 : 1;
+	if (f->verdict == VERDICT_HARM) {
+		o->harm[e][g]++;
+		o->p[e][g] = f->p;
+	}
+}
+
+static void
+test_quantile_outliers(void **state)
+{
+	static const char *text =
+	    "[defaults]\n"
+	    "alpha = 0.05\n"
+	    "plan_units = 20000\n"
+	    "[guardrail p50]\n"
+	    "metric = latency_ms\n"
+	    "test = quantile\n"
+	    "quantile = 0.5\n"
+	    "margin = 5%\n"
+	    "[guardrail p90]\n"
+	    "metric = latency_ms\n"
+	    "test = quantile\n"
+	    "quantile = 0.9\n"
+	    "margin = 5%\n";
+	static const double out[3] = { 1e7, 1e9, 1e300 };
+	static const char *exps[3] = { "null", "one", "real" };
+	struct outlier_seen seen;
+	struct conf *c;
+	struct engine *eng;
+	struct record r;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	char line[PROTO_LINE_MAX + 1], *cause = NULL;
+	uint8_t key[16] = { 4 };
+	double now = 1700000000, x;
+	uint64_t ev = 0;
+	int i, e, arm, g;
+
+	(void)state;
+	if (conf_parse(text, "outliers.conf", &c, &cause) != 0)
+		fail_msg("config: %s", cause);
+	eng = engine_new(c, key);
+	memset(&seen, 0, sizeof seen);
+	engine_set_sink(eng, outlier_sink, &seen);
+	gsl_rng_set(rng, 12);
+	for (e = 0; e < 3; e++) {
+		snprintf(line, sizeof line, "plan %s control=50 treatment=50",
+		    exps[e]);
+		assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+		assert_int_equal(engine_apply(eng, &r, now, ++ev), ENGINE_OK);
+	}
+	for (i = 0; i < 20000; i++) {
+		for (e = 0; e < 3; e++) {
+			for (arm = 0; arm < 2; arm++) {
+				x = exp(4.6 + 0.5 * gsl_ran_gaussian(rng, 1));
+				if (e == 2 && arm == 1)
+					x *= 1.3;
+				/* every 100th record an outlier, cycling */
+				if (i % 100 == 37 && (e != 1 || arm == 1))
+					x = out[i / 100 % 3];
+				snprintf(line, sizeof line,
+				    "observe %s %s latency_ms %.17g", exps[e],
+				    arm ? "treatment" : "control", x);
+				assert_int_equal(proto_parse(line, strlen(line),
+				    &r), PROTO_OK);
+				now += 0.001;
+				assert_int_equal(engine_apply(eng, &r, now,
+				    ++ev), ENGINE_OK);
+			}
+		}
+		if (i % 500 == 499)
+			engine_tick(eng, now);
+	}
+	engine_finish(eng, now);
+	for (g = 0; g < 2; g++) {
+		if (seen.harm[0][g] != 0 || seen.harm[1][g] != 0)
+			fail_msg("%s: false harm (null %d, p=%g; one arm %d, "
+			    "p=%g)", g ? "p90" : "p50", seen.harm[0][g],
+			    seen.p[0][g], seen.harm[1][g], seen.p[1][g]);
+		if (seen.harm[2][g] != 1)
+			fail_msg("%s: real harm not found once (%d)",
+			    g ? "p90" : "p50", seen.harm[2][g]);
+	}
+	engine_free(eng);
+	conf_free(c);
+	gsl_rng_free(rng);
+}
+
 int
 main(void)
 {
@@ -783,6 +899,7 @@ main(void)
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_guardrail_plan_units,
 		    setup, teardown),
+		cmocka_unit_test(test_quantile_outliers),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);

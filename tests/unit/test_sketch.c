@@ -216,7 +216,9 @@ test_cap(void **state)
 		sketch_add(i % 2 ? half1 : half2, x[i], 1);
 	}
 	assert_true(sketch_nbuckets(wide) > 600);
-	assert_true(sketch_nbuckets(s) <= 100);
+	/* 100 kept buckets and the low edge holding the folded rest */
+	assert_true(sketch_nbuckets(s) <= 100 + 1);
+	assert_true(sketch_edge_count(s) > 0);
 	assert_true(sketch_bytes(s) <= 100 * 8 + 256);
 	qsort(x, N, sizeof *x, cmp_double);
 	for (i = 0; i < sizeof qs / sizeof qs[0]; i++) {
@@ -478,6 +480,271 @@ test_encode(void **state)
 	free(buf);
 }
 
+/*
+ * The block holding the 0-based rank r (r = floor(q(n - 1)), the rank of
+ * numpy's method='lower'), as bounds and representative.
+ */
+static void
+block_at_rank(const struct sketch *s, double q, double *lo, double *hi,
+    double *rep)
+{
+	size_t n = sketch_nbuckets(s), i;
+	double *l = calloc(n, sizeof *l), *h = calloc(n, sizeof *h);
+	double *v = calloc(n, sizeof *v);
+	uint64_t *c = calloc(n, sizeof *c), *c2 = calloc(n, sizeof *c2);
+	uint64_t cum = 0, r = (uint64_t)floor(q * (double)(sketch_count(s) -
+	    1));
+
+	assert_int_equal(sketch_bounds(s, l, h, c, n), n);
+	assert_int_equal(sketch_buckets(s, v, c2, n), n);
+	for (i = 0; i < n; i++) {
+		assert_int_equal(c[i], c2[i]);
+		cum += c[i];
+		if (cum > r)
+			break;
+	}
+	assert_true(i < n);
+	*lo = l[i];
+	*hi = h[i];
+	*rep = v[i];
+	free(l);
+	free(h);
+	free(v);
+	free(c);
+	free(c2);
+}
+
+/*
+ * Mixtures with 1% of huge values (issue 12, item 3): the old sketch read
+ * p90 = 361.5 for 108.1 with 1% at 1e7. The body is log-uniform on
+ * [20, 500], x_i = 20 * 25^((i + 0.5) / n_body), added in the order
+ * i = 7919 j mod n_body with the outliers spread among them. Check values:
+ * np.quantile(values, q, method='lower') over the same values, numpy
+ * 1.x via /usr/bin/python3 (the element of 0-based rank floor(q(n - 1)),
+ * what sketch_quantile answers within a). Every block's bounds must hold
+ * numpy's element; in the body the estimate is within a = 0.01.
+ */
+struct mix_case {
+	const char	*name;
+	int		 sign;		/* body sign */
+	int		 nbody;
+	double		 out[3];	/* outlier values, 100 of each */
+	int		 nout;
+	int		 zeros;		/* 100 zeros too */
+	double		 q[8], want[8];
+	int		 body[8];	/* 1: estimate within a, else bounds */
+};
+
+static const struct mix_case mix_cases[] = {
+	{ "1% at 1e7", 1, 9900, { 1e7 }, 1, 0,
+	  { 0.01, 0.25, 0.5, 0.9, 0.95, 0.98, 0.995, -1 },
+	  { 20.65760642, 45.07902833, 101.6224591, 373.0902897, 438.951944,
+	    483.9258206, 1e7 },
+	  { 1, 1, 1, 1, 1, 1, 1 } },
+	{ "1% at 1e9", 1, 9900, { 1e9 }, 1, 0,
+	  { 0.01, 0.25, 0.5, 0.9, 0.95, 0.98, 0.995, -1 },
+	  { 20.65760642, 45.07902833, 101.6224591, 373.0902897, 438.951944,
+	    483.9258206, 1e9 },
+	  { 1, 1, 1, 1, 1, 1, 1 } },
+	{ "1% at 1e300", 1, 9900, { 1e300 }, 1, 0,
+	  { 0.01, 0.25, 0.5, 0.9, 0.95, 0.98, 0.995, -1 },
+	  { 20.65760642, 45.07902833, 101.6224591, 373.0902897, 438.951944,
+	    483.9258206, 1e300 },
+	  { 1, 1, 1, 1, 1, 1, 1 } },
+	{ "1% at DBL_MAX", 1, 9900, { DBL_MAX }, 1, 0,
+	  { 0.01, 0.25, 0.5, 0.9, 0.95, 0.98, 0.995, -1 },
+	  { 20.65760642, 45.07902833, 101.6224591, 373.0902897, 438.951944,
+	    483.9258206, DBL_MAX },	/* numpy: 1.797693135e+308 */
+	  { 1, 1, 1, 1, 1, 1, 1 } },
+	/* three outlier values share the high edge: bounds only there */
+	{ "1% each at 1e7, 1e9, 1e300", 1, 9700, { 1e7, 1e9, 1e300 }, 3, 0,
+	  { 0.01, 0.25, 0.5, 0.9, 0.95, 0.96, 0.975, 0.985 },
+	  { 20.67139042, 45.84075412, 105.0861715, 396.2923391, 467.8153203,
+	    483.5998894, 1e7, 1e9 },
+	  { 1, 1, 1, 1, 1, 1, 1, 0 } },
+	/* negatives, zeros, and outliers at both ends of the negative store */
+	{ "negative body, -1e300, -1e-300, zeros", -1, 9700,
+	  { -1e300, -1e-300 }, 2, 1,
+	  { 0.005, 0.02, 0.1, 0.5, 0.9, 0.975, 0.985, 0.995 },
+	  { -1e300, -483.7603953, -370.9678637, -98.37079527, -26.08531441,
+	    -20.33798538, -1e-300, 0 },
+	  { 1, 1, 1, 1, 1, 1, 1, 1 } },
+	/* both ends of the double range around a positive body */
+	{ "DBL_MAX and the least subnormal", 1, 9800,
+	  { DBL_MAX, DBL_TRUE_MIN }, 2, 0,
+	  { 0.005, 0.02, 0.1, 0.5, 0.9, 0.98, 0.995, -1 },
+	  { 4.940656458e-324, 20.66442695, 26.87453248, 99.98357851,
+	    371.9772978, 483.7644905, DBL_MAX },
+	  { 0, 1, 1, 1, 1, 1, 1 } },
+};
+
+static struct sketch *
+mix_sketch(const struct mix_case *m, int outliers_first)
+{
+	struct sketch *s = sketch_new(0.01, SKETCH_BUCKETS_DEFAULT);
+	int j, k, per = m->nbody / 100, added = 0;
+	double x;
+
+	/* outliers_first: the first 10 of each outlier value lead */
+	if (outliers_first)
+		for (k = 0; k < m->nout; k++)
+			for (j = 0; j < 10; j++)
+				assert_int_equal(sketch_add(s, m->out[k], 1), 0);
+	for (j = 0; j < m->nbody; j++) {
+		x = m->sign * 20.0 * pow(25.0, ((double)((int64_t)j * 7919 %
+		    m->nbody) + 0.5) / m->nbody);
+		assert_int_equal(sketch_add(s, x, 1), 0);
+		if (j % per == per - 1 && added < 100) {
+			for (k = 0; k < m->nout; k++)
+				if (!outliers_first || added >= 10)
+					sketch_add(s, m->out[k], 1);
+			if (m->zeros)
+				sketch_add(s, 0, 1);
+			added++;
+		}
+	}
+	assert_int_equal(sketch_count(s),
+	    (uint64_t)(m->nbody + 100 * (m->nout + m->zeros)));
+	return s;
+}
+
+static void
+check_mix(const struct mix_case *m, const struct sketch *s)
+{
+	double lo, hi, rep, got;
+	int i;
+
+	for (i = 0; i < 8 && m->q[i] >= 0; i++) {
+		block_at_rank(s, m->q[i], &lo, &hi, &rep);
+		got = sketch_quantile(s, m->q[i]);
+		assert_true(got == rep);
+		if (!(lo <= m->want[i] * (1 + 1e-9 * (m->want[i] < 0)) &&
+		    m->want[i] <= hi * (1 + 1e-9 * (m->want[i] > 0)) + 0))
+			fail_msg("%s q=%g: numpy %.10g outside [%.10g, %.10g]",
+			    m->name, m->q[i], m->want[i], lo, hi);
+		if (m->body[i] && m->want[i] != 0 &&
+		    !close_rel(got, m->want[i], 0.01 * (1 + 1e-9)))
+			fail_msg("%s q=%g: %.10g vs numpy %.10g", m->name,
+			    m->q[i], got, m->want[i]);
+		if (m->want[i] == 0)
+			assert_true(got == 0);
+	}
+}
+
+static void
+test_outliers(void **state)
+{
+	struct sketch *s, *d, *half[2];
+	const struct mix_case *m;
+	uint8_t *buf;
+	size_t i, n;
+	int first;
+
+	for (i = 0; i < sizeof mix_cases / sizeof mix_cases[0]; i++) {
+		m = &mix_cases[i];
+		for (first = 0; first < 2; first++) {
+			s = mix_sketch(m, first);
+			check_mix(m, s);
+			/* the outliers sit in edges, counted exactly */
+			assert_true(sketch_edge_count(s) > 0);
+			assert_true(sketch_edge_count(s) <=
+			    (uint64_t)(100 * m->nout));
+			assert_true(sketch_nbuckets(s) <=
+			    SKETCH_BUCKETS_DEFAULT + 5);
+			/* the edges survive a checkpoint */
+			n = sketch_encoded_size(s);
+			buf = malloc(n);
+			assert_int_equal(sketch_encode(s, buf, n), n);
+			assert_non_null(d = sketch_decode(buf, n));
+			assert_same_sketch(s, d);
+			assert_int_equal(sketch_edge_count(d),
+			    sketch_edge_count(s));
+			check_mix(m, d);
+			sketch_free(d);
+			free(buf);
+			/* and a merge of two halves (simulate's pooling) */
+			half[0] = sketch_new(0.01, SKETCH_BUCKETS_DEFAULT);
+			half[1] = mix_sketch(m, first);
+			assert_int_equal(sketch_merge(half[0], s), 0);
+			assert_int_equal(sketch_merge(half[0], half[1]), 0);
+			assert_int_equal(sketch_count(half[0]),
+			    2 * sketch_count(s));
+			check_mix(m, half[0]);
+			sketch_free(half[0]);
+			sketch_free(half[1]);
+			sketch_free(s);
+		}
+	}
+}
+
+/*
+ * sketch_buckets_side puts an edge at either end of its range, never a
+ * regular bucket; both orders stay non-decreasing.
+ */
+static void
+test_sides(void **state)
+{
+	struct sketch *s = mix_sketch(&mix_cases[4], 0);
+	size_t n = sketch_nbuckets(s), i, edges = 0;
+	double *v0 = calloc(n, sizeof *v0), *vl = calloc(n, sizeof *vl);
+	double *vh = calloc(n, sizeof *vh), *lo = calloc(n, sizeof *lo);
+	double *hi = calloc(n, sizeof *hi);
+	uint64_t *c = calloc(n, sizeof *c);
+
+	assert_int_equal(sketch_buckets_side(s, 0, v0, c, n), n);
+	assert_int_equal(sketch_buckets_side(s, -1, vl, c, n), n);
+	assert_int_equal(sketch_buckets_side(s, 1, vh, c, n), n);
+	assert_int_equal(sketch_bounds(s, lo, hi, c, n), n);
+	for (i = 0; i < n; i++) {
+		assert_true(lo[i] <= v0[i] && v0[i] <= hi[i]);
+		if (vl[i] != v0[i] || vh[i] != v0[i]) {
+			edges++;
+			assert_true(vl[i] == lo[i] && vh[i] == hi[i]);
+		}
+		if (i > 0) {
+			assert_true(vl[i] >= vl[i - 1]);
+			assert_true(vh[i] >= vh[i - 1]);
+			assert_true(lo[i] >= hi[i - 1] * (1 - 1e-9));
+		}
+	}
+	/* one high edge over 1e7..1e300, nothing else */
+	assert_int_equal(edges, 1);
+	assert_true(vl[n - 1] < 1e7 && vl[n - 1] > 1e7 * 0.97);
+	assert_true(vh[n - 1] > 1e300 && vh[n - 1] < 1e300 * 1.03);
+	free(v0);
+	free(vl);
+	free(vh);
+	free(lo);
+	free(hi);
+	free(c);
+	sketch_free(s);
+}
+
+/* Images of the previous format (version 1, before the edges) are
+ * refused, and say so. */
+static void
+test_old_format(void **state)
+{
+	/* a version-1 image of one value 1 (key 0) at a = 0.01, cap 512,
+	 * as the previous encoder wrote it (layout in its sketch.c) */
+	uint8_t v1[32 + 8 + 8 + 8];
+	double a = 0.01;
+	uint64_t bits;
+
+	memset(v1, 0, sizeof v1);
+	memcpy(v1, "SCSK\1\0\0\0", 8);
+	memcpy(&bits, &a, sizeof bits);
+	for (int i = 0; i < 8; i++)
+		v1[8 + i] = (uint8_t)(bits >> (8 * i));
+	v1[17] = 2;		/* 512 */
+	v1[36] = 1;		/* span 1 */
+	v1[40] = 1;		/* count 1 */
+	assert_null(sketch_decode(v1, sizeof v1));
+	assert_int_equal(sketch_encoded_version(v1, sizeof v1), 1);
+	assert_int_equal(sketch_encoded_version((const uint8_t *)"junk", 4),
+	    -1);
+}
+
 int
 main(void)
 {
@@ -490,6 +757,9 @@ main(void)
 		cmocka_unit_test(test_edges),
 		cmocka_unit_test(test_memory),
 		cmocka_unit_test(test_encode),
+		cmocka_unit_test(test_outliers),
+		cmocka_unit_test(test_sides),
+		cmocka_unit_test(test_old_format),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);
