@@ -458,8 +458,11 @@ redis_in_entry(struct redis_in *r, const redisReply *e)
 		r->ack_due = 1;
 		return 0;
 	}
+	/* A death inside a batch names no entry yet: only one marked
+	 * entry by entry may reach the limit (no innocent neighbours). */
 	failures = redis_in_failures(r, id);
-	if (failures >= r->d->conf->redis_max_deliveries) {
+	if (failures >= r->d->conf->redis_max_deliveries &&
+	    redis_in_sid_cmp(r->suspect, r->suspect_last) == 0) {
 		log_warnx("redis: entry failed to apply %u times (the daemon "
 		    "died applying it): not applying it again entry=%s",
 		    failures, redis_in_sid_fmt(id, buf));

@@ -17,7 +17,10 @@ tests a new unlock flow ("tap") against the current one ("scan").
  4. An entry delivered six times to another consumer that died is not
     poison: it is reclaimed and applied (Redis's delivery counter counts
     reads, not failures).
- 5. Trims: entries applied, then trimmed from the stream while the daemon
+ 5. The crash-loop guard after a death inside a batch: with
+    max_deliveries = 1 nothing is dead-lettered on that death alone, since
+    it names no entry; the batch is applied again, entry by entry.
+ 6. Trims: entries applied, then trimmed from the stream while the daemon
     was down before a checkpoint covered them, and entries trimmed before
     they were ever delivered. Both are counted in /metrics and logged with
     their ID range; after catch-up the lag gauge reads 0.
@@ -255,6 +258,46 @@ def ghost_run(tap):
             tap.ok(d.stop() == 0, "ghost: clean exit")
 
 
+def guard_run(tap):
+    """The crash-loop guard's file as the daemon leaves it after dying
+    inside a batch of three entries: with max_deliveries = 1, no entry
+    is dead-lettered on that death alone (it names none of them); the
+    three are applied again, entry by entry."""
+    t0 = time.time() - 60
+    with Redis("faults-guard") as redis:
+        d = Daemon("faults-guard", redis=redis, guardrails=GUARDRAILS,
+                   tcp=False, udp=False, unix=False, http=True, start=False,
+                   redis_keys={"max_deliveries": "1"})
+        redis.cmd("XGROUP", "CREATE", d.stream, d.group, "$", "MKSTREAM")
+        ids = [redis.xadd(d.stream, {"records": r}) for r in (
+            "@%.1f plan %s scan=50 tap=50" % (t0, EXP),
+            "@%.1f expose %s scan 2" % (t0, EXP),
+            "@%.1f expose %s tap 5" % (t0, EXP))]
+        redis.cmd("XREADGROUP", "GROUP", d.group, d.consumer, "COUNT", "3",
+                  "STREAMS", d.stream, ">")
+        os.makedirs(d.state)
+        mark = os.path.join(d.state, "redis-applying")
+        with open(mark, "w") as f:
+            f.write(("A %s %s 0" % (ids[0], ids[2])).ljust(127) + "\n")
+        with d:
+            d.start()
+            ck = d.wait_checkpoint(lambda c: Daemon.records(c) == 3, 15)
+            tap.ok(ck is not None, "guard: the three entries of the batch "
+                   "the last run died in are applied again")
+            ck = ck or d.read_checkpoint()
+            tap.eq({k: v for k, v in summary_exposures(ck).items()},
+                   {(EXP, "scan"): 2, (EXP, "tap"): 5},
+                   "guard: their exposures counted once")
+            tap.ok(redis.cmd("EXISTS", d.dead) == 0,
+                   "guard: a death inside a batch dead-letters none of it")
+            tap.ok("died while applying an entry entry=%s..%s failures=1"
+                   % (ids[0], ids[2]) in d.log_text(),
+                   "guard: the death and its ID range are logged")
+            with open(mark) as f:
+                tap.eq(f.read(1), "D", "guard: the file says done after")
+            tap.ok(d.stop() == 0, "guard: clean exit")
+
+
 def trims_run(tap):
     t0 = time.time() - 600
     with Redis("faults-trim") as redis, \
@@ -303,7 +346,7 @@ def trims_run(tap):
 def main():
     tap = Tap()
     for run in (crashloop_run, claim_run, ckpt_crash_run, ghost_run,
-                trims_run):
+                guard_run, trims_run):
         t = time.time()
         try:
             run(tap)
