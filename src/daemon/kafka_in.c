@@ -601,79 +601,95 @@ kafka_txn_new(struct kafka_in *k, int32_t id, char **cause)
 	return rk;
 }
 
+/* A state read: what one partition's state topic partition held. */
+struct kafka_read {
+	int32_t		 id;
+	json_t		*state;		/* the last state message, or NULL */
+	int		 found;		/* a state message was there */
+	int		 done;		/* end reached, or failed */
+	char		*cause;		/* why it failed, or NULL */
+};
+
 /*
- * The last committed state message of partition id, or NULL with
- * *found 0 when there is none (*cause set on a read error).
+ * Read the state partitions of every r[i].id at once, to their ends
+ * (read_committed: to the last stable offset), keeping the last state
+ * message of each. One pass for the whole assignment, so the loop
+ * stands still once per rebalance, not once per partition.
  */
-static json_t *
-kafka_state_read(struct kafka_in *k, int32_t id, int *found, char **cause)
+static void
+kafka_states_read(struct kafka_in *k, struct kafka_read *r, int n)
 {
 	rd_kafka_topic_partition_list_t *l;
 	rd_kafka_message_t *m;
 	rd_kafka_resp_err_t err;
-	json_t *state = NULL;
 	json_error_t jerr;
-	char *key = kafka_state_key(k, id);
 	double deadline = daemon_now() + KAFKA_LOAD_MS / 1000.0;
-	int done = 0;
+	char *key;
+	int i, left = n;
 
-	*found = 0;
-	l = rd_kafka_topic_partition_list_new(1);
-	rd_kafka_topic_partition_list_add(l, k->state_topic, id)->offset =
-	    RD_KAFKA_OFFSET_BEGINNING;
+	if (n == 0)
+		return;
+	l = rd_kafka_topic_partition_list_new(n);
+	for (i = 0; i < n; i++)
+		rd_kafka_topic_partition_list_add(l, k->state_topic,
+		    r[i].id)->offset = RD_KAFKA_OFFSET_BEGINNING;
 	err = rd_kafka_assign(k->reader, l);
 	rd_kafka_topic_partition_list_destroy(l);
 	if (err != 0) {
-		xasprintf(cause, "assign %s/%" PRId32 ": %s", k->state_topic,
-		    id, rd_kafka_err2str(err));
-		free(key);
-		return NULL;
+		for (i = 0; i < n; i++)
+			xasprintf(&r[i].cause, "assign %s/%" PRId32 ": %s",
+			    k->state_topic, r[i].id, rd_kafka_err2str(err));
+		return;
 	}
-	while (!done) {
-		if (daemon_now() > deadline) {
-			xasprintf(cause, "reading %s/%" PRId32 " took more "
-			    "than %d ms", k->state_topic, id, KAFKA_LOAD_MS);
-			break;
-		}
+	while (left > 0 && daemon_now() < deadline) {
 		if ((m = rd_kafka_consumer_poll(k->reader, 100)) == NULL)
 			continue;
-		if (m->err == RD_KAFKA_RESP_ERR__PARTITION_EOF &&
-		    m->partition == id)
-			done = 1;
-		else if (m->err != 0) {
-			if (m->err == RD_KAFKA_RESP_ERR__UNKNOWN_PARTITION ||
-			    m->err == RD_KAFKA_RESP_ERR__UNKNOWN_TOPIC ||
-			    m->err == RD_KAFKA_RESP_ERR_UNKNOWN_TOPIC_OR_PART) {
-				xasprintf(cause, "%s/%" PRId32 ": %s (the state "
-				    "topic needs as many partitions as the "
-				    "input)", k->state_topic, id,
-				    rd_kafka_err2str(m->err));
-				rd_kafka_message_destroy(m);
-				break;
+		for (i = 0; i < n && r[i].id != m->partition; i++)
+			;
+		if (i == n || r[i].done) {
+			rd_kafka_message_destroy(m);
+			continue;
+		}
+		if (m->err == RD_KAFKA_RESP_ERR__PARTITION_EOF) {
+			r[i].done = 1;
+			left--;
+		} else if (m->err == RD_KAFKA_RESP_ERR__UNKNOWN_PARTITION ||
+		    m->err == RD_KAFKA_RESP_ERR__UNKNOWN_TOPIC ||
+		    m->err == RD_KAFKA_RESP_ERR_UNKNOWN_TOPIC_OR_PART) {
+			xasprintf(&r[i].cause, "%s/%" PRId32 ": %s (the state "
+			    "topic needs as many partitions as the input)",
+			    k->state_topic, r[i].id, rd_kafka_err2str(m->err));
+			r[i].done = 1;
+			left--;
+		} else if (m->err != 0)
+			log_warnx("kafka: reading state: %s partition=%" PRId32,
+			    rd_kafka_message_errstr(m), r[i].id);
+		else {
+			key = kafka_state_key(k, r[i].id);
+			if (m->key_len == strlen(key) &&
+			    memcmp(m->key, key, m->key_len) == 0) {
+				json_decref(r[i].state);
+				r[i].found = 1;
+				r[i].state = json_loadb(m->payload, m->len, 0,
+				    &jerr);
+				if (r[i].state == NULL) {
+					xasprintf(&r[i].cause, "state at offset %"
+					    PRId64 " is not JSON: %s", m->offset,
+					    jerr.text);
+					r[i].done = 1;
+					left--;
+				}
 			}
-			log_warnx("kafka: reading state: %s partition=%"
-			    PRId32, rd_kafka_message_errstr(m), id);
-		} else if (m->partition == id && m->key_len == strlen(key) &&
-		    memcmp(m->key, key, m->key_len) == 0) {
-			json_decref(state);
-			state = json_loadb(m->payload, m->len, 0, &jerr);
-			*found = 1;
-			if (state == NULL) {
-				xasprintf(cause, "state at offset %" PRId64
-				    " is not JSON: %s", m->offset, jerr.text);
-				rd_kafka_message_destroy(m);
-				break;
-			}
+			free(key);
 		}
 		rd_kafka_message_destroy(m);
 	}
+	for (i = 0; i < n; i++)
+		if (!r[i].done && r[i].cause == NULL)
+			xasprintf(&r[i].cause, "reading %s/%" PRId32 " took more "
+			    "than %d ms", k->state_topic, r[i].id,
+			    KAFKA_LOAD_MS);
 	rd_kafka_assign(k->reader, NULL);
-	free(key);
-	if (!done) {
-		json_decref(state);
-		return NULL;
-	}
-	return state;
 }
 
 static void
@@ -694,23 +710,21 @@ kafka_refuse(struct kafka_in *k, struct kafka_part *p, enum kafka_refusal r,
  * none). Sets p->state and p->next.
  */
 static void
-kafka_part_load(struct kafka_in *k, struct kafka_part *p, int64_t committed)
+kafka_part_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
+    struct kafka_read *r)
 {
-	json_t *state, *keys, *v;
+	json_t *state = r->state, *keys, *v;
 	char *cause = NULL;
 	const char *fmt;
-	int found;
 	int64_t next;
 	size_t i;
 
-	state = kafka_state_read(k, p->id, &found, &cause);
-	if (cause != NULL) {
-		kafka_refuse(k, p, found ? KR_BAD_STATE : KR_UNREACHABLE,
-		    "cannot read its state", cause);
-		free(cause);
+	if (r->cause != NULL) {
+		kafka_refuse(k, p, r->found ? KR_BAD_STATE : KR_UNREACHABLE,
+		    "cannot read its state", r->cause);
 		return;
 	}
-	if (!found) {
+	if (!r->found) {
 		if (committed >= 0) {
 			char detail[64];
 
@@ -737,7 +751,6 @@ kafka_part_load(struct kafka_in *k, struct kafka_part *p, int64_t committed)
 	    json_integer_value(json_object_get(state, "partition")) != p->id) {
 		kafka_refuse(k, p, KR_BAD_STATE, "its state is not a stopcock "
 		    "partition state of this version and partition", NULL);
-		json_decref(state);
 		return;
 	}
 	if (committed >= 0 && committed != next) {
@@ -747,19 +760,18 @@ kafka_part_load(struct kafka_in *k, struct kafka_part *p, int64_t committed)
 		    ", committed offset %" PRId64, next, committed);
 		kafka_refuse(k, p, KR_MISMATCH, "state and committed offset "
 		    "disagree", detail);
-		json_decref(state);
 		return;
 	}
 	if (committed < 0)
-		log_warnx("kafka: no committed offset (expired?); resuming "
-		    "from the state's partition=%" PRId32 " next=%" PRId64,
-		    p->id, next);
+		log_warnx("kafka: the group has no committed offset (expired, "
+		    "or a broker that keeps no transactional offsets, as the "
+		    "mock cluster); resuming from the state's partition=%"
+		    PRId32 " next=%" PRId64, p->id, next);
 	if (kafka_engine_swap(k, NULL, json_object_get(json_object_get(state,
 	    "engine"), "experiments"), &cause) != 0) {
 		kafka_refuse(k, p, KR_BAD_STATE, "its state does not restore",
 		    cause);
 		free(cause);
-		json_decref(state);
 		return;
 	}
 	json_array_foreach(keys, i, v)
@@ -774,7 +786,6 @@ kafka_part_load(struct kafka_in *k, struct kafka_part *p, int64_t committed)
 	    PRId32 " next=%" PRId64 " experiments=%zu messages=%" PRIu64
 	    " records=%" PRIu64, p->id, next, json_object_size(p->keys),
 	    p->c.messages, p->c.records);
-	json_decref(state);
 }
 
 static void
@@ -784,9 +795,11 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 	rd_kafka_error_t *e;
 	rd_kafka_resp_err_t err;
 	struct kafka_part *p;
+	struct kafka_read *reads;
 	char *cause = NULL;
-	int i;
+	int i, j, nreads = 0;
 	int64_t committed;
+	double t0 = daemon_now(), t1, t2;
 
 	/* Fence earlier owners first: their open transactions settle, so
 	 * the offsets and states read below are the last committed. */
@@ -809,8 +822,20 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 			cause = NULL;
 		}
 	}
+	t1 = daemon_now();
 	co = rd_kafka_topic_partition_list_copy(l);
 	err = rd_kafka_committed(k->rk, co, KAFKA_LOAD_MS);
+	t2 = daemon_now();
+	reads = xcalloc((size_t)l->cnt + 1, sizeof *reads);
+	for (i = 0; i < l->cnt; i++) {
+		int32_t id = l->elems[i].partition;
+
+		if (id >= 0 && id < KAFKA_PARTITIONS_MAX &&
+		    (p = k->parts[id]) != NULL && p->state == KP_RUNNING &&
+		    p->txn != NULL)
+			reads[nreads++].id = id;
+	}
+	kafka_states_read(k, reads, nreads);
 	pause = rd_kafka_topic_partition_list_new(l->cnt);
 	for (i = 0; i < l->cnt; i++) {
 		int32_t id = l->elems[i].partition;
@@ -829,8 +854,12 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 				kafka_refuse(k, p, KR_UNREACHABLE, "cannot read "
 				    "the committed offset", rd_kafka_err2str(
 				    err != 0 ? err : co->elems[i].err));
-			else
-				kafka_part_load(k, p, committed);
+			else {
+				for (j = 0; j < nreads && reads[j].id != id;
+				    j++)
+					;
+				kafka_part_load(k, p, committed, &reads[j]);
+			}
 		}
 		if (p->state == KP_RUNNING)
 			l->elems[i].offset = p->next >= 0 ? p->next :
@@ -840,6 +869,15 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 			    l->elems[i].topic, id);
 	}
 	rd_kafka_topic_partition_list_destroy(co);
+	for (j = 0; j < nreads; j++) {
+		json_decref(reads[j].state);
+		free(reads[j].cause);
+	}
+	free(reads);
+	/* the loop stood still this long: say where */
+	log_info("kafka: assignment loaded partitions=%d fence_ms=%.0f "
+	    "offsets_ms=%.0f states_ms=%.0f", l->cnt, (t1 - t0) * 1e3,
+	    (t2 - t1) * 1e3, (daemon_now() - t2) * 1e3);
 	if (strcmp(rd_kafka_rebalance_protocol(k->rk), "COOPERATIVE") == 0) {
 		if ((e = rd_kafka_incremental_assign(k->rk, l)) != NULL) {
 			log_warnx("kafka: incremental_assign: %s",
@@ -1081,6 +1119,7 @@ kafka_in_new(struct daemon *d, char **cause)
 	if (rc != 0 ||
 	    kafka_set(conf, "isolation.level", "read_committed", cause) != 0 ||
 	    kafka_set(conf, "enable.partition.eof", "true", cause) != 0 ||
+	    kafka_set(conf, "fetch.wait.max.ms", "10", cause) != 0 ||
 	    kafka_set(conf, "enable.auto.commit", "false", cause) != 0 ||
 	    kafka_set(conf, "fetch.message.max.bytes", "100000000",
 	    cause) != 0 ||
@@ -1281,6 +1320,15 @@ kafka_in_metrics(struct kafka_in *k, struct evbuffer *b)
 		evbuffer_add_printf(b, "stopcock_kafka_partition_experiments{"
 		    "partition=\"%" PRId32 "\"} %zu\n", p->id,
 		    json_object_size(p->keys));
+	metrics_family(b, "stopcock_kafka_partition_offset", "gauge",
+	    "Next offset to read, and (committed) the next offset as last "
+	    "committed with the partition's state; -1: from the start.");
+	KAFKA_EACH(k, p, i)
+		evbuffer_add_printf(b, "stopcock_kafka_partition_offset{"
+		    "partition=\"%" PRId32 "\",kind=\"read\"} %" PRId64 "\n"
+		    "stopcock_kafka_partition_offset{partition=\"%" PRId32
+		    "\",kind=\"committed\"} %" PRId64 "\n", p->id, p->next,
+		    p->id, p->committed);
 	metrics_family(b, "stopcock_kafka_partition_lag", "gauge",
 	    "Messages behind the partition's high watermark (NaN: unknown).");
 	KAFKA_EACH(k, p, i) {
