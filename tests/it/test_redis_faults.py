@@ -14,13 +14,15 @@ tests a new unlock flow ("tap") against the current one ("scan").
  3. kill -9 while a checkpoint is being written, six times (a ~9 MB state
     so the write takes a while): the old checkpoint stays, every Redis-fed
     record is applied once, nothing is dead-lettered.
- 4. An entry delivered six times to another consumer that died is not
+ 4. Every checkpoint failing for 8 s (a file-size limit stands in for a
+    full disk) with claim_idle 1 s, then kill -9: nothing lost.
+ 5. An entry delivered six times to another consumer that died is not
     poison: it is reclaimed and applied (Redis's delivery counter counts
     reads, not failures).
- 5. The crash-loop guard after a death inside a batch: with
+ 6. The crash-loop guard after a death inside a batch: with
     max_deliveries = 1 nothing is dead-lettered on that death alone, since
     it names no entry; the batch is applied again, entry by entry.
- 6. Trims: entries applied, then trimmed from the stream while the daemon
+ 7. Trims: entries applied, then trimmed from the stream while the daemon
     was down before a checkpoint covered them, and entries trimmed before
     they were ever delivered. Both are counted in /metrics and logged with
     their ID range; after catch-up the lag gauge reads 0.
@@ -32,6 +34,7 @@ import http.client
 import json
 import os
 import re
+import resource
 import signal
 import time
 
@@ -230,6 +233,41 @@ def ckpt_crash_run(tap):
         tap.ok(d.stop() == 0, "ckpt crash: clean exit")
 
 
+def diskfull_run(tap):
+    """Every checkpoint fails for 8 s (a file-size limit stands in for a
+    full disk: writes past 256 KB fail with EFBIG, SIGXFSZ ignored),
+    claim_idle 1 s, then kill -9 and a restart with room again."""
+    entries, lines = make_entries(200, time.time() - 600)
+
+    def full_disk():
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)	# kept across exec
+        resource.setrlimit(resource.RLIMIT_FSIZE, (256 << 10, 256 << 10))
+    with Redis("faults-full") as redis, \
+            Daemon("faults-full", redis=redis,
+                   guardrails="max_experiments = 5000\n" + BIG_GUARDRAILS,
+                   udp=False, unix=False, http=True, args=("-f",),
+                   preexec_fn=full_disk,
+                   redis_keys={"claim_idle": "1s"}) as d:
+        d.send_tcp(big_state(60))	# a checkpoint of ~0.5 MB
+        add_all(redis, d.stream, entries)
+        tap.ok(applied(d, len(entries)), "disk full: entries applied")
+        time.sleep(8)
+        log = d.log_text()
+        tap.ok(d.read_checkpoint() is None and "checkpoint failed" in log,
+               "disk full: every checkpoint failed (%d failures logged)"
+               % log.count("checkpoint failed"))
+        d.kill9()
+        d.preexec_fn = None
+        d.start()
+        ck = d.wait_checkpoint(lambda c: Daemon.records(c, "redis") >=
+                               len(lines), 20)
+        tap.ok(ck is not None, "disk full: all Redis records applied after "
+               "the kill")
+        check_exact(tap, d, redis, ck or d.read_checkpoint(), lines,
+                    "8 s of failed checkpoints, then a crash")
+        tap.ok(d.stop() == 0, "disk full: clean exit")
+
+
 def ghost_run(tap):
     t0 = time.time() - 60
     with Redis("faults-ghost") as redis:
@@ -345,8 +383,8 @@ def trims_run(tap):
 
 def main():
     tap = Tap()
-    for run in (crashloop_run, claim_run, ckpt_crash_run, ghost_run,
-                guard_run, trims_run):
+    for run in (crashloop_run, claim_run, ckpt_crash_run, diskfull_run,
+                ghost_run, guard_run, trims_run):
         t = time.time()
         try:
             run(tap)
