@@ -331,5 +331,8 @@ void		 verdict_evaluate(struct engine *, struct experiment *,
 		    struct test *, int costly);
 void		 verdict_srm(struct engine *, struct experiment *);
 double		 verdict_level(const struct experiment *);
+/* pause_alpha, or a tenth of the alpha, split over the family */
+double		 verdict_pause_level(const struct engine *,
+		    const struct experiment *);
 
 #endif

@@ -54,17 +54,6 @@ finding_fill_arms(const struct engine *eng, const struct experiment *e,
 	}
 }
 
-/* pause_alpha, or a tenth of the experiment's alpha, split over the
- * family like the alert level (the rule verdict.c pauses by). */
-static double
-finding_pause_level(const struct engine *eng, const struct experiment *e)
-{
-	double pa = eng->conf->pause_alpha > 0 ? eng->conf->pause_alpha :
-	    e->alpha / 10;
-
-	return pa / (e->family > 0 ? e->family : 1);
-}
-
 void
 finding_fill(const struct engine *eng, const struct experiment *e,
     const struct test *t, enum finding_kind kind, struct finding *f)
@@ -91,7 +80,7 @@ finding_fill(const struct engine *eng, const struct experiment *e,
 	f->log_e = t->closed_log_e + t->log_e;
 	f->alpha = verdict_level(e);
 	f->alpha_total = e->alpha;
-	f->pause_level = finding_pause_level(eng, e);
+	f->pause_level = verdict_pause_level(eng, e);
 	f->family = e->family;
 	f->estimate = t->est;
 	f->lower = t->cs_lo;

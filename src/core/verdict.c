@@ -32,8 +32,8 @@ verdict_level(const struct experiment *e)
 	return e->alpha / (e->family > 0 ? e->family : 1);
 }
 
-static double
-pause_level(const struct engine *eng, const struct experiment *e)
+double
+verdict_pause_level(const struct engine *eng, const struct experiment *e)
 {
 	double pa = eng->conf->pause_alpha > 0 ? eng->conf->pause_alpha :
 	    e->alpha / 10;
@@ -777,7 +777,7 @@ verdict_set(struct engine *eng, struct experiment *e, struct test *t,
     const struct series *b, int want_cs, int det)
 {
 	struct finding f;
-	double level = verdict_level(e), s = harm_sign(g), p;
+	double level = verdict_level(e), s = harm_sign(g), p, pl;
 	enum verdict old = t->verdict, nv = old;
 
 	p = stats_p_from_log_e(t->max_log_e);
@@ -819,10 +819,10 @@ verdict_set(struct engine *eng, struct experiment *e, struct test *t,
 	}
 	/* a detector's harm pauses once its evidence is as many times
 	 * stronger than its threshold as pause_alpha is below the level */
+	pl = verdict_pause_level(eng, e);
 	if (t->verdict == VERDICT_HARM && g->action == ACTION_PAUSE &&
-	    !t->pause_sent && (p <= pause_level(eng, e) || (t->by_detector &&
-	    t->det_log_m >= change_threshold(eng, e) +
-	    log(level / pause_level(eng, e))))) {
+	    !t->pause_sent && (p <= pl || (t->by_detector &&
+	    t->det_log_m >= change_threshold(eng, e) + log(level / pl)))) {
 		t->pause_sent = 1;
 		finding_fill(eng, e, t, FINDING_PAUSE, &f);
 		engine_emit(eng, &f);
