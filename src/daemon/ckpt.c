@@ -334,6 +334,8 @@ ckpt_start(struct daemon *d, const char *why)
 		ckpt_child(d, parent, p[1]);
 	}
 	close(p[1]);
+	log_debug("checkpoint: writer started pid=%ld reason=%s fork_ms=%.1f",
+	    (long)pid, why, (daemon_now() - c->start) * 1e3);
 	c->pid = pid;
 	c->fd = p[0];
 	c->causelen = 0;

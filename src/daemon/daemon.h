@@ -12,7 +12,9 @@
  *               lag (redis_house_*; shares redis_in_int.h)
  *   kafka_in.c  the Kafka consumer: partitions, exactly-once state
  *               and offsets in transactions (librdkafka)  (kafka_*)
- *   ckpt.c      checkpoint write/restore, atomic and checksummed (ckpt_*)
+ *   ckpt.c      checkpoint write/restore, atomic and checksummed,
+ *               written by a forked child off the loop (ckpt_*)
+ *   notify.c    systemd notifications that never block  (notify_*)
  *   dispatch.c  the engine's sink: findings queued, then drained on
  *               the loop to pause, alert and webhooks    (dispatch_*)
  *   alert.c     findings -> alerts: identity, dedupe, syslog (alert_*)

@@ -113,9 +113,10 @@ def notify_run(tap):
         tap.ok(d.stop() == 0, "notify: clean exit")
 
 
-def big_state(n):
+def big_state(start, stop):
+    """The records of experiments start..stop-1."""
     out = []
-    for e in range(n):
+    for e in range(start, stop):
         out.append("plan ferry%d old=50 new=50" % e)
         for arm in ("old", "new"):
             out.append("expose ferry%d %s 100" % (e, arm))
@@ -132,11 +133,18 @@ def latency_run(tap):
                    udp=False, unix=False, http=True,
                    daemon_keys={"checkpoint_every": "1h"},
                    redis_keys={"block": "100ms"}) as d:
-        d.send_tcp(big_state(2300))
         redis.xadd(d.stream, {"records": "@%.1f plan seatmap old=50 "
                               "new=50" % t0})
-        ck = d.checkpoint(timeout=60)
-        size = os.path.getsize(d.checkpoint_path)
+        # ~20 MB of state, whatever an experiment's image costs today.
+        n, size = 0, 0
+        for _ in range(3):
+            more = 2300 if n == 0 else int(n * (20.5e6 / size - 1)) + 1
+            d.send_tcp(big_state(n, n + more))
+            n += more
+            ck = d.checkpoint(timeout=60)
+            size = os.path.getsize(d.checkpoint_path)
+            if size > 18e6:
+                break
         tap.ok(ck is not None and size > 18e6,
                "a checkpoint of %.1f MB" % (size / 1e6))
         n0 = ck["counters"]["checkpoints"]
