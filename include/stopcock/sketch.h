@@ -67,14 +67,22 @@ uint64_t	 sketch_edge_count(const struct sketch *);
 
 /*
  * Flat encoding for checkpoints; sketch_decode returns NULL on bad input,
- * including images of an older format (version 1, before the edges):
- * sketch_encoded_version gives the version an image claims (-1: not a
- * sketch), so the caller can say why it was refused.
+ * including images of an older format (version 1, before the edges;
+ * sketch_decode_any reads those): sketch_encoded_version gives the
+ * version an image claims (-1: not a sketch), so a caller can say why.
  */
 size_t		 sketch_encoded_size(const struct sketch *);
 size_t		 sketch_encode(const struct sketch *, uint8_t *buf, size_t size);
 struct sketch	*sketch_decode(const uint8_t *buf, size_t size);
 int		 sketch_encoded_version(const uint8_t *buf, size_t size);
+/*
+ * sketch_decode, and also version-1 images (for checkpoints of the
+ * previous release): a store that had reached its cap may have folded
+ * values into its lowest bucket, which comes back as a low edge reaching
+ * down to the least value the store can hold. sketch_decode stays strict
+ * so that an image has one spelling.
+ */
+struct sketch	*sketch_decode_any(const uint8_t *buf, size_t size);
 #define SKETCH_ENCODING_VERSION 2
 
 #endif

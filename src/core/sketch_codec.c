@@ -343,3 +343,92 @@ sketch_decode(const uint8_t *buf, size_t size)
 	s->count = total;
 	return s;
 }
+
+/*
+ * One store of a version-1 image: lowest key (i32), span (u32), span
+ * counts, the first and last non-zero. That encoder folded every key
+ * below the top max_buckets into the lowest kept bucket, so a store
+ * spanning its whole cap may hold folded values there: that bucket
+ * becomes a low edge reaching down to the least key the store can hold.
+ */
+static int
+sketch_store_get_v1(struct sketch *s, struct sketch_store *st, int negative,
+    const uint8_t **pp, const uint8_t *end, uint64_t *total)
+{
+	const uint8_t *p = *pp;
+	int64_t kmin, kmax, lo, span, i, first;
+	uint64_t c, sum = 0;
+
+	sketch_key_range(s, negative, &kmin, &kmax);
+	if (end - p < 8)
+		return -1;
+	lo = sketch_get_key(p);
+	span = (int64_t)sketch_get(p + 4, 4);
+	p += 8;
+	if (span == 0) {
+		*pp = p;
+		return lo == 0 ? 0 : -1;
+	}
+	if (span > s->max_buckets || lo < kmin || lo + span - 1 > kmax ||
+	    (end - p) / 8 < span || sketch_get(p, 8) == 0 ||
+	    sketch_get(p + 8 * (span - 1), 8) == 0)
+		return -1;
+	st->flags = 0;
+	st->counts = xcalloc((size_t)span, sizeof *st->counts);
+	st->offset = (int32_t)lo;
+	st->len = (uint32_t)span;
+	for (i = 0; i < span; i++) {
+		c = sketch_get(p + 8 * i, 8);
+		if (sketch_add_total(&sum, c) != 0)
+			return -1;
+		st->counts[i] = c;
+	}
+	first = 0;
+	if (span == s->max_buckets) {
+		st->low.count = st->counts[0];
+		st->low.kmin = (int32_t)kmin;
+		st->low.kmax = st->lowkey = (int32_t)lo;
+		st->counts[0] = 0;
+		for (first = 1; first < span && st->counts[first] == 0; first++)
+			;
+	}
+	if (first < span) {
+		st->lo = (int32_t)(lo + first);
+		st->hi = (int32_t)(lo + span - 1);
+	}
+	st->total = sum;
+	if (sketch_add_total(total, sum) != 0)
+		return -1;
+	*pp = p + 8 * span;
+	return 0;
+}
+
+struct sketch *
+sketch_decode_any(const uint8_t *buf, size_t size)
+{
+	const uint8_t *p = buf, *end = buf + size;
+	struct sketch *s;
+	uint64_t bits, total;
+	double accuracy;
+
+	if (sketch_encoded_version(buf, size) != 1)
+		return sketch_decode(buf, size);
+	if (size < SKETCH_HEADER || buf[5] || buf[6] || buf[7] ||
+	    sketch_get(buf + 20, 4) != 0)
+		return NULL;
+	bits = sketch_get(buf + 8, 8);
+	memcpy(&accuracy, &bits, sizeof accuracy);
+	if ((s = sketch_new(accuracy, (uint32_t)sketch_get(buf + 16, 4))) ==
+	    NULL)
+		return NULL;
+	total = s->zero = sketch_get(buf + 24, 8);
+	p += SKETCH_HEADER;
+	if (sketch_store_get_v1(s, &s->pos, 0, &p, end, &total) != 0 ||
+	    sketch_store_get_v1(s, &s->neg, 1, &p, end, &total) != 0 ||
+	    p != end) {
+		sketch_free(s);
+		return NULL;
+	}
+	s->count = total;
+	return s;
+}

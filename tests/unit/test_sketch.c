@@ -721,29 +721,118 @@ test_sides(void **state)
 	sketch_free(s);
 }
 
-/* Images of the previous format (version 1, before the edges) are
- * refused, and say so. */
+/* Little-endian writer for hand-made images. */
+static uint8_t *
+put_le(uint8_t *p, uint64_t v, int bytes)
+{
+	int i;
+
+	for (i = 0; i < bytes; i++)
+		*p++ = (uint8_t)(v >> (8 * i));
+	return p;
+}
+
+/*
+ * A version-1 image (the previous format, layout from its encoder: the
+ * header as today, then per store lowest key, span and span counts) with
+ * positive keys lo .. lo + span - 1 holding cnt[], negatives at one key.
+ */
+static size_t
+v1_image(uint8_t *buf, uint32_t cap, int32_t lo, uint32_t span,
+    const uint64_t *cnt, int32_t nkey, uint64_t ncount, uint64_t zeros)
+{
+	double a = 0.01;
+	uint64_t bits;
+	uint8_t *p = buf;
+	uint32_t i;
+
+	memcpy(&bits, &a, sizeof bits);
+	memcpy(p, "SCSK\1\0\0\0", 8);
+	p = put_le(p + 8, bits, 8);
+	p = put_le(p, cap, 4);
+	p = put_le(p, 0, 4);
+	p = put_le(p, zeros, 8);
+	p = put_le(p, (uint32_t)lo, 4);
+	p = put_le(p, span, 4);
+	for (i = 0; i < span; i++)
+		p = put_le(p, cnt[i], 8);
+	p = put_le(p, (uint32_t)nkey, 4);
+	p = put_le(p, ncount != 0, 4);
+	if (ncount != 0)
+		p = put_le(p, ncount, 8);
+	return (size_t)(p - buf);
+}
+
+/*
+ * Images of the previous format (version 1, before the edges):
+ * sketch_decode refuses them and sketch_encoded_version says why;
+ * sketch_decode_any reads them for old checkpoints, a store that had
+ * reached its cap turning its lowest bucket, which may hold folded
+ * values, into a low edge. Check values: representatives of
+ * docs/methods.md 10.7 (x = 1: 0.99, key 0; x = 100: 100.4945677,
+ * key 231; x = -10: -10.07469669, key -116 of the negative store) and
+ * its log gamma = 0.020000666706669435.
+ */
 static void
 test_old_format(void **state)
 {
-	/* a version-1 image of one value 1 (key 0) at a = 0.01, cap 512,
-	 * as the previous encoder wrote it (layout in its sketch.c) */
-	uint8_t v1[32 + 8 + 8 + 8];
-	double a = 0.01;
-	uint64_t bits;
+	uint8_t img[32 + 16 + 8 * 300], img2[32 + 16 + 8 * 300];
+	uint64_t cnt[300];
+	struct sketch *d, *e;
+	double lo[8], hi[8], v[8];
+	uint64_t c[8];
+	size_t n, m;
 
-	memset(v1, 0, sizeof v1);
-	memcpy(v1, "SCSK\1\0\0\0", 8);
-	memcpy(&bits, &a, sizeof bits);
-	for (int i = 0; i < 8; i++)
-		v1[8 + i] = (uint8_t)(bits >> (8 * i));
-	v1[17] = 2;		/* 512 */
-	v1[36] = 1;		/* span 1 */
-	v1[40] = 1;		/* count 1 */
-	assert_null(sketch_decode(v1, sizeof v1));
-	assert_int_equal(sketch_encoded_version(v1, sizeof v1), 1);
+	/* 1 twice, 100 once, -10 once, one zero; cap 512: no fold */
+	memset(cnt, 0, sizeof cnt);
+	cnt[0] = 2;
+	cnt[231] = 1;
+	n = v1_image(img, 512, 0, 232, cnt, -116, 1, 1);
+	assert_null(sketch_decode(img, n));
+	assert_int_equal(sketch_encoded_version(img, n), 1);
 	assert_int_equal(sketch_encoded_version((const uint8_t *)"junk", 4),
 	    -1);
+	assert_non_null(d = sketch_decode_any(img, n));
+	assert_int_equal(sketch_count(d), 5);
+	assert_int_equal(sketch_edge_count(d), 0);
+	assert_int_equal(sketch_buckets(d, v, c, 8), 4);
+	assert_true(close_rel(v[0], -10.07469669, 1e-9) && c[0] == 1);
+	assert_true(v[1] == 0 && c[1] == 1);
+	assert_true(close_rel(v[2], 0.99, 1e-9) && c[2] == 2);
+	assert_true(close_rel(v[3], 100.4945677, 1e-9) && c[3] == 1);
+	/* it is written back in today's format, which reads strictly */
+	m = sketch_encoded_size(d);
+	assert_int_equal(sketch_encode(d, img2, m), m);
+	assert_int_equal(sketch_encoded_version(img2, m),
+	    SKETCH_ENCODING_VERSION);
+	assert_non_null(e = sketch_decode(img2, m));
+	assert_same_sketch(d, e);
+	sketch_free(e);
+	sketch_free(d);
+
+	/* cap 16, spanning it: 50 counts in the lowest bucket (key 300)
+	 * may be folded; 7 at the top (key 315) */
+	memset(cnt, 0, sizeof cnt);
+	cnt[0] = 50;
+	cnt[15] = 7;
+	n = v1_image(img, 16, 300, 16, cnt, 0, 0, 0);
+	assert_null(sketch_decode(img, n));
+	assert_non_null(d = sketch_decode_any(img, n));
+	assert_int_equal(sketch_count(d), 57);
+	assert_int_equal(sketch_edge_count(d), 50);
+	assert_int_equal(sketch_bounds(d, lo, hi, c, 8), 2);
+	/* the edge reaches down to the least positive double, up to the
+	 * top of bucket 300: gamma^300 */
+	assert_true(c[0] == 50 && lo[0] <= DBL_TRUE_MIN * 2);
+	assert_true(close_rel(hi[0], exp(300 * 0.020000666706669435), 1e-9));
+	assert_true(c[1] == 7 && close_rel(lo[1],
+	    exp(314 * 0.020000666706669435), 1e-9));
+	/* a damaged old image is still refused: cut short, or its top
+	 * count (at 32 + 8 + 15 * 8) zeroed */
+	assert_null(sketch_decode_any(img, n - 8));
+	img[32 + 8 + 15 * 8] = 0;
+	assert_null(sketch_decode_any(img, n));
+	sketch_free(d);
 }
 
 /* One arm's blocks for the quantile tests, edges at the given side. */
