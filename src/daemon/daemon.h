@@ -288,6 +288,5 @@ void		 notify_send(struct notify *, const char *fmt, ...)
 		    SC_PRINTF(2, 3);
 /* READY=1 again if the socket refused it (status timer). */
 void		 notify_retry(struct notify *);
-uint64_t	 notify_dropped(struct notify *);
 
 #endif

@@ -33,8 +33,7 @@ struct notify {
 	struct sockaddr_un	 sun;
 	socklen_t		 sunlen;
 	int			 ready_due;	/* READY=1 not taken yet */
-	uint64_t		 sent;
-	uint64_t		 dropped;
+	uint64_t		 dropped;	/* messages the socket refused */
 };
 
 /* NULL when there is no $NOTIFY_SOCKET (or it cannot be used: logged). */
@@ -87,10 +86,8 @@ notify_raw(struct notify *n, const char *msg, size_t len)
 		rc = sendto(n->fd, msg, len, MSG_DONTWAIT | MSG_NOSIGNAL,
 		    (struct sockaddr *)&n->sun, n->sunlen);
 	while (rc == -1 && errno == EINTR);
-	if (rc == (ssize_t)len) {
-		n->sent++;
+	if (rc == (ssize_t)len)
 		return 0;
-	}
 	/* The first loss, then every 100th: a reader that never reads
 	 * must not fill the log either. */
 	if (n->dropped++ % 100 == 0)
@@ -129,10 +126,4 @@ notify_retry(struct notify *n)
 {
 	if (n != NULL && n->ready_due)
 		n->ready_due = notify_raw(n, "READY=1", 7) != 0;
-}
-
-uint64_t
-notify_dropped(struct notify *n)
-{
-	return n != NULL ? n->dropped : 0;
 }
