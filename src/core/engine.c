@@ -739,64 +739,175 @@ engine_set_sink(struct engine *eng, engine_sink sink, void *arg)
 	eng->sink_arg = arg;
 }
 
-static int
-guardrail_same(const struct conf_guardrail *a, const struct conf_guardrail *b)
+/*
+ * What defines a guardrail's test: a reload that changes any of these
+ * restarts the test's evidence; its name is its identity, and its action
+ * only says what harm does, so changing it keeps the evidence. NULL when
+ * the definitions agree, else what changed (for the log and webhooks).
+ */
+static const char *
+guardrail_change(const struct conf_guardrail *a, const struct conf_guardrail *b)
 {
-	return strcmp(a->name, b->name) == 0 &&
-	    strcmp(a->metric, b->metric) == 0 && a->test == b->test &&
-	    a->quantile == b->quantile && a->harm == b->harm &&
-	    a->margin == b->margin && a->margin_relative == b->margin_relative &&
-	    a->action == b->action && a->plan_units == b->plan_units;
+	if (strcmp(a->metric, b->metric) != 0)
+		return "metric changed";
+	if (a->test != b->test)
+		return "test changed";
+	if (a->quantile != b->quantile)
+		return "quantile changed";
+	if (a->harm != b->harm)
+		return "harm direction changed";
+	if (a->margin != b->margin || a->margin_relative != b->margin_relative)
+		return "margin changed";
+	if (a->plan_units != b->plan_units)
+		return "plan_units changed";
+	return NULL;
 }
 
+static int
+guardrail_index(const struct conf *c, const char *name)
+{
+	int k;
+
+	for (k = 0; k < c->nguardrails; k++)
+		if (strcmp(c->guardrails[k].name, name) == 0)
+			return k;
+	return -1;
+}
+
+static void
+test_drop(struct test *t)
+{
+	hist_free(&t->hist);
+	groups_free(t->qg[0]);
+	groups_free(t->qg[1]);
+	t->qg[0] = t->qg[1] = NULL;
+}
+
+/*
+ * Move the tests of e (live or closing) from the old configuration's
+ * guardrails to the new one's, by name. A test whose guardrail is gone is
+ * dropped; one whose definition changed is dropped from a closing epoch
+ * (its evidence would join a test that restarts) and, in the live
+ * experiment, starts afresh in place, its old verdict and the reason left
+ * in prev[] and why[] (indexed like e->tests afterwards) for the caller
+ * to report.
+ */
+static void
+reconf_tests(struct engine *eng, const struct conf *old, struct experiment *e,
+    enum verdict *prev, const char **why)
+{
+	char variant[PROTO_NAME_MAX + 1];
+	const char *change;
+	struct test *t;
+	int j, k, n = 0;
+
+	for (j = 0; j < e->ntests; j++) {
+		t = &e->tests[j];
+		k = guardrail_index(eng->conf, old->guardrails[t->g].name);
+		change = k < 0 ? NULL : guardrail_change(&old->guardrails[t->g],
+		    &eng->conf->guardrails[k]);
+		if (k < 0 || (change != NULL && e->is_closing)) {
+			test_drop(t);
+			continue;
+		}
+		if (n != j)
+			e->tests[n] = *t;
+		t = &e->tests[n];
+		if (prev != NULL) {
+			prev[n] = t->verdict;
+			why[n] = change;
+		}
+		if (change != NULL) {
+			snprintf(variant, sizeof variant, "%s", t->variant);
+			test_drop(t);
+			test_init(t, k, variant);
+			t->dirty = 1;
+		} else
+			t->g = k;
+		n++;
+	}
+	e->ntests = n;
+}
+
+/* A reload may ask for sketches the metrics did not keep. */
+static void
+reconf_metrics(struct engine *eng, struct experiment *e)
+{
+	struct metric *m;
+	int j, k;
+
+	for (j = 0; j < e->nmetrics; j++) {
+		m = &e->metrics[j];
+		engine_metric_needs(eng->conf, m);
+		for (k = 0; m->arm && k < e->narms; k++)
+			if (m->want_sketch && m->arm[k].sk == NULL)
+				m->arm[k].sk = sketch_new(
+				    eng->conf->sketch_accuracy,
+				    eng->conf->sketch_buckets);
+	}
+}
+
+/*
+ * A reload keeps every test whose guardrail keeps its name and test
+ * definition exactly as it was: evidence, verdict, running bounds,
+ * detector, history, the closing epoch's part and the held records. A
+ * changed definition restarts that test alone, reported as a
+ * FINDING_RESTART with the verdict it held; a removed guardrail's test
+ * is reported the same way with its last state, then dropped. Nothing
+ * is dropped without a finding.
+ */
 int
 engine_reconfigure(struct engine *eng, const struct conf *conf, char **cause)
 {
 	struct conf *old = eng->conf;
 	struct experiment *e;
-	struct test *nt;
+	struct finding f;
+	enum verdict *prev;
+	const char **why;
 	uint32_t i;
-	int j, k, ntests;
+	int j, nkept;
 
-	/* closing epochs' tests index the old guardrails: close them first */
-	for (i = 0; i < eng->nexps; i++)
-		closing_retire(eng, eng->exps[i]);
+	/* the last word of tests whose guardrail goes, read under the old
+	 * configuration that still names it */
+	for (i = 0; i < eng->nexps; i++) {
+		e = eng->exps[i];
+		for (j = 0; j < e->ntests; j++) {
+			if (e->tests[j].arm <= 0 || guardrail_index(conf,
+			    old->guardrails[e->tests[j].g].name) >= 0)
+				continue;
+			finding_fill(eng, e, &e->tests[j], FINDING_RESTART, &f);
+			f.reason = "guardrail removed";
+			engine_emit(eng, &f);
+		}
+	}
 	eng->conf = conf_dup(conf);
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
-		/* keep a test only if its guardrail is unchanged */
-		nt = xcalloc((size_t)e->ntests + 1, sizeof *nt);
-		ntests = 0;
-		for (j = 0; j < e->ntests; j++) {
-			const struct conf_guardrail *og =
-			    &old->guardrails[e->tests[j].g];
-			for (k = 0; k < eng->conf->nguardrails; k++)
-				if (guardrail_same(og, &eng->conf->guardrails[k]))
-					break;
-			if (k == eng->conf->nguardrails) {
-				hist_free(&e->tests[j].hist);
-				groups_free(e->tests[j].qg[0]);
-				groups_free(e->tests[j].qg[1]);
-				continue;
-			}
-			nt[ntests] = e->tests[j];
-			nt[ntests++].g = k;
-		}
-		free(e->tests);
-		e->tests = nt;
-		e->ntests = ntests;
-		e->testcap = e->ntests + 1;
-		for (j = 0; j < e->nmetrics; j++) {
-			struct metric *m = &e->metrics[j];
-			engine_metric_needs(eng->conf, m);
-			for (k = 0; m->arm && k < e->narms; k++)
-				if (m->want_sketch && m->arm[k].sk == NULL)
-					m->arm[k].sk = sketch_new(
-					    eng->conf->sketch_accuracy,
-					    eng->conf->sketch_buckets);
-		}
+		prev = xcalloc((size_t)e->ntests + 1, sizeof *prev);
+		why = xcalloc((size_t)e->ntests + 1, sizeof *why);
+		reconf_tests(eng, old, e, prev, why);
+		nkept = e->ntests;
+		reconf_metrics(eng, e);
 		exp_settings(eng, e);
+		if (e->closing != NULL) {
+			reconf_tests(eng, old, e->closing, NULL, NULL);
+			reconf_metrics(eng, e->closing);
+			exp_settings(eng, e->closing);
+			engine_link_tests(eng, e->closing);
+		}
 		exp_ensure_tests(eng, e);
+		/* reported once the test reads the new configuration; a
+		 * test of a variant no longer planned has nothing to say */
+		for (j = 0; j < nkept; j++) {
+			if (why[j] == NULL || e->tests[j].arm <= 0)
+				continue;
+			finding_fill(eng, e, &e->tests[j], FINDING_RESTART, &f);
+			f.previous = prev[j];
+			f.reason = why[j];
+			engine_emit(eng, &f);
+		}
+		free(prev);
+		free(why);
 	}
 	conf_free(old);
 	(void)cause;
@@ -898,13 +1009,14 @@ engine_held_push(struct experiment *e, struct series *s, const struct held *r)
 		cap = q->cap ? q->cap * 2 : 16;
 		nq = xreallocarray(NULL, cap, sizeof *nq);
 		for (i = 0; i < q->n; i++)
-			nq[i] = q->q[(q->head + i) % q->cap];
+			nq[i] = q->q[(q->head + i) & (q->cap - 1)];
 		free(q->q);
 		q->q = nq;
 		q->cap = cap;
 		q->head = 0;
 	}
-	q->q[(q->head + q->n) % q->cap] = *r;
+	/* cap is a power of two: 16, then doubled */
+	q->q[(q->head + q->n) & (q->cap - 1)] = *r;
 	q->n++;
 	e->held++;
 }
@@ -939,7 +1051,7 @@ align_drain(struct engine *eng, struct experiment *e, int mi, double w)
 			return;
 		q = &m->arm[best].hq;
 		r = q->q[q->head];
-		q->head = (q->head + 1) % q->cap;
+		q->head = (q->head + 1) & (q->cap - 1);
 		q->n--;
 		e->held--;
 		fold_record(eng, e, mi, best, &r);
@@ -971,6 +1083,17 @@ align_watermark(const struct engine *eng, const struct experiment *e,
 	return lo > t ? lo : t;
 }
 
+static int
+align_none_held(const struct experiment *e, const struct metric *m)
+{
+	int i;
+
+	for (i = 0; i < e->narms; i++)
+		if (m->arm[i].hq.n > 0)
+			return 0;
+	return 1;
+}
+
 /*
  * A metric record at event time t. One behind the watermark (later than
  * the producer promised) is applied at once and counted, never dropped;
@@ -984,6 +1107,7 @@ align_offer(struct engine *eng, struct experiment *e, int mi, int arm,
 {
 	struct metric *m = &e->metrics[mi];
 	struct series *s = &m->arm[arm];
+	double w;
 
 	m->arrived = eng->now;
 	if (stamped)
@@ -995,6 +1119,15 @@ align_offer(struct engine *eng, struct experiment *e, int mi, int arm,
 	}
 	if (r->t > s->hq.latest)
 		s->hq.latest = r->t;
+	/* nothing of this metric waits and every arm has reached t: the
+	 * usual case for the arm whose records come last */
+	if (align_none_held(e, m) && r->t <= (w = align_watermark(eng, e,
+	    m))) {
+		if (w > m->wm)
+			m->wm = w;
+		fold_record(eng, e, mi, arm, r);
+		return;
+	}
 	while (e->held >= ENGINE_HELD_MAX) {
 		double oldest = INFINITY;
 		int i;
