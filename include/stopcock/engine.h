@@ -97,12 +97,17 @@ struct finding {
 	/* the effect over the last hour and day of record time, since when,
 	 * and the records per arm (control, treatment) it rests on */
 	double		 recent[2], recent_since[2], recent_records[2][2];
+	/* quantiles: recent[] is the change in the share of values beyond
+	 * this threshold (the control's frozen quantile), NAN otherwise */
+	double		 recent_threshold;
 	/* the record time a verdict speaks of: epoch start to now */
 	double		 covers_from, covers_to;
 	int		 untrusted;	/* SRM has fired in this epoch */
 	double		 ts;		/* record time of the finding */
 	double		 first_ts;	/* when the verdict first held */
 	uint64_t	 event;		/* record number it was found at */
+	const char	*reason;	/* FINDING_RESTART, FINDING_RETIRED;
+					 * else NULL */
 	int		 narms;
 	struct finding_arm arms[PROTO_PLAN_MAX];
 };

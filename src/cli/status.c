@@ -263,7 +263,14 @@ status_test_notes(const struct status_style *st, const json_t *t)
 		printf("%s           found by the change detector; the change "
 		    "began about %s%s\n", st->warn, a, st->off);
 	}
-	if (hour != NULL && isfinite(status_num(hour, "estimate")))
+	if (hour == NULL || !isfinite(status_num(hour, "estimate")))
+		return;
+	/* a quantile's window: the shares beyond one threshold compared */
+	if (strcmp(status_str(t, "recent_measure"), "share_beyond") == 0)
+		printf("%s           last hour: %+.3g pts beyond %.4g%s\n",
+		    st->dim, 100 * status_num(hour, "estimate"),
+		    status_num(t, "recent_threshold"), st->off);
+	else
 		printf("%s           last hour: %+.4g%s\n", st->dim,
 		    status_num(hour, "estimate"), st->off);
 }

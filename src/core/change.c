@@ -204,16 +204,39 @@ change_window_span(int i)
 	return i >= 0 && i < CHANGE_WINDOWS ? change_spans[i] : NAN;
 }
 
+/*
+ * A window's cumulative tallies: the arms' own, or for a quantile the
+ * last look's counts beyond the detector's threshold (so its windowed
+ * view is the change in the share of values beyond it). -1 before a
+ * quantile's threshold is frozen.
+ */
+static int
+window_cum(const struct test *t, const struct conf_guardrail *g,
+    const struct series *a, const struct series *b, double ca[3],
+    double cb[3])
+{
+	if (g->test == TEST_QUANTILE) {
+		if (isnan(t->qd_x0) || !(t->qd_cum[0][0] > 0))
+			return -1;
+		memcpy(ca, t->qd_cum[0], 3 * sizeof *ca);
+		memcpy(cb, t->qd_cum[1], 3 * sizeof *cb);
+		return 0;
+	}
+	change_cum(g, a, ca);
+	change_cum(g, b, cb);
+	return 0;
+}
+
 void
 change_window_offer(const struct engine *eng, struct test *t,
     const struct conf_guardrail *g, const struct series *a,
     const struct series *b)
 {
 	struct change_window *w;
-	double step;
+	double step, ca[3], cb[3];
 	int i, k;
 
-	if (g->test == TEST_QUANTILE)
+	if (window_cum(t, g, a, b, ca, cb) != 0)
 		return;
 	for (i = 0; i < CHANGE_WINDOWS; i++) {
 		w = &t->win[i];
@@ -227,14 +250,15 @@ change_window_offer(const struct engine *eng, struct test *t,
 		}
 		k = (w->head + w->n) % CHANGE_WIN_SLOTS;
 		w->ts[k] = eng->now;
-		change_cum(g, a, w->snap[k][0]);
-		change_cum(g, b, w->snap[k][1]);
+		memcpy(w->snap[k][0], ca, sizeof ca);
+		memcpy(w->snap[k][1], cb, sizeof cb);
 		w->n++;
 	}
 }
 
 /* The effect over window i: treatment minus control over the records
- * since the oldest snapshot inside the span. NAN without data. */
+ * since the oldest snapshot inside the span (a quantile: the difference
+ * of the shares beyond its threshold). NAN without data. */
 double
 change_window_estimate(const struct engine *eng, const struct test *t,
     const struct conf_guardrail *g, const struct series *a,
@@ -246,7 +270,7 @@ change_window_estimate(const struct engine *eng, const struct test *t,
 
 	*since = NAN;
 	rec[0] = rec[1] = 0;
-	if (g->test == TEST_QUANTILE || w->n == 0)
+	if (w->n == 0 || window_cum(t, g, a, b, ca, cb) != 0)
 		return NAN;
 	for (j = 0; j < w->n; j++) {
 		k = (w->head + j) % CHANGE_WIN_SLOTS;
@@ -255,8 +279,6 @@ change_window_estimate(const struct engine *eng, const struct test *t,
 	}
 	if (j == w->n)
 		return NAN;
-	change_cum(g, a, ca);
-	change_cum(g, b, cb);
 	*since = w->ts[k];
 	rec[0] = ca[0] - w->snap[k][0][0];
 	rec[1] = cb[0] - w->snap[k][1][0];

@@ -372,6 +372,8 @@ change_save(const struct test *t)
 	    "block_ts", sreal(t->blk_ts), "snap", reals_save(&t->snap[0][0],
 	    6), "k", t->det.k, "blocks", sreal(t->det.blocks));
 	json_object_set_new(o, "quantile_x0", sreal(t->qd_x0));
+	json_object_set_new(o, "quantile_cum", reals_save(&t->qd_cum[0][0],
+	    6));
 	json_object_set_new(o, "lambda", reals_save(t->det.lambda,
 	    STATS_DETECT_GRID));
 	json_object_set_new(o, "log_w", reals_save(t->det.log_w,
@@ -419,6 +421,10 @@ change_load(struct test *t, const json_t *o)
 	/* images from before quantile detection have none: it restarts */
 	if (get_real(o, "quantile_x0", &t->qd_x0) != 0)
 		t->qd_x0 = NAN;
+	if (json_object_get(o, "quantile_cum") == NULL ||
+	    reals_load(json_object_get(o, "quantile_cum"), &t->qd_cum[0][0],
+	    6) != 0)
+		memset(t->qd_cum, 0, sizeof t->qd_cum);
 	w = json_object_get(o, "windows");
 	if (json_array_size(w) != CHANGE_WINDOWS)
 		return -1;

@@ -165,8 +165,10 @@ struct test {
 	 * live test's closed part */
 	double		 late_base;
 	int		 est_closing;	/* est and bounds are the closing's */
-	/* quantile detection: the control's quantile, frozen (change.c) */
+	/* quantile detection: the control's quantile, frozen (change.c),
+	 * and the last look's (records, beyond, records) per arm */
 	double		 qd_x0;
+	double		 qd_cum[2][3];
 	/* per-record variances and margin of the last look (change.c) */
 	double		 sig2_t, sig2_c, kfac, mlin;
 	/* change detection (change.c) */

@@ -101,6 +101,7 @@ finding_fill(const struct engine *eng, const struct experiment *e,
 	f->covers_from = e->nepochs > 0 ? e->epochs[e->nepochs - 1].started :
 	    NAN;
 	f->covers_to = eng->now;
+	f->recent_threshold = g->test == TEST_QUANTILE ? t->qd_x0 : NAN;
 	for (i = 0; i < 2; i++) {
 		f->recent[i] = f->recent_since[i] = NAN;
 		f->recent_records[i][0] = f->recent_records[i][1] = NAN;
@@ -151,6 +152,7 @@ finding_fill_srm(const struct engine *eng, const struct experiment *e,
 	f->covers_from = e->nepochs > 0 ? e->epochs[e->nepochs - 1].started :
 	    NAN;
 	f->covers_to = eng->now;
+	f->recent_threshold = NAN;
 	for (i = 0; i < 2; i++)
 		f->recent[i] = f->recent_since[i] = f->recent_records[i][0] =
 		    f->recent_records[i][1] = NAN;
@@ -274,11 +276,20 @@ finding_json(const struct finding *f)
 			    f->recent_records[i][0]), finding_num(
 			    f->recent_records[i][1])));
 		json_object_set_new(o, "recent", w);
+		/* what a window's estimate measures: a quantile's windows
+		 * compare the shares beyond one threshold */
+		json_object_set_new(o, "recent_measure", json_string(
+		    f->test_kind == TEST_QUANTILE ? "share_beyond" :
+		    "difference"));
+		json_object_set_new(o, "recent_threshold",
+		    finding_num(f->recent_threshold));
 	}
 	json_object_set_new(o, "untrusted", json_boolean(f->untrusted));
 	json_object_set_new(o, "ts", finding_num(f->ts));
 	json_object_set_new(o, "first_ts", finding_num(f->first_ts));
 	json_object_set_new(o, "event", json_integer((json_int_t)f->event));
+	if (f->reason != NULL)
+		set_str(o, "reason", f->reason);
 	json_object_set_new(o, "arms", arms_json(f));
 	return o;
 }

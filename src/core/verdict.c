@@ -663,9 +663,12 @@ quantile_detect(struct engine *eng, struct experiment *e, struct test *t,
 	else
 		xb = g->margin_relative ? x0 * (1 - acc) * (1 - r) /
 		    (1 + acc) : (x0 * (1 - acc) - r) / (1 + acc);
-	return change_offer_quantile(eng, e, t, g,
-	    (double)sketch_count(a->sk), tail_count(eng, a->sk, x0, up),
-	    (double)sketch_count(b->sk), tail_count(eng, b->sk, xb, up), deff);
+	t->qd_cum[0][0] = t->qd_cum[0][2] = (double)sketch_count(a->sk);
+	t->qd_cum[0][1] = tail_count(eng, a->sk, x0, up);
+	t->qd_cum[1][0] = t->qd_cum[1][2] = (double)sketch_count(b->sk);
+	t->qd_cum[1][1] = tail_count(eng, b->sk, xb, up);
+	return change_offer_quantile(eng, e, t, g, t->qd_cum[0][0],
+	    t->qd_cum[0][1], t->qd_cum[1][0], t->qd_cum[1][1], deff);
 }
 
 /*

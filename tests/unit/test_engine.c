@@ -553,6 +553,63 @@ test_quantile_harm_on_tick(void **state)
 	assert_true(fx->seen.last_lower > 0);
 }
 
+/*
+ * A quantile's windowed view: the change, over the last hour of record
+ * time, in the share of values beyond the control's frozen p99. The
+ * treatment turns 30% slower half way: its share beyond the threshold
+ * grows from 1% to 3.58% (lognormal sigma 0.5: P(Z > z_0.99 - ln(1.3) /
+ * 0.5) = scipy.stats.norm.sf(2.32635 - 0.52473) = 0.03580), so the last
+ * hour (which holds only the slow half) reads about +2.58 points. The
+ * threshold is frozen from 500 records, so it is the p98.5 to p99.5 (rank
+ * uncertain by about sqrt(5) records): between +1.51 and +3.49 points by
+ * the same formula at those quantiles (scipy), hence the range.
+ */
+static void
+test_quantile_windows(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	double t0 = 1700000000, t;
+	const json_t *tj = NULL, *w, *v;
+	json_t *j;
+	size_t k;
+	int i;
+
+	gsl_rng_set(rng, 21);
+	feed(fx, "@%.0f plan qw control=50 treatment=50", t0);
+	for (i = 0; i < 40000; i++) {
+		/* one record per arm every 0.25 s: 10000 s, the slow half
+		 * starts at 5000 s, well over an hour before the end */
+		t = t0 + i * 0.25;
+		/* the caller's clock is the record time, as in replay */
+		fx->now = t - 0.01;
+		feed(fx, "@%.3f observe qw control latency_ms %.4f", t,
+		    exp(4 + 0.5 * gsl_ran_gaussian(rng, 1)));
+		feed(fx, "@%.3f observe qw treatment latency_ms %.4f", t,
+		    (i >= 20000 ? 1.3 : 1) * exp(4 + 0.5 *
+		    gsl_ran_gaussian(rng, 1)));
+		if (i % 200 == 0)
+			engine_tick(fx->eng, fx->now);
+	}
+	engine_tick(fx->eng, fx->now);
+	gsl_rng_free(rng);
+	j = engine_json_experiment(fx->eng, "qw");
+	json_array_foreach(json_object_get(j, "tests"), k, v)
+		if (strcmp(json_string_value(json_object_get(v, "guardrail")),
+		    "p99") == 0)
+			tj = v;
+	assert_non_null(tj);
+	assert_string_equal(json_string_value(json_object_get(tj,
+	    "recent_measure")), "share_beyond");
+	assert_true(json_number_value(json_object_get(tj,
+	    "recent_threshold")) > 0);
+	w = json_array_get(json_object_get(tj, "recent"), 0);
+	/* 14400 records per arm in the hour: +-0.25 points of noise */
+	assert_true(json_number_value(json_object_get(w, "estimate")) > 0.012);
+	assert_true(json_number_value(json_object_get(w, "estimate")) < 0.040);
+	json_decref(j);
+}
+
 /* Save, restore, save again: the same image; and both engines then
  * evolve identically under the same further records. */
 static void
@@ -893,6 +950,8 @@ main(void)
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_quantile_harm_on_tick,
 		    setup, teardown),
+		cmocka_unit_test_setup_teardown(test_quantile_windows, setup,
+		    teardown),
 		cmocka_unit_test_setup_teardown(test_save_restore, setup,
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_reconfigure, setup,
