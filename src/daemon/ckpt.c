@@ -250,11 +250,15 @@ ckpt_reap(struct ckpt *c, int wait)
 		log_warn("checkpoint: waitpid");
 	else if (WIFEXITED(status) && WEXITSTATUS(status) == 0)
 		ckpt_done(d, c->covered, c->start);
-	else
+	else if (c->causelen > 0)
 		log_warnx("checkpoint failed (%s): %.*s", c->why,
-		    c->causelen > 0 ? (int)c->causelen : 40, c->causelen > 0 ?
-		    c->cause : WIFSIGNALED(status) ? "the writer was killed" :
-		    "the writer failed");
+		    (int)c->causelen, c->cause);
+	else if (WIFSIGNALED(status))
+		log_warnx("checkpoint failed (%s): the writer was killed "
+		    "(%s)", c->why, strsignal(WTERMSIG(status)));
+	else
+		log_warnx("checkpoint failed (%s): the writer failed "
+		    "(exit %d)", c->why, WEXITSTATUS(status));
 	free(c->covered);
 	c->covered = NULL;
 	c->causelen = 0;
