@@ -18,8 +18,9 @@
  * known:
  *  - the low edge takes what DDSketch folds: a window never spans more
  *    than max_buckets keys below its highest one, so a body of values too
- *    wide for the cap loses its low end, not its high quantiles (Masson et
- *    al. 2019, sec. 2.2; p99 is what latency guardrails test);
+ *    wide for the cap loses its low end, not its high quantiles (the
+ *    collapse of the lowest buckets in Masson et al. 2019; p99 is what
+ *    latency guardrails test);
  *  - the high edge takes outliers. When the window has no room, either
  *    its low end folds or an "island" goes: the keys above a gap of a
  *    factor SKETCH_ISLAND (and 8 mean spacings) from everything below
