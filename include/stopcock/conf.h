@@ -34,6 +34,7 @@ struct conf_guardrail {
 					   stored as a fraction (5% -> 0.05) */
 	enum conf_action action;
 	double		plan_units;	/* 0: use the experiment's / default */
+	char		unit[CONF_NAME_MAX + 1];	/* of the metric, "" none */
 	int		line;		/* where it was defined, for messages */
 };
 
@@ -47,9 +48,30 @@ struct conf_experiment {
 	int		line;
 };
 
+/*
+ * What an alert output receives ([webhook] kinds, [syslog] kinds,
+ * [alertmanager] kinds): a set of alert kinds, each raised alert of those
+ * kinds, plus the lifecycle events named. An event reaches an output when
+ * both its alert's kind and (for all but raised) its event are chosen.
+ */
+enum conf_kind {
+	CONF_KIND_HARM = 1 << 0,
+	CONF_KIND_SAFE = 1 << 1,
+	CONF_KIND_SRM = 1 << 2,
+	CONF_KIND_PAUSE = 1 << 3,
+	CONF_KIND_DRY_RUN = 1 << 4,
+	CONF_KIND_REMINDER = 1 << 5,
+	CONF_KIND_ACKNOWLEDGED = 1 << 6,
+	CONF_KIND_RESOLVED = 1 << 7
+};
+#define CONF_KINDS_ALL 0xffu
+/* The words of enum conf_kind, bit i = word i, NULL-ended. */
+extern const char *const conf_kind_names[];
+
 struct conf_webhook {
 	char		name[CONF_NAME_MAX + 1];
 	char		*url;
+	uint32_t	kinds;		/* enum conf_kind bits */
 	char		*secret;	/* "whsec_" + base64, may be NULL */
 	double		timeout;	/* seconds per request */
 	int		max_attempts;
@@ -129,6 +151,12 @@ struct conf {
 
 	/* [alerts] */
 	double		remind_every;	/* 0: no reminders */
+	char		*runbook;	/* link put in every alert, NULL none */
+
+	/* [alertmanager] */
+	char		*am_url;	/* base URL; NULL: no Alertmanager */
+	uint32_t	am_kinds;	/* enum conf_kind bits */
+	double		am_resend;	/* seconds between refreshes */
 
 	/* [pause] */
 	char		*pause_url;
@@ -143,6 +171,7 @@ struct conf {
 	/* [syslog] */
 	char		*syslog_ident;
 	char		*syslog_facility;
+	uint32_t	syslog_kinds;	/* enum conf_kind bits */
 
 	int		nwebhooks;
 	struct conf_webhook webhooks[CONF_WEBHOOKS_MAX];

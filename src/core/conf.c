@@ -137,6 +137,7 @@ conf_new(void)
 	conf_table_defaults(S_ALERTS, c);
 	conf_table_defaults(S_PAUSE, c);
 	conf_table_defaults(S_SYSLOG, c);
+	conf_table_defaults(S_ALERTMANAGER, c);
 	return c;
 }
 

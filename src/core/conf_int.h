@@ -23,6 +23,7 @@ enum conf_section {
 	S_PAUSE,
 	S_SYSLOG,
 	S_WEBHOOK,
+	S_ALERTMANAGER,
 	S_COUNT
 };
 
@@ -47,7 +48,8 @@ enum conf_type {
 	T_MARGIN,	/* guardrail margin: number or percentage */
 	T_PLAN,		/* experiment arms: "control=50 treatment=50" */
 	T_BROKERS,	/* char *: host:port[,host:port...] */
-	T_TOPIC		/* char *: a Kafka topic name, 1-max of A-Za-z0-9._- */
+	T_TOPIC,	/* char *: a Kafka topic name, 1-max of A-Za-z0-9._- */
+	T_KINDS		/* uint32_t: a set of words of extra, bit i = word i */
 };
 
 #define F_OPEN_MIN	0x01	/* min itself is outside the range */

@@ -40,7 +40,16 @@ const struct conf_section_info conf_sections[S_COUNT] = {
 	[S_PAUSE] = { "pause", 0 },
 	[S_SYSLOG] = { "syslog", 0 },
 	[S_WEBHOOK] = { "webhook", 1 },
+	[S_ALERTMANAGER] = { "alertmanager", 0 },
 };
+
+const char *const conf_kind_names[] = {
+	"harm", "safe", "srm", "pause", "pause_dry_run", "reminder",
+	"acknowledged", "resolved", NULL
+};
+#define CONF_KINDS_DEFAULT "harm srm pause pause_dry_run reminder " \
+	"acknowledged resolved"
+
 
 const char *const conf_tests[] = {
 	"mean", "proportion", "rate", "quantile", NULL
@@ -196,6 +205,8 @@ const struct conf_option conf_options[] = {
 	{ S_GUARDRAIL, "plan_units", T_DOUBLE, G(plan_units), 1, 1e12,
 	  F_ZERO_OK, "0", NULL, "planned units per arm for this guardrail; "
 	  "0: the experiment's" },
+	{ S_GUARDRAIL, "unit", T_NAME, G(unit), 0, 0, 0, NULL, NULL,
+	  "unit of the metric (ms, bytes, ...), shown beside its effects" },
 
 	{ S_EXPERIMENT, "plan", T_PLAN, E(arms), 0, 0, 0, NULL, NULL,
 	  "arms and weights, control first, as in a plan record" },
@@ -209,6 +220,17 @@ const struct conf_option conf_options[] = {
 	{ S_ALERTS, "remind", T_DURATION, C(remind_every), 0.1, 30 * 86400.0,
 	  F_ZERO_OK, "0", NULL, "repeat an unacknowledged harm alert this "
 	  "often; 0: never" },
+	{ S_ALERTS, "runbook", T_URL, C(runbook), 0, 0, 0, NULL, NULL,
+	  "link to the on-call runbook, put in every alert" },
+
+	{ S_ALERTMANAGER, "url", T_URL, C(am_url), 0, 0, 0, NULL, NULL,
+	  "Alertmanager base URL; alerts are POSTed to its /api/v2/alerts; "
+	  "unset: none" },
+	{ S_ALERTMANAGER, "kinds", T_KINDS, C(am_kinds), 0, 0, 0,
+	  CONF_KINDS_DEFAULT, conf_kind_names, "alert kinds and events sent" },
+	{ S_ALERTMANAGER, "resend", T_DURATION, C(am_resend), 1, 3600, 0,
+	  "1m", NULL, "how often a holding alert is sent again; its endsAt "
+	  "is four of these ahead" },
 
 	{ S_PAUSE, "url", T_URL, C(pause_url), 0, 0, 0, NULL, NULL,
 	  "POST a signed pause request here" },
@@ -241,11 +263,17 @@ const struct conf_option conf_options[] = {
 	  NULL, "attempts per alert, with backoff, before it is dropped" },
 	{ S_WEBHOOK, "queue", T_U32, W(queue), 1, 1000000, 0, "1000", NULL,
 	  "alerts waiting at most; the oldest is dropped beyond" },
+	{ S_WEBHOOK, "kinds", T_KINDS, W(kinds), 0, 0, 0, CONF_KINDS_DEFAULT,
+	  conf_kind_names, "alert kinds and lifecycle events this receiver "
+	  "gets" },
 
 	{ S_SYSLOG, "ident", T_WORD, C(syslog_ident), 0, CONF_IDENT_MAX, 0,
 	  "stopcockd", NULL, "program name in syslog lines" },
 	{ S_SYSLOG, "facility", T_FACILITY, C(syslog_facility), 0, 0, 0,
 	  "daemon", NULL, "daemon, user or local0..local7" },
+	{ S_SYSLOG, "kinds", T_KINDS, C(syslog_kinds), 0, 0, 0,
+	  CONF_KINDS_DEFAULT, conf_kind_names, "alert kinds and lifecycle "
+	  "events written to syslog" },
 };
 
 #undef C
@@ -384,6 +412,10 @@ conf_table_range_text(const struct conf_option *o, char *buf, size_t size)
 	case T_TOPIC:
 		snprintf(buf, size, "a topic name of 1-%.0f of A-Z a-z 0-9 . _ -",
 		    o->max);
+		break;
+	case T_KINDS:
+		snprintf(buf, size, "words of harm safe srm pause "
+		    "pause_dry_run reminder acknowledged resolved");
 		break;
 	}
 }
@@ -545,6 +577,42 @@ conf_table_margin(struct conf_guardrail *g, const struct conf_option *o,
 	return -1;
 }
 
+/* "harm srm resolved": blank-separated words of o->extra, each once. */
+static int
+conf_table_kinds(const struct conf_option *o, char *field, const char *v,
+    char **why)
+{
+	const char *const *c;
+	char *copy, *w, *save = NULL;
+	uint32_t set = 0, bit;
+	int i;
+
+	copy = xstrdup(v);
+	for (w = strtok_r(copy, " \t", &save); w != NULL;
+	    w = strtok_r(NULL, " \t", &save)) {
+		for (c = o->extra, i = 0; *c != NULL; c++, i++)
+			if (strcmp(w, *c) == 0)
+				break;
+		bit = *c != NULL ? 1u << i : 0;
+		if (bit == 0 || (set & bit) != 0) {
+			xasprintf(why, "%s '%.40s': expected %s",
+			    bit == 0 ? "unknown kind" : "kind given twice", w,
+			    "words of harm safe srm pause pause_dry_run "
+			    "reminder acknowledged resolved");
+			free(copy);
+			return -1;
+		}
+		set |= bit;
+	}
+	free(copy);
+	if (set == 0) {
+		xasprintf(why, "expected at least one kind");
+		return -1;
+	}
+	*(uint32_t *)field = set;
+	return 0;
+}
+
 /*
  * Parse value v for option o into the struct at base. On failure returns
  * -1 with *why saying what was expected (the caller names key and line).
@@ -624,6 +692,8 @@ conf_table_set(const struct conf_option *o, void *base, const char *v, char **wh
 		return conf_table_margin(base, o, v, why);
 	case T_PLAN:
 		return conf_table_plan(base, v, why);
+	case T_KINDS:
+		return conf_table_kinds(o, field, v, why);
 	default:
 		break;
 	}
@@ -729,6 +799,7 @@ conf_table_type_name(enum conf_type t)
 		[T_SECRET] = "secret", [T_TOKEN] = "token",
 		[T_MARGIN] = "margin", [T_PLAN] = "plan",
 		[T_BROKERS] = "brokers", [T_TOPIC] = "topic",
+		[T_KINDS] = "words",
 	};
 
 	return names[t];

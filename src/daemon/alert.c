@@ -1,18 +1,30 @@
 /*
  * alert.c: findings become alerts that people can act on (dispatch.c
- * hands them here in the loop, after the pause policy): one per identity (experiment, epoch, guardrail,
- * variant, and what happened: harm, safe, srm, untrusted, pause), raised
- * once and kept raised until the experiment starts a new epoch, is reset
- * or the alert is acknowledged. Each raise writes one syslog line of
- * key=value fields and yields one webhook body (dispatch.c queues it
- * in webhook.c, signed) whose webhook-id is derived from the identity, so receivers deduplicate and a
- * restart that replays the same verdict never pages twice. Optional
- * reminders repeat raised, unacknowledged alerts. The state is saved in
- * the checkpoint (alert_save / alert_restore).
+ * hands them here in the loop, after the pause policy). An alert has one
+ * identity (experiment, epoch and the epoch's start, guardrail, variant,
+ * and what happened: harm, safe, srm, pause, pause_dry_run) and a life:
  *
- * Alerts go to syslog(3) directly, also when the daemon runs in the
- * foreground (where the logger writes to stderr): they are for the
- * operators' log pipeline, not for the console.
+ *   raised -> (reminder ...) -> acknowledged -> resolved
+ *
+ * It is raised once; reminders repeat an unacknowledged harm or SRM
+ * alert; an operator acknowledges it (reminders stop) or closes it; it
+ * is resolved when the experiment starts a new epoch, is reset, paused,
+ * retired, or closed by an operator. Every event goes, as its kinds are
+ * chosen, to syslog (and to stderr in the foreground, where containers
+ * without /dev/log would lose it), to each webhook receiver (signed, in
+ * webhook.c) and to an Alertmanager (alertmgr.c), with a severity:
+ * critical for a harm that pauses and for the pause, warning for harm and
+ * SRM, info for the rest.
+ *
+ * The id is derived from the identity; the epoch's start (record time)
+ * makes it unique per incident, so a reused experiment name or a reset
+ * never repeats an id a receiver has seen, while a restart or a retry of
+ * the same incident keeps it. Each event has its own webhook-id (id,
+ * id_rN, id_ack, id_resolved). An SRM raises one alert: the verdicts it
+ * makes untrustworthy are part of it, and a safe verdict in an untrusted
+ * epoch raises nothing (and a safe alert already raised is resolved).
+ * Resolved alerts are kept (bounded) so a replay never pages again. The
+ * state is saved in the checkpoint (alert_save / alert_restore).
  */
 #include <math.h>
 #include <stdarg.h>
@@ -28,21 +40,38 @@
 #define ALERT_LINE_MAX	2048	/* bytes in one syslog line */
 #define ALERT_ID_BYTES	16	/* of SHA-256, as hex after "sc_" */
 
-enum alert_state { ALERT_RAISED, ALERT_ACKED };
+enum alert_state { ALERT_RAISED, ALERT_ACKED, ALERT_RESOLVED };
+static const char *const alert_states[] = { "raised", "acked", "resolved" };
+
+enum alert_sev { SEV_CRITICAL, SEV_WARNING, SEV_INFO };
+static const char *const alert_sevs[] = { "critical", "warning", "info" };
+
+/* The lifecycle events, with their routing bit (raised needs none). */
+enum alert_ev { EV_RAISED, EV_REMINDER, EV_ACKNOWLEDGED, EV_RESOLVED };
+static const char *const alert_evs[] = {
+	"raised", "reminder", "acknowledged", "resolved"
+};
+static const uint32_t alert_ev_bits[] = {
+	0, CONF_KIND_REMINDER, CONF_KIND_ACKNOWLEDGED, CONF_KIND_RESOLVED
+};
 
 struct alert_entry {
 	char		 id[3 + 2 * ALERT_ID_BYTES + 1];
 	char		*experiment;
 	uint32_t	 epoch;
+	double		 epoch_start;	/* record time; NAN in old state */
 	char		*guardrail;
 	char		*variant;	/* "" for the SRM check */
 	enum alert_kind	 kind;
 	enum alert_state state;
+	enum alert_sev	 severity;
 	int		 priority;
 	double		 first_seen;	/* wall time */
 	double		 last_sent;
 	uint32_t	 reminders;
-	char		*line;		/* syslog fields, for reminders */
+	double		 resolved_at;	/* wall time, 0 while not resolved */
+	char		*resolution;	/* why it was resolved, or NULL */
+	char		*line;		/* syslog fields, for every event */
 	json_t		*body;		/* webhook payload as first sent */
 };
 
@@ -56,8 +85,12 @@ struct alert {
 	uint64_t		 raised[ALERT_NKINDS];
 	uint64_t		 reminders;
 	uint64_t		 acked;
+	uint64_t		 resolved;
 	uint64_t		 evicted;
 	uint64_t		 duplicates;
+	uint64_t		 untrusted_safe;	/* safe, not raised: SRM */
+	struct event		*am_timer;	/* Alertmanager refreshes */
+	double			 am_resend;
 };
 
 /* The names in syslog, webhooks, the API, metrics and the state. */
@@ -68,6 +101,16 @@ static const char *const alert_kinds[ALERT_NKINDS] = {
 	[ALERT_UNTRUSTED] = "untrusted",
 	[ALERT_PAUSE] = "pause",
 	[ALERT_PAUSE_DRY_RUN] = "pause_dry_run",
+};
+
+/* Each kind's routing bit ([webhook] kinds and the rest). */
+static const uint32_t alert_kind_bits[ALERT_NKINDS] = {
+	[ALERT_HARM] = CONF_KIND_HARM,
+	[ALERT_SAFE] = CONF_KIND_SAFE,
+	[ALERT_SRM] = CONF_KIND_SRM,
+	[ALERT_UNTRUSTED] = CONF_KIND_SRM,
+	[ALERT_PAUSE] = CONF_KIND_PAUSE,
+	[ALERT_PAUSE_DRY_RUN] = CONF_KIND_DRY_RUN,
 };
 
 /*
@@ -125,17 +168,27 @@ alert_kind_parse(const char *name)
 	return -1;
 }
 
-/* "sc_" + hex of the first bytes of SHA-256 over the identity. */
+/*
+ * "sc_" + hex of the first bytes of SHA-256 over the identity, its parts
+ * NUL-separated so no two identities share a string: experiment, epoch,
+ * the epoch's start in record time as "%.3f", guardrail, variant, kind.
+ * A state saved before the start was part of it (start NAN) keeps the
+ * ids it had, computed without it.
+ */
 static void
 alert_make_id(char *out, const char *experiment, uint32_t epoch,
-    const char *guardrail, const char *variant, const char *what)
+    double start, const char *guardrail, const char *variant,
+    const char *what)
 {
 	char *s;
 	int len;
 
-	/* NUL-separated so no two identities share a string. */
-	len = xasprintf(&s, "%s%c%u%c%s%c%s%c%s", experiment, 0, epoch, 0,
-	    guardrail, 0, variant, 0, what);
+	if (isfinite(start))
+		len = xasprintf(&s, "%s%c%u%c%.3f%c%s%c%s%c%s", experiment, 0,
+		    epoch, 0, start, 0, guardrail, 0, variant, 0, what);
+	else
+		len = xasprintf(&s, "%s%c%u%c%s%c%s%c%s", experiment, 0, epoch,
+		    0, guardrail, 0, variant, 0, what);
 	memcpy(out, "sc_", 3);
 	digest_sha256_hex(s, (size_t)len, ALERT_ID_BYTES, out + 3);
 	free(s);
@@ -180,6 +233,38 @@ alert_priority(const struct finding *f, enum alert_kind kind)
 	}
 }
 
+/* critical: harm that pauses (and the pause); warning: harm and SRM. */
+static enum alert_sev
+alert_severity(const struct finding *f, enum alert_kind kind)
+{
+	switch (kind) {
+	case ALERT_HARM:
+		return f->action_pause ? SEV_CRITICAL : SEV_WARNING;
+	case ALERT_PAUSE:
+		return SEV_CRITICAL;
+	case ALERT_SRM:
+	case ALERT_UNTRUSTED:
+		return SEV_WARNING;
+	default:
+		return SEV_INFO;	/* safe, pause_dry_run */
+	}
+}
+
+/* The configured unit of a guardrail's metric ("" when none). */
+static const char *
+alert_unit(const struct alert *a, const char *guardrail)
+{
+	const struct conf *c = a->d->conf;
+	int i;
+
+	if (guardrail == NULL)
+		return "";
+	for (i = 0; i < c->nguardrails; i++)
+		if (strcmp(c->guardrails[i].name, guardrail) == 0)
+			return c->guardrails[i].unit;
+	return "";
+}
+
 /* The SRM check's own alerts, which speak of arms, not a guardrail. */
 static int
 alert_is_srm(enum alert_kind kind)
@@ -200,24 +285,25 @@ alert_arm_role(const struct finding *f, const char *variant)
 /* One human sentence: what happened, where, how sure. */
 static char *
 alert_summary(const struct finding *f, enum alert_kind kind,
-    const char *reason)
+    const char *reason, const char *unit)
 {
 	struct alert_line l;
-	int i;
+	const char *sp = *unit != '\0' ? " " : "";
+	int i, increase;
 
 	l.len = 0;
 	l.buf[0] = '\0';
 	if (alert_is_srm(kind)) {
-		alert_printf(&l, "%s in experiment %s epoch %u:",
-		    kind == ALERT_SRM ? "Sample ratio mismatch" :
-		    "Verdicts untrustworthy (sample ratio mismatch)",
-		    f->experiment, f->epoch);
+		alert_printf(&l, "Sample ratio mismatch in experiment %s "
+		    "epoch %u:", f->experiment, f->epoch);
 		for (i = 0; i < f->narms; i++)
 			alert_printf(&l, "%s %s %llu exposures (weight %g)",
 			    i == 0 ? "" : ",", f->arms[i].variant,
 			    (unsigned long long)f->arms[i].exposures,
 			    f->arms[i].weight);
-		alert_printf(&l, "; p=%.3g", f->p);
+		alert_printf(&l, "; p=%.3g. Every verdict of this epoch is "
+		    "untrustworthy until the assignment is fixed and a new "
+		    "epoch starts", f->p);
 		return xstrdup(l.buf);
 	}
 	if (kind == ALERT_PAUSE || kind == ALERT_PAUSE_DRY_RUN) {
@@ -228,14 +314,26 @@ alert_summary(const struct finding *f, enum alert_kind kind,
 		return xstrdup(l.buf);
 	}
 	alert_printf(&l, "guardrail %s %s for %s vs %s in experiment %s: "
-	    "effect %+.4g", f->guardrail, kind == ALERT_SAFE ?
+	    "effect %+.4g%s%s", f->guardrail, kind == ALERT_SAFE ?
 	    "is safe" : "shows harm", f->variant ? f->variant : "?",
-	    f->control ? f->control : "?", f->experiment, f->estimate);
+	    f->control ? f->control : "?", f->experiment, f->estimate, sp,
+	    unit);
 	if (isfinite(f->rel_estimate))
 		alert_printf(&l, " (%+.1f%%)", 100 * f->rel_estimate);
-	alert_printf(&l, ", confidence sequence [%.4g, %.4g], p=%.3g, "
-	    "alpha %.3g of %d tests", f->lower, f->upper, f->p, f->alpha,
-	    f->family);
+	alert_printf(&l, ", confidence sequence [%.4g, %.4g]%s%s", f->lower,
+	    f->upper, sp, unit);
+	if (kind == ALERT_SAFE) {
+		/* The bound that rules harm out says more than a p-value,
+		 * which here measures the evidence against harm. */
+		increase = f->harm == NULL || strcmp(f->harm, "decrease") != 0;
+		alert_printf(&l, ": the effect is %s %+.4g%s%s, inside the "
+		    "margin of %s%.4g%s%s, alpha %.3g of %d tests",
+		    increase ? "at most" : "at least", increase ? f->upper :
+		    f->lower, sp, unit, increase ? "+" : "-", f->margin, sp,
+		    unit, f->alpha, f->family);
+	} else
+		alert_printf(&l, ", p=%.3g, alpha %.3g of %d tests", f->p,
+		    f->alpha, f->family);
 	if (f->untrusted)
 		alert_printf(&l, "; UNTRUSTED: sample ratio mismatch in this "
 		    "epoch");
@@ -245,7 +343,7 @@ alert_summary(const struct finding *f, enum alert_kind kind,
 /* The key=value fields of the syslog line (after "alert raised"). */
 static char *
 alert_fields(const struct finding *f, const char *id, enum alert_kind kind,
-    const char *link)
+    enum alert_sev sev, const char *link, const char *unit)
 {
 	struct alert_line l;
 	char key[PROTO_NAME_MAX + 16];
@@ -254,9 +352,9 @@ alert_fields(const struct finding *f, const char *id, enum alert_kind kind,
 	srm = alert_is_srm(kind);
 	l.len = 0;
 	l.buf[0] = '\0';
-	alert_printf(&l, "id=%s alert=%s experiment=%s epoch=%u guardrail=%s",
-	    id, alert_kinds[kind], f->experiment, f->epoch, f->guardrail ? f->guardrail :
-	    "srm");
+	alert_printf(&l, "id=%s alert=%s severity=%s experiment=%s epoch=%u "
+	    "guardrail=%s", id, alert_kinds[kind], alert_sevs[sev],
+	    f->experiment, f->epoch, f->guardrail ? f->guardrail : "srm");
 	if (!srm) {
 		alert_printf(&l, " metric=%s test=%s variant=%s control=%s "
 		    "harm=%s verdict=%s", f->metric ? f->metric : "-",
@@ -269,6 +367,8 @@ alert_fields(const struct finding *f, const char *id, enum alert_kind kind,
 		alert_num(&l, "rel_estimate", f->rel_estimate);
 		alert_num(&l, "rel_lower", f->rel_lower);
 		alert_num(&l, "rel_upper", f->rel_upper);
+		if (*unit != '\0')
+			alert_printf(&l, " unit=%s", unit);
 	} else {
 		alert_printf(&l, " verdict=srm");
 		alert_num(&l, "chi2_p", f->chi2_p);
@@ -308,6 +408,7 @@ alert_entry_free(struct alert_entry *e)
 	free(e->experiment);
 	free(e->guardrail);
 	free(e->variant);
+	free(e->resolution);
 	free(e->line);
 	json_decref(e->body);
 	free(e);
@@ -332,7 +433,8 @@ alert_remove_at(struct alert *a, size_t i)
 	a->n--;
 }
 
-/* Bounded: past ALERT_MAX the oldest acknowledged alert goes first. */
+/* Bounded: past ALERT_MAX the oldest resolved, then acknowledged, alert
+ * goes first. */
 static void
 alert_insert(struct alert *a, struct alert_entry *e)
 {
@@ -340,6 +442,12 @@ alert_insert(struct alert *a, struct alert_entry *e)
 	int found = 0;
 
 	if (a->n >= ALERT_MAX) {
+		for (i = 0; i < a->n && !found; i++) {
+			if (a->v[i]->state == ALERT_RESOLVED) {
+				victim = i;
+				found = 1;
+			}
+		}
 		for (i = 0; i < a->n && !found; i++) {
 			if (a->v[i]->state == ALERT_ACKED) {
 				victim = i;
@@ -356,55 +464,204 @@ alert_insert(struct alert *a, struct alert_entry *e)
 	a->v[a->n++] = e;
 }
 
-static void
-alert_syslog(struct alert *a, struct alert_entry *e, const char *event)
+/* The event's webhook-id: the alert's id, and one per later event. */
+static char *
+alert_event_id(const struct alert_entry *e, enum alert_ev ev)
 {
-	if (e->reminders > 0 && strcmp(event, "reminder") == 0)
-		syslog(a->facility | e->priority, "alert %s %s reminder=%u",
-		    event, e->line, e->reminders);
-	else
-		syslog(a->facility | e->priority, "alert %s %s", event,
-		    e->line);
-	log_debug("alert %s %s", event, e->line);
+	char *id;
+
+	switch (ev) {
+	case EV_REMINDER:
+		xasprintf(&id, "%s_r%u", e->id, e->reminders);
+		break;
+	case EV_ACKNOWLEDGED:
+		xasprintf(&id, "%s_ack", e->id);
+		break;
+	case EV_RESOLVED:
+		xasprintf(&id, "%s_resolved", e->id);
+		break;
+	default:
+		id = xstrdup(e->id);
+		break;
+	}
+	return id;
 }
 
-json_t *
-alert_raise(struct alert *a, enum alert_kind kind, const struct finding *f,
-    const char *reason, const char **idp)
+/* The webhook body of an event: the raise's body, retyped. */
+static json_t *
+alert_event_body(const struct alert_entry *e, enum alert_ev ev, double now)
+{
+	json_t *body;
+	char *type;
+
+	body = json_deep_copy(e->body);
+	xasprintf(&type, "stopcock.alert.%s", alert_evs[ev]);
+	json_object_set_new(body, "type", json_string(type));
+	free(type);
+	json_object_set_new(body, "reminder", json_integer(e->reminders));
+	if (ev != EV_RAISED)
+		json_object_set_new(body, "sent_at", json_real(now));
+	if (ev == EV_ACKNOWLEDGED)
+		json_object_set_new(body, "acknowledged_at", json_real(now));
+	if (ev == EV_RESOLVED) {
+		json_object_set_new(body, "resolved_at",
+		    json_real(e->resolved_at));
+		json_object_set_new(body, "resolution",
+		    json_string(e->resolution ? e->resolution : "closed"));
+	}
+	return body;
+}
+
+/* The Alertmanager's view of one entry (alertmgr.c formats it). */
+static void
+alert_view(const struct alert_entry *e, struct alert_view *v)
+{
+	json_t *s, *l, *r;
+
+	memset(v, 0, sizeof *v);
+	v->id = e->id;
+	v->kind = alert_kinds[e->kind];
+	v->severity = alert_sevs[e->severity];
+	v->experiment = e->experiment;
+	v->epoch = e->epoch;
+	v->guardrail = e->guardrail;
+	v->variant = e->variant;
+	s = json_object_get(e->body, "summary");
+	l = json_object_get(e->body, "link");
+	r = json_object_get(e->body, "runbook");
+	v->summary = json_is_string(s) ? json_string_value(s) : "";
+	v->link = json_is_string(l) ? json_string_value(l) : NULL;
+	v->runbook = json_is_string(r) ? json_string_value(r) : NULL;
+	v->starts = e->first_seen;
+	v->acked = e->state == ALERT_ACKED;
+}
+
+/*
+ * One event of an alert's life to every output that chose it: syslog
+ * (and stderr in the foreground), the webhook receivers, Alertmanager.
+ */
+static void
+alert_emit(struct alert *a, struct alert_entry *e, enum alert_ev ev)
+{
+	const struct conf *c = a->d->conf;
+	uint32_t need = alert_kind_bits[e->kind] | alert_ev_bits[ev];
+	struct alert_view v;
+	double now = daemon_now();
+	int pri;
+	char *id, more[64] = "";
+	json_t *body;
+
+	if (ev == EV_REMINDER)
+		snprintf(more, sizeof more, " reminder=%u", e->reminders);
+	else if (ev == EV_RESOLVED)
+		snprintf(more, sizeof more, " resolution=%s",
+		    e->resolution ? e->resolution : "closed");
+	if ((c->syslog_kinds & need) == need) {
+		pri = ev == EV_RAISED || ev == EV_REMINDER ? e->priority :
+		    LOG_NOTICE;
+		syslog(a->facility | pri, "alert %s %s%s", alert_evs[ev],
+		    e->line, more);
+		/* In the foreground the logger writes to stderr: the same
+		 * line there, where a container collects it. */
+		if (a->d->log_stderr)
+			log_info("alert %s %s%s", alert_evs[ev], e->line, more);
+	}
+	id = alert_event_id(e, ev);
+	body = alert_event_body(e, ev, now);
+	webhook_send(a->d->webhook, need, id, body);
+	json_decref(body);
+	free(id);
+	if (c->am_url != NULL && (c->am_kinds & need) == need &&
+	    (ev == EV_RAISED || ev == EV_RESOLVED)) {
+		alert_view(e, &v);
+		alertmgr_post(a->d, &v, ev == EV_RESOLVED ? e->resolved_at :
+		    now + 4 * a->am_resend);
+	}
+}
+
+static void
+alert_resolve(struct alert *a, struct alert_entry *e, const char *why)
+{
+	if (e->state == ALERT_RESOLVED)
+		return;
+	e->state = ALERT_RESOLVED;
+	e->resolved_at = daemon_now();
+	free(e->resolution);
+	e->resolution = xstrdup(why);
+	a->resolved++;
+	alert_emit(a, e, EV_RESOLVED);
+}
+
+/*
+ * Resolve the experiment's open alerts of epochs below `below` (all
+ * epochs: UINT32_MAX), except those of kind `keep` (-1: none).
+ */
+static int
+alert_resolve_where(struct alert *a, const char *experiment, uint32_t below,
+    int keep, const char *why)
 {
 	struct alert_entry *e;
-	const char *guardrail, *variant;
+	size_t i;
+	int n = 0;
+
+	for (i = 0; i < a->n; i++) {
+		e = a->v[i];
+		if (e->state == ALERT_RESOLVED || e->epoch >= below ||
+		    (int)e->kind == keep ||
+		    strcmp(e->experiment, experiment) != 0)
+			continue;
+		alert_resolve(a, e, why);
+		n++;
+	}
+	return n;
+}
+
+int
+alert_raise(struct alert *a, enum alert_kind kind, const struct finding *f,
+    const char *reason)
+{
+	const struct conf *c = a->d->conf;
+	struct alert_entry *e;
+	const char *guardrail, *variant, *unit;
 	char id[sizeof e->id], *link, *summary;
 	json_t *body;
 	double now = daemon_now();
+	size_t i;
 
 	guardrail = f->guardrail != NULL ? f->guardrail : "srm";
 	variant = f->variant != NULL ? f->variant : "";
-	*idp = NULL;
 	if (f->experiment == NULL)
-		return NULL;
-	alert_make_id(id, f->experiment, f->epoch, guardrail, variant,
-	    alert_kinds[kind]);
+		return 0;
+	if (kind == ALERT_SAFE && f->untrusted) {
+		/* Untrusted is never good news: nothing is raised. */
+		a->untrusted_safe++;
+		return 0;
+	}
+	alert_make_id(id, f->experiment, f->epoch, isfinite(f->covers_from) ?
+	    f->covers_from : 0, guardrail, variant, alert_kinds[kind]);
 	if (alert_find(a, id) != NULL) {
 		/* Already raised (or acknowledged): never page twice. */
 		a->duplicates++;
-		return NULL;
+		return 0;
 	}
 	e = xcalloc(1, sizeof *e);
 	memcpy(e->id, id, sizeof e->id);
 	e->experiment = xstrdup(f->experiment);
 	e->epoch = f->epoch;
+	e->epoch_start = isfinite(f->covers_from) ? f->covers_from : 0;
 	e->guardrail = xstrdup(guardrail);
 	e->variant = xstrdup(variant);
 	e->kind = kind;
 	e->state = ALERT_RAISED;
+	e->severity = alert_severity(f, kind);
 	e->priority = alert_priority(f, kind);
 	e->first_seen = now;
 	e->last_sent = now;
 
+	unit = alert_is_srm(kind) ? "" : alert_unit(a, f->guardrail);
 	link = alert_link(a, f->experiment);
-	e->line = alert_fields(f, id, kind, link);
-	summary = alert_summary(f, kind, reason);
+	e->line = alert_fields(f, id, kind, e->severity, link, unit);
+	summary = alert_summary(f, kind, reason, unit);
 	if ((body = finding_json(f)) == NULL || !json_is_object(body)) {
 		json_decref(body);
 		body = json_object();
@@ -412,11 +669,18 @@ alert_raise(struct alert *a, enum alert_kind kind, const struct finding *f,
 	json_object_set_new(body, "id", json_string(id));
 	json_object_set_new(body, "type", json_string("stopcock.alert.raised"));
 	json_object_set_new(body, "alert", json_string(alert_kinds[kind]));
+	json_object_set_new(body, "severity",
+	    json_string(alert_sevs[e->severity]));
+	json_object_set_new(body, "epoch_start", json_real(e->epoch_start));
 	json_object_set_new(body, "first_seen", json_real(now));
 	json_object_set_new(body, "summary", json_string(summary));
 	json_object_set_new(body, "untrusted", json_boolean(f->untrusted));
+	if (*unit != '\0')
+		json_object_set_new(body, "unit", json_string(unit));
 	json_object_set_new(body, "link", link ? json_string(link) :
 	    json_null());
+	if (c->runbook != NULL)
+		json_object_set_new(body, "runbook", json_string(c->runbook));
 	json_object_set_new(body, "reminder", json_integer(0));
 	if (reason != NULL)
 		json_object_set_new(body, "reason", json_string(reason));
@@ -426,36 +690,52 @@ alert_raise(struct alert *a, enum alert_kind kind, const struct finding *f,
 
 	alert_insert(a, e);
 	a->raised[kind]++;
-	alert_syslog(a, e, "raised");
-	*idp = e->id;
-	return e->body;
-}
-
-/* A new epoch (a new plan or a reset) retires the earlier epochs' alerts. */
-static void
-alert_clear(struct alert *a, const char *experiment, uint32_t below)
-{
-	size_t i = 0;
-
-	while (i < a->n) {
-		if (strcmp(a->v[i]->experiment, experiment) == 0 &&
-		    a->v[i]->epoch < below)
-			alert_remove_at(a, i);
-		else
-			i++;
+	alert_emit(a, e, EV_RAISED);
+	if (kind == ALERT_SRM) {
+		/* The safe news of this epoch no longer holds. */
+		for (i = 0; i < a->n; i++)
+			if (a->v[i]->kind == ALERT_SAFE &&
+			    a->v[i]->epoch == f->epoch &&
+			    strcmp(a->v[i]->experiment, f->experiment) == 0)
+				alert_resolve(a, a->v[i], "untrusted");
 	}
+	return 1;
 }
 
 void
 alert_epoch(struct alert *a, const char *experiment, uint32_t epoch)
 {
 	if (a != NULL && experiment != NULL)
-		alert_clear(a, experiment, epoch);
+		(void)alert_resolve_where(a, experiment, epoch, -1,
+		    "new_epoch");
 }
 
-int
-alert_ack(struct alert *a, const char *experiment, const char *guardrail,
-    const char *variant, char **cause)
+void
+alert_paused(struct alert *a, const char *experiment)
+{
+	if (a != NULL && experiment != NULL)
+		(void)alert_resolve_where(a, experiment, UINT32_MAX,
+		    ALERT_PAUSE, "paused");
+}
+
+void
+alert_experiment_resolve(struct alert *a, const char *experiment,
+    const char *why)
+{
+	if (a != NULL && experiment != NULL)
+		(void)alert_resolve_where(a, experiment, UINT32_MAX, -1, why);
+}
+
+void
+alert_experiment_reset(struct alert *a, const char *experiment)
+{
+	alert_experiment_resolve(a, experiment, "reset");
+}
+
+/* Acknowledge (close = 0) or close (1) the matching open alerts. */
+static int
+alert_operator(struct alert *a, const char *experiment, const char *guardrail,
+    const char *variant, int close, char **cause)
 {
 	struct alert_entry *e;
 	size_t i;
@@ -463,34 +743,45 @@ alert_ack(struct alert *a, const char *experiment, const char *guardrail,
 
 	for (i = 0; i < a->n; i++) {
 		e = a->v[i];
-		if (e->state != ALERT_RAISED ||
+		if (e->state == ALERT_RESOLVED ||
+		    (!close && e->state != ALERT_RAISED) ||
 		    strcmp(e->experiment, experiment) != 0 ||
 		    (guardrail != NULL && strcmp(e->guardrail, guardrail) != 0) ||
 		    (variant != NULL && *variant != '\0' &&
 		    strcmp(e->variant, variant) != 0))
 			continue;
-		e->state = ALERT_ACKED;
 		n++;
-		syslog(a->facility | LOG_NOTICE, "alert acknowledged id=%s "
-		    "alert=%s experiment=%s epoch=%u guardrail=%s variant=%s",
-		    e->id, alert_kinds[e->kind], e->experiment, e->epoch, e->guardrail,
-		    *e->variant ? e->variant : "-");
+		if (close)
+			alert_resolve(a, e, "closed");
+		else {
+			e->state = ALERT_ACKED;
+			alert_emit(a, e, EV_ACKNOWLEDGED);
+		}
 	}
 	if (n == 0) {
-		xasprintf(cause, "no raised alert for experiment %s guardrail "
-		    "%s variant %s", experiment, guardrail ? guardrail : "*",
-		    variant && *variant ? variant : "*");
+		xasprintf(cause, "no %s alert for experiment %s guardrail "
+		    "%s variant %s", close ? "open" : "raised", experiment,
+		    guardrail ? guardrail : "*", variant && *variant ? variant :
+		    "*");
 		return -1;
 	}
-	a->acked += (uint64_t)n;
+	if (!close)
+		a->acked += (uint64_t)n;
 	return 0;
 }
 
-void
-alert_experiment_reset(struct alert *a, const char *experiment)
+int
+alert_ack(struct alert *a, const char *experiment, const char *guardrail,
+    const char *variant, char **cause)
 {
-	if (a != NULL)
-		alert_clear(a, experiment, UINT32_MAX);
+	return alert_operator(a, experiment, guardrail, variant, 0, cause);
+}
+
+int
+alert_close(struct alert *a, const char *experiment, const char *guardrail,
+    const char *variant, char **cause)
+{
+	return alert_operator(a, experiment, guardrail, variant, 1, cause);
 }
 
 static int
@@ -506,8 +797,6 @@ alert_remind_event(evutil_socket_t fd, short what, void *arg)
 	struct alert *a = arg;
 	struct alert_entry *e;
 	double now = daemon_now();
-	json_t *body;
-	char *id;
 	size_t i;
 
 	for (i = 0; i < a->n; i++) {
@@ -517,19 +806,49 @@ alert_remind_event(evutil_socket_t fd, short what, void *arg)
 		e->reminders++;
 		e->last_sent = now;
 		a->reminders++;
-		alert_syslog(a, e, "reminder");
-		/* A reminder is a new message: its own webhook-id. */
-		xasprintf(&id, "%s_r%u", e->id, e->reminders);
-		body = json_deep_copy(e->body);
-		json_object_set_new(body, "type",
-		    json_string("stopcock.alert.reminder"));
-		json_object_set_new(body, "reminder",
-		    json_integer(e->reminders));
-		json_object_set_new(body, "sent_at", json_real(now));
-		webhook_send(a->d->webhook, id, body);
-		json_decref(body);
-		free(id);
+		alert_emit(a, e, EV_REMINDER);
 	}
+}
+
+/*
+ * Alertmanager forgets an alert at its endsAt: every open alert is sent
+ * again each resend with endsAt four resends ahead, as Prometheus does,
+ * so it holds while it is open and ends soon after a daemon that died.
+ */
+static void
+alert_am_event(evutil_socket_t fd, short what, void *arg)
+{
+	struct alert *a = arg;
+	const struct conf *c = a->d->conf;
+	struct alert_entry *e;
+	struct alert_view v;
+	double ends = daemon_now() + 4 * a->am_resend;
+	size_t i;
+
+	if (c->am_url == NULL)
+		return;
+	for (i = 0; i < a->n; i++) {
+		e = a->v[i];
+		if (e->state == ALERT_RESOLVED ||
+		    (c->am_kinds & alert_kind_bits[e->kind]) == 0)
+			continue;
+		alert_view(e, &v);
+		alertmgr_post(a->d, &v, ends);
+	}
+}
+
+static struct event *
+alert_timer(struct alert *a, double every, event_callback_fn cb)
+{
+	struct timeval tv;
+	struct event *ev;
+
+	tv.tv_sec = (time_t)every;
+	tv.tv_usec = (suseconds_t)((every - (double)tv.tv_sec) * 1e6);
+	ev = event_new(a->d->base, -1, EV_PERSIST, cb, a);
+	if (ev == NULL || event_add(ev, &tv) == -1)
+		fatalx("alert: cannot arm a timer");
+	return ev;
 }
 
 struct alert *
@@ -537,7 +856,6 @@ alert_new(struct daemon *d, char **cause)
 {
 	const struct conf *c = d->conf;
 	struct alert *a;
-	struct timeval tv;
 	double every;
 	int fac;
 
@@ -557,12 +875,11 @@ alert_new(struct daemon *d, char **cause)
 	if (a->remind_every > 0) {
 		every = a->remind_every / 4;
 		every = every < 0.25 ? 0.25 : every > 60 ? 60 : every;
-		tv.tv_sec = (time_t)every;
-		tv.tv_usec = (suseconds_t)((every - (double)tv.tv_sec) * 1e6);
-		a->remind = event_new(d->base, -1, EV_PERSIST,
-		    alert_remind_event, a);
-		if (a->remind == NULL || event_add(a->remind, &tv) == -1)
-			fatalx("alert: cannot arm the reminder timer");
+		a->remind = alert_timer(a, every, alert_remind_event);
+	}
+	if (c->am_url != NULL) {
+		a->am_resend = c->am_resend;
+		a->am_timer = alert_timer(a, a->am_resend, alert_am_event);
 	}
 	return a;
 }
@@ -574,6 +891,8 @@ alert_free(struct alert *a)
 
 	if (a == NULL)
 		return;
+	if (a->am_timer != NULL)
+		event_free(a->am_timer);
 	if (a->remind != NULL)
 		event_free(a->remind);
 	for (i = 0; i < a->n; i++)
@@ -586,22 +905,45 @@ json_t *
 alert_save(struct alert *a)
 {
 	struct alert_entry *e;
-	json_t *list = json_array();
+	json_t *list = json_array(), *o;
 	size_t i;
 
 	for (i = 0; a != NULL && i < a->n; i++) {
 		e = a->v[i];
-		json_array_append_new(list, json_pack("{s:s, s:s, s:I, s:s, "
-		    "s:s, s:s, s:s, s:i, s:f, s:f, s:I, s:s, s:O}",
+		o = json_pack("{s:s, s:s, s:I, s:s, s:s, s:s, s:s, s:i, s:f, "
+		    "s:f, s:I, s:s, s:O, s:s}",
 		    "id", e->id, "experiment", e->experiment, "epoch",
 		    (json_int_t)e->epoch, "guardrail", e->guardrail, "variant",
 		    e->variant, "alert", alert_kinds[e->kind], "state",
-		    e->state == ALERT_RAISED ? "raised" : "acked", "priority",
-		    e->priority, "first_seen", e->first_seen, "last_sent",
-		    e->last_sent, "reminders", (json_int_t)e->reminders,
-		    "line", e->line, "body", e->body));
+		    alert_states[e->state], "priority", e->priority,
+		    "first_seen", e->first_seen, "last_sent", e->last_sent,
+		    "reminders", (json_int_t)e->reminders, "line", e->line,
+		    "body", e->body, "severity", alert_sevs[e->severity]);
+		if (isfinite(e->epoch_start))
+			json_object_set_new(o, "epoch_start",
+			    json_real(e->epoch_start));
+		if (e->state == ALERT_RESOLVED) {
+			json_object_set_new(o, "resolved_at",
+			    json_real(e->resolved_at));
+			json_object_set_new(o, "resolution",
+			    json_string(e->resolution ? e->resolution :
+			    "closed"));
+		}
+		json_array_append_new(list, o);
 	}
 	return json_pack("{s:i, s:o}", "version", 1, "alerts", list);
+}
+
+/* A saved word back to its index in names; -1 when unknown. */
+static int
+alert_word(const char *const *names, int n, const char *w)
+{
+	int i;
+
+	for (i = 0; w != NULL && i < n; i++)
+		if (strcmp(names[i], w) == 0)
+			return i;
+	return -1;
 }
 
 static struct alert_entry *
@@ -613,8 +955,9 @@ alert_restore_one(const json_t *j, char **cause)
 	json_t *body;
 	json_error_t err;
 	char check[sizeof e->id];
-	int priority, kind;
-	double first, last;
+	int priority, kind, st, sev;
+	double first, last, start = NAN;
+	const json_t *o;
 
 	if (json_unpack_ex((json_t *)j, &err, 0, "{s:s, s:s, s:I, s:s, s:s, "
 	    "s:s, s:s, s:i, s:F, s:F, s:I, s:s, s:o}", "id", &id, "experiment",
@@ -625,16 +968,22 @@ alert_restore_one(const json_t *j, char **cause)
 		xasprintf(cause, "alert state: %s", err.text);
 		return NULL;
 	}
+	/* Written before severity and resolution were kept: absent. */
+	o = json_object_get(j, "severity");
+	sev = o == NULL ? -2 : alert_word(alert_sevs, 3, json_string_value(o));
+	if ((o = json_object_get(j, "epoch_start")) != NULL)
+		start = json_is_number(o) ? json_number_value(o) : -1;
 	if (epoch < 1 || epoch > UINT32_MAX || reminders < 0 ||
 	    reminders > UINT32_MAX || (kind = alert_kind_parse(what)) == -1 ||
-	    (strcmp(state, "raised") != 0 && strcmp(state, "acked") != 0) ||
+	    (st = alert_word(alert_states, 3, state)) == -1 || sev == -1 ||
+	    (o != NULL && !(isfinite(start) && start >= 0)) ||
 	    priority < LOG_EMERG || priority > LOG_DEBUG ||
 	    !json_is_object(body) || strlen(line) >= ALERT_LINE_MAX ||
 	    !proto_name_ok(exp, strlen(exp))) {
 		xasprintf(cause, "alert state: bad entry %s", id);
 		return NULL;
 	}
-	alert_make_id(check, exp, (uint32_t)epoch, gr, var, what);
+	alert_make_id(check, exp, (uint32_t)epoch, start, gr, var, what);
 	if (strcmp(check, id) != 0) {
 		xasprintf(cause, "alert state: id %s does not match its "
 		    "identity", id);
@@ -644,10 +993,20 @@ alert_restore_one(const json_t *j, char **cause)
 	memcpy(e->id, check, sizeof e->id);
 	e->experiment = xstrdup(exp);
 	e->epoch = (uint32_t)epoch;
+	e->epoch_start = start;
 	e->guardrail = xstrdup(gr);
 	e->variant = xstrdup(var);
 	e->kind = (enum alert_kind)kind;
-	e->state = strcmp(state, "raised") == 0 ? ALERT_RAISED : ALERT_ACKED;
+	e->state = (enum alert_state)st;
+	e->severity = sev >= 0 ? (enum alert_sev)sev : priority <= LOG_CRIT ?
+	    SEV_CRITICAL : priority <= LOG_WARNING ? SEV_WARNING : SEV_INFO;
+	if (st == ALERT_RESOLVED) {
+		o = json_object_get(j, "resolution");
+		e->resolution = xstrdup(json_is_string(o) ?
+		    json_string_value(o) : "closed");
+		o = json_object_get(j, "resolved_at");
+		e->resolved_at = json_is_number(o) ? json_number_value(o) : 0;
+	}
 	e->priority = priority;
 	e->first_seen = first;
 	e->last_sent = last;
@@ -709,9 +1068,11 @@ alert_json(struct alert *a)
 
 	for (i = 0; a != NULL && i < a->n; i++) {
 		e = a->v[i];
+		if (e->state == ALERT_RESOLVED)
+			continue;	/* kept against repeats, not shown */
 		o = json_deep_copy(e->body);
-		json_object_set_new(o, "state", json_string(e->state ==
-		    ALERT_RAISED ? "raised" : "acked"));
+		json_object_set_new(o, "state", json_string(
+		    alert_states[e->state]));
 		json_object_set_new(o, "last_sent", json_real(e->last_sent));
 		json_object_set_new(o, "reminder", json_integer(e->reminders));
 		json_object_del(o, "type");
@@ -746,6 +1107,12 @@ alert_metrics(struct alert *a, struct evbuffer *b)
 	    "Reminders sent.", a->reminders);
 	metrics_counter(b, "stopcock_alerts_acked_total",
 	    "Alerts acknowledged.", a->acked);
+	metrics_counter(b, "stopcock_alerts_resolved_total", "Alerts resolved "
+	    "(new epoch, reset, pause, retirement or an operator's close).",
+	    a->resolved);
+	metrics_counter(b, "stopcock_alerts_untrusted_safe_total", "Safe "
+	    "verdicts not alerted because SRM made them untrustworthy.",
+	    a->untrusted_safe);
 	metrics_counter(b, "stopcock_alerts_duplicates_total", "Findings that "
 	    "matched an alert already raised (not sent again).",
 	    a->duplicates);

@@ -17,7 +17,9 @@
  *   notify.c    systemd notifications that never block  (notify_*)
  *   dispatch.c  the engine's sink: findings queued, then drained on
  *               the loop to pause, alert and webhooks    (dispatch_*)
- *   alert.c     findings -> alerts: identity, dedupe, syslog (alert_*)
+ *   alert.c     findings -> alerts: identity, lifecycle, severity,
+ *               routing, syslog (alert_*)
+ *   alertmgr.c  alerts in the Alertmanager API's form (alertmgr_*)
  *   webhook.c   signed webhooks over libcurl multi, spooled (webhook_*)
  *   pause.c     auto-pause: rules, audit log, HTTP + Redis delivery (pause_*)
  *   http.c      JSON API, /metrics and the page (libevent http) (http_*)
@@ -103,6 +105,7 @@ struct daemon {
 	double			 last_checkpoint;	/* wall time, 0 never */
 	uint64_t		 checkpoints;
 	int			 draining;	/* SIGTERM seen */
+	int			 log_stderr;	/* -f or -d: the log on stderr */
 
 	/* Fixed at start; see the comment on d->conf. */
 	char			*state_dir;
@@ -226,28 +229,55 @@ enum alert_kind {
 struct alert	*alert_new(struct daemon *, char **cause);
 void		 alert_free(struct alert *);
 /* Raise the alert of this kind for f (reason: the pause's, may be NULL)
- * and write its syslog line. Returns the webhook body (borrowed) and its
- * id, or NULL when that alert was raised before (never page twice). */
-json_t		*alert_raise(struct alert *, enum alert_kind,
-		    const struct finding *, const char *reason,
-		    const char **id);
-/* A new epoch retires the earlier epochs' alerts of the experiment. */
+ * and send it to every output that chose its kind. 1 when raised, 0
+ * when it was raised before (never page twice) or is not news (a safe
+ * verdict under SRM). */
+int		 alert_raise(struct alert *, enum alert_kind,
+		    const struct finding *, const char *reason);
+/* Each of these resolves alerts (a "resolved" event to the outputs):
+ * a new epoch the earlier epochs' alerts, a pause the experiment's
+ * alerts but the pause's own, a reset all of them. */
 void		 alert_epoch(struct alert *, const char *experiment,
 		    uint32_t epoch);
+void		 alert_paused(struct alert *, const char *experiment);
+void		 alert_experiment_reset(struct alert *, const char *experiment);
+/* Every open alert of the experiment, resolution `why` (retire calls it
+ * with "retired"). */
+void		 alert_experiment_resolve(struct alert *,
+		    const char *experiment, const char *why);
+/* An operator acknowledges (reminders stop) or closes (resolves) the
+ * experiment's alerts, of one guardrail and variant when not NULL. */
 int		 alert_ack(struct alert *, const char *experiment,
 		    const char *guardrail, const char *variant, char **cause);
-void		 alert_experiment_reset(struct alert *, const char *experiment);
+int		 alert_close(struct alert *, const char *experiment,
+		    const char *guardrail, const char *variant, char **cause);
 json_t		*alert_save(struct alert *);
 int		 alert_restore(struct alert *, const json_t *, char **cause);
 json_t		*alert_json(struct alert *);	/* raised alerts */
 void		 alert_metrics(struct alert *, struct evbuffer *);
 
+/* alertmgr.c: what an Alertmanager is told of one alert. */
+struct alert_view {
+	const char	*id, *kind, *severity, *experiment, *guardrail;
+	const char	*variant;	/* "" for SRM */
+	const char	*summary, *link, *runbook;	/* link, runbook: NULL */
+	uint32_t	 epoch;
+	double		 starts;	/* wall time it was raised */
+	int		 acked;
+};
+/* POST the alert, ending at `ends` (wall time: ahead while it holds,
+ * its resolution once resolved), to [alertmanager] url. */
+void		 alertmgr_post(struct daemon *, const struct alert_view *,
+		    double ends);
+#define WEBHOOK_ALERTMANAGER "@alertmanager"
+
 /* webhook.c */
 struct webhook	*webhook_new(struct daemon *, char **cause);
 void		 webhook_free(struct webhook *);
-/* Queue body (not stolen) for every receiver; id is the stable
- * webhook-id. */
-void		 webhook_send(struct webhook *, const char *id, json_t *body);
+/* Queue body (not stolen) for every receiver whose kinds hold every bit
+ * of `need` (enum conf_kind); id is the stable webhook-id. */
+void		 webhook_send(struct webhook *, uint32_t need, const char *id,
+		    json_t *body);
 /* Queue body for one receiver by name (pause.c posts to WEBHOOK_PAUSE,
  * the internal receiver built from [pause] url/secret). -1 if unknown. */
 #define WEBHOOK_PAUSE "@pause"

@@ -6,8 +6,8 @@
  * the tick), where the fsyncs of the webhook spool and the pause audit do
  * not belong. A deferred event drains the queue on the next turn of the
  * loop: for each finding it asks the pause policy (pause.c), raises the
- * alert (alert.c) and hands the alert to the webhooks and the pause to
- * its receivers.
+ * alert (alert.c, which sends it to syslog, the webhooks and
+ * Alertmanager) and hands the pause to its receivers.
  *
  * Before anything reads or saves the alert state (a checkpoint, an HTTP
  * request, shutdown), dispatch_drain empties the queue synchronously so
@@ -116,19 +116,13 @@ dispatch_droppable(const struct finding *f)
 	return f->kind == FINDING_VERDICT && f->verdict == VERDICT_SAFE;
 }
 
-/* An alert raised: to the webhooks (alert.c wrote the syslog line). */
+/* An alert raised: alert.c sends it to the outputs that chose it. */
 static void
 dispatch_raise(struct dispatch *ds, enum alert_kind kind,
     const struct finding *f, const char *reason)
 {
-	const char *id;
-	json_t *body;
-
-	if (ds->d->alert == NULL)
-		return;
-	body = alert_raise(ds->d->alert, kind, f, reason, &id);
-	if (body != NULL && ds->d->webhook != NULL)
-		webhook_send(ds->d->webhook, id, body);
+	if (ds->d->alert != NULL)
+		(void)alert_raise(ds->d->alert, kind, f, reason);
 }
 
 /* The pause policy decides; a pause is delivered, then alerted. */
@@ -145,6 +139,9 @@ dispatch_pause(struct dispatch *ds, const struct finding *f)
 	case PAUSE_PAUSED:
 		pause_deliver(ds->d->pause, f, reason);
 		dispatch_raise(ds, ALERT_PAUSE, f, reason);
+		/* Paused, its other alerts are over: the pause's stays. */
+		if (ds->d->alert != NULL)
+			alert_paused(ds->d->alert, f->experiment);
 		break;
 	case PAUSE_DRY_RUN:
 		dispatch_raise(ds, ALERT_PAUSE_DRY_RUN, f, reason);
@@ -173,7 +170,7 @@ dispatch_one(struct dispatch *ds, const struct finding *f)
 		dispatch_pause(ds, f);	/* it pauses only under pause_on_srm */
 		break;
 	case FINDING_UNTRUSTED:
-		dispatch_raise(ds, ALERT_UNTRUSTED, f, NULL);
+		/* Part of the SRM alert just raised, not a second one. */
 		break;
 	case FINDING_PAUSE:
 		dispatch_pause(ds, f);

@@ -9,7 +9,7 @@
  *   GET  /api/health                liveness, uptime, checkpoint age, Redis
  *   GET  /chart/ID/N.svg, srm.svg   chart.c's SVGs of one test / the SRM
  *   GET  /metrics                   Prometheus text format 0.0.4
- *   POST /api/experiments/ID/plan|epoch|reset|ack   operator actions
+ *   POST /api/experiments/ID/plan|epoch|reset|ack|close   operator actions
  *
  * Everything reads the engine's state between events on the loop, so a
  * request never waits for anything: responses are built in memory into
@@ -492,9 +492,10 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 	int narms, rc, exists;
 
 	if (strcmp(action, "plan") != 0 && strcmp(action, "epoch") != 0 &&
-	    strcmp(action, "reset") != 0 && strcmp(action, "ack") != 0) {
+	    strcmp(action, "reset") != 0 && strcmp(action, "ack") != 0 &&
+	    strcmp(action, "close") != 0) {
 		http_error(h, req, 404, "no action \"%.32s\"; actions are "
-		    "plan, epoch, reset and ack", action);
+		    "plan, epoch, reset, ack and close", action);
 		return;
 	}
 	if (evhttp_request_get_command(req) != EVHTTP_REQ_POST) {
@@ -535,11 +536,13 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 		if (g == NULL || (json_object_get(body, "variant") != NULL &&
 		    !json_is_null(json_object_get(body, "variant")) &&
 		    v == NULL)) {
-			cause = xstrdup("ack needs {\"guardrail\": NAME, "
-			    "\"variant\": NAME}");
+			xasprintf(&cause, "%s needs {\"guardrail\": NAME, "
+			    "\"variant\": NAME}", action);
 			rc = -1;
-		} else
+		} else if (strcmp(action, "ack") == 0)
 			rc = alert_ack(d->alert, id, g, v, &cause);
+		else
+			rc = alert_close(d->alert, id, g, v, &cause);
 	}
 	if (rc != 0) {
 		http_error(h, req, 400, "%s: %s", action,

@@ -635,6 +635,7 @@ main(int argc, char **argv)
 		conf_free(d->conf);
 		return SC_EX_OK;
 	}
+	d->log_stderr = d->main->log_stderr;
 	if (log_init(d->conf->syslog_ident != NULL ? d->conf->syslog_ident :
 	    "stopcockd", d->conf->syslog_facility, d->main->log_stderr,
 	    d->main->debug) != 0) {

@@ -77,6 +77,7 @@ struct receiver {
 	size_t			 keylen;
 	int			 sign;
 	int			 internal;	/* not reached by webhook_send */
+	uint32_t		 kinds;		/* what webhook_send brings */
 	double			 timeout;
 	int			 max_attempts;	/* <= 0: unlimited */
 	uint32_t		 queue_max;
@@ -720,7 +721,7 @@ webhook_spool_load(struct receiver *r)
 static int
 webhook_add(struct webhook *w, const char *name, const char *url,
     const char *secret, double timeout, int max_attempts, uint32_t queue,
-    int internal, char **cause)
+    int internal, uint32_t kinds, char **cause)
 {
 	struct daemon *d = w->d;
 	struct receiver *r;
@@ -752,6 +753,7 @@ webhook_add(struct webhook *w, const char *name, const char *url,
 	r->name = xstrdup(name);
 	r->url = xstrdup(url);
 	r->internal = internal;
+	r->kinds = kinds;
 	r->timeout = timeout > 0 ? timeout : WEBHOOK_TIMEOUT;
 	r->max_attempts = max_attempts;
 	r->queue_max = queue > 0 ? queue : WEBHOOK_QUEUE;
@@ -772,6 +774,27 @@ webhook_add(struct webhook *w, const char *name, const char *url,
 		log_warnx("webhook: receiver=%s has no secret, requests are "
 		    "not signed", name);
 	return 0;
+}
+
+/* Alertmanager: unsigned, its API's path, a few attempts each (the
+ * next refresh carries the same alert again). */
+static int
+webhook_alertmanager(struct webhook *w, const struct conf *c, char **cause)
+{
+	char *base, *url;
+	size_t len;
+	int rc;
+
+	base = xstrdup(c->am_url);
+	len = strlen(base);
+	while (len > 0 && base[len - 1] == '/')
+		base[--len] = '\0';
+	xasprintf(&url, "%s/api/v2/alerts", base);
+	free(base);
+	rc = webhook_add(w, WEBHOOK_ALERTMANAGER, url, NULL, 0, 4, 1000, 1, 0,
+	    cause);
+	free(url);
+	return rc;
 }
 
 struct webhook *
@@ -814,14 +837,18 @@ webhook_new(struct daemon *d, char **cause)
 		const struct conf_webhook *cw = &c->webhooks[i];
 
 		if (webhook_add(w, cw->name, cw->url, cw->secret, cw->timeout,
-		    cw->max_attempts, cw->queue, 0, cause) == -1) {
+		    cw->max_attempts, cw->queue, 0, cw->kinds, cause) == -1) {
 			webhook_free(w);
 			return NULL;
 		}
 	}
 	if (c->pause_url != NULL && *c->pause_url != '\0' &&
 	    webhook_add(w, WEBHOOK_PAUSE, c->pause_url, c->pause_secret, 0, 0,
-	    0, 1, cause) == -1) {
+	    0, 1, 0, cause) == -1) {
+		webhook_free(w);
+		return NULL;
+	}
+	if (c->am_url != NULL && webhook_alertmanager(w, c, cause) == -1) {
 		webhook_free(w);
 		return NULL;
 	}
@@ -881,7 +908,7 @@ webhook_dump(json_t *body, size_t *len)
 }
 
 void
-webhook_send(struct webhook *w, const char *id, json_t *body)
+webhook_send(struct webhook *w, uint32_t need, const char *id, json_t *body)
 {
 	char *text;
 	size_t len;
@@ -890,7 +917,7 @@ webhook_send(struct webhook *w, const char *id, json_t *body)
 	if (w == NULL || (text = webhook_dump(body, &len)) == NULL)
 		return;
 	for (i = 0; i < w->nrcv; i++)
-		if (!w->rcv[i]->internal)
+		if (!w->rcv[i]->internal && (w->rcv[i]->kinds & need) == need)
 			webhook_queue(w->rcv[i], id, text, len);
 	free(text);
 }

@@ -64,6 +64,8 @@ dry_run = yes
 [syslog]
 ident = stopcockd-it
 facility = local3
+; safe news too (the default is every kind but safe)
+kinds = harm safe srm pause pause_dry_run reminder acknowledged resolved
 """
 LOCAL3 = 19
 SEV = {"crit": 2, "err": 3, "warning": 4, "notice": 5}

@@ -16,7 +16,8 @@ Every request's Standard Webhooks signature is checked by the receiver
 with Python's hmac/hashlib/base64 (_alertlib.verify, written from the
 specification, independent of the daemon's OpenSSL code). The alert id is
 recomputed here from its documented identity (SHA-256 of experiment,
-epoch, guardrail, variant and kind, NUL-separated).
+epoch, the epoch's start as "%.3f" (read from the API), guardrail,
+variant and kind, NUL-separated).
 """
 import hashlib
 import http.client
@@ -42,10 +43,16 @@ action = alert
 EXP = "pantry_checkout"
 
 
-def alert_id(experiment, epoch, guardrail, variant, kind):
-    ident = b"\0".join(s.encode() for s in
-                       (experiment, str(epoch), guardrail, variant, kind))
+def alert_id(experiment, epoch, start, guardrail, variant, kind):
+    ident = b"\0".join(s.encode() for s in (
+        experiment, str(epoch), "%.3f" % start, guardrail, variant, kind))
     return "sc_" + hashlib.sha256(ident).hexdigest()[:32]
+
+
+def epoch_start(d, experiment):
+    """The current epoch's start (record time), from the API."""
+    e = get_json(d, "/api/experiments/" + experiment)
+    return e["epochs"][-1]["started"]
 
 
 def get_json(d, path):
@@ -79,11 +86,12 @@ url = %s
 secret = %s
 max_attempts = 100
 """ % (ops.url, SECRET, strict.url, SECRET, late_url, SECRET)
-    want_id = alert_id(EXP, 1, "errors", "treatment", "harm")
     late = None
     with Daemon("alerts-webhook", guardrails=GUARDRAILS, extra=extra,
                 udp=False, unix=False, http=True) as d:
         d.send_tcp(harmful_records(EXP, "errors", 3000, 0.02, 0.08, 7))
+        want_id = alert_id(EXP, 1, epoch_start(d, EXP), "errors",
+                           "treatment", "harm")
 
         def delivered(reqs):
             return [r for r in reqs if r["status"] == 200]
