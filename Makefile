@@ -118,7 +118,7 @@ $(BUILD)/tests/%: tests/tools/%.c $(LIBCORE)
 $(BUILD)/tests/kafkamock: tests/tools/kafkamock.c
 	@mkdir -p $(@D)
 	$(CC) $(CPPFLAGS) $(CFLAGS) $(LDFLAGS) -o $@ $< \
-	    $(shell pkg-config --libs rdkafka 2>/dev/null)
+	    $(shell pkg-config --libs rdkafka 2>/dev/null) -lpthread
 
 $(BUILD)/fuzz_%: tests/fuzz/fuzz_%.c $(LIBCORE)
 	@mkdir -p $(@D)

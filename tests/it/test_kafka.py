@@ -31,6 +31,12 @@ failed checkouts on each.
  5. A group whose partition 0 has a committed offset but no state: the
     daemon refuses that partition loudly (logged, counted, not consumed)
     and runs the others.
+ 6. Three daemons on 16 partitions (two seeds): SIGKILLs at random
+    moments and a broker down for 2 s while records flow (5% of the
+    messages carry a bad line); then every experiment lives in one
+    daemon, the union of their tallies equals the produced records
+    exactly, and the records applied and rejected they count per
+    partition equal one `stopcock replay` of the same lines.
  Every /metrics page along the way parses as Prometheus text
  (prometheus_client's parser, an outside reader).
 """
@@ -46,7 +52,7 @@ import time
 
 from prometheus_client.parser import text_string_to_metric_families
 
-from _lib import Tap, Daemon, wait_for, BUILD, OUT
+from _lib import Tap, Daemon, wait_for, replay, BUILD, OUT
 
 KAFKAMOCK = os.path.join(BUILD, "tests", "kafkamock")
 NPART = 8
@@ -66,11 +72,11 @@ EXPS = ["shop_%s" % n for n in (
 class Mock:
     """kafkamock: the cluster, the producer and an offset committer."""
 
-    def __init__(self):
-        self.log = open(os.path.join(OUT, "kafka-mock.log"), "w")
+    def __init__(self, nparts=NPART, name="kafka-mock"):
+        self.log = open(os.path.join(OUT, name + ".log"), "w")
         self.proc = subprocess.Popen(
-            [KAFKAMOCK, "-b", "3", "-t", "rec:%d" % NPART,
-             "-t", "st:%d" % NPART, "-t", "st2:%d" % NPART],
+            [KAFKAMOCK, "-b", "3", "-t", "rec:%d" % nparts,
+             "-t", "st:%d" % nparts, "-t", "st2:%d" % nparts],
             stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=self.log,
             text=True, bufsize=1)
         line = self.proc.stdout.readline().split()
@@ -78,13 +84,15 @@ class Mock:
             raise RuntimeError("kafkamock did not start: %r" % line)
         self.bootstrap = line[1]
         self.sent = 0
+        self.lock = threading.Lock()
 
     def cmd(self, line, payload=()):
-        self.proc.stdin.write(line + "\n")
-        for p in payload:
-            self.proc.stdin.write(p + "\n")
-        self.proc.stdin.flush()
-        return self.proc.stdout.readline().strip()
+        with self.lock:	# the producer thread and the test share it
+            self.proc.stdin.write(line + "\n")
+            for p in payload:
+                self.proc.stdin.write(p + "\n")
+            self.proc.stdin.flush()
+            return self.proc.stdout.readline().strip()
 
     def send(self, key, lines):
         r = self.cmd("msg %s %d" % (key, len(lines)), lines)
@@ -93,6 +101,7 @@ class Mock:
         self.sent += 1
 
     def flush(self):
+        """(delivered, failed) since the start."""
         r = self.cmd("flush").split()
         return int(r[1]), int(r[2])
 
@@ -204,11 +213,13 @@ def tallies(d):
 class Feed:
     """Generated records, counted on the way out as the reference."""
 
-    def __init__(self, mock, seed):
+    def __init__(self, mock, seed, bad_rate=0.0):
         self.mock = mock
         self.rng = random.Random(seed)
         self.want = {}
         self.planned = set()
+        self.bad_rate = bad_rate
+        self.lines = []		# every line sent, for stopcock replay
 
     def message(self, exp):
         lines = []
@@ -226,6 +237,9 @@ class Feed:
             w[0] += 1
             w[1] += k
             w[2] += 1
+        if self.rng.random() < self.bad_rate:	# a variant without a name
+            lines.append("expose %s" % exp)
+        self.lines += lines
         self.mock.send(exp, lines)
 
     def batch(self, n):
@@ -240,6 +254,107 @@ def compare(tap, got, want, name):
     extra = sorted(set(got) - set(want))
     tap.ok(not bad and not extra, name,
            "first differences: %r; unexpected: %r" % (bad[:4], extra[:4]))
+
+
+def chaos(tap, seed, nparts=16):
+    """Three daemons, 16 partitions, SIGKILLs at random moments and a
+    broker down and up while records flow; then the union of the
+    daemons' tallies equals the produced records exactly, and the
+    records and rejections they counted equal one `stopcock replay` of
+    the same lines."""
+    rng = random.Random(seed)
+    mock = Mock(nparts, "kafka-mock-chaos-%d" % seed)
+    ds = []
+    try:
+        feed = Feed(mock, seed=seed, bad_rate=0.05)
+        for i in range(3):
+            ds.append(kafka_daemon("kafka-chaos%d-%d" % (seed, i), mock,
+                                   "chaos", "it-chaos-%d" % i,
+                                   commit_every="300ms"))
+        everything = set(range(nparts))
+
+        def owned_all():
+            ps = [partitions(d) for d in ds]
+            return sum(len(p) for p in ps) == nparts and \
+                set().union(*ps) == everything
+
+        tap.ok(wait_for(owned_all, 60), "seed %d: three daemons share the "
+               "%d partitions" % (seed, nparts))
+
+        # three shops' worth, so every partition carries a few
+        exps = ["%s_%s" % (e, shop) for e in EXPS
+                for shop in ("north", "south", "mill")]
+
+        def paced(n):
+            for i in range(n):
+                feed.message(feed.rng.choice(exps))
+                if i % 20 == 19:
+                    feed.mock.flush()
+                    time.sleep(0.1)
+            feed.mock.flush()
+        producer = threading.Thread(target=paced, args=(1200,))
+        producer.start()
+        kills = 0
+        while producer.is_alive() and kills < 6:
+            time.sleep(rng.uniform(0.5, 2.0))
+            victim = rng.choice(ds)
+            if not victim.alive():
+                continue
+            victim.kill9()
+            kills += 1
+            if kills == 2:	# and a broker goes down for 2 s meanwhile
+                tap.eq(mock.cmd("bounce 2 2000"), "ok", "seed %d: broker 2 "
+                       "down for 2 s" % seed)
+            time.sleep(rng.uniform(0, 1.0))
+            victim.start()
+        producer.join()
+        for d in ds:
+            if not d.alive():
+                d.start()
+        total = mock.sent
+        tap.eq(mock.flush(), (total, 0), "seed %d: all %d messages "
+               "delivered to the cluster (the reference counts them all)"
+               % (seed, total))
+        tap.ok(kills >= 2, "seed %d: %d daemons killed with SIGKILL while "
+               "records flowed" % (seed, kills))
+
+        def counted():
+            return sum(messages(d) for d in ds)
+        if not tap.ok(wait_for(lambda: owned_all() and counted() == total,
+                               120),
+                      "seed %d: the daemons' partitions count the %d "
+                      "messages produced, exactly" % (seed, total),
+                      "counted %r" % counted()):
+            for i, d in enumerate(ds):
+                tap.diag("daemon %d: %s" % (i, " ".join(
+                    "%s{%s}=%g" % (n[15:], ",".join(
+                        "%s" % v for v in l.values()), v)
+                    for n, l, v in metrics(d)
+                    if n in ("stopcock_kafka_partition_offset",
+                             "stopcock_kafka_partition_lag",
+                             "stopcock_kafka_partition_owned"))))
+        union, where = {}, {}
+        for i, d in enumerate(ds):
+            for key, v in tallies(d).items():
+                where.setdefault(key[0], set()).add(i)
+                union[key] = v
+        tap.ok(all(len(w) == 1 for w in where.values()),
+               "seed %d: each experiment lives in one daemon" % seed)
+        compare(tap, union, feed.want, "seed %d: the union of the three "
+                "daemons' tallies equals the produced records" % seed)
+        _, summary = replay(ds[0].conf_path, feed.lines)
+
+        def metric_sum(name):
+            return sum(v for d in ds for n, l, v in metrics(d) if n == name)
+        got = (metric_sum("stopcock_kafka_records_total"),
+               metric_sum("stopcock_kafka_rejected_total"))
+        tap.eq(got, (float(summary["records"]), float(summary["rejected"])),
+               "seed %d: records applied and rejected, per partition and "
+               "summed, equal one stopcock replay of the same lines" % seed)
+    finally:
+        for d in ds:
+            d.close()
+        mock.close()
 
 
 def main():
@@ -400,6 +515,8 @@ def main():
             if d is not None:
                 d.close()
         mock.close()
+    for seed in os.environ.get("STOPCOCK_KAFKA_SEEDS", "1 2").split():
+        chaos(tap, int(seed))
     tap.done()
 
 

@@ -16,6 +16,8 @@
  *                  "ok"
  *   flush          wait for every message; "flushed DELIVERED FAILED"
  *   down ID, up ID take broker ID (1-based) down or up; "ok"
+ *   bounce ID MS   take broker ID down now and up again MS ms later
+ *                  (from a thread, so commands keep flowing); "ok"
  *   commit GROUP PARTITION OFFSET
  *                  commit OFFSET for the first topic's PARTITION in
  *                  GROUP (as a member-less client), with no state: the
@@ -28,6 +30,7 @@
  * partition), acks=all and idempotence.
  */
 #include <errno.h>
+#include <pthread.h>
 #include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -95,6 +98,40 @@ km_flush(rd_kafka_t *p)
 	printf("flushed %llu %llu\n", (unsigned long long)km_delivered,
 	    (unsigned long long)km_failed);
 	fflush(stdout);
+}
+
+struct km_bounce {
+	rd_kafka_mock_cluster_t *mc;
+	int		 broker;
+	int		 ms;
+};
+
+static void *
+km_bounce_run(void *arg)
+{
+	struct km_bounce *b = arg;
+
+	usleep((useconds_t)b->ms * 1000);
+	rd_kafka_mock_broker_set_up(b->mc, b->broker);
+	free(b);
+	return NULL;
+}
+
+static void
+km_bounce(rd_kafka_mock_cluster_t *mc, int broker, int ms)
+{
+	struct km_bounce *b = malloc(sizeof *b);
+	pthread_t t;
+
+	if (b == NULL)
+		km_die("malloc", strerror(errno));
+	b->mc = mc;
+	b->broker = broker;
+	b->ms = ms;
+	rd_kafka_mock_broker_set_down(mc, broker);
+	if (pthread_create(&t, NULL, km_bounce_run, b) != 0)
+		km_die("pthread_create", "failed");
+	pthread_detach(t);
 }
 
 /* Commit an offset for group as a simple (unsubscribed) consumer. */
@@ -227,6 +264,9 @@ main(int argc, char **argv)
 			continue;
 		} else if (sscanf(line, "down %d", &n) == 1) {
 			rd_kafka_mock_broker_set_down(mc, n);
+			printf("ok\n");
+		} else if (sscanf(line, "bounce %d %lld", &n, &offset) == 2) {
+			km_bounce(mc, n, (int)offset);
 			printf("ok\n");
 		} else if (sscanf(line, "up %d", &n) == 1) {
 			rd_kafka_mock_broker_set_up(mc, n);
