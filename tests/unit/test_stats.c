@@ -131,7 +131,7 @@ test_msprt_sequence(void **state)
 	static const double pv[8] = { 1, 1, 1, 0.889265, 0.738934, 0.491809,
 	    0.463443, 0.257295 };
 	double sum = 0, maxl = 0, lo = -INFINITY, hi = INFINITY, V, m, l, hw;
-	char label[128], step[8];
+	char label[128], step[16];
 	int n;
 
 	for (n = 1; n <= 8; n++) {
@@ -240,7 +240,7 @@ test_dm_stream(void **state)
 	    0.533333, 0.609524, 0.761905, 0.507937, 0.609524, 0.775758 };
 	double a[2] = { 1, 1 }, th[2] = { .5, .5 }, x[2], lbf = 0;
 	double c37[2] = { 3, 7 }, a0[2] = { 1, 1 };
-	char label[128], unit[16];
+	char label[128], unit[24];
 	int i;
 
 	for (i = 0; i < 10; i++) {
