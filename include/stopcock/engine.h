@@ -42,7 +42,14 @@ enum finding_kind {
 	FINDING_SRM,		/* sample ratio mismatch established */
 	FINDING_UNTRUSTED,	/* SRM made the experiment's verdicts untrustworthy */
 	FINDING_PAUSE,		/* a pause guardrail reached pause_alpha */
-	FINDING_EPOCH		/* a new plan started an epoch (or a reset) */
+	FINDING_EPOCH,		/* a new plan started an epoch (or a reset) */
+	/* a reload changed a guardrail's test definition (margin, quantile,
+	 * direction, test, metric, plan_units): its evidence starts afresh.
+	 * previous is the verdict it held, reason says what changed; also
+	 * sent, with the last state, when a reload removed the guardrail */
+	FINDING_RESTART,
+	/* the experiment was retired (engine_retire): its last state */
+	FINDING_RETIRED
 };
 
 struct finding_arm {
@@ -167,6 +174,21 @@ int		 engine_new_epoch(struct engine *, const char *experiment,
 int		 engine_reset(struct engine *, const char *experiment,
 		    double now, char **cause);
 
+/*
+ * Retire experiment id at time now (why: "operator", "idle", ...): its
+ * held records are applied and its tests looked at a last time, then
+ * *archive (a new reference) holds its final state:
+ *   {"format": "stopcock-archive", "version": 1, "experiment": ID,
+ *    "retired": TS, "reason": WHY, "state": engine_json_experiment}
+ * A FINDING_RETIRED is emitted and the experiment is freed, its slot
+ * under max_experiments with it. Nothing is written: the caller stores
+ * the archive. 0, or -1 with *cause when there is no such experiment.
+ */
+int		 engine_retire(struct engine *, const char *id, const char *why,
+		    double now, json_t **archive, char **cause);
+/* The experiment idle longest, if no record reached it for idle seconds
+ * before now (engine clock); NULL when none (or idle <= 0). Borrowed. */
+const char	*engine_idle(const struct engine *, double now, double idle);
 void		 engine_counters(const struct engine *,
 		    struct engine_counters *);
 /* Current state of every test, SRM checks included, through cb. */

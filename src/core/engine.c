@@ -740,64 +740,175 @@ engine_set_sink(struct engine *eng, engine_sink sink, void *arg)
 	eng->sink_arg = arg;
 }
 
-static int
-guardrail_same(const struct conf_guardrail *a, const struct conf_guardrail *b)
+/*
+ * What defines a guardrail's test: a reload that changes any of these
+ * restarts the test's evidence; its name is its identity, and its action
+ * only says what harm does, so changing it keeps the evidence. NULL when
+ * the definitions agree, else what changed (for the log and webhooks).
+ */
+static const char *
+guardrail_change(const struct conf_guardrail *a, const struct conf_guardrail *b)
 {
-	return strcmp(a->name, b->name) == 0 &&
-	    strcmp(a->metric, b->metric) == 0 && a->test == b->test &&
-	    a->quantile == b->quantile && a->harm == b->harm &&
-	    a->margin == b->margin && a->margin_relative == b->margin_relative &&
-	    a->action == b->action && a->plan_units == b->plan_units;
+	if (strcmp(a->metric, b->metric) != 0)
+		return "metric changed";
+	if (a->test != b->test)
+		return "test changed";
+	if (a->quantile != b->quantile)
+		return "quantile changed";
+	if (a->harm != b->harm)
+		return "harm direction changed";
+	if (a->margin != b->margin || a->margin_relative != b->margin_relative)
+		return "margin changed";
+	if (a->plan_units != b->plan_units)
+		return "plan_units changed";
+	return NULL;
 }
 
+static int
+guardrail_index(const struct conf *c, const char *name)
+{
+	int k;
+
+	for (k = 0; k < c->nguardrails; k++)
+		if (strcmp(c->guardrails[k].name, name) == 0)
+			return k;
+	return -1;
+}
+
+static void
+test_drop(struct test *t)
+{
+	hist_free(&t->hist);
+	groups_free(t->qg[0]);
+	groups_free(t->qg[1]);
+	t->qg[0] = t->qg[1] = NULL;
+}
+
+/*
+ * Move the tests of e (live or closing) from the old configuration's
+ * guardrails to the new one's, by name. A test whose guardrail is gone is
+ * dropped; one whose definition changed is dropped from a closing epoch
+ * (its evidence would join a test that restarts) and, in the live
+ * experiment, starts afresh in place, its old verdict and the reason left
+ * in prev[] and why[] (indexed like e->tests afterwards) for the caller
+ * to report.
+ */
+static void
+reconf_tests(struct engine *eng, const struct conf *old, struct experiment *e,
+    enum verdict *prev, const char **why)
+{
+	char variant[PROTO_NAME_MAX + 1];
+	const char *change;
+	struct test *t;
+	int j, k, n = 0;
+
+	for (j = 0; j < e->ntests; j++) {
+		t = &e->tests[j];
+		k = guardrail_index(eng->conf, old->guardrails[t->g].name);
+		change = k < 0 ? NULL : guardrail_change(&old->guardrails[t->g],
+		    &eng->conf->guardrails[k]);
+		if (k < 0 || (change != NULL && e->is_closing)) {
+			test_drop(t);
+			continue;
+		}
+		if (n != j)
+			e->tests[n] = *t;
+		t = &e->tests[n];
+		if (prev != NULL) {
+			prev[n] = t->verdict;
+			why[n] = change;
+		}
+		if (change != NULL) {
+			snprintf(variant, sizeof variant, "%s", t->variant);
+			test_drop(t);
+			test_init(t, k, variant);
+			t->dirty = 1;
+		} else
+			t->g = k;
+		n++;
+	}
+	e->ntests = n;
+}
+
+/* A reload may ask for sketches the metrics did not keep. */
+static void
+reconf_metrics(struct engine *eng, struct experiment *e)
+{
+	struct metric *m;
+	int j, k;
+
+	for (j = 0; j < e->nmetrics; j++) {
+		m = &e->metrics[j];
+		engine_metric_needs(eng->conf, m);
+		for (k = 0; m->arm && k < e->narms; k++)
+			if (m->want_sketch && m->arm[k].sk == NULL)
+				m->arm[k].sk = sketch_new(
+				    eng->conf->sketch_accuracy,
+				    eng->conf->sketch_buckets);
+	}
+}
+
+/*
+ * A reload keeps every test whose guardrail keeps its name and test
+ * definition exactly as it was: evidence, verdict, running bounds,
+ * detector, history, the closing epoch's part and the held records. A
+ * changed definition restarts that test alone, reported as a
+ * FINDING_RESTART with the verdict it held; a removed guardrail's test
+ * is reported the same way with its last state, then dropped. Nothing
+ * is dropped without a finding.
+ */
 int
 engine_reconfigure(struct engine *eng, const struct conf *conf, char **cause)
 {
 	struct conf *old = eng->conf;
 	struct experiment *e;
-	struct test *nt;
+	struct finding f;
+	enum verdict *prev;
+	const char **why;
 	uint32_t i;
-	int j, k, ntests;
+	int j, nkept;
 
-	/* closing epochs' tests index the old guardrails: close them first */
-	for (i = 0; i < eng->nexps; i++)
-		closing_retire(eng, eng->exps[i]);
+	/* the last word of tests whose guardrail goes, read under the old
+	 * configuration that still names it */
+	for (i = 0; i < eng->nexps; i++) {
+		e = eng->exps[i];
+		for (j = 0; j < e->ntests; j++) {
+			if (e->tests[j].arm <= 0 || guardrail_index(conf,
+			    old->guardrails[e->tests[j].g].name) >= 0)
+				continue;
+			finding_fill(eng, e, &e->tests[j], FINDING_RESTART, &f);
+			f.reason = "guardrail removed";
+			engine_emit(eng, &f);
+		}
+	}
 	eng->conf = conf_dup(conf);
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
-		/* keep a test only if its guardrail is unchanged */
-		nt = xcalloc((size_t)e->ntests + 1, sizeof *nt);
-		ntests = 0;
-		for (j = 0; j < e->ntests; j++) {
-			const struct conf_guardrail *og =
-			    &old->guardrails[e->tests[j].g];
-			for (k = 0; k < eng->conf->nguardrails; k++)
-				if (guardrail_same(og, &eng->conf->guardrails[k]))
-					break;
-			if (k == eng->conf->nguardrails) {
-				hist_free(&e->tests[j].hist);
-				groups_free(e->tests[j].qg[0]);
-				groups_free(e->tests[j].qg[1]);
-				continue;
-			}
-			nt[ntests] = e->tests[j];
-			nt[ntests++].g = k;
-		}
-		free(e->tests);
-		e->tests = nt;
-		e->ntests = ntests;
-		e->testcap = e->ntests + 1;
-		for (j = 0; j < e->nmetrics; j++) {
-			struct metric *m = &e->metrics[j];
-			engine_metric_needs(eng->conf, m);
-			for (k = 0; m->arm && k < e->narms; k++)
-				if (m->want_sketch && m->arm[k].sk == NULL)
-					m->arm[k].sk = sketch_new(
-					    eng->conf->sketch_accuracy,
-					    eng->conf->sketch_buckets);
-		}
+		prev = xcalloc((size_t)e->ntests + 1, sizeof *prev);
+		why = xcalloc((size_t)e->ntests + 1, sizeof *why);
+		reconf_tests(eng, old, e, prev, why);
+		nkept = e->ntests;
+		reconf_metrics(eng, e);
 		exp_settings(eng, e);
+		if (e->closing != NULL) {
+			reconf_tests(eng, old, e->closing, NULL, NULL);
+			reconf_metrics(eng, e->closing);
+			exp_settings(eng, e->closing);
+			engine_link_tests(eng, e->closing);
+		}
 		exp_ensure_tests(eng, e);
+		/* reported once the test reads the new configuration; a
+		 * test of a variant no longer planned has nothing to say */
+		for (j = 0; j < nkept; j++) {
+			if (why[j] == NULL || e->tests[j].arm <= 0)
+				continue;
+			finding_fill(eng, e, &e->tests[j], FINDING_RESTART, &f);
+			f.previous = prev[j];
+			f.reason = why[j];
+			engine_emit(eng, &f);
+		}
+		free(prev);
+		free(why);
 	}
 	conf_free(old);
 	(void)cause;
@@ -1465,6 +1576,79 @@ int
 engine_reset(struct engine *eng, const char *id, double now, char **cause)
 {
 	return epoch_action(eng, id, now, 1, cause);
+}
+
+/*
+ * Retire an experiment: everything it holds is applied and looked at once
+ * more (as at the end of a replay), its final view goes to the caller as
+ * an archive, a FINDING_RETIRED says so, and it leaves the engine, so its
+ * slot under max_experiments is free. The core writes nothing: the shell
+ * stores the archive.
+ */
+int
+engine_retire(struct engine *eng, const char *id, const char *why, double now,
+    json_t **archive, char **cause)
+{
+	struct experiment *e;
+	struct finding f;
+	uint32_t slot;
+	int j, force = eng->force;
+
+	*archive = NULL;
+	if (nmap_get(eng->index, id, strlen(id), &slot) != 0) {
+		xasprintf(cause, "no experiment %s", id);
+		return -1;
+	}
+	e = eng->exps[slot];
+	eng->now = now;
+	closing_retire(eng, e);
+	align_flush(eng, e);
+	srm_flush(eng, e);
+	eng->force = 1;
+	for (j = 0; j < e->ntests; j++)
+		verdict_evaluate(eng, e, &e->tests[j], 1);
+	eng->force = force;
+	*archive = json_pack("{s:s, s:i, s:s, s:o, s:s, s:o}", "format",
+	    "stopcock-archive", "version", 1, "experiment", e->id, "retired",
+	    finding_num(now), "reason", why != NULL ? why : "operator",
+	    "state", engine_json_experiment(eng, id));
+	finding_fill_srm(eng, e, FINDING_RETIRED, &f);
+	f.reason = why != NULL ? why : "operator";
+	f.ts = now;
+	engine_emit(eng, &f);
+
+	/* the last experiment takes the freed slot */
+	if (eng->recent == e)
+		eng->recent = NULL;
+	nmap_del(eng->index, id, strlen(id));
+	engine_exp_free(e);
+	eng->exps[slot] = eng->exps[--eng->nexps];
+	if (slot < eng->nexps)
+		nmap_put(eng->index, eng->exps[slot]->id,
+		    strlen(eng->exps[slot]->id), slot);
+	eng->counters.experiments = eng->nexps;
+	if (eng->cursor > eng->nexps)
+		eng->cursor = 0;
+	return 0;
+}
+
+/* The experiment that has seen no record for longest, if that is at least
+ * idle seconds before now; NULL when none is. */
+const char *
+engine_idle(const struct engine *eng, double now, double idle)
+{
+	const struct experiment *e, *best = NULL;
+	uint32_t i;
+
+	if (!(idle > 0))
+		return NULL;
+	for (i = 0; i < eng->nexps; i++) {
+		e = eng->exps[i];
+		if (now - e->last_ts >= idle &&
+		    (best == NULL || e->last_ts < best->last_ts))
+			best = e;
+	}
+	return best != NULL ? best->id : NULL;
 }
 
 void

@@ -190,6 +190,10 @@ finding_kind_name(enum finding_kind k)
 		return "pause";
 	case FINDING_EPOCH:
 		return "epoch";
+	case FINDING_RESTART:
+		return "restart";
+	case FINDING_RETIRED:
+		return "retired";
 	}
 	return "unknown";
 }

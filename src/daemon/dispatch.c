@@ -7,7 +7,10 @@
  * not belong. A deferred event drains the queue on the next turn of the
  * loop: for each finding it asks the pause policy (pause.c), raises the
  * alert (alert.c, which sends it to syslog, the webhooks and
- * Alertmanager) and hands the pause to its receivers.
+ * Alertmanager) and hands the pause to its receivers. Two findings are
+ * events, not alerts: a test a reload restarted (stopcock.test.restarted)
+ * and a retired experiment (stopcock.experiment.retired, whose alerts
+ * resolve with it); both are logged and sent to every webhook.
  *
  * Before anything reads or saves the alert state (a checkpoint, an HTTP
  * request, shutdown), dispatch_drain empties the queue synchronously so
@@ -65,6 +68,7 @@ dispatch_copy(const struct finding *f)
 	c->variant = dispatch_strdup(f->variant);
 	c->control = dispatch_strdup(f->control);
 	c->harm = dispatch_strdup(f->harm);
+	c->reason = dispatch_strdup(f->reason);
 	for (i = 0; i < f->narms && i < PROTO_PLAN_MAX; i++)
 		c->arms[i].variant = dispatch_strdup(f->arms[i].variant);
 	return c;
@@ -84,6 +88,7 @@ dispatch_copy_free(struct finding *c)
 	free((char *)c->variant);
 	free((char *)c->control);
 	free((char *)c->harm);
+	free((char *)c->reason);
 	for (i = 0; i < c->narms && i < PROTO_PLAN_MAX; i++)
 		free((char *)c->arms[i].variant);
 	free(c);
@@ -104,6 +109,8 @@ dispatch_wanted(const struct finding *f)
 	case FINDING_UNTRUSTED:
 	case FINDING_PAUSE:
 	case FINDING_EPOCH:
+	case FINDING_RESTART:
+	case FINDING_RETIRED:
 		return 1;
 	}
 	return 0;
@@ -123,6 +130,45 @@ dispatch_raise(struct dispatch *ds, enum alert_kind kind,
 {
 	if (ds->d->alert != NULL)
 		(void)alert_raise(ds->d->alert, kind, f, reason);
+}
+
+/*
+ * An event that is not an alert (a test restarted by a reload, an
+ * experiment retired): logged, and sent to the webhooks as its own type
+ * with an id of its own, so a receiver that deduplicates alerts keeps it.
+ */
+static void
+dispatch_event_send(struct dispatch *ds, const struct finding *f,
+    const char *type)
+{
+	char *s, id[3 + 2 * 16 + 1];
+	json_t *body;
+	int len;
+
+	len = xasprintf(&s, "%s%c%u%c%s%c%s%c%s%c%.6f", f->experiment, 0,
+	    f->epoch, 0, f->guardrail ? f->guardrail : "", 0,
+	    f->variant ? f->variant : "", 0, type, 0, f->ts);
+	memcpy(id, "sc_", 3);
+	digest_sha256_hex(s, (size_t)len, 16, id + 3);
+	free(s);
+	if (ds->d->webhook == NULL)
+		return;
+	body = finding_json(f);
+	json_object_set_new(body, "id", json_string(id));
+	json_object_set_new(body, "type", json_string(type));
+	webhook_send(ds->d->webhook, 0, id, body);
+	json_decref(body);
+}
+
+/* A reload changed a guardrail: its evidence starts afresh. */
+static void
+dispatch_restart(struct dispatch *ds, const struct finding *f)
+{
+	log_warnx("test restarted experiment=%s epoch=%u guardrail=%s variant=%s "
+	    "reason=\"%s\" previous=%s", f->experiment, f->epoch,
+	    f->guardrail ? f->guardrail : "-", f->variant ? f->variant : "-",
+	    f->reason ? f->reason : "-", verdict_name(f->previous));
+	dispatch_event_send(ds, f, "stopcock.test.restarted");
 }
 
 /* The pause policy decides; a pause is delivered, then alerted. */
@@ -174,6 +220,18 @@ dispatch_one(struct dispatch *ds, const struct finding *f)
 		break;
 	case FINDING_PAUSE:
 		dispatch_pause(ds, f);
+		break;
+	case FINDING_RESTART:
+		dispatch_restart(ds, f);
+		break;
+	case FINDING_RETIRED:
+		log_info("experiment retired experiment=%s epoch=%u reason=%s",
+		    f->experiment, f->epoch, f->reason ? f->reason : "-");
+		/* its alerts are over: the experiment is gone */
+		if (ds->d->alert != NULL)
+			alert_experiment_resolve(ds->d->alert, f->experiment,
+			    "retired");
+		dispatch_event_send(ds, f, "stopcock.experiment.retired");
 		break;
 	}
 }

@@ -55,6 +55,9 @@ struct seen {
 	int		 last_untrusted;
 	double		 last_p, last_lower, last_upper, last_est;
 	uint64_t	 last_event;
+	int		 restarts, retired;
+	enum verdict	 restart_previous;
+	char		 restart_reason[64];
 };
 
 static void
@@ -89,6 +92,17 @@ sink(void *arg, const struct finding *f)
 		break;
 	case FINDING_EPOCH:
 		s->epochs++;
+		break;
+	case FINDING_RESTART:
+		s->restarts++;
+		s->restart_previous = f->previous;
+		snprintf(s->restart_reason, sizeof s->restart_reason, "%s",
+		    f->reason ? f->reason : "");
+		snprintf(s->last_guardrail, sizeof s->last_guardrail, "%s",
+		    f->guardrail);
+		break;
+	case FINDING_RETIRED:
+		s->retired++;
 		break;
 	}
 }
@@ -707,6 +721,212 @@ test_reconfigure(void **state)
 	conf_free(c2);
 }
 
+/* The base configuration with up to two edits (from -> to). */
+static struct conf *
+load_edit(const char *from, const char *to, const char *from2,
+    const char *to2)
+{
+	struct conf *c;
+	const char *at;
+	char *text, *next, *cause = NULL;
+
+	at = strstr(base_conf, from);
+	assert_non_null(at);
+	xasprintf(&text, "%.*s%s%s", (int)(at - base_conf), base_conf, to,
+	    at + strlen(from));
+	if (from2 != NULL) {
+		at = strstr(text, from2);
+		assert_non_null(at);
+		xasprintf(&next, "%.*s%s%s", (int)(at - text), text, to2,
+		    at + strlen(from2));
+		free(text);
+		text = next;
+	}
+	if (conf_parse(text, "test.conf", &c, &cause) != 0)
+		fail_msg("config: %s", cause);
+	free(text);
+	return c;
+}
+
+/* The image entry of one test (guardrail x variant), borrowed. */
+static json_t *
+image_test(json_t *image, const char *guardrail)
+{
+	json_t *tests = json_object_get(json_array_get(json_object_get(image,
+	    "experiments"), 0), "tests"), *t;
+	size_t i;
+
+	json_array_foreach(tests, i, t)
+		if (strcmp(json_string_value(json_object_get(t, "guardrail")),
+		    guardrail) == 0)
+			return t;
+	return NULL;
+}
+
+/*
+ * Issue 13, item 1: a reload that leaves every guardrail as it was keeps
+ * the whole state exactly (the verdict, its evidence, the epoch still
+ * closing and the records held for the watermark); one that changes a
+ * margin restarts that guardrail alone and says so with the verdict it
+ * held; one that removes a guardrail says so too. Never a silent drop.
+ */
+static void
+test_reload_keeps_verdicts(void **state)
+{
+	struct fx *fx = *state;
+	gsl_rng *rng = gsl_rng_alloc(gsl_rng_mt19937);
+	struct engine_counters c;
+	struct conf *same, *changed, *removed;
+	char *cause = NULL;
+	json_t *a, *b, *ta, *tb;
+	const char *g;
+	int i, harms;
+
+	gsl_rng_set(rng, 13);
+	feed(fx, "plan r control=50 treatment=50");
+	for (i = 0; i < 50; i++) {
+		feed(fx, "observe r control render_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+		feed(fx, "observe r treatment render_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+	}
+	/* a ramp step: epoch 1 stays open for epoch= records */
+	feed(fx, "plan r control=40 treatment=60");
+	for (i = 0; i < 4000 && fx->seen.harms == 0; i++) {
+		feed(fx, "observe r control render_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+		feed(fx, "observe r treatment render_ms %.4f",
+		    110 + gsl_ran_gaussian(rng, 10));
+	}
+	assert_int_equal(fx->seen.harms, 1);
+	assert_int_equal(feed(fx, "observe r control render_ms 100 epoch=1"),
+	    ENGINE_OK);
+	/* treatment records ahead of the control's wait for the watermark */
+	for (i = 0; i < 5; i++)
+		assert_int_equal(feed(fx, "@%.3f observe r treatment "
+		    "render_ms 111", fx->now + 20), ENGINE_OK);
+	engine_counters(fx->eng, &c);
+	assert_true(c.held > 0);
+
+	same = load(NULL);
+	a = engine_save(fx->eng);
+	assert_int_equal(engine_reconfigure(fx->eng, same, &cause), 0);
+	b = engine_save(fx->eng);
+	assert_true(json_equal(a, b));
+	assert_int_equal(fx->seen.restarts, 0);
+	/* the closing epoch still takes its records */
+	assert_int_equal(feed(fx, "observe r control render_ms 100 epoch=1"),
+	    ENGINE_OK);
+	json_decref(a);
+	json_decref(b);
+
+	/* a new margin on render: that test alone starts afresh */
+	a = engine_save(fx->eng);
+	changed = load_edit("test = mean\n", "test = mean\nmargin = 1\n",
+	    NULL, NULL);
+	assert_int_equal(engine_reconfigure(fx->eng, changed, &cause), 0);
+	b = engine_save(fx->eng);
+	assert_int_equal(fx->seen.restarts, 1);
+	assert_string_equal(fx->seen.last_guardrail, "render");
+	assert_int_equal(fx->seen.restart_previous, VERDICT_HARM);
+	assert_string_equal(fx->seen.restart_reason, "margin changed");
+	assert_int_equal(json_integer_value(json_object_get(image_test(b,
+	    "render"), "verdict")), VERDICT_UNDECIDED);
+	for (i = 0; i < 3; i++) {
+		g = (const char *[]){ "p99", "errors", "crashes" }[i];
+		ta = image_test(a, g);
+		tb = image_test(b, g);
+		assert_non_null(ta);
+		assert_non_null(tb);
+		assert_true(json_equal(ta, tb));
+	}
+	json_decref(a);
+	json_decref(b);
+	/* the new evidence decides: still +10 ms, beyond a 1 ms margin */
+	harms = fx->seen.harms;
+	for (i = 0; i < 4000 && fx->seen.harms == harms; i++) {
+		feed(fx, "observe r control render_ms %.4f",
+		    100 + gsl_ran_gaussian(rng, 10));
+		feed(fx, "observe r treatment render_ms %.4f",
+		    110 + gsl_ran_gaussian(rng, 10));
+	}
+	assert_int_equal(fx->seen.harms, harms + 1);
+
+	/* a removed guardrail: its last state is reported, then it goes */
+	removed = load_edit("test = mean\n", "test = mean\nmargin = 1\n",
+	    "[guardrail crashes]\nmetric = crashes\ntest = rate\n", "");
+	assert_int_equal(engine_reconfigure(fx->eng, removed, &cause), 0);
+	assert_int_equal(fx->seen.restarts, 2);
+	assert_string_equal(fx->seen.last_guardrail, "crashes");
+	assert_string_equal(fx->seen.restart_reason, "guardrail removed");
+	a = engine_save(fx->eng);
+	assert_null(image_test(a, "crashes"));
+	json_decref(a);
+	conf_free(same);
+	conf_free(changed);
+	conf_free(removed);
+	gsl_rng_free(rng);
+}
+
+/*
+ * Issue 13, item 4: with max_experiments = 3 a fourth experiment is
+ * refused until one is retired; the retired one comes back whole as an
+ * archive (its exposures, its held records applied), says so in a
+ * finding, and is gone (its records are unplanned again).
+ */
+static void
+test_retire(void **state)
+{
+	struct fx *fx = *state;
+	json_t *archive = NULL, *st;
+	char *cause = NULL;
+	int i;
+
+	assert_int_equal(feed(fx, "plan a control=50 treatment=50"), 0);
+	assert_int_equal(feed(fx, "plan b control=50 treatment=50"), 0);
+	assert_int_equal(feed(fx, "plan c control=50 treatment=50"), 0);
+	assert_int_equal(feed(fx, "plan d control=50 treatment=50"),
+	    ENGINE_E_EXPERIMENTS);
+	for (i = 0; i < 10; i++)
+		feed(fx, "expose b %s", i % 2 ? "control" : "treatment");
+	/* waiting for the control's records to catch up */
+	assert_int_equal(feed(fx, "@%.3f observe b treatment render_ms 7",
+	    fx->now + 20), 0);
+	assert_int_equal(engine_retire(fx->eng, "nope", NULL, fx->now,
+	    &archive, &cause), -1);
+	assert_null(archive);
+	assert_non_null(cause);
+	free(cause);
+	assert_int_equal(engine_retire(fx->eng, "b", "operator", fx->now,
+	    &archive, &cause), 0);
+	assert_int_equal(fx->seen.retired, 1);
+	assert_string_equal(json_string_value(json_object_get(archive,
+	    "format")), "stopcock-archive");
+	assert_string_equal(json_string_value(json_object_get(archive,
+	    "experiment")), "b");
+	st = json_object_get(archive, "state");
+	assert_string_equal(json_string_value(json_object_get(st, "id")), "b");
+	assert_int_equal(json_integer_value(json_object_get(json_array_get(
+	    json_object_get(st, "arms"), 1), "exposures")), 5);
+	json_decref(archive);
+	/* the held record was applied before the archive was taken */
+	{
+		struct engine_counters c;
+		engine_counters(fx->eng, &c);
+		assert_int_equal(c.held, 0);
+		assert_int_equal(c.experiments, 2);
+	}
+	assert_int_equal(feed(fx, "expose b control"), ENGINE_E_UNPLANNED);
+	assert_int_equal(feed(fx, "plan d control=50 treatment=50"), 0);
+	assert_int_equal(feed(fx, "expose a control"), 0);
+	assert_int_equal(feed(fx, "expose c control"), 0);
+	assert_int_equal(feed(fx, "expose d control"), 0);
+	/* idle: the one no record reached for longest */
+	assert_null(engine_idle(fx->eng, fx->now, 0));
+	assert_null(engine_idle(fx->eng, fx->now, 3600));
+	assert_string_equal(engine_idle(fx->eng, fx->now + 3600, 3600), "a");
+}
+
 /* A guardrail's own plan_units tunes its mixture, not the default's: the
  * same data give a different confidence sequence, and the tuning the
  * experiment reports names the guardrail's value. */
@@ -956,6 +1176,9 @@ main(void)
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_reconfigure, setup,
 		    teardown),
+		cmocka_unit_test_setup_teardown(test_reload_keeps_verdicts,
+		    setup, teardown),
+		cmocka_unit_test_setup_teardown(test_retire, setup, teardown),
 		cmocka_unit_test_setup_teardown(test_guardrail_plan_units,
 		    setup, teardown),
 		cmocka_unit_test(test_quantile_outliers),
