@@ -148,11 +148,15 @@ const struct conf_option conf_options[] = {
 	  "name" },
 	{ S_REDIS, "dead_letter", T_WORD, C(redis_dead_letter), 0,
 	  CONF_STRING_MAX, 0, "stopcock:dead", NULL,
-	  "stream for entries that failed max_deliveries times" },
+	  "stream for entries the daemon could not apply (no records field, "
+	  "or max_deliveries deaths while applying them)" },
 	{ S_REDIS, "max_deliveries", T_U32, C(redis_max_deliveries), 1, 1000,
-	  0, "5", NULL, "deliveries before an entry is dead-lettered" },
+	  0, "5", NULL, "times the daemon may die while applying an entry "
+	  "(counted by the daemon itself, not Redis's delivery count) before "
+	  "the entry is dead-lettered" },
 	{ S_REDIS, "claim_idle", T_DURATION, C(redis_claim_idle), 1, 86400,
-	  0, "60s", NULL, "claim pending entries idle this long" },
+	  0, "60s", NULL, "claim other consumers' pending entries idle this "
+	  "long (never the daemon's own)" },
 	{ S_REDIS, "batch", T_U32, C(redis_batch), 1, 100000, 0, "256", NULL,
 	  "entries per read" },
 	{ S_REDIS, "block", T_DURATION, C(redis_block), 0.01, 300, 0, "2s",
