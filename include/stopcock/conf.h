@@ -196,6 +196,9 @@ const struct conf_guardrail *conf_guardrail_for(const struct conf *,
 const struct conf_experiment *conf_experiment_find(const struct conf *,
 		    const char *id);
 const char	*conf_test_name(enum conf_test);
+/* What stopcockd needs beyond conf_load: an input and a state
+ * directory. 0, or -1 and *cause (stopcockd -t and check-config). */
+int		 conf_check_daemon(const struct conf *, char **cause);
 /* A deep copy (the engine keeps its own); free with conf_free. */
 struct conf	*conf_dup(const struct conf *);
 

@@ -10,6 +10,10 @@
 #include "stopcock/util.h"
 #include "cli.h"
 
+#ifndef STOPCOCK_VERSION
+#define STOPCOCK_VERSION "0.1.0"
+#endif
+
 static const struct {
 	const char	*name;
 	int		(*fn)(int, char **);
@@ -59,9 +63,12 @@ cmd_check_config(int argc, char **argv)
 	}
 	if (argc == 2)
 		path = argv[1];
-	if (conf_load(path, &conf, &cause) != 0) {
-		fprintf(stderr, "%s\n", cause);
+	/* The daemon's own check too: what stopcockd -t refuses. */
+	if (conf_load(path, &conf, &cause) != 0 ||
+	    conf_check_daemon(conf, &cause) != 0) {
+		fprintf(stderr, "%s\nconfiguration has errors\n", cause);
 		free(cause);
+		conf_free(conf);
 		return SC_EX_CONFIG;
 	}
 	printf("configuration OK: %d guardrails, %d planned experiments\n",
@@ -78,6 +85,11 @@ main(int argc, char **argv)
 	if (argc < 2) {
 		usage(stderr);
 		return SC_EX_USAGE;
+	}
+	if (strcmp(argv[1], "--version") == 0 ||
+	    strcmp(argv[1], "version") == 0) {
+		printf("stopcock %s\n", STOPCOCK_VERSION);
+		return SC_EX_OK;
 	}
 	if (strcmp(argv[1], "-h") == 0 || strcmp(argv[1], "--help") == 0 ||
 	    strcmp(argv[1], "help") == 0) {

@@ -297,6 +297,7 @@ cmd_replay(int argc, char **argv)
 	struct conf *conf;
 	uint8_t key[16] = { 0 };
 	char *cause = NULL;
+	struct stat st;
 	FILE *in;
 	int ch, rc;
 
@@ -327,6 +328,15 @@ cmd_replay(int argc, char **argv)
 	}
 	if (argc - optind == 1)
 		inpath = argv[optind];
+	/* A report directory that is not there fails now, not after the
+	 * whole replay. */
+	errno = 0;
+	if (report != NULL && (stat(report, &st) != 0 || !S_ISDIR(st.st_mode) ||
+	    access(report, W_OK) != 0)) {
+		fprintf(stderr, "stopcock: --report %s: %s\n", report,
+		    errno != 0 ? strerror(errno) : "not a directory");
+		return SC_EX_USAGE;
+	}
 	if (conf_load(confpath, &conf, &cause) != 0) {
 		fprintf(stderr, "%s\n", cause);
 		free(cause);

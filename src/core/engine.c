@@ -1651,49 +1651,58 @@ engine_idle(const struct engine *eng, double now, double idle)
 	return best != NULL ? best->id : NULL;
 }
 
+/* Memory one experiment holds (a closing epoch is counted apart). */
+static size_t
+exp_bytes(const struct experiment *e)
+{
+	size_t bytes;
+	int j, k;
+
+	bytes = (size_t)e->srm_slots * (size_t)e->narms * sizeof *e->srm_ring;
+	for (j = 0; j < e->ntests; j++)
+		for (k = 0; k < 2; k++)
+			if (e->tests[j].qg[k] != NULL)
+				bytes += sizeof(struct groups) +
+				    e->tests[j].qg[k]->G * 16;
+	bytes += sizeof *e + (size_t)e->nmetrics * sizeof *e->metrics +
+	    (size_t)e->testcap * sizeof *e->tests +
+	    (e->epochs ? ENGINE_EPOCHS_KEPT * sizeof *e->epochs : 0) +
+	    e->srm_hist.cap * sizeof(struct hist_point);
+	for (j = 0; j < e->nmetrics; j++) {
+		if (e->metrics[j].arm == NULL)
+			continue;
+		bytes += (size_t)e->narms * sizeof(struct series);
+		for (k = 0; k < e->narms; k++) {
+			bytes += (size_t)e->metrics[j].arm[k].hq.cap *
+			    sizeof(struct held);
+			if (e->metrics[j].arm[k].sk)
+				bytes += sketch_bytes(e->metrics[j].arm[k].sk);
+			if (e->metrics[j].arm[k].grp)
+				bytes += sizeof(struct groups) +
+				    e->metrics[j].arm[k].grp->G * 16;
+		}
+	}
+	for (j = 0; j < e->ntests; j++)
+		bytes += e->tests[j].hist.cap * sizeof(struct hist_point);
+	return bytes;
+}
+
 void
 engine_counters(const struct engine *eng, struct engine_counters *c)
 {
-	const struct experiment *e;
 	uint32_t i;
-	int j, k;
 	size_t bytes = sizeof *eng + nmap_bytes(eng->index) +
 	    eng->capexps * sizeof *eng->exps;
 	uint64_t tests = 0, held = 0;
 
 	for (i = 0; i < eng->nexps; i++) {
-		e = eng->exps[i];
-		bytes += (size_t)e->srm_slots * (size_t)e->narms *
-		    sizeof *e->srm_ring;
-		for (j = 0; j < e->ntests; j++)
-			for (k = 0; k < 2; k++)
-				if (e->tests[j].qg[k] != NULL)
-					bytes += sizeof(struct groups) +
-					    e->tests[j].qg[k]->G * 16;
-		bytes += sizeof *e + (size_t)e->nmetrics * sizeof *e->metrics +
-		    (size_t)e->testcap * sizeof *e->tests +
-		    (e->epochs ? ENGINE_EPOCHS_KEPT * sizeof *e->epochs : 0) +
-		    e->srm_hist.cap * sizeof(struct hist_point);
-		for (j = 0; j < e->nmetrics; j++) {
-			if (e->metrics[j].arm == NULL)
-				continue;
-			bytes += (size_t)e->narms * sizeof(struct series);
-			for (k = 0; k < e->narms; k++) {
-				bytes += (size_t)e->metrics[j].arm[k].hq.cap *
-				    sizeof(struct held);
-				if (e->metrics[j].arm[k].sk)
-					bytes += sketch_bytes(
-					    e->metrics[j].arm[k].sk);
-				if (e->metrics[j].arm[k].grp)
-					bytes += sizeof(struct groups) +
-					    e->metrics[j].arm[k].grp->G * 16;
-			}
-		}
-		for (j = 0; j < e->ntests; j++)
-			bytes += e->tests[j].hist.cap *
-			    sizeof(struct hist_point);
-		tests += (uint64_t)e->ntests;
-		held += e->held;
+		bytes += exp_bytes(eng->exps[i]);
+		if (eng->exps[i]->closing != NULL)
+			bytes += exp_bytes(eng->exps[i]->closing);
+		tests += (uint64_t)eng->exps[i]->ntests;
+		held += eng->exps[i]->held;
+		if (eng->exps[i]->closing != NULL)
+			held += eng->exps[i]->closing->held;
 	}
 	*c = eng->counters;
 	c->held = held;

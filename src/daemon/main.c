@@ -33,6 +33,10 @@
 #include "stopcock/log.h"
 #include "daemon.h"
 
+#ifndef STOPCOCK_VERSION
+#define STOPCOCK_VERSION "0.1.0"
+#endif
+
 #define DAEMON_CONF "/etc/stopcock/stopcock.conf"
 #define DAEMON_STATUS_EVERY 5	/* seconds between STATUS= lines */
 #define DAEMON_NSIGNALS 4	/* daemon_signals */
@@ -109,15 +113,24 @@ daemon_engine_replace(struct daemon *d, struct engine *e)
 	engine_free(old);
 }
 
+static void
+daemon_options(FILE *fp)
+{
+	fprintf(fp, "usage: stopcockd [-dfht] [-c file] | --version\n"
+	    "  -c file    configuration (default " DAEMON_CONF ")\n"
+	    "  -d         log to stderr, debug lines included\n"
+	    "  -f         log (and alert lines) to stderr instead of "
+	    "syslog;\n"
+	    "             alerts still go to syslog as configured\n"
+	    "  -h         this help and every configuration key\n"
+	    "  -t         check the configuration and exit\n"
+	    "  --version  print the version and exit\n");
+}
+
 static void SC_NORETURN
 daemon_usage(void)
 {
-	fprintf(stderr, "usage: stopcockd [-dfht] [-c file]\n"
-	    "  -c file  configuration (default " DAEMON_CONF ")\n"
-	    "  -d       log to stderr, debug lines included\n"
-	    "  -f       log to stderr instead of syslog\n"
-	    "  -h       this help and every configuration key\n"
-	    "  -t       check the configuration and exit\n");
+	daemon_options(stderr);
 	exit(SC_EX_USAGE);
 }
 
@@ -143,18 +156,7 @@ daemon_fatal(struct daemon *d, int code, const char *fmt, ...)
 static int
 daemon_check(const struct conf *conf, char **cause)
 {
-	if (daemon_inputs(conf) == 0) {
-		xasprintf(cause, "%s: no input: set at least one of [daemon] "
-		    "tcp, udp, unix, [redis] address or [kafka] brokers",
-		    conf->path != NULL ? conf->path : "configuration");
-		return -1;
-	}
-	if (conf->state_dir == NULL || *conf->state_dir == '\0') {
-		xasprintf(cause, "%s: [daemon] state is required",
-		    conf->path != NULL ? conf->path : "configuration");
-		return -1;
-	}
-	return 0;
+	return conf_check_daemon(conf, cause);
 }
 
 /* Log a multi-line cause one line at a time. */
@@ -592,6 +594,10 @@ main(int argc, char **argv)
 	memset(d, 0, sizeof *d);
 	memset(&dmain, 0, sizeof dmain);
 	d->main = &dmain;
+	if (argc == 2 && strcmp(argv[1], "--version") == 0) {
+		printf("stopcockd %s\n", STOPCOCK_VERSION);
+		return SC_EX_OK;
+	}
 	while ((ch = getopt(argc, argv, "c:dfht")) != -1) {
 		switch (ch) {
 		case 'c':
@@ -607,8 +613,8 @@ main(int argc, char **argv)
 			d->main->log_stderr = 1;
 			break;
 		case 'h':
-			printf("usage: stopcockd [-dfht] [-c file]\n\n"
-			    "configuration keys:\n");
+			daemon_options(stdout);
+			printf("\nconfiguration keys:\n");
 			conf_help(stdout);
 			return SC_EX_OK;
 		case 't':
