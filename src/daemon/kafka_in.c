@@ -1243,6 +1243,30 @@ kafka_in_free(struct kafka_in *k)
 
 /* ---- seeing it ---- */
 
+json_t *
+kafka_in_json(struct kafka_in *k)
+{
+	json_t *parts = json_array(), *exps, *v;
+	struct kafka_part *p;
+	const char *id;
+	int32_t i;
+
+	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++) {
+		if ((p = k->parts[i]) == NULL)
+			continue;
+		exps = json_array();
+		json_object_foreach(p->keys, id, v)
+			json_array_append_new(exps, json_string(id));
+		json_array_append_new(parts, json_pack("{s:i, s:s, s:I, s:I, "
+		    "s:o}", "partition", (int)p->id, "state",
+		    kafka_pstate_names[p->state], "read", (json_int_t)p->next,
+		    "committed", (json_int_t)p->committed, "experiments",
+		    exps));
+	}
+	return json_pack("{s:s, s:s, s:o}", "topic", k->topic, "group",
+	    k->group, "partitions", parts);
+}
+
 #define KAFKA_EACH(k, p, i) \
 	for ((i) = 0; (i) < KAFKA_PARTITIONS_MAX; (i)++) \
 		if (((p) = (k)->parts[(i)]) != NULL)

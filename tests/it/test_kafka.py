@@ -428,6 +428,13 @@ def main():
         eb = {e for e, _ in tb}
         tap.ok(ea and eb and not (ea & eb), "each experiment lives in one "
                "daemon only", "both: %r" % sorted(ea & eb))
+        for name, d, es in (("first", a, ea), ("second", b, eb)):
+            k = json.loads(get(d, "/api/health")[1])["kafka"]
+            tap.eq(({p["partition"] for p in k["partitions"]},
+                    {e for p in k["partitions"] for e in p["experiments"]}),
+                   (partitions(d), es), "the %s daemon's /api/health names "
+                   "the partitions it owns and exactly the experiments it "
+                   "tests" % name)
         union = dict(ta)
         union.update(tb)
         compare(tap, union, feed.want, "the union of the two daemons' "
