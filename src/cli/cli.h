@@ -11,5 +11,6 @@ int	cmd_check_config(int, char **);	/* main.c */
 int	cmd_simulate(int, char **);	/* simulate.c */
 int	cmd_generate(int, char **);	/* generate.c */
 int	cmd_status(int, char **);	/* status.c */
+int	cmd_retire(int, char **);	/* action.c */
 
 #endif

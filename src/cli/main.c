@@ -26,6 +26,8 @@ static const struct {
 	{ "generate", cmd_generate,
 	  "write a synthetic record stream (demo and benchmarks)" },
 	{ "status", cmd_status, "show a running daemon's experiments" },
+	{ "retire", cmd_retire,
+	  "archive an experiment and free its slot on a running daemon" },
 	{ "check-config", cmd_check_config,
 	  "validate a configuration file" },
 };

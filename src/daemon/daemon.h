@@ -159,6 +159,11 @@ void		 metrics_gauge(struct evbuffer *, const char *name,
 void		 metrics_label(struct evbuffer *, const char *key,
 		    const char *value, int first);
 
+/* retire.c: archive experiment id's final state in the state directory
+ * and let the engine forget it; *path: the archive (caller frees). */
+int		 retire_experiment(struct daemon *, const char *id,
+		    const char *why, char **path, char **cause);
+
 /* durable.c: whole-or-nothing files (tmp, fsync, rename, fsync dir). */
 int		 durable_write(const char *dir, const char *path,
 		    const char *const *parts, const size_t *lens, int nparts,
@@ -214,9 +219,6 @@ struct kafka_in	*kafka_in_new(struct daemon *, char **cause);
 void		 kafka_in_free(struct kafka_in *);
 void		 kafka_in_stop(struct kafka_in *);
 void		 kafka_in_metrics(struct kafka_in *, struct evbuffer *);
-/* {"topic", "group", "partitions": [{"partition", "state", "read",
- *  "committed", "experiments": [ID...]}]}: what this daemon owns. */
-json_t		*kafka_in_json(struct kafka_in *);
 
 /* alert.c */
 enum alert_kind {

@@ -9,7 +9,8 @@
  *   GET  /api/health                liveness, uptime, checkpoint age, Redis
  *   GET  /chart/ID/N.svg, srm.svg   chart.c's SVGs of one test / the SRM
  *   GET  /metrics                   Prometheus text format 0.0.4
- *   POST /api/experiments/ID/plan|epoch|reset|ack|close   operator actions
+ *   POST /api/experiments/ID/plan|epoch|reset|ack|close|retire   operator
+ *                                   actions
  *
  * Everything reads the engine's state between events on the loop, so a
  * request never waits for anything: responses are built in memory into
@@ -378,8 +379,6 @@ http_health_get(struct http *h, struct evhttp_request *req)
 	    "series", (json_int_t)c.series,
 	    "tests", (json_int_t)c.tests,
 	    "bytes", (json_int_t)c.bytes);
-	if (d->kafka != NULL)
-		json_object_set_new(j, "kafka", kafka_in_json(d->kafka));
 	http_json(h, req, 200, j);
 }
 
@@ -491,13 +490,15 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 	const char *g, *v;
 	json_t *body = NULL;
 	char *cause = NULL;
+	char *archive = NULL;
 	int narms, rc, exists;
 
 	if (strcmp(action, "plan") != 0 && strcmp(action, "epoch") != 0 &&
 	    strcmp(action, "reset") != 0 && strcmp(action, "ack") != 0 &&
-	    strcmp(action, "close") != 0) {
+	    strcmp(action, "close") != 0 &&
+	    strcmp(action, "retire") != 0) {
 		http_error(h, req, 404, "no action \"%.32s\"; actions are "
-		    "plan, epoch, reset, ack and close", action);
+		    "plan, epoch, reset, ack, close and retire", action);
 		return;
 	}
 	if (evhttp_request_get_command(req) != EVHTTP_REQ_POST) {
@@ -517,7 +518,9 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 		return;
 	}
 
-	if (strcmp(action, "plan") == 0) {
+	if (strcmp(action, "retire") == 0) {
+		rc = retire_experiment(d, id, "operator", &archive, &cause);
+	} else if (strcmp(action, "plan") == 0) {
 		if ((body = http_body_json(h, req)) == NULL)
 			return;
 		rc = http_plan_arms(body, arms, &narms, &cause);
@@ -556,8 +559,12 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 	h->actions++;
 	log_info("http: %s experiment=%s", action, id);
 	json_decref(body);
-	http_json(h, req, 200, json_pack("{s:b, s:s, s:s}", "ok", 1,
-	    "experiment", id, "action", action));
+	body = json_pack("{s:b, s:s, s:s}", "ok", 1, "experiment", id,
+	    "action", action);
+	if (archive != NULL)
+		json_object_set_new(body, "archive", json_string(archive));
+	free(archive);
+	http_json(h, req, 200, body);
 }
 
 /* ---- /metrics ---- */

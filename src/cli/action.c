@@ -1,0 +1,211 @@
+/*
+ * action.c: operator actions on a running daemon from the command line,
+ * so nobody needs curl and a JSON body: `stopcock retire EXP` POSTs
+ * /api/experiments/EXP/retire with the bearer token and prints what the
+ * daemon answered (the archive it wrote). The daemon's address and token
+ * come from --url/--token, else $STOPCOCK_URL/$STOPCOCK_TOKEN, else the
+ * [daemon] http and http_token of the configuration file given with -c.
+ */
+#include <getopt.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include <curl/curl.h>
+#include <jansson.h>
+
+#include "stopcock/conf.h"
+#include "stopcock/util.h"
+#include "cli.h"
+
+#define ACTION_URL	"http://127.0.0.1:7721"
+#define ACTION_BODY_MAX	(1024u * 1024)	/* bytes of an answer we keep */
+#define ACTION_TIMEOUT	30L		/* seconds */
+
+struct action_buf {
+	char	*p;
+	size_t	 len;
+};
+
+static size_t
+action_write(char *data, size_t size, size_t n, void *arg)
+{
+	struct action_buf *b = arg;
+	size_t len = size * n;
+
+	if (b->len + len > ACTION_BODY_MAX)
+		return 0;
+	b->p = xreallocarray(b->p, b->len + len + 1, 1);
+	memcpy(b->p + b->len, data, len);
+	b->len += len;
+	b->p[b->len] = '\0';
+	return len;
+}
+
+/* POST an empty JSON object to url with the token; 0 with the HTTP
+ * status in *code and the answer in *b, or -1 with *cause. */
+static int
+action_post(const char *url, const char *token, struct action_buf *b,
+    long *code, char **cause)
+{
+	char err[CURL_ERROR_SIZE] = "", *auth;
+	struct curl_slist *hdr = NULL;
+	CURLcode rc;
+	CURL *c;
+
+	if ((c = curl_easy_init()) == NULL) {
+		*cause = xstrdup("cannot start libcurl");
+		return -1;
+	}
+	xasprintf(&auth, "Authorization: Bearer %s", token);
+	hdr = curl_slist_append(hdr, auth);
+	hdr = curl_slist_append(hdr, "Content-Type: application/json");
+	free(auth);
+	if (hdr == NULL ||
+	    curl_easy_setopt(c, CURLOPT_URL, url) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_PROTOCOLS_STR, "http,https") !=
+	    CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_HTTPHEADER, hdr) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_POSTFIELDS, "{}") != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_WRITEFUNCTION, action_write) !=
+	    CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_WRITEDATA, b) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_ERRORBUFFER, err) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_TIMEOUT, ACTION_TIMEOUT) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_NOSIGNAL, 1L) != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_USERAGENT, "stopcock-action") !=
+	    CURLE_OK) {
+		curl_slist_free_all(hdr);
+		curl_easy_cleanup(c);
+		xasprintf(cause, "%s: cannot set up the request", url);
+		return -1;
+	}
+	rc = curl_easy_perform(c);
+	curl_slist_free_all(hdr);
+	if (rc != CURLE_OK) {
+		xasprintf(cause, "%s: %s", url, *err != '\0' ? err :
+		    curl_easy_strerror(rc));
+		curl_easy_cleanup(c);
+		return -1;
+	}
+	curl_easy_getinfo(c, CURLINFO_RESPONSE_CODE, code);
+	curl_easy_cleanup(c);
+	return 0;
+}
+
+static void
+action_usage(FILE *fp, const char *verb)
+{
+	fprintf(fp, "usage: stopcock %s [-c CONF] [--url URL] [--token TOKEN] "
+	    "EXPERIMENT\n"
+	    "  -c CONF        read [daemon] http and http_token from CONF\n"
+	    "  --url URL      the daemon's HTTP address (default $STOPCOCK_URL, "
+	    "CONF's, or " ACTION_URL ")\n"
+	    "  --token TOKEN  the bearer token (default $STOPCOCK_TOKEN or "
+	    "CONF's)\n", verb);
+}
+
+/* One action verb: POST /api/experiments/EXP/<verb>. */
+static int
+action_run(const char *verb, int argc, char **argv)
+{
+	static const struct option opts[] = {
+		{ "url", required_argument, NULL, 'u' },
+		{ "token", required_argument, NULL, 't' },
+		{ "help", no_argument, NULL, 'h' },
+		{ NULL, 0, NULL, 0 },
+	};
+	struct action_buf b = { NULL, 0 };
+	struct conf *conf = NULL;
+	const char *url = getenv("STOPCOCK_URL");
+	const char *token = getenv("STOPCOCK_TOKEN"), *path = NULL, *msg;
+	char *full = NULL, *cause = NULL, *base = NULL, *esc;
+	json_t *root;
+	long code = 0;
+	int c, rc = SC_EX_OK;
+	size_t blen;
+	CURL *e;
+
+	optind = 1;
+	while ((c = getopt_long(argc, argv, "c:u:t:h", opts, NULL)) != -1) {
+		switch (c) {
+		case 'c': path = optarg; break;
+		case 'u': url = optarg; break;
+		case 't': token = optarg; break;
+		case 'h': action_usage(stdout, verb); return SC_EX_OK;
+		default: action_usage(stderr, verb); return SC_EX_USAGE;
+		}
+	}
+	if (argc - optind != 1) {
+		action_usage(stderr, verb);
+		return SC_EX_USAGE;
+	}
+	if (path != NULL) {
+		if (conf_load(path, &conf, &cause) != 0) {
+			fprintf(stderr, "stopcock %s: %s\n", verb, cause);
+			free(cause);
+			return SC_EX_CONFIG;
+		}
+		if ((url == NULL || *url == '\0') && conf->http != NULL)
+			xasprintf(&base, "http://%s", conf->http);
+		if ((token == NULL || *token == '\0') && conf->http_token)
+			token = conf->http_token;
+	}
+	if (base == NULL)
+		base = xstrdup(url != NULL && *url != '\0' ? url : ACTION_URL);
+	if (token == NULL || *token == '\0') {
+		fprintf(stderr, "stopcock %s: no token: give --token, set "
+		    "STOPCOCK_TOKEN or -c the daemon's configuration\n", verb);
+		rc = SC_EX_USAGE;
+		goto out;
+	}
+	if (curl_global_init(CURL_GLOBAL_DEFAULT) != CURLE_OK) {
+		fprintf(stderr, "stopcock %s: cannot start libcurl\n", verb);
+		rc = SC_EX_SOFTWARE;
+		goto out;
+	}
+	blen = strlen(base);
+	while (blen > 0 && base[blen - 1] == '/')
+		blen--;
+	if ((e = curl_easy_init()) == NULL ||
+	    (esc = curl_easy_escape(e, argv[optind], 0)) == NULL)
+		fatal("%s: cannot escape the experiment name", verb);
+	xasprintf(&full, "%.*s/api/experiments/%s/%s", (int)blen, base, esc,
+	    verb);
+	curl_free(esc);
+	curl_easy_cleanup(e);
+	if (action_post(full, token, &b, &code, &cause) != 0) {
+		fprintf(stderr, "stopcock %s: %s\n", verb, cause);
+		free(cause);
+		rc = SC_EX_IOERR;
+		goto done;
+	}
+	root = b.p != NULL ? json_loadb(b.p, b.len, 0, NULL) : NULL;
+	if (code != 200) {
+		msg = json_string_value(json_object_get(root, "error"));
+		fprintf(stderr, "stopcock %s: %s: HTTP %ld%s%s\n", verb, full,
+		    code, msg != NULL ? ": " : "", msg != NULL ? msg : "");
+		rc = code == 404 ? SC_EX_NOINPUT : code == 401 || code == 403 ?
+		    SC_EX_CONFIG : SC_EX_IOERR;
+	} else {
+		msg = json_string_value(json_object_get(root, "archive"));
+		printf("%s %s%s%s\n", argv[optind], strcmp(verb, "retire") == 0 ?
+		    "retired" : verb, msg != NULL ? "; archive " : "",
+		    msg != NULL ? msg : "");
+	}
+	json_decref(root);
+done:
+	curl_global_cleanup();
+out:
+	free(full);
+	free(base);
+	free(b.p);
+	conf_free(conf);
+	return rc;
+}
+
+int
+cmd_retire(int argc, char **argv)
+{
+	return action_run("retire", argc, argv);
+}
