@@ -10,7 +10,9 @@ allowed, so the real syslog(3) lines can be shown without touching the
 host's logger) and stopcockd with the guardrails of conf/stopcock.conf.
 It feeds the scenario through the Redis stream, then shows what an
 on-call engineer would see: the webhook alert, the syslog line, the pause
-key in Redis, `stopcock status`, and the address of the live page.
+key in Redis, `stopcock status`, and, from a terminal, the address of
+the live page, open until Enter. Every process it started is stopped when
+it ends, also on an error.
 
 Usage: /usr/bin/python3 tools/demo.py BUILD_DIR
 """
@@ -62,10 +64,26 @@ def fmt(x, pct=False):
 
 
 def main():
+    """Everything started is stopped on the way out, whatever happens in
+    between (Redis() has already started its server: starting it again
+    would leave the first one running)."""
     say("== stopcock demo: Larder & Lane ramps checkout-v2 ==")
+    started = []
+    try:
+        return demo(started)
+    finally:
+        for thing in reversed(started):
+            try:
+                thing.stop() if hasattr(thing, "stop") else thing.close()
+            except Exception as e:  # noqa: BLE001 - stop the rest
+                say("stopping %r: %s" % (thing, e))
+
+
+def demo(started):
     redis = Redis("demo")
-    redis.start()
+    started.append(redis)
     hook = Receiver(secret=SECRET)
+    started.append(hook)
     extra = """
 [webhook oncall]
 url = %s
@@ -94,10 +112,10 @@ facility = local0
     if os.geteuid() == 0 and unshare_ok():
         syslog = SyslogSocket(os.path.join(d.dir, "log.sock"))
         namespace_wrap(d, syslog_socket=syslog.path)
+    started.append(d)
     d.start()
     url = "http://127.0.0.1:%d" % d.http
-    say("redis-server on port %d, stopcockd with its page at %s"
-        % (redis.port, url))
+    say("redis-server on port %d, stopcockd on %s" % (redis.port, url))
 
     say("generating the scenario (stopcock generate --scenario demo) ...")
     gen = subprocess.run([os.path.join(BUILD, "stopcock"), "generate",
@@ -161,15 +179,16 @@ facility = local0
     subprocess.run([os.path.join(BUILD, "stopcock"), "status", "--url",
                     url])
     say()
-    say("live page: %s/?experiment=%s" % (url, EXP))
     if sys.stdin.isatty():
+        # The page lives as long as the demo does: say so.
+        say("live page: %s/?experiment=%s" % (url, EXP))
         try:
-            input("press Enter to stop the demo ")
+            input("press Enter to stop the demo (and its page) ")
         except (EOFError, KeyboardInterrupt):
             pass
-    d.stop()
-    hook.close()
-    redis.stop()
+    else:
+        say("(not a terminal: the demo stops now; run it from a terminal "
+            "to keep its page open)")
     return 0 if hit else 1
 
 

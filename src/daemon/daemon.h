@@ -219,6 +219,9 @@ struct kafka_in	*kafka_in_new(struct daemon *, char **cause);
 void		 kafka_in_free(struct kafka_in *);
 void		 kafka_in_stop(struct kafka_in *);
 void		 kafka_in_metrics(struct kafka_in *, struct evbuffer *);
+/* {"topic", "group", "partitions": [{"partition", "state", "read",
+ *  "committed", "experiments": [ID...]}]}: what this daemon owns. */
+json_t		*kafka_in_json(struct kafka_in *);
 
 /* alert.c */
 enum alert_kind {

@@ -379,6 +379,8 @@ http_health_get(struct http *h, struct evhttp_request *req)
 	    "series", (json_int_t)c.series,
 	    "tests", (json_int_t)c.tests,
 	    "bytes", (json_int_t)c.bytes);
+	if (d->kafka != NULL)
+		json_object_set_new(j, "kafka", kafka_in_json(d->kafka));
 	http_json(h, req, 200, j);
 }
 
