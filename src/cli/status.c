@@ -19,6 +19,7 @@
 #include <curl/curl.h>
 #include <jansson.h>
 
+#include "stopcock/proto.h"
 #include "stopcock/util.h"
 #include "cli.h"
 
@@ -188,6 +189,29 @@ status_interval(char *buf, size_t size, const json_t *t, const char *k0,
 	snprintf(buf, size, "%s [%s, %s]", part[0], part[1], part[2]);
 }
 
+/* A test's [guardrail] unit ("" when none); a name, so printable. */
+static const char *
+status_unit(const json_t *t)
+{
+	const char *u = json_string_value(json_object_get(t, "unit"));
+
+	return u != NULL && proto_name_ok(u, strlen(u)) ? u : "";
+}
+
+/* The bound that rules harm out: "<=+1.2ms" (harm = increase). */
+static void
+status_bound(char *buf, size_t size, const json_t *t)
+{
+	int decrease = strcmp(status_str(t, "harm"), "decrease") == 0;
+	double b = status_num(t, decrease ? "lower" : "upper");
+
+	if (isfinite(b))
+		snprintf(buf, size, "%s%+.3g%s", decrease ? ">=" : "<=", b,
+		    status_unit(t));
+	else
+		snprintf(buf, size, "n/a");
+}
+
 static void
 status_list(const json_t *root, const struct status_style *st)
 {
@@ -230,7 +254,14 @@ status_list(const json_t *root, const struct status_style *st)
 			printf("  %s%-10s%s ", status_verdict_colour(st, v), v,
 			    st->off);
 			status_name(name, 32);
-			printf(" p=%s\n", p);
+			/* A safe verdict's p measures the evidence against
+			 * harm: a small one reads as harm. Say what it is. */
+			if (strcmp(v, "safe") == 0)
+				printf(" harm ruled out%s\n",
+				    json_is_true(json_object_get(e,
+				    "untrusted")) ? " (untrusted: SRM)" : "");
+			else
+				printf(" p=%s\n", p);
 		}
 		if (json_array_size(g) == 0)
 			printf("  %s(no guardrail data yet)%s\n", st->dim,
@@ -297,7 +328,7 @@ status_experiment(const json_t *x, const struct status_style *st)
 	} else
 		printf("sample ratio: no mismatch found (p=%s)\n", p);
 	printf("\n%-10s %-28s %-34s %-26s %-8s %s\n", "VERDICT",
-	    "GUARDRAIL / VARIANT", "EFFECT [BOUNDS]", "RELATIVE", "P",
+	    "GUARDRAIL / VARIANT", "EFFECT [BOUNDS]", "RELATIVE", "P|BOUND",
 	    "SINCE");
 	for (i = 0; i < json_array_size(tests); i++) {
 		char name[160];
@@ -307,10 +338,12 @@ status_experiment(const json_t *x, const struct status_style *st)
 		snprintf(name, sizeof name, "%s / %s",
 		    status_str(t, "guardrail"), status_str(t, "variant"));
 		status_interval(est, sizeof est, t, "estimate", "lower",
-		    "upper", 1, "");
+		    "upper", 1, status_unit(t));
 		status_interval(rel, sizeof rel, t, "rel_estimate",
 		    "rel_lower", "rel_upper", 100, "%");
 		status_p(p, sizeof p, status_num(t, "p"));
+		if (strcmp(v, "safe") == 0)
+			status_bound(p, sizeof p, t);
 		if (strcmp(v, "undecided") != 0)
 			status_time(since, sizeof since,
 			    status_num(t, "first_ts"));

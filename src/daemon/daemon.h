@@ -10,8 +10,10 @@
  *   redis_in.c  the Redis stream consumer (hiredis async)    (redis_in_*)
  *   redis_house.c  its housekeeping: acks, dead letters, reclaiming,
  *               lag (redis_house_*; shares redis_in_int.h)
- *   kafka_in.c  the Kafka consumer: partitions, exactly-once state
- *               and offsets in transactions (librdkafka)  (kafka_*)
+ *   kafka_in.c  the Kafka consumer: partitions, rebalances (kafka_in_*);
+ *               kafka_state.c: each partition's state and offset in
+ *               one transaction, read back on assignment (kafka_state_*;
+ *               shares kafka_in_int.h) (librdkafka)
  *   ckpt.c      checkpoint write/restore, atomic and checksummed,
  *               written by a forked child off the loop (ckpt_*)
  *   notify.c    systemd notifications that never block  (notify_*)

@@ -335,6 +335,38 @@ http_alerts(struct http *h, const char *experiment)
 	return out;
 }
 
+/* Each entry of list gets its guardrail's [guardrail] unit, if any (key:
+ * the field naming the guardrail), for the page and stopcock status. */
+static void
+http_units(struct http *h, json_t *list, const char *key)
+{
+	const struct conf *c = h->d->conf;
+	const char *name;
+	json_t *o;
+	size_t i;
+	int g;
+
+	json_array_foreach(list, i, o) {
+		name = json_string_value(json_object_get(o, key));
+		for (g = 0; name != NULL && g < c->nguardrails; g++)
+			if (strcmp(c->guardrails[g].name, name) == 0 &&
+			    c->guardrails[g].unit[0] != '\0')
+				json_object_set_new(o, "unit",
+				    json_string(c->guardrails[g].unit));
+	}
+}
+
+static json_t *
+http_list(struct http *h)
+{
+	json_t *j = engine_json_list(h->d->engine), *x;
+	size_t i;
+
+	json_array_foreach(json_object_get(j, "experiments"), i, x)
+		http_units(h, json_object_get(x, "guardrails"), "name");
+	return j;
+}
+
 static int
 http_known(struct http *h, const char *id)
 {
@@ -353,6 +385,7 @@ http_experiment_get(struct http *h, struct evhttp_request *req,
 		return;
 	}
 	json_object_set_new(j, "alerts", http_alerts(h, id));
+	http_units(h, json_object_get(j, "tests"), "guardrail");
 	http_json(h, req, 200, j);
 }
 
@@ -841,8 +874,7 @@ http_request(struct evhttp_request *req, void *arg)
 		else if (n == 3)
 			http_experiment_get(h, req, seg[2]);
 		else if (strcmp(seg[1], "experiments") == 0)
-			http_json(h, req, 200,
-			    engine_json_list(h->d->engine));
+			http_json(h, req, 200, http_list(h));
 		else if (strcmp(seg[1], "alerts") == 0)
 			http_json(h, req, 200, json_pack("{s:o}", "alerts",
 			    http_alerts(h, NULL)));

@@ -22,7 +22,8 @@
  * The daemon keeps one engine: a partition's experiments are merged into
  * it on assignment and taken out on revocation (engine_save, filter,
  * engine_restore), so each daemon tests only the experiments of the
- * partitions it owns. The transactional calls and the state read block
+ * partitions it owns. The states, transactions and the state read live
+ * in kafka_state.c (kafka_in_int.h is what the two share). The transactional calls and the state read block
  * the loop for a bounded time (KAFKA_TXN_MS, KAFKA_LOAD_MS); on loopback
  * that is milliseconds, on a sick cluster it is a stall, not a loss.
  */
@@ -39,93 +40,17 @@
 #include <librdkafka/rdkafka.h>
 
 #include "stopcock/log.h"
-#include "daemon.h"
+#include "kafka_in_int.h"
 
-#define KAFKA_PARTITIONS_MAX	4096	/* input partitions one daemon holds */
-#define KAFKA_POLL_BUDGET	4096	/* messages per loop turn */
-#define KAFKA_TXN_MS		10000	/* one transactional call, at most */
-#define KAFKA_LOAD_MS		30000	/* reading one partition's state */
-#define KAFKA_POLL_EVERY	0.2	/* s: serve callbacks even when idle */
-#define KAFKA_HOST_MAX		256
-#define KAFKA_STATE_FORMAT	"stopcock-kafka-partition"
-#define KAFKA_STATE_VERSION	1
-
-enum kafka_pstate { KP_RUNNING, KP_REFUSED, KP_FENCED, KP_NSTATES };
-static const char *const kafka_pstate_names[] = {
+const char *const kafka_pstate_names[] = {
 	"running", "refused", "fenced"
 };
 
-/* Messages refused before their lines reach ingest. */
-enum kafka_bad { KB_NO_KEY, KB_TOO_BIG, KB_N };
-static const char *const kafka_bad_names[] = { "bad_key", "too_big" };
+const char *const kafka_bad_names[] = { "bad_key", "too_big" };
 
-/* Why an assigned partition was refused. */
-enum kafka_refusal {
-	KR_NO_STATE,		/* committed offset, no state */
-	KR_MISMATCH,		/* state and committed offset disagree */
-	KR_BAD_STATE,		/* state unreadable or not restorable */
-	KR_UNREACHABLE,		/* state or offsets could not be read */
-	KR_N
-};
-static const char *const kafka_refusal_names[] = {
+const char *const kafka_refusal_names[] = {
 	"no_state", "offset_mismatch", "bad_state", "unreachable"
 };
-
-/* Per partition; kept in its state so the counts are exactly-once too. */
-struct kafka_counts {
-	uint64_t	messages;
-	uint64_t	bytes;
-	uint64_t	lines;
-	uint64_t	records;
-	uint64_t	bad[KB_N];
-	uint64_t	proto_rejected[PROTO_NSTATUS];
-	uint64_t	engine_rejected[ENGINE_NREJECT];
-};
-
-struct kafka_part {
-	int32_t		 id;
-	enum kafka_pstate state;
-	rd_kafka_t	*txn;		/* transactional producer */
-	int64_t		 next;		/* next offset to read; -1: start */
-	int64_t		 committed;	/* next offset, as last committed */
-	json_t		*keys;		/* experiment ids seen: a set */
-	struct kafka_counts c;
-	uint64_t	 commits;
-	uint64_t	 commit_failures;
-	int		 dirty;		/* read something since the commit */
-};
-
-struct kafka_in {
-	struct daemon	*d;
-	rd_kafka_t	*rk;		/* the group consumer */
-	rd_kafka_t	*reader;	/* state topic reader, no group */
-	rd_kafka_queue_t *q;
-	int		 pipe[2];
-	struct event	*ev_io;
-	struct event	*ev_more;
-	struct event	*ev_poll;
-	struct event	*ev_commit;
-	/* fixed at start (see the comment on d->conf) */
-	char		*topic;
-	char		*group;
-	char		*state_topic;
-	char		*client_id;
-	char		*instance_id;
-	uint32_t	 max_message;
-	struct kafka_part *parts[KAFKA_PARTITIONS_MAX];
-	int		 closed;
-	uint64_t	 rebalances;
-	uint64_t	 assigned;
-	uint64_t	 revoked;
-	uint64_t	 lost;
-	uint64_t	 fenced;
-	uint64_t	 refused[KR_N];
-	uint64_t	 consume_errors;
-	uint64_t	 unowned;	/* messages of a partition not ours */
-	size_t		 stray;		/* experiments no owned key names */
-};
-
-static void	kafka_commit_all(struct kafka_in *, const char *why);
 
 /* client.id and group.instance.id: %h the host name, %% a percent. */
 static char *
@@ -155,8 +80,8 @@ kafka_expand(const char *tmpl)
 	return out;
 }
 
-static int
-kafka_set(rd_kafka_conf_t *conf, const char *key, const char *value,
+int
+kafka_in_set(rd_kafka_conf_t *conf, const char *key, const char *value,
     char **cause)
 {
 	char err[512];
@@ -191,8 +116,8 @@ kafka_error_cb(rd_kafka_t *rk, int err, const char *reason, void *arg)
 }
 
 /* The shared part of every handle's configuration. */
-static rd_kafka_conf_t *
-kafka_conf_base(struct kafka_in *k, const char *suffix, char **cause)
+rd_kafka_conf_t *
+kafka_in_conf(struct kafka_in *k, const char *suffix, char **cause)
 {
 	struct conf *c = k->d->conf;
 	rd_kafka_conf_t *conf = rd_kafka_conf_new();
@@ -200,9 +125,9 @@ kafka_conf_base(struct kafka_in *k, const char *suffix, char **cause)
 	int rc;
 
 	xasprintf(&id, "%s%s", k->client_id, suffix);
-	rc = kafka_set(conf, "bootstrap.servers", c->kafka_brokers, cause);
+	rc = kafka_in_set(conf, "bootstrap.servers", c->kafka_brokers, cause);
 	if (rc == 0)
-		rc = kafka_set(conf, "client.id", id, cause);
+		rc = kafka_in_set(conf, "client.id", id, cause);
 	free(id);
 	if (rc != 0) {
 		rd_kafka_conf_destroy(conf);
@@ -214,336 +139,13 @@ kafka_conf_base(struct kafka_in *k, const char *suffix, char **cause)
 	return conf;
 }
 
-static const char *
-kafka_str(const char *s)
-{
-	return s != NULL ? s : "";
-}
-
-/* ---- the engine: merging a partition's experiments in and out ---- */
-
-/*
- * Replace d->engine by one holding its experiments less those named in
- * drop (a set, may be NULL) and those in add (an array of saved
- * experiments, may be NULL), which replace any of the same id. 0, or -1
- * with *cause and the engine unchanged.
- */
-static int
-kafka_engine_swap(struct kafka_in *k, const json_t *drop, const json_t *add,
-    char **cause)
-{
-	struct daemon *d = k->d;
-	struct engine *neng;
-	json_t *img, *arr, *ids, *e;
-	const char *id;
-	size_t i;
-
-	ids = json_object();
-	json_array_foreach(add, i, e)
-		if ((id = json_string_value(json_object_get(e, "id"))) != NULL)
-			json_object_set_new(ids, id, json_true());
-	img = engine_save(d->engine);
-	arr = json_array();
-	json_array_foreach(json_object_get(img, "experiments"), i, e) {
-		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		if ((drop != NULL && json_object_get(drop, id) != NULL) ||
-		    json_object_get(ids, id) != NULL)
-			continue;
-		json_array_append(arr, e);
-	}
-	json_array_foreach(add, i, e)
-		json_array_append(arr, e);
-	json_object_set_new(img, "experiments", arr);
-	json_decref(ids);
-	neng = engine_restore(d->conf, d->hashkey, img, cause);
-	json_decref(img);
-	if (neng == NULL)
-		return -1;
-	daemon_engine_replace(d, neng);
-	return 0;
-}
-
-/* ---- one partition's state image ---- */
-
-static json_t *
-kafka_counts_json(const struct kafka_counts *c)
-{
-	json_t *o = json_object(), *bad = json_object(), *rej = json_object();
-	int r;
-
-	json_object_set_new(o, "messages", json_integer((json_int_t)
-	    c->messages));
-	json_object_set_new(o, "bytes", json_integer((json_int_t)c->bytes));
-	json_object_set_new(o, "lines", json_integer((json_int_t)c->lines));
-	json_object_set_new(o, "records", json_integer((json_int_t)
-	    c->records));
-	for (r = 0; r < KB_N; r++)
-		json_object_set_new(bad, kafka_bad_names[r],
-		    json_integer((json_int_t)c->bad[r]));
-	for (r = PROTO_SKIP + 1; r < PROTO_NSTATUS; r++)
-		if (c->proto_rejected[r] != 0)
-			json_object_set_new(rej, proto_reason(r),
-			    json_integer((json_int_t)c->proto_rejected[r]));
-	for (r = ENGINE_OK + 1; r < ENGINE_NREJECT; r++)
-		if (c->engine_rejected[r] != 0)
-			json_object_set_new(rej, engine_reason(r),
-			    json_integer((json_int_t)c->engine_rejected[r]));
-	json_object_set_new(o, "bad", bad);
-	json_object_set_new(o, "rejected", rej);
-	return o;
-}
-
-static uint64_t
-kafka_u64(const json_t *o, const char *key)
-{
-	json_t *v = json_object_get(o, key);
-
-	return json_is_integer(v) && json_integer_value(v) > 0 ?
-	    (uint64_t)json_integer_value(v) : 0;
-}
-
-static void
-kafka_counts_restore(struct kafka_counts *c, const json_t *o)
-{
-	const json_t *bad = json_object_get(o, "bad");
-	const json_t *rej = json_object_get(o, "rejected");
-	int r;
-
-	memset(c, 0, sizeof *c);
-	c->messages = kafka_u64(o, "messages");
-	c->bytes = kafka_u64(o, "bytes");
-	c->lines = kafka_u64(o, "lines");
-	c->records = kafka_u64(o, "records");
-	for (r = 0; r < KB_N; r++)
-		c->bad[r] = kafka_u64(bad, kafka_bad_names[r]);
-	for (r = PROTO_SKIP + 1; r < PROTO_NSTATUS; r++)
-		c->proto_rejected[r] = kafka_u64(rej, proto_reason(r));
-	for (r = ENGINE_OK + 1; r < ENGINE_NREJECT; r++)
-		c->engine_rejected[r] = kafka_u64(rej, engine_reason(r));
-}
-
-/*
- * {"format", "version", "topic", "partition", "next", "keys": [...],
- *  "counters": {...}, "engine": {"format", "version", "experiments"}}
- * with the experiments of img that the partition's keys name.
- */
-static json_t *
-kafka_part_image(struct kafka_in *k, struct kafka_part *p, const json_t *img)
-{
-	json_t *keys = json_array(), *exps = json_array(), *e, *v;
-	const char *id;
-	size_t i;
-
-	json_object_foreach(p->keys, id, v)
-		json_array_append_new(keys, json_string(id));
-	json_array_foreach(json_object_get(img, "experiments"), i, e) {
-		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		if (json_object_get(p->keys, id) != NULL)
-			json_array_append(exps, e);
-	}
-	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, "
-	    "s:{s:O, s:O, s:o}}",
-	    "format", KAFKA_STATE_FORMAT, "version", KAFKA_STATE_VERSION,
-	    "topic", k->topic, "partition", (int)p->id,
-	    "next", (json_int_t)p->next, "keys", keys,
-	    "counters", kafka_counts_json(&p->c),
-	    "engine", "format", json_object_get(img, "format"),
-	    "version", json_object_get(img, "version"), "experiments", exps);
-}
-
-static char *
-kafka_state_key(struct kafka_in *k, int32_t id)
-{
-	char *key;
-
-	/* the group too, so groups sharing a state topic never mix */
-	xasprintf(&key, "%s/%s/%" PRId32, k->group, k->topic,
-	    id);
-	return key;
-}
-
-/* ---- transactions ---- */
-
-static void
-kafka_txn_abort(struct kafka_part *p)
-{
-	rd_kafka_error_t *e;
-
-	if ((e = rd_kafka_abort_transaction(p->txn, KAFKA_TXN_MS)) != NULL) {
-		log_warnx("kafka: abort_transaction: %s partition=%" PRId32,
-		    rd_kafka_error_string(e), p->id);
-		rd_kafka_error_destroy(e);
-	}
-}
-
-static void
-kafka_pause_one(struct kafka_in *k, int32_t id)
-{
-	rd_kafka_topic_partition_list_t *l = rd_kafka_topic_partition_list_new(1);
-
-	rd_kafka_topic_partition_list_add(l, k->topic, id);
-	rd_kafka_pause_partitions(k->rk, l);
-	rd_kafka_topic_partition_list_destroy(l);
-}
-
-/* Another owner has the partition's transactional.id: stop, forget. */
-static void
-kafka_part_fenced(struct kafka_in *k, struct kafka_part *p, const char *why)
-{
-	char *cause = NULL;
-
-	log_crit("kafka: partition fenced: %s; another daemon owns it now, "
-	    "this one stops testing its experiments partition=%" PRId32
-	    " experiments=%zu", why, p->id, json_object_size(p->keys));
-	k->fenced++;
-	p->state = KP_FENCED;
-	kafka_pause_one(k, p->id);
-	if (kafka_engine_swap(k, p->keys, NULL, &cause) != 0) {
-		log_warnx("kafka: dropping a fenced partition's experiments: "
-		    "%s partition=%" PRId32, cause, p->id);
-		free(cause);
-	}
-	json_object_clear(p->keys);
-}
-
-/* A failed transactional call: fenced (fatal) or abort and retry later. */
-static void
-kafka_txn_failed(struct kafka_in *k, struct kafka_part *p, const char *call,
-    rd_kafka_error_t *e, int begun)
-{
-	char why[512];
-
-	p->commit_failures++;
-	snprintf(why, sizeof why, "%s: %s", call, rd_kafka_error_string(e));
-	if (rd_kafka_error_is_fatal(e) ||
-	    rd_kafka_error_code(e) == RD_KAFKA_RESP_ERR__FENCED) {
-		rd_kafka_error_destroy(e);
-		kafka_part_fenced(k, p, why);
-		return;
-	}
-	log_warnx("kafka: commit failed, retried at the next one: %s "
-	    "partition=%" PRId32, why, p->id);
-	if (begun || rd_kafka_error_txn_requires_abort(e))
-		kafka_txn_abort(p);
-	rd_kafka_error_destroy(e);
-}
-
-/* State and input offset in one transaction. 0 committed, -1 not. */
-static int
-kafka_commit(struct kafka_in *k, struct kafka_part *p, const json_t *img)
-{
-	rd_kafka_topic_partition_list_t *off;
-	rd_kafka_consumer_group_metadata_t *cgmd;
-	rd_kafka_error_t *e;
-	rd_kafka_resp_err_t err;
-	json_t *state;
-	char *buf, *key;
-	size_t len;
-
-	state = kafka_part_image(k, p, img);
-	buf = json_dumps(state, JSON_COMPACT);
-	json_decref(state);
-	if (buf == NULL)
-		fatalx("kafka: cannot serialise a partition state");
-	len = strlen(buf);
-	if ((e = rd_kafka_begin_transaction(p->txn)) != NULL) {
-		free(buf);
-		kafka_txn_failed(k, p, "begin_transaction", e, 0);
-		return -1;
-	}
-	key = kafka_state_key(k, p->id);
-	err = rd_kafka_producev(p->txn, RD_KAFKA_V_TOPIC(k->state_topic),
-	    RD_KAFKA_V_PARTITION(p->id), RD_KAFKA_V_KEY(key, strlen(key)),
-	    RD_KAFKA_V_VALUE(buf, len), RD_KAFKA_V_MSGFLAGS(RD_KAFKA_MSG_F_FREE),
-	    RD_KAFKA_V_END);
-	free(key);
-	if (err != 0) {
-		free(buf);
-		p->commit_failures++;
-		log_warnx("kafka: cannot produce the state: %s partition=%"
-		    PRId32 " bytes=%zu", rd_kafka_err2str(err), p->id, len);
-		kafka_txn_abort(p);
-		return -1;
-	}
-	off = rd_kafka_topic_partition_list_new(1);
-	rd_kafka_topic_partition_list_add(off, k->topic, p->id)->offset =
-	    p->next;
-	cgmd = rd_kafka_consumer_group_metadata(k->rk);
-	e = rd_kafka_send_offsets_to_transaction(p->txn, off, cgmd,
-	    KAFKA_TXN_MS);
-	rd_kafka_consumer_group_metadata_destroy(cgmd);
-	rd_kafka_topic_partition_list_destroy(off);
-	if (e != NULL) {
-		kafka_txn_failed(k, p, "send_offsets_to_transaction", e, 1);
-		return -1;
-	}
-	if ((e = rd_kafka_commit_transaction(p->txn, KAFKA_TXN_MS)) != NULL) {
-		kafka_txn_failed(k, p, "commit_transaction", e, 1);
-		return -1;
-	}
-	p->committed = p->next;
-	p->dirty = 0;
-	p->commits++;
-	log_debug("kafka: committed partition=%" PRId32 " next=%" PRId64
-	    " bytes=%zu", p->id, p->next, len);
-	return 0;
-}
-
-/* Experiments of the engine that no owned partition's keys name. */
-static void
-kafka_count_stray(struct kafka_in *k, const json_t *img)
-{
-	const json_t *e;
-	const char *id;
-	size_t i, n = 0;
-	int32_t j;
-	int found;
-
-	json_array_foreach(json_object_get(img, "experiments"), i, e) {
-		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		found = 0;
-		for (j = 0; j < KAFKA_PARTITIONS_MAX && !found; j++)
-			found = k->parts[j] != NULL &&
-			    json_object_get(k->parts[j]->keys, id) != NULL;
-		n += !found;
-	}
-	if (n > k->stray)
-		log_warnx("kafka: %zu experiments came in messages keyed by "
-		    "another experiment; their state is not kept in Kafka "
-		    "(the key must be the experiment id)", n);
-	k->stray = n;
-}
-
-static void
-kafka_commit_all(struct kafka_in *k, const char *why)
-{
-	json_t *img = NULL;
-	int32_t i;
-	int n = 0;
-
-	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++) {
-		struct kafka_part *p = k->parts[i];
-
-		if (p == NULL || p->state != KP_RUNNING || !p->dirty)
-			continue;
-		if (img == NULL)
-			img = engine_save(k->d->engine);
-		n += kafka_commit(k, p, img) == 0;
-	}
-	if (img != NULL) {
-		kafka_count_stray(k, img);
-		json_decref(img);
-		log_debug("kafka: commit reason=%s partitions=%d", why, n);
-	}
-}
-
 static void
 kafka_commit_cb(evutil_socket_t fd, short what, void *arg)
 {
 	struct kafka_in *k = arg;
 
 	if (!k->closed)
-		kafka_commit_all(k, "timer");
+		kafka_state_commit_all(k, "timer");
 }
 
 /* ---- assignment ---- */
@@ -557,235 +159,6 @@ kafka_part_free(struct kafka_part *p)
 		rd_kafka_destroy(p->txn);
 	json_decref(p->keys);
 	free(p);
-}
-
-/* A partition's transactional producer, fencing any earlier owner. */
-static rd_kafka_t *
-kafka_txn_new(struct kafka_in *k, int32_t id, char **cause)
-{
-	rd_kafka_conf_t *conf;
-	rd_kafka_t *rk;
-	rd_kafka_error_t *e;
-	char err[512], *tid, *suffix, tmo[32];
-
-	xasprintf(&suffix, "-txn-%" PRId32, id);
-	conf = kafka_conf_base(k, suffix, cause);
-	free(suffix);
-	if (conf == NULL)
-		return NULL;
-	/* One id per input partition, the same whoever owns it. */
-	xasprintf(&tid, "stopcock.%s.%s.%" PRId32, k->group,
-	    k->topic, id);
-	snprintf(tmo, sizeof tmo, "%d", KAFKA_TXN_MS * 6);
-	if (kafka_set(conf, "transactional.id", tid, cause) != 0 ||
-	    kafka_set(conf, "transaction.timeout.ms", tmo, cause) != 0 ||
-	    kafka_set(conf, "message.max.bytes", "100000000", cause) != 0) {
-		free(tid);
-		rd_kafka_conf_destroy(conf);
-		return NULL;
-	}
-	free(tid);
-	rk = rd_kafka_new(RD_KAFKA_PRODUCER, conf, err, sizeof err);
-	if (rk == NULL) {
-		rd_kafka_conf_destroy(conf);
-		xasprintf(cause, "kafka: producer: %s", err);
-		return NULL;
-	}
-	if ((e = rd_kafka_init_transactions(rk, KAFKA_TXN_MS)) != NULL) {
-		xasprintf(cause, "init_transactions: %s",
-		    rd_kafka_error_string(e));
-		rd_kafka_error_destroy(e);
-		rd_kafka_destroy(rk);
-		return NULL;
-	}
-	return rk;
-}
-
-/* A state read: what one partition's state topic partition held. */
-struct kafka_read {
-	int32_t		 id;
-	json_t		*state;		/* the last state message, or NULL */
-	int		 found;		/* a state message was there */
-	int		 done;		/* end reached, or failed */
-	char		*cause;		/* why it failed, or NULL */
-};
-
-/*
- * Read the state partitions of every r[i].id at once, to their ends
- * (read_committed: to the last stable offset), keeping the last state
- * message of each. One pass for the whole assignment, so the loop
- * stands still once per rebalance, not once per partition.
- */
-static void
-kafka_states_read(struct kafka_in *k, struct kafka_read *r, int n)
-{
-	rd_kafka_topic_partition_list_t *l;
-	rd_kafka_message_t *m;
-	rd_kafka_resp_err_t err;
-	json_error_t jerr;
-	double deadline = daemon_now() + KAFKA_LOAD_MS / 1000.0;
-	char *key;
-	int i, left = n;
-
-	if (n == 0)
-		return;
-	l = rd_kafka_topic_partition_list_new(n);
-	for (i = 0; i < n; i++)
-		rd_kafka_topic_partition_list_add(l, k->state_topic,
-		    r[i].id)->offset = RD_KAFKA_OFFSET_BEGINNING;
-	err = rd_kafka_assign(k->reader, l);
-	rd_kafka_topic_partition_list_destroy(l);
-	if (err != 0) {
-		for (i = 0; i < n; i++)
-			xasprintf(&r[i].cause, "assign %s/%" PRId32 ": %s",
-			    k->state_topic, r[i].id, rd_kafka_err2str(err));
-		return;
-	}
-	while (left > 0 && daemon_now() < deadline) {
-		if ((m = rd_kafka_consumer_poll(k->reader, 100)) == NULL)
-			continue;
-		for (i = 0; i < n && r[i].id != m->partition; i++)
-			;
-		if (i == n || r[i].done) {
-			rd_kafka_message_destroy(m);
-			continue;
-		}
-		if (m->err == RD_KAFKA_RESP_ERR__PARTITION_EOF) {
-			r[i].done = 1;
-			left--;
-		} else if (m->err == RD_KAFKA_RESP_ERR__UNKNOWN_PARTITION ||
-		    m->err == RD_KAFKA_RESP_ERR__UNKNOWN_TOPIC ||
-		    m->err == RD_KAFKA_RESP_ERR_UNKNOWN_TOPIC_OR_PART) {
-			xasprintf(&r[i].cause, "%s/%" PRId32 ": %s (the state "
-			    "topic needs as many partitions as the input)",
-			    k->state_topic, r[i].id, rd_kafka_err2str(m->err));
-			r[i].done = 1;
-			left--;
-		} else if (m->err != 0)
-			log_warnx("kafka: reading state: %s partition=%" PRId32,
-			    rd_kafka_message_errstr(m), r[i].id);
-		else {
-			key = kafka_state_key(k, r[i].id);
-			if (m->key_len == strlen(key) &&
-			    memcmp(m->key, key, m->key_len) == 0) {
-				json_decref(r[i].state);
-				r[i].found = 1;
-				r[i].state = json_loadb(m->payload, m->len, 0,
-				    &jerr);
-				if (r[i].state == NULL) {
-					xasprintf(&r[i].cause, "state at offset %"
-					    PRId64 " is not JSON: %s", m->offset,
-					    jerr.text);
-					r[i].done = 1;
-					left--;
-				}
-			}
-			free(key);
-		}
-		rd_kafka_message_destroy(m);
-	}
-	for (i = 0; i < n; i++)
-		if (!r[i].done && r[i].cause == NULL)
-			xasprintf(&r[i].cause, "reading %s/%" PRId32 " took more "
-			    "than %d ms", k->state_topic, r[i].id,
-			    KAFKA_LOAD_MS);
-	rd_kafka_assign(k->reader, NULL);
-}
-
-static void
-kafka_refuse(struct kafka_in *k, struct kafka_part *p, enum kafka_refusal r,
-    const char *fmt, const char *detail)
-{
-	k->refused[r]++;
-	p->state = KP_REFUSED;
-	log_crit("kafka: partition REFUSED, not consumed and not started "
-	    "afresh: %s%s%s partition=%" PRId32 " reason=%s", fmt,
-	    detail != NULL ? ": " : "", detail != NULL ? detail : "", p->id,
-	    kafka_refusal_names[r]);
-}
-
-/*
- * Rebuild partition p from the state topic and decide where it resumes.
- * committed is the group's committed offset (RD_KAFKA_OFFSET_INVALID:
- * none). Sets p->state and p->next.
- */
-static void
-kafka_part_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
-    struct kafka_read *r)
-{
-	json_t *state = r->state, *keys, *v;
-	char *cause = NULL;
-	const char *fmt;
-	int64_t next;
-	size_t i;
-
-	if (r->cause != NULL) {
-		kafka_refuse(k, p, r->found ? KR_BAD_STATE : KR_UNREACHABLE,
-		    "cannot read its state", r->cause);
-		return;
-	}
-	if (!r->found) {
-		if (committed >= 0) {
-			char detail[64];
-
-			snprintf(detail, sizeof detail, "committed offset %"
-			    PRId64, committed);
-			kafka_refuse(k, p, KR_NO_STATE, "the group has a "
-			    "committed offset but the state topic holds no "
-			    "state for it", detail);
-			return;
-		}
-		log_info("kafka: partition starts afresh (no state, no "
-		    "committed offset) partition=%" PRId32, p->id);
-		p->next = -1;
-		p->committed = -1;
-		p->state = KP_RUNNING;
-		return;
-	}
-	fmt = json_string_value(json_object_get(state, "format"));
-	next = json_integer_value(json_object_get(state, "next"));
-	keys = json_object_get(state, "keys");
-	if (fmt == NULL || strcmp(fmt, KAFKA_STATE_FORMAT) != 0 ||
-	    json_integer_value(json_object_get(state, "version")) !=
-	    KAFKA_STATE_VERSION || !json_is_array(keys) ||
-	    json_integer_value(json_object_get(state, "partition")) != p->id) {
-		kafka_refuse(k, p, KR_BAD_STATE, "its state is not a stopcock "
-		    "partition state of this version and partition", NULL);
-		return;
-	}
-	if (committed >= 0 && committed != next) {
-		char detail[96];
-
-		snprintf(detail, sizeof detail, "state resumes at %" PRId64
-		    ", committed offset %" PRId64, next, committed);
-		kafka_refuse(k, p, KR_MISMATCH, "state and committed offset "
-		    "disagree", detail);
-		return;
-	}
-	if (committed < 0)
-		log_warnx("kafka: the group has no committed offset (expired, "
-		    "or a broker that keeps no transactional offsets, as the "
-		    "mock cluster); resuming from the state's partition=%"
-		    PRId32 " next=%" PRId64, p->id, next);
-	if (kafka_engine_swap(k, NULL, json_object_get(json_object_get(state,
-	    "engine"), "experiments"), &cause) != 0) {
-		kafka_refuse(k, p, KR_BAD_STATE, "its state does not restore",
-		    cause);
-		free(cause);
-		return;
-	}
-	json_array_foreach(keys, i, v)
-		if (json_is_string(v))
-			json_object_set_new(p->keys, json_string_value(v),
-			    json_true());
-	kafka_counts_restore(&p->c, json_object_get(state, "counters"));
-	p->next = next;
-	p->committed = next;
-	p->state = KP_RUNNING;
-	log_info("kafka: partition restored from the state topic partition=%"
-	    PRId32 " next=%" PRId64 " experiments=%zu messages=%" PRIu64
-	    " records=%" PRIu64, p->id, next, json_object_size(p->keys),
-	    p->c.messages, p->c.records);
 }
 
 static void
@@ -815,9 +188,9 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 		p->next = p->committed = -1;
 		k->parts[id] = p;
 		k->assigned++;
-		if ((p->txn = kafka_txn_new(k, id, &cause)) == NULL) {
-			kafka_refuse(k, p, KR_UNREACHABLE, "no transactional "
-			    "producer", cause);
+		if ((p->txn = kafka_state_producer(k, id, &cause)) == NULL) {
+			kafka_state_refuse(k, p, KR_UNREACHABLE,
+			    "no transactional producer", cause);
 			free(cause);
 			cause = NULL;
 		}
@@ -835,7 +208,7 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 		    p->txn != NULL)
 			reads[nreads++].id = id;
 	}
-	kafka_states_read(k, reads, nreads);
+	kafka_state_read(k, reads, nreads);
 	pause = rd_kafka_topic_partition_list_new(l->cnt);
 	for (i = 0; i < l->cnt; i++) {
 		int32_t id = l->elems[i].partition;
@@ -851,14 +224,15 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 		if (p->state == KP_RUNNING && p->txn != NULL) {
 			committed = co->elems[i].offset;
 			if (err != 0 || co->elems[i].err != 0)
-				kafka_refuse(k, p, KR_UNREACHABLE, "cannot read "
-				    "the committed offset", rd_kafka_err2str(
-				    err != 0 ? err : co->elems[i].err));
+				kafka_state_refuse(k, p, KR_UNREACHABLE,
+				    "cannot read the committed offset",
+				    rd_kafka_err2str(err != 0 ? err :
+				    co->elems[i].err));
 			else {
 				for (j = 0; j < nreads && reads[j].id != id;
 				    j++)
 					;
-				kafka_part_load(k, p, committed, &reads[j]);
+				kafka_state_load(k, p, committed, &reads[j]);
 			}
 		}
 		if (p->state == KP_RUNNING)
@@ -914,7 +288,7 @@ kafka_revoke(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 		if (!lost && p->state == KP_RUNNING && p->dirty) {
 			if (img == NULL)
 				img = engine_save(k->d->engine);
-			kafka_commit(k, p, img);
+			kafka_state_commit(k, p, img);
 		}
 		json_object_foreach(p->keys, id, v)
 			json_object_set(drop, id, json_true());
@@ -927,7 +301,7 @@ kafka_revoke(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 	}
 	json_decref(img);
 	if (json_object_size(drop) > 0 &&
-	    kafka_engine_swap(k, drop, NULL, &cause) != 0) {
+	    kafka_state_swap(k, drop, NULL, &cause) != 0) {
 		log_warnx("kafka: dropping revoked experiments: %s", cause);
 		free(cause);
 	}
@@ -1085,18 +459,20 @@ kafka_in_new(struct daemon *d, char **cause)
 		k->instance_id = kafka_expand(c->kafka_instance_id);
 	k->max_message = c->kafka_max_message;
 
-	if ((conf = kafka_conf_base(k, "", cause)) == NULL)
+	if ((conf = kafka_in_conf(k, "", cause)) == NULL)
 		goto fail;
 	snprintf(buf, sizeof buf, "%.0f", c->kafka_session_timeout * 1000);
-	if (kafka_set(conf, "group.id", c->kafka_group, cause) != 0 ||
-	    kafka_set(conf, "partition.assignment.strategy",
+	if (kafka_in_set(conf, "group.id", c->kafka_group, cause) != 0 ||
+	    kafka_in_set(conf, "partition.assignment.strategy",
 	    "cooperative-sticky", cause) != 0 ||
-	    kafka_set(conf, "enable.auto.commit", "false", cause) != 0 ||
-	    kafka_set(conf, "enable.auto.offset.store", "false", cause) != 0 ||
-	    kafka_set(conf, "isolation.level", "read_committed", cause) != 0 ||
-	    kafka_set(conf, "auto.offset.reset", "earliest", cause) != 0 ||
-	    kafka_set(conf, "session.timeout.ms", buf, cause) != 0 ||
-	    (k->instance_id != NULL && kafka_set(conf, "group.instance.id",
+	    kafka_in_set(conf, "enable.auto.commit", "false", cause) != 0 ||
+	    kafka_in_set(conf, "enable.auto.offset.store", "false",
+	    cause) != 0 ||
+	    kafka_in_set(conf, "isolation.level", "read_committed",
+	    cause) != 0 ||
+	    kafka_in_set(conf, "auto.offset.reset", "earliest", cause) != 0 ||
+	    kafka_in_set(conf, "session.timeout.ms", buf, cause) != 0 ||
+	    (k->instance_id != NULL && kafka_in_set(conf, "group.instance.id",
 	    k->instance_id, cause) != 0)) {
 		rd_kafka_conf_destroy(conf);
 		goto fail;
@@ -1110,20 +486,21 @@ kafka_in_new(struct daemon *d, char **cause)
 	}
 	rd_kafka_poll_set_consumer(k->rk);
 
-	if ((conf = kafka_conf_base(k, "-state", cause)) == NULL)
+	if ((conf = kafka_in_conf(k, "-state", cause)) == NULL)
 		goto fail;
 	/* assign() wants a group.id; this one never joins or commits */
 	xasprintf(&rgroup, "%s.state-reader", k->group);
-	rc = kafka_set(conf, "group.id", rgroup, cause);
+	rc = kafka_in_set(conf, "group.id", rgroup, cause);
 	free(rgroup);
 	if (rc != 0 ||
-	    kafka_set(conf, "isolation.level", "read_committed", cause) != 0 ||
-	    kafka_set(conf, "enable.partition.eof", "true", cause) != 0 ||
-	    kafka_set(conf, "fetch.wait.max.ms", "10", cause) != 0 ||
-	    kafka_set(conf, "enable.auto.commit", "false", cause) != 0 ||
-	    kafka_set(conf, "fetch.message.max.bytes", "100000000",
+	    kafka_in_set(conf, "isolation.level", "read_committed",
 	    cause) != 0 ||
-	    kafka_set(conf, "receive.message.max.bytes", "200000000",
+	    kafka_in_set(conf, "enable.partition.eof", "true", cause) != 0 ||
+	    kafka_in_set(conf, "fetch.wait.max.ms", "10", cause) != 0 ||
+	    kafka_in_set(conf, "enable.auto.commit", "false", cause) != 0 ||
+	    kafka_in_set(conf, "fetch.message.max.bytes", "100000000",
+	    cause) != 0 ||
+	    kafka_in_set(conf, "receive.message.max.bytes", "200000000",
 	    cause) != 0) {
 		rd_kafka_conf_destroy(conf);
 		goto fail;
@@ -1191,7 +568,7 @@ kafka_in_stop(struct kafka_in *k)
 
 	if (k == NULL || k->closed)
 		return;
-	kafka_commit_all(k, "shutdown");
+	kafka_state_commit_all(k, "shutdown");
 	k->closed = 1;
 	event_del(k->ev_io);
 	event_del(k->ev_poll);
@@ -1323,7 +700,8 @@ kafka_in_metrics(struct kafka_in *k, struct evbuffer *b)
 		for (r = 0; r < KB_N; r++)
 			evbuffer_add_printf(b, "stopcock_kafka_bad_messages_"
 			    "total{partition=\"%" PRId32 "\",reason=\"%s\"} %"
-			    PRIu64 "\n", p->id, kafka_bad_names[r], p->c.bad[r]);
+			    PRIu64 "\n", p->id, kafka_bad_names[r],
+			    p->c.bad[r]);
 	metrics_family(b, "stopcock_kafka_rejected_total", "counter",
 	    "Lines of the partition refused by the protocol or the engine.");
 	KAFKA_EACH(k, p, i) {
