@@ -175,7 +175,7 @@ sketch_load(const char *b64)
 		pad++;
 	if (len >= 2 && b64[len - 2] == '=')
 		pad++;
-	sk = sketch_decode(buf, (size_t)n - pad);
+	sk = sketch_decode_any(buf, (size_t)n - pad);
 	free(buf);
 	return sk;
 }

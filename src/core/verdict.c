@@ -440,18 +440,22 @@ grown(const struct engine *eng, double *last, double n, double growth,
  * then scaled and shifted. The widening puts a bucket at the edge of the
  * values it may hold (relative error a: w = (1 + a)/(1 - a) or its
  * inverse), so a margin is decided on the conservative side of the
- * sketch's resolution.
+ * sketch's resolution. side puts the sketch's edges (values beyond its
+ * buckets, known only by their range) at their lowest (side < 0) or
+ * highest (side > 0) value: the arm whose rise is harm reads them low,
+ * the other high, so values folded or far out never make harm
+ * (sketch_buckets_side).
  */
 static void
 blocks_widened(struct engine *eng, const struct sketch *sk, size_t off,
-    double w, double scale, double shift, struct stats_blocks *out)
+    int side, double w, double scale, double shift, struct stats_blocks *out)
 {
 	size_t i, n;
 	uint64_t total = 0;
 	double v;
 
-	n = sketch_buckets(sk, eng->scratch_v + off, eng->scratch_c + off,
-	    eng->scratch_n / 2);
+	n = sketch_buckets_side(sk, side, eng->scratch_v + off,
+	    eng->scratch_c + off, eng->scratch_n / 2);
 	for (i = 0; i < n; i++) {
 		v = eng->scratch_v[off + i];
 		v = v >= 0 ? v * w : v / w;
@@ -467,10 +471,10 @@ blocks_widened(struct engine *eng, const struct sketch *sk, size_t off,
 
 /* Fill the engine's scratch with a sketch's blocks, values scaled. */
 static void
-blocks_of(struct engine *eng, const struct sketch *sk, size_t off,
+blocks_of(struct engine *eng, const struct sketch *sk, size_t off, int side,
     double scale, double shift, struct stats_blocks *out)
 {
-	blocks_widened(eng, sk, off, 1, scale, shift, out);
+	blocks_widened(eng, sk, off, side, 1, scale, shift, out);
 }
 
 static void
@@ -569,18 +573,18 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	if (g->harm == HARM_INCREASE) {
 		scale = g->margin_relative ? 1 + m : 1;
 		shift = g->margin_relative ? 0 : m * (1 + acc);
-		blocks_widened(eng, a->sk, 0, (1 + acc) / (1 - acc), scale,
+		blocks_widened(eng, a->sk, 0, 1, (1 + acc) / (1 - acc), scale,
 		    shift, &ba);
-		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
+		blocks_of(eng, b->sk, eng->scratch_n / 2, -1, 1, 0, &bb);
 		ba.weight = wt[0];
 		bb.weight = wt[1];
 		t->log_e = stats_quantile_log_e1(&ba, &bb, q, plan_units_of(g, e));
 	} else {
 		scale = g->margin_relative ? 1 - m : 1;
 		shift = g->margin_relative ? 0 : -m * (1 - acc);
-		blocks_widened(eng, a->sk, 0, (1 - acc) / (1 + acc), scale,
+		blocks_widened(eng, a->sk, 0, -1, (1 - acc) / (1 + acc), scale,
 		    shift, &ba);
-		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
+		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 1, 0, &bb);
 		ba.weight = wt[0];
 		bb.weight = wt[1];
 		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
@@ -589,15 +593,29 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	if (!want_cs)
 		return 0;
 	/* Per-arm CSs at level/2 each: the difference's bounds hold
-	 * jointly by a union bound. */
-	blocks_of(eng, a->sk, 0, 1, 0, &ca);
-	blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &cb);
+	 * jointly by a union bound. An arm with edges takes its lower bound
+	 * with the edges at their lowest values, its upper at their highest
+	 * (the same martingale, so still one CS at level/2). */
+	blocks_of(eng, a->sk, 0, -1, 1, 0, &ca);
+	blocks_of(eng, b->sk, eng->scratch_n / 2, -1, 1, 0, &cb);
 	ca.weight = wt[0];
 	cb.weight = wt[1];
 	if (stats_quantile_cs(&ca, q, plan_units_of(g, e), level / 2, &t->ctl_lo,
 	    &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q, plan_units_of(g, e),
 	    level / 2, &t->trt_lo, &t->trt_hi) != 0)
 		return 0;
+	if (sketch_edge_count(a->sk) != 0 || sketch_edge_count(b->sk) != 0) {
+		double dummy;
+
+		blocks_of(eng, a->sk, 0, 1, 1, 0, &ca);
+		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 1, 0, &cb);
+		ca.weight = wt[0];
+		cb.weight = wt[1];
+		if (stats_quantile_cs(&ca, q, plan_units_of(g, e), level / 2,
+		    &dummy, &t->ctl_hi) != 0 || stats_quantile_cs(&cb, q,
+		    plan_units_of(g, e), level / 2, &dummy, &t->trt_hi) != 0)
+			return 0;
+	}
 	t->lo = t->trt_lo - t->ctl_hi;
 	t->hi = t->trt_hi - t->ctl_lo;
 	if (isnan(t->lo))
@@ -608,15 +626,19 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	return 0;
 }
 
-/* Records of a sketch beyond x (above, or below when !above). */
+/*
+ * Records of a sketch beyond x (above, or below when !above), its edges
+ * read at their lowest (side < 0) or highest (side > 0) value.
+ */
 static double
-tail_count(struct engine *eng, const struct sketch *sk, double x, int above)
+tail_count(struct engine *eng, const struct sketch *sk, double x, int above,
+    int side)
 {
 	size_t i, n;
 	double c = 0;
 
 	scratch_reserve(eng, sketch_nbuckets(sk) + 1);
-	n = sketch_buckets(sk, eng->scratch_v, eng->scratch_c,
+	n = sketch_buckets_side(sk, side, eng->scratch_v, eng->scratch_c,
 	    eng->scratch_n / 2);
 	for (i = 0; i < n; i++)
 		if (above ? eng->scratch_v[i] > x : eng->scratch_v[i] < x)
@@ -664,9 +686,11 @@ quantile_detect(struct engine *eng, struct experiment *e, struct test *t,
 		xb = g->margin_relative ? x0 * (1 - acc) * (1 - r) /
 		    (1 + acc) : (x0 * (1 - acc) - r) / (1 + acc);
 	t->qd_cum[0][0] = t->qd_cum[0][2] = (double)sketch_count(a->sk);
-	t->qd_cum[0][1] = tail_count(eng, a->sk, x0, up);
+	/* edges on the side that does not make harm: the control's
+	 * exceedances counted at most, the treatment's at least */
+	t->qd_cum[0][1] = tail_count(eng, a->sk, x0, up, up ? 1 : -1);
 	t->qd_cum[1][0] = t->qd_cum[1][2] = (double)sketch_count(b->sk);
-	t->qd_cum[1][1] = tail_count(eng, b->sk, xb, up);
+	t->qd_cum[1][1] = tail_count(eng, b->sk, xb, up, up ? -1 : 1);
 	return change_offer_quantile(eng, e, t, g, t->qd_cum[0][0],
 	    t->qd_cum[0][1], t->qd_cum[1][0], t->qd_cum[1][1], deff);
 }
@@ -696,8 +720,10 @@ quantile_harm_bound(struct engine *eng, struct experiment *e, struct test *t,
 	for (i = 0; i < 30 && hi - lo > 1e-4; i++) {
 		mid = 0.5 * (lo + hi);
 		m = g->harm == HARM_INCREASE ? 1 + mid : 1 - mid;
-		blocks_of(eng, a->sk, 0, m, 0, &ba);
-		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 0, &bb);
+		blocks_of(eng, a->sk, 0, g->harm == HARM_INCREASE ? 1 : -1, m,
+		    0, &ba);
+		blocks_of(eng, b->sk, eng->scratch_n / 2,
+		    g->harm == HARM_INCREASE ? -1 : 1, 1, 0, &bb);
 		if ((g->harm == HARM_INCREASE ?
 		    stats_quantile_log_e1(&ba, &bb, g->quantile,
 		    plan_units_of(g, e)) :
