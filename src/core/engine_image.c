@@ -233,7 +233,7 @@ held_load(struct experiment *e, struct series *s, const json_t *a)
 		memcpy(&r.h, &h, sizeof r.h);
 		if (!isfinite(r.t) || !isfinite(r.a) || !isfinite(r.b))
 			return -1;
-		engine_held_push(e, s, &r);
+		align_push(e, s, &r);
 	}
 	return 0;
 }

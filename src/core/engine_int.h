@@ -297,8 +297,24 @@ void		 engine_emit(struct engine *, const struct finding *);
 int		 engine_metric_alloc_series(struct engine *,
 		    struct experiment *, struct metric *);
 void		 engine_metric_needs(const struct conf *, struct metric *);
-void		 engine_held_push(struct experiment *, struct series *,
+void		 engine_fold(struct engine *, struct experiment *, int mi,
+		    int arm, const struct held *);
+
+/* align.c */
+void		 align_push(struct experiment *, struct series *,
 		    const struct held *);
+void		 align_offer(struct engine *, struct experiment *, int mi,
+		    int arm, const struct held *, int stamped);
+void		 align_tick(struct engine *, struct experiment *, double now);
+void		 align_flush(struct engine *, struct experiment *);
+
+/* srm.c */
+int64_t		 srm_interval_of(const struct engine *, double t);
+void		 srm_complete(struct engine *, struct experiment *,
+		    int64_t upto);
+void		 srm_expose(struct engine *, struct experiment *, int arm,
+		    uint64_t units, double t);
+void		 srm_flush(struct engine *, struct experiment *);
 void		 engine_link_tests(const struct engine *, struct experiment *);
 void		 hist_offer(struct hist *, uint32_t cap, double t, double a,
 		    double b, double c, double p);
