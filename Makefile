@@ -80,7 +80,7 @@ $(BUILD)/obj/gen/page.o: $(BUILD)/gen/page.c
 	$(CC) $(CPPFLAGS) $(CFLAGS) -c $< -o $@
 
 .PHONY: all deps check check-fast unit test-build demo bench fuzz \
-	fuzz-build install clean
+	fuzz-build install uninstall clean
 .DEFAULT_GOAL := all
 
 all: $(BUILD)/stopcockd $(BUILD)/stopcock
@@ -167,13 +167,32 @@ fuzz:
 
 fuzz-build: $(FUZZ_BIN)
 
+# What install puts where (uninstall removes the same list). The
+# configuration installed is a neutral template (conf/template.conf), not
+# the demo's scenario (conf/stopcock.conf); an existing one is kept, and
+# uninstall leaves it (it is the operator's).
+MANDIR		= $(PREFIX)/share/man
+INSTALLED	= $(PREFIX)/bin/stopcock $(PREFIX)/sbin/stopcockd \
+		  $(MANDIR)/man1/stopcock.1 $(MANDIR)/man5/stopcock.conf.5 \
+		  $(MANDIR)/man8/stopcockd.8 \
+		  $(PREFIX)/lib/systemd/system/stopcockd.service \
+		  $(PREFIX)/lib/sysusers.d/stopcock.conf \
+		  /etc/logrotate.d/stopcock
+
 install: all
 	install -d $(DESTDIR)$(PREFIX)/bin $(DESTDIR)$(PREFIX)/sbin \
-	    $(DESTDIR)/etc/stopcock $(DESTDIR)$(PREFIX)/lib/systemd/system
+	    $(DESTDIR)/etc/stopcock $(DESTDIR)$(PREFIX)/lib/systemd/system \
+	    $(DESTDIR)$(MANDIR)/man1 $(DESTDIR)$(MANDIR)/man5 \
+	    $(DESTDIR)$(MANDIR)/man8 $(DESTDIR)/etc/logrotate.d
 	install -m 755 $(BUILD)/stopcock $(DESTDIR)$(PREFIX)/bin/stopcock
 	install -m 755 $(BUILD)/stopcockd $(DESTDIR)$(PREFIX)/sbin/stopcockd
+	install -m 644 man/stopcock.1 $(DESTDIR)$(MANDIR)/man1/stopcock.1
+	install -m 644 man/stopcock.conf.5 \
+	    $(DESTDIR)$(MANDIR)/man5/stopcock.conf.5
+	install -m 644 man/stopcockd.8 $(DESTDIR)$(MANDIR)/man8/stopcockd.8
+	install -m 644 conf/logrotate $(DESTDIR)/etc/logrotate.d/stopcock
 	test -e $(DESTDIR)/etc/stopcock/stopcock.conf || \
-	    install -m 640 conf/stopcock.conf $(DESTDIR)/etc/stopcock/stopcock.conf
+	    install -m 640 conf/template.conf $(DESTDIR)/etc/stopcock/stopcock.conf
 	sed 's|@SBINDIR@|$(PREFIX)/sbin|g' systemd/stopcockd.service > \
 	    $(DESTDIR)$(PREFIX)/lib/systemd/system/stopcockd.service
 	chmod 644 $(DESTDIR)$(PREFIX)/lib/systemd/system/stopcockd.service
@@ -186,6 +205,12 @@ install: all
 		systemd-sysusers $(PREFIX)/lib/sysusers.d/stopcock.conf && \
 		chgrp stopcock /etc/stopcock/stopcock.conf; \
 	fi
+
+uninstall:
+	for f in $(INSTALLED); do rm -f "$(DESTDIR)$$f"; done
+	rmdir "$(DESTDIR)/etc/stopcock" 2>/dev/null || true
+	@echo "kept: $(DESTDIR)/etc/stopcock/stopcock.conf (if present) and" \
+	    "the state in /var/lib/stopcock"
 
 clean:
 	rm -rf build

@@ -316,6 +316,8 @@ enum pause_decision pause_decide(struct pause *, const struct finding *,
 void		 pause_deliver(struct pause *, const struct finding *,
 		    const char *reason);
 void		 pause_metrics(struct pause *, struct evbuffer *);
+/* SIGHUP: the audit log reopened by name (log rotation). */
+void		 pause_reopen(struct pause *);
 
 /* http.c */
 struct http	*http_new(struct daemon *, char **cause);

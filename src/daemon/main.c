@@ -354,6 +354,7 @@ daemon_signal_cb(evutil_socket_t sig, short what, void *arg)
 		daemon_shutdown(d, (int)sig);
 		break;
 	case SIGHUP:
+		pause_reopen(d->pause);	/* the audit log, after rotation */
 		daemon_reload(d);
 		break;
 	case SIGUSR1:

@@ -239,6 +239,30 @@ pause_audit(struct pause *p, const struct finding *f,
 	free(text);
 }
 
+/*
+ * SIGHUP: reopen the audit log by its name, so a rotated file (logrotate
+ * renames it, then signals) is left behind and lines go to a new one. What
+ * the policy remembers (once per epoch, the hourly window) stays in memory.
+ */
+void
+pause_reopen(struct pause *p)
+{
+	int fd;
+
+	if (p == NULL || p->audit_path == NULL)
+		return;
+	fd = open(p->audit_path, O_RDWR | O_APPEND | O_CREAT | O_CLOEXEC, 0640);
+	if (fd == -1) {
+		log_warn("pause: reopen %s (audit lines go to the old file)",
+		    p->audit_path);
+		p->audit_errors++;
+		return;
+	}
+	if (p->audit_fd != -1)
+		close(p->audit_fd);
+	p->audit_fd = fd;
+}
+
 static int
 pause_is_done(struct pause *p, const char *experiment, uint32_t epoch)
 {
