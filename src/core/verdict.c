@@ -418,6 +418,7 @@ eval_rate(const struct engine *eng, struct experiment *e, struct test *t,
  * cost does not grow with the tick rate. engine_finish looks at
  * everything.
  */
+#define VERDICT_CHEAP_GROWTH 1.001
 #define VERDICT_EV_GROWTH 1.02
 #define VERDICT_EV_MIN_STEP 32
 #define VERDICT_CS_GROWTH 1.25
@@ -938,6 +939,13 @@ verdict_evaluate(struct engine *eng, struct experiment *e, struct test *t,
 	switch (g->test) {
 	case TEST_MEAN:
 	case TEST_PROPORTION:
+		/* after every record while the arms are small, then each time
+		 * they grew by 0.1%: a verdict at most that late, for a hot
+		 * path whose cost no longer grows with the record rate */
+		n = g->test == TEST_MEAN ? (double)(a->m.n + b->m.n) :
+		    (double)(a->r.records + b->r.records);
+		if (!grown(eng, &t->ev_n, n, VERDICT_CHEAP_GROWTH, INFINITY))
+			return;
 		rc = eval_normal(eng, e, t, g, a, b, level);
 		break;
 	case TEST_RATE:
