@@ -35,9 +35,9 @@
 
 #include "stopcock/log.h"
 #include "daemon.h"
+#include "alert_int.h"
 
 #define ALERT_MAX	4096	/* alerts remembered (raised and acked) */
-#define ALERT_LINE_MAX	2048	/* bytes in one syslog line */
 #define ALERT_ID_BYTES	16	/* of SHA-256, as hex after "sc_" */
 
 enum alert_state { ALERT_RAISED, ALERT_ACKED, ALERT_RESOLVED };
@@ -88,7 +88,7 @@ struct alert {
 	uint64_t		 resolved;
 	uint64_t		 evicted;
 	uint64_t		 duplicates;
-	uint64_t		 untrusted_safe;	/* safe, not raised: SRM */
+	uint64_t		 untrusted_safe;	/* safe under SRM */
 	struct event		*am_timer;	/* Alertmanager refreshes */
 	double			 am_resend;
 };
@@ -119,42 +119,6 @@ static const uint32_t alert_kind_bits[ALERT_NKINDS] = {
  * this is process-wide.
  */
 static char alert_ident[64];
-
-/* A bounded line builder: appends stop at the end, never overflow. */
-struct alert_line {
-	char	buf[ALERT_LINE_MAX];
-	size_t	len;
-};
-
-static void alert_printf(struct alert_line *, const char *, ...)
-    SC_PRINTF(2, 3);
-
-static void
-alert_printf(struct alert_line *l, const char *fmt, ...)
-{
-	va_list ap;
-	int n;
-
-	if (l->len >= sizeof l->buf - 1)
-		return;
-	va_start(ap, fmt);
-	n = vsnprintf(l->buf + l->len, sizeof l->buf - l->len, fmt, ap);
-	va_end(ap);
-	if (n < 0)
-		return;
-	l->len += (size_t)n;
-	if (l->len >= sizeof l->buf)
-		l->len = sizeof l->buf - 1;
-}
-
-static void
-alert_num(struct alert_line *l, const char *key, double v)
-{
-	if (isfinite(v))
-		alert_printf(l, " %s=%.6g", key, v);
-	else
-		alert_printf(l, " %s=nan", key);
-}
 
 /* A saved kind's name back to the kind; -1 when unknown. */
 static int
@@ -265,140 +229,6 @@ alert_unit(const struct alert *a, const char *guardrail)
 	return "";
 }
 
-/* The SRM check's own alerts, which speak of arms, not a guardrail. */
-static int
-alert_is_srm(enum alert_kind kind)
-{
-	return kind == ALERT_SRM || kind == ALERT_UNTRUSTED;
-}
-
-static const char *
-alert_arm_role(const struct finding *f, const char *variant)
-{
-	if (f->control != NULL && strcmp(variant, f->control) == 0)
-		return "control";
-	if (f->variant != NULL && strcmp(variant, f->variant) == 0)
-		return "treatment";
-	return NULL;
-}
-
-/* One human sentence: what happened, where, how sure. */
-static char *
-alert_summary(const struct finding *f, enum alert_kind kind,
-    const char *reason, const char *unit)
-{
-	struct alert_line l;
-	const char *sp = *unit != '\0' ? " " : "";
-	int i, increase;
-
-	l.len = 0;
-	l.buf[0] = '\0';
-	if (alert_is_srm(kind)) {
-		alert_printf(&l, "Sample ratio mismatch in experiment %s "
-		    "epoch %u:", f->experiment, f->epoch);
-		for (i = 0; i < f->narms; i++)
-			alert_printf(&l, "%s %s %llu exposures (weight %g)",
-			    i == 0 ? "" : ",", f->arms[i].variant,
-			    (unsigned long long)f->arms[i].exposures,
-			    f->arms[i].weight);
-		alert_printf(&l, "; p=%.3g. Every verdict of this epoch is "
-		    "untrustworthy until the assignment is fixed and a new "
-		    "epoch starts", f->p);
-		return xstrdup(l.buf);
-	}
-	if (kind == ALERT_PAUSE || kind == ALERT_PAUSE_DRY_RUN) {
-		alert_printf(&l, "%s experiment %s: %s",
-		    kind == ALERT_PAUSE ? "Paused" :
-		    "Dry run: would have paused", f->experiment,
-		    reason != NULL ? reason : "pause guardrail");
-		return xstrdup(l.buf);
-	}
-	alert_printf(&l, "guardrail %s %s for %s vs %s in experiment %s: "
-	    "effect %+.4g%s%s", f->guardrail, kind == ALERT_SAFE ?
-	    "is safe" : "shows harm", f->variant ? f->variant : "?",
-	    f->control ? f->control : "?", f->experiment, f->estimate, sp,
-	    unit);
-	if (isfinite(f->rel_estimate))
-		alert_printf(&l, " (%+.1f%%)", 100 * f->rel_estimate);
-	alert_printf(&l, ", confidence sequence [%.4g, %.4g]%s%s", f->lower,
-	    f->upper, sp, unit);
-	if (kind == ALERT_SAFE) {
-		/* The bound that rules harm out says more than a p-value,
-		 * which here measures the evidence against harm. */
-		increase = f->harm == NULL || strcmp(f->harm, "decrease") != 0;
-		alert_printf(&l, ": the effect is %s %+.4g%s%s, inside the "
-		    "margin of %s%.4g%s%s, alpha %.3g of %d tests",
-		    increase ? "at most" : "at least", increase ? f->upper :
-		    f->lower, sp, unit, increase ? "+" : "-", f->margin, sp,
-		    unit, f->alpha, f->family);
-	} else
-		alert_printf(&l, ", p=%.3g, alpha %.3g of %d tests", f->p,
-		    f->alpha, f->family);
-	if (f->untrusted)
-		alert_printf(&l, "; UNTRUSTED: sample ratio mismatch in this "
-		    "epoch");
-	return xstrdup(l.buf);
-}
-
-/* The key=value fields of the syslog line (after "alert raised"). */
-static char *
-alert_fields(const struct finding *f, const char *id, enum alert_kind kind,
-    enum alert_sev sev, const char *link, const char *unit)
-{
-	struct alert_line l;
-	char key[PROTO_NAME_MAX + 16];
-	int i, srm;
-
-	srm = alert_is_srm(kind);
-	l.len = 0;
-	l.buf[0] = '\0';
-	alert_printf(&l, "id=%s alert=%s severity=%s experiment=%s epoch=%u "
-	    "guardrail=%s", id, alert_kinds[kind], alert_sevs[sev],
-	    f->experiment, f->epoch, f->guardrail ? f->guardrail : "srm");
-	if (!srm) {
-		alert_printf(&l, " metric=%s test=%s variant=%s control=%s "
-		    "harm=%s verdict=%s", f->metric ? f->metric : "-",
-		    f->test ? f->test : "-", f->variant ? f->variant : "-",
-		    f->control ? f->control : "-", f->harm ? f->harm : "-",
-		    verdict_name(f->verdict));
-		alert_num(&l, "estimate", f->estimate);
-		alert_num(&l, "lower", f->lower);
-		alert_num(&l, "upper", f->upper);
-		alert_num(&l, "rel_estimate", f->rel_estimate);
-		alert_num(&l, "rel_lower", f->rel_lower);
-		alert_num(&l, "rel_upper", f->rel_upper);
-		if (*unit != '\0')
-			alert_printf(&l, " unit=%s", unit);
-	} else {
-		alert_printf(&l, " verdict=srm");
-		alert_num(&l, "chi2_p", f->chi2_p);
-	}
-	alert_num(&l, "p", f->p);
-	alert_num(&l, "alpha", f->alpha);
-	alert_printf(&l, " family=%d untrusted=%s", f->family,
-	    f->untrusted ? "yes" : "no");
-	/* Counts per arm: every arm for SRM, the two compared otherwise. */
-	for (i = 0; i < f->narms; i++) {
-		const struct finding_arm *arm = &f->arms[i];
-
-		if (!srm && alert_arm_role(f, arm->variant) == NULL)
-			continue;
-		alert_printf(&l, " exposures.%s=%llu", arm->variant,
-		    (unsigned long long)arm->exposures);
-		if (srm)
-			continue;
-		snprintf(key, sizeof key, "n.%s", arm->variant);
-		alert_num(&l, key, arm->n);
-		if (f->test_kind == TEST_PROPORTION ||
-		    f->test_kind == TEST_RATE) {
-			snprintf(key, sizeof key, "k.%s", arm->variant);
-			alert_num(&l, key, arm->k);
-		}
-	}
-	if (link != NULL)
-		alert_printf(&l, " link=%s", link);
-	return xstrdup(l.buf);
-}
 
 static void
 alert_entry_free(struct alert_entry *e)
@@ -658,10 +488,11 @@ alert_raise(struct alert *a, enum alert_kind kind, const struct finding *f,
 	e->first_seen = now;
 	e->last_sent = now;
 
-	unit = alert_is_srm(kind) ? "" : alert_unit(a, f->guardrail);
+	unit = alert_text_srm(kind) ? "" : alert_unit(a, f->guardrail);
 	link = alert_link(a, f->experiment);
-	e->line = alert_fields(f, id, kind, e->severity, link, unit);
-	summary = alert_summary(f, kind, reason, unit);
+	e->line = alert_text_fields(f, id, kind, alert_kinds[kind],
+	    alert_sevs[e->severity], link, unit);
+	summary = alert_text_summary(f, kind, reason, unit);
 	if ((body = finding_json(f)) == NULL || !json_is_object(body)) {
 		json_decref(body);
 		body = json_object();
@@ -788,7 +619,7 @@ static int
 alert_remindable(const struct alert_entry *e)
 {
 	return e->state == ALERT_RAISED && (e->kind == ALERT_HARM ||
-	    alert_is_srm(e->kind));
+	    alert_text_srm(e->kind));
 }
 
 static void

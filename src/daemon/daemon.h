@@ -21,6 +21,7 @@
  *               the loop to pause, alert and webhooks    (dispatch_*)
  *   alert.c     findings -> alerts: identity, lifecycle, severity,
  *               routing, syslog (alert_*)
+ *   alert_text.c  an alert's summary and syslog fields (alert_text_*)
  *   alertmgr.c  alerts in the Alertmanager API's form (alertmgr_*)
  *   webhook.c   signed webhooks over libcurl multi, spooled (webhook_*)
  *   pause.c     auto-pause: rules, audit log, HTTP + Redis delivery (pause_*)

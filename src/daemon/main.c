@@ -256,8 +256,10 @@ daemon_reload_notes(const struct conf *old, const struct conf *new)
 		    offsetof(struct conf, kafka_instance_id) },
 		{ "[syslog] ident", offsetof(struct conf, syslog_ident) },
 		{ "[syslog] facility", offsetof(struct conf, syslog_facility) },
+		{ "[alertmanager] url", offsetof(struct conf, am_url) },
 	};
 	size_t i;
+	int j, same;
 
 	for (i = 0; i < SC_NELEM(fixed); i++) {
 		const char *a = *(char *const *)((const char *)old +
@@ -269,6 +271,26 @@ daemon_reload_notes(const struct conf *old, const struct conf *new)
 			log_warnx("reload: %s changed; it takes effect at the "
 			    "next restart", fixed[i].name);
 	}
+	/* The receivers are built at start; syslog and Alertmanager kinds
+	 * and the runbook are read afresh for each alert. */
+	same = old->nwebhooks == new->nwebhooks;
+	for (j = 0; same && j < old->nwebhooks; j++)
+		same = strcmp(old->webhooks[j].name, new->webhooks[j].name) ==
+		    0 && !daemon_differs(old->webhooks[j].url,
+		    new->webhooks[j].url) && !daemon_differs(
+		    old->webhooks[j].secret, new->webhooks[j].secret) &&
+		    old->webhooks[j].kinds == new->webhooks[j].kinds &&
+		    old->webhooks[j].timeout == new->webhooks[j].timeout &&
+		    old->webhooks[j].max_attempts ==
+		    new->webhooks[j].max_attempts &&
+		    old->webhooks[j].queue == new->webhooks[j].queue;
+	if (!same)
+		log_warnx("reload: [webhook] sections changed; they take "
+		    "effect at the next restart");
+	if (old->am_resend != new->am_resend ||
+	    old->remind_every != new->remind_every)
+		log_warnx("reload: [alerts] remind or [alertmanager] resend "
+		    "changed; it takes effect at the next restart");
 }
 
 /* SIGHUP: the new file replaces the old one entirely or not at all. */

@@ -44,6 +44,7 @@ import hashlib
 import http.client
 import json
 import os
+import signal
 import sys
 import time
 
@@ -325,6 +326,21 @@ kinds = safe resolved
         tap.ok("alert raised id=%s" % b.get("id") in log and
                "alert resolved id=%s" % b.get("id") in log,
                "-f: raised and resolved alert lines on stderr")
+
+        # [syslog] kinds defaults to all but safe: the stderr copy too.
+        tap.ok(not [ln for ln in log.splitlines() if "alert raised" in ln
+                    and "alert=safe" in ln] and "alert=srm" in log,
+               "-f: safe news is not logged by default, SRM is")
+
+        # A reload that changes a receiver's kinds says it waits for a
+        # restart (receivers are built at start).
+        d.write_conf(d.conf_text.replace("kinds = harm\n",
+                                         "kinds = harm srm\n"))
+        d.signal(signal.SIGHUP)
+        tap.ok(wait_for(lambda: "reload: [webhook] sections changed" in
+                        d.log_text(), 10),
+               "reload: a changed [webhook] kinds is logged as waiting for "
+               "a restart")
 
         # Restart: open alerts keep their ids, nothing is sent again.
         before = sorted(x["id"] for x in get(d, "/api/alerts")["alerts"])
