@@ -344,6 +344,14 @@ kinds = safe resolved
 
         # Restart: open alerts keep their ids, nothing is sent again.
         before = sorted(x["id"] for x in get(d, "/api/alerts")["alerts"])
+
+        def settled():
+            # every delivery answered: none left in a receiver's spool
+            top = os.path.join(d.state, "spool")
+            return not [f for r in os.listdir(top) if r != "@alertmanager"
+                        for f in os.listdir(os.path.join(top, r))
+                        if f.endswith(".json")]
+        wait_for(settled, 10)
         n = len(allr.snapshot())
         tap.eq(d.stop(), 0, "daemon stops cleanly")
         d.start()
