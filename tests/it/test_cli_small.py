@@ -6,7 +6,9 @@ run against the real binaries.
   - `stopcock replay --report DIR` with a DIR that does not exist fails
     before it replays anything (no verdict line on stdout);
   - `--version` on both binaries prints "NAME VERSION";
-  - `stopcockd -h` says what -c, -d, -f and -t do.
+  - `stopcockd -h` says what -c, -d, -f and -t do;
+  - a [webhook] kinds list with an unknown word is refused at its line,
+    and every word the README documents is accepted.
 
 Invented scenario: a bakery's guardrail on oven temperature.
 """
@@ -57,6 +59,26 @@ def main():
     c = run(STOPCOCK, "check-config", path)
     tap.eq((t.returncode, c.returncode), (0, 0),
            "with an input both accept it")
+
+    # A kinds list with a word that is no kind is refused with its line.
+    bad = os.path.join(tmp, "kinds.conf")
+    with open(bad, "w") as f:
+        f.write(open(path).read() + "\n[webhook ops]\nurl = "
+                "http://127.0.0.1:9/hook\nkinds = harm resolved harmful\n")
+    nline = open(bad).read().splitlines().index(
+        "kinds = harm resolved harmful") + 1
+    c = run(STOPCOCK, "check-config", bad)
+    t = run(STOPCOCKD, "-t", "-c", bad)
+    tap.ok(c.returncode != 0 and t.returncode != 0 and
+           ("%s:%d:" % (bad, nline)) in c.stderr and "harmful" in c.stderr,
+           "kinds: an unknown word is refused as file:line, naming it",
+           c.stderr)
+    with open(bad, "w") as f:
+        f.write(open(path).read() + "\n[webhook ops]\nurl = "
+                "http://127.0.0.1:9/hook\nkinds = harm srm pause_dry_run "
+                "reminder acknowledged resolved safe pause\n")
+    c = run(STOPCOCK, "check-config", bad)
+    tap.eq(c.returncode, 0, "kinds: every documented word is accepted")
 
     records = "plan bake control=50 crisp=50\n" + "".join(
         "observe bake %s oven_temp %d\n" % (("control", "crisp")[i % 2],
