@@ -45,6 +45,9 @@ struct conf_experiment {
 	double		alpha;		/* 0: defaults.alpha */
 	double		srm_alpha;	/* 0: defaults.srm_alpha */
 	double		plan_units;	/* 0: defaults.plan_units */
+	/* the guardrails that apply, names separated by blanks; NULL:
+	 * every configured guardrail (engine.c, docs/methods.md sec. 6) */
+	char		*guardrails;
 	int		line;
 };
 
@@ -108,6 +111,8 @@ struct conf {
 	uint32_t	max_experiments;
 	uint32_t	max_variants;
 	uint32_t	max_metrics;
+	double		retire_idle;	/* s without a record before an
+					 * experiment is retired; 0: never */
 
 	int		nguardrails;
 	struct conf_guardrail guardrails[CONF_GUARDRAILS_MAX];

@@ -34,6 +34,8 @@ enum engine_reject {
 	ENGINE_E_K_GT_N,	/* "k_exceeds_n": proportion with K > N */
 	ENGINE_E_CLOSED_EPOCH,	/* "closed_epoch": epoch= names a past epoch */
 	ENGINE_E_FUTURE_EPOCH,	/* "future_epoch": epoch= not planned yet */
+	ENGINE_E_GUARDRAIL,	/* "unknown_guardrail": a plan's guardrails=
+				 * names one not configured */
 	ENGINE_NREJECT
 };
 
@@ -187,7 +189,8 @@ int		 engine_reset(struct engine *, const char *experiment,
 int		 engine_retire(struct engine *, const char *id, const char *why,
 		    double now, json_t **archive, char **cause);
 /* The experiment idle longest, if no record reached it for idle seconds
- * before now (engine clock); NULL when none (or idle <= 0). Borrowed. */
+ * before now (engine clock); NULL when none (or idle <= 0). Experiments
+ * planned in the configuration are never idle. Borrowed. */
 const char	*engine_idle(const struct engine *, double now, double idle);
 void		 engine_counters(const struct engine *,
 		    struct engine_counters *);

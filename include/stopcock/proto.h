@@ -40,6 +40,8 @@
 #define PROTO_COUNT_MAX 1e12
 #define PROTO_UNIT_MAX 128	/* bytes in a unit= id */
 #define PROTO_EPOCH_MAX 1000000000u	/* largest epoch= value */
+/* guardrails= of a plan: names joined by ',', at most this many bytes */
+#define PROTO_FAMILY_BYTES 1024
 
 enum proto_kind {
 	PROTO_PLAN,
@@ -90,6 +92,11 @@ struct record {
 	char		unit[PROTO_UNIT_MAX + 1];
 	int		narms;		/* plan */
 	struct proto_arm arms[PROTO_PLAN_MAX];
+	/* plan: guardrails=a,b (JSON "guardrails": ["a", "b"]), the
+	 * experiment's family: names joined by ',', each a valid name and
+	 * none twice; family_len 0 when absent */
+	uint16_t	family_len;
+	char		family[PROTO_FAMILY_BYTES];
 };
 
 /*

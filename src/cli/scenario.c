@@ -644,10 +644,13 @@ scenario_next(struct scenario_gen *g, struct record *r)
 	if (g->emitted >= s->records)
 		return 0;
 	/* the generator states neither unit nor epoch: each record is its
-	 * own unit and counts in the epoch current when it arrives */
+	 * own unit and counts in the epoch current when it arrives; its
+	 * plans name no family (every configured guardrail applies) */
 	r->epoch = 0;
 	r->unit_len = 0;
 	r->unit[0] = '\0';
+	r->family_len = 0;
+	r->family[0] = '\0';
 	if (g->phase == 0 && g->next_plan == 0 && !g->ramped &&
 	    s->ramp_at > 0 && (double)g->emitted >= s->ramp_at *
 	    (double)s->records) {

@@ -101,6 +101,10 @@ conf_strings(struct conf *c, void (*fn)(char **))
 			for (i = 0; i < c->nwebhooks; i++)
 				fn((char **)((char *)&c->webhooks[i] +
 				    o->offset));
+		} else if (o->section == S_EXPERIMENT) {
+			for (i = 0; i < c->nexperiments; i++)
+				fn((char **)((char *)&c->experiments[i] +
+				    o->offset));
 		} else if (!conf_sections[o->section].named)
 			fn((char **)((char *)c + o->offset));
 		else
@@ -506,6 +510,47 @@ conf_observe_test(enum conf_test t)
 	return t == TEST_MEAN || t == TEST_QUANTILE;
 }
 
+/* An experiment's guardrails: configured ones, each once, at least one
+ * (the sections may come in any order, so checked at the end). */
+static void
+conf_check_family(struct conf_parser *p, const struct conf_experiment *e)
+{
+	const struct conf *c = p->conf;
+	const char *s = e->guardrails, *q, *r;
+	size_t len;
+	int g, n = 0;
+
+	for (;;) {
+		while (*s == ' ' || *s == '\t')
+			s++;
+		if (*s == '\0')
+			break;
+		for (q = s; *q != '\0' && *q != ' ' && *q != '\t'; q++)
+			;
+		len = (size_t)(q - s);
+		n++;
+		for (g = 0; g < c->nguardrails; g++)
+			if (strlen(c->guardrails[g].name) == len &&
+			    memcmp(c->guardrails[g].name, s, len) == 0)
+				break;
+		if (g == c->nguardrails)
+			conf_error(p, e->line, "experiment %s: guardrails names "
+			    "%.*s, which is not a [guardrail] section", e->id,
+			    (int)len, s);
+		for (r = e->guardrails; r < s; r++)
+			if ((r == e->guardrails || r[-1] == ' ' ||
+			    r[-1] == '\t') && strncmp(r, s, len) == 0 &&
+			    (r[len] == ' ' || r[len] == '\t'))
+				conf_error(p, e->line, "experiment %s: "
+				    "guardrails names %.*s twice", e->id,
+				    (int)len, s);
+		s = q;
+	}
+	if (n == 0)
+		conf_error(p, e->line, "experiment %s: guardrails is empty; "
+		    "leave it out for every guardrail", e->id);
+}
+
 /* Rules between sections, once everything is read. */
 static void
 conf_check(struct conf_parser *p)
@@ -544,6 +589,8 @@ conf_check(struct conf_parser *p)
 			conf_error(p, e->line, "experiment %s plans %d arms, "
 			    "more than max_variants (%u)", e->id, e->narms,
 			    c->max_variants);
+		if (e->guardrails != NULL)
+			conf_check_family(p, e);
 	}
 	/*
 	 * A Kafka daemon keeps its experiments' state in the state topic,

@@ -104,6 +104,10 @@ const struct conf_option conf_options[] = {
 	  CONF_UNIT_GROUPS_MAX, 0,
 	  "256", NULL, "random groups per arm and metric for the variance "
 	  "of records that name their unit (unit=); memory 16 bytes each" },
+	{ S_DEFAULTS, "retire_idle", T_DURATION, C(retire_idle), 1,
+	  3660 * 86400.0, F_ZERO_OK, "0", NULL, "retire an experiment that no "
+	  "record reached for this long (stopcockd: archived in the state "
+	  "directory, its slot freed); 0: never" },
 	{ S_DEFAULTS, "max_experiments", T_U32, C(max_experiments), 1, 1e6, 0,
 	  "10000", NULL, "experiments tracked at once; records beyond are "
 	  "refused and counted" },
@@ -220,6 +224,9 @@ const struct conf_option conf_options[] = {
 	  F_OPEN_MIN | F_ZERO_OK, "0", NULL, "0: [defaults] srm_alpha" },
 	{ S_EXPERIMENT, "plan_units", T_DOUBLE, E(plan_units), 1, 1e12,
 	  F_ZERO_OK, "0", NULL, "0: [defaults] plan_units" },
+	{ S_EXPERIMENT, "guardrails", T_STRING, E(guardrails), 0, 1024, 0,
+	  NULL, NULL, "the guardrails that apply to it, by name, fixed when "
+	  "it is planned; unset: every configured guardrail" },
 
 	{ S_ALERTS, "remind", T_DURATION, C(remind_every), 0.1, 30 * 86400.0,
 	  F_ZERO_OK, "0", NULL, "repeat an unacknowledged harm alert this "

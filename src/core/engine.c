@@ -23,7 +23,7 @@
 static const char *reject_names[ENGINE_NREJECT] = {
 	"ok", "unplanned", "unknown_variant", "cap_experiments",
 	"cap_variants", "cap_metrics", "kind_mismatch", "k_exceeds_n",
-	"closed_epoch", "future_epoch",
+	"closed_epoch", "future_epoch", "unknown_guardrail",
 };
 
 const char *
@@ -337,6 +337,51 @@ engine_link_tests(const struct engine *eng, struct experiment *e)
 	}
 }
 
+_Static_assert(CONF_GUARDRAILS_MAX <= 64, "a family is a 64-bit mask");
+
+/* 1 when guardrail g applies to e (is in its family). */
+static int
+exp_applies(const struct experiment *e, int g)
+{
+	return !e->fam_fixed || (e->fam_mask >> g & 1);
+}
+
+/*
+ * A family list: names separated by ',' or blanks, each a configured
+ * guardrail. 0 with the mask and count, or -1 when one is unknown.
+ */
+int
+engine_family_parse(const struct conf *c, const char *list, uint64_t *mask,
+    int *n)
+{
+	const char *p = list, *q;
+	size_t len;
+	int g;
+
+	*mask = 0;
+	*n = 0;
+	for (;;) {
+		while (*p == ',' || *p == ' ' || *p == '\t')
+			p++;
+		if (*p == '\0')
+			return 0;
+		for (q = p; *q != '\0' && *q != ',' && *q != ' ' &&
+		    *q != '\t'; q++)
+			;
+		len = (size_t)(q - p);
+		for (g = 0; g < c->nguardrails; g++)
+			if (strlen(c->guardrails[g].name) == len &&
+			    memcmp(c->guardrails[g].name, p, len) == 0)
+				break;
+		if (g == c->nguardrails)
+			return -1;
+		if (!(*mask >> g & 1))
+			(*n)++;
+		*mask |= (uint64_t)1 << g;
+		p = q;
+	}
+}
+
 /* Make sure a test exists for every guardrail x treatment arm. */
 static void
 exp_ensure_tests(const struct engine *eng, struct experiment *e)
@@ -344,6 +389,8 @@ exp_ensure_tests(const struct engine *eng, struct experiment *e)
 	int g, j, i, found;
 
 	for (g = 0; g < eng->conf->nguardrails; g++) {
+		if (!exp_applies(e, g))
+			continue;
 		for (j = 1; j < e->narms; j++) {
 			found = 0;
 			for (i = 0; i < e->ntests && !found; i++)
@@ -375,11 +422,13 @@ exp_settings(const struct engine *eng, struct experiment *e)
 	e->plan_units = ce && ce->plan_units > 0 ? ce->plan_units :
 	    c->plan_units;
 	/*
-	 * Bonferroni over every configured guardrail x treatment arm, fixed
-	 * by the plan rather than by which metrics happen to arrive, so the
-	 * family cannot grow with the data (docs/methods.md sec. 6).
+	 * Bonferroni over the family's guardrails (every configured one
+	 * unless the plan named them) x treatment arms, fixed by the plan
+	 * rather than by which metrics happen to arrive, so the family cannot
+	 * follow the data (docs/methods.md sec. 6).
 	 */
-	e->family = c->nguardrails * (treat > 0 ? treat : 1);
+	e->family = (e->fam_fixed ? e->fam_n : c->nguardrails) *
+	    (treat > 0 ? treat : 1);
 	if (e->family < 1)
 		e->family = 1;
 }
@@ -487,6 +536,7 @@ engine_exp_make(struct engine *eng, const char *id,
 	exp_push_epoch(e, now);
 	exp_ensure_tests(eng, e);
 	e->last_ts = now;
+	e->touched = eng->clock;
 	return e;
 }
 
@@ -664,18 +714,35 @@ same_plan(const struct experiment *e, const struct proto_arm *arms,
 	return 1;
 }
 
+/*
+ * A plan. The family is fixed when the experiment first appears: by the
+ * plan's own list (guardrails=), else its [experiment] section's, else
+ * every configured guardrail; a later plan's list is not looked at, so
+ * no family is chosen after the data.
+ */
 static enum engine_reject
 apply_plan(struct engine *eng, const struct proto_arm *arms, int narms,
-    const char *id, double now)
+    const char *id, const char *family, double now)
 {
+	const struct conf_experiment *ce;
 	struct experiment *e;
+	uint64_t mask = 0;
+	int n = 0;
 
 	if ((uint32_t)narms > eng->conf->max_variants)
 		return ENGINE_E_VARIANTS;
 	if ((e = exp_find(eng, id)) == NULL) {
 		if (eng->nexps >= eng->conf->max_experiments)
 			return ENGINE_E_EXPERIMENTS;
+		if (family == NULL && (ce = conf_experiment_find(eng->conf,
+		    id)) != NULL && ce->guardrails != NULL)
+			family = ce->guardrails;
+		if (family != NULL && engine_family_parse(eng->conf, family,
+		    &mask, &n) != 0)
+			return ENGINE_E_GUARDRAIL;
 		e = engine_exp_new(eng, id, arms, narms, now);
+		if (family != NULL)
+			engine_family_set(eng, e, mask, n);
 		return ENGINE_OK;
 	}
 	if (!same_plan(e, arms, narms))
@@ -704,13 +771,15 @@ engine_new(const struct conf *conf, const uint8_t hashkey[16])
 
 	eng = xcalloc(1, sizeof *eng);
 	eng->conf = conf_dup(conf);
+	eng->clock = NAN;
 	memcpy(eng->key, hashkey, sizeof eng->key);
 	eng->index = nmap_new(eng->key);
 	for (i = 0; i < conf->nexperiments; i++) {
 		ce = &conf->experiments[i];
 		if (ce->narms >= 2 && exp_find(eng, ce->id) == NULL &&
 		    eng->nexps < eng->conf->max_experiments)
-			engine_exp_new(eng, ce->id, ce->arms, ce->narms, 0);
+			(void)apply_plan(eng, ce->arms, ce->narms, ce->id,
+			    NULL, 0);
 	}
 	return eng;
 }
@@ -829,6 +898,46 @@ reconf_tests(struct engine *eng, const struct conf *old, struct experiment *e,
 	e->ntests = n;
 }
 
+/*
+ * Fix e's family to the guardrails in mask (n of them in the alpha
+ * split): tests of others go (a new experiment's, so nothing is lost),
+ * and the level of each test follows the family.
+ */
+void
+engine_family_set(struct engine *eng, struct experiment *e, uint64_t mask,
+    int n)
+{
+	int j, k = 0;
+
+	e->fam_fixed = 1;
+	e->fam_mask = mask;
+	e->fam_n = n;
+	for (j = 0; j < e->ntests; j++) {
+		if (!exp_applies(e, e->tests[j].g)) {
+			test_drop(&e->tests[j]);
+			continue;
+		}
+		e->tests[k++] = e->tests[j];
+	}
+	e->ntests = k;
+	exp_settings(eng, e);
+	engine_link_tests(eng, e);
+}
+
+/* A family's mask under the old configuration, by name under the new. */
+static uint64_t
+family_remap(const struct conf *old, const struct conf *c, uint64_t mask)
+{
+	uint64_t out = 0;
+	int g, k;
+
+	for (g = 0; g < old->nguardrails; g++)
+		if ((mask >> g & 1) &&
+		    (k = guardrail_index(c, old->guardrails[g].name)) >= 0)
+			out |= (uint64_t)1 << k;
+	return out;
+}
+
 /* A reload may ask for sketches the metrics did not keep. */
 static void
 reconf_metrics(struct engine *eng, struct experiment *e)
@@ -883,6 +992,11 @@ engine_reconfigure(struct engine *eng, const struct conf *conf, char **cause)
 	eng->conf = conf_dup(conf);
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
+		if (e->fam_fixed)
+			e->fam_mask = family_remap(old, eng->conf, e->fam_mask);
+		if (e->closing != NULL && e->closing->fam_fixed)
+			e->closing->fam_mask = family_remap(old, eng->conf,
+			    e->closing->fam_mask);
 		prev = xcalloc((size_t)e->ntests + 1, sizeof *prev);
 		why = xcalloc((size_t)e->ntests + 1, sizeof *why);
 		reconf_tests(eng, old, e, prev, why);
@@ -1012,6 +1126,7 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 	eng->event = event;
 	if (r->kind == PROTO_PLAN) {
 		rc = apply_plan(eng, r->arms, r->narms, r->experiment,
+		    r->family_len > 0 ? r->family : NULL,
 		    r->has_ts && r->ts < now ? r->ts : now);
 		goto done;
 	}
@@ -1021,6 +1136,7 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 	}
 	e->last_ts = now;
 	e->last_event = event;
+	e->touched = eng->clock;
 	/*
 	 * A record names the epoch its unit was exposed in (epoch=): one of
 	 * the epoch still closing counts there; one of an epoch closed for
@@ -1159,6 +1275,10 @@ engine_tick(struct engine *eng, double now)
 {
 	uint32_t i, k, looks = 0, budget = eng->conf->tick_budget;
 
+	eng->clock = now;
+	for (i = 0; i < eng->nexps; i++)
+		if (isnan(eng->exps[i]->touched))
+			eng->exps[i]->touched = now;
 	if (eng->nexps == 0) {
 		eng->now = now;
 		return;
@@ -1220,11 +1340,15 @@ engine_plan(struct engine *eng, const char *id, const struct proto_arm *arms,
 			}
 	}
 	eng->now = now;
-	switch (apply_plan(eng, arms, narms, id, now)) {
+	switch (apply_plan(eng, arms, narms, id, NULL, now)) {
 	case ENGINE_OK:
 		return 0;
 	case ENGINE_E_VARIANTS:
 		xasprintf(cause, "more than %u arms", eng->conf->max_variants);
+		return -1;
+	case ENGINE_E_GUARDRAIL:
+		xasprintf(cause, "its [experiment] guardrails name one not "
+		    "configured");
 		return -1;
 	default:
 		xasprintf(cause, "experiment cap (%u) reached",
@@ -1321,14 +1445,20 @@ const char *
 engine_idle(const struct engine *eng, double now, double idle)
 {
 	const struct experiment *e, *best = NULL;
+	const struct conf_experiment *ce;
 	uint32_t i;
 
 	if (!(idle > 0))
 		return NULL;
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
-		if (now - e->last_ts >= idle &&
-		    (best == NULL || e->last_ts < best->last_ts))
+		/* one planned in the configuration stays: it would only
+		 * come back at the next start */
+		if ((ce = conf_experiment_find(eng->conf, e->id)) != NULL &&
+		    ce->narms >= 2)
+			continue;
+		if (!isnan(e->touched) && now - e->touched >= idle &&
+		    (best == NULL || e->touched < best->touched))
 			best = e;
 	}
 	return best != NULL ? best->id : NULL;

@@ -639,6 +639,16 @@ exp_save(const struct experiment *e, const struct conf *conf)
 		json_array_append_new(tests, to);
 	}
 	json_object_set_new(o, "tests", tests);
+	if (e->fam_fixed) {
+		/* by name: the indices change with the configuration */
+		a = json_array();
+		for (j = 0; j < conf->nguardrails; j++)
+			if (e->fam_mask >> j & 1)
+				json_array_append_new(a, json_string(
+				    conf->guardrails[j].name));
+		json_object_set_new(o, "family", json_pack("{s:o, s:i}",
+		    "guardrails", a, "n", e->fam_n));
+	}
 	json_object_set_new(o, "last_ts", sreal(e->last_ts));
 	json_object_set_new(o, "last_event",
 	    json_integer((json_int_t)e->last_event));
@@ -718,6 +728,26 @@ exp_fill(struct engine *eng, struct experiment *e, const json_t *o,
 	e->epoch = (uint32_t)json_integer_value(json_object_get(o, "epoch"));
 	if (e->epoch == 0)
 		e->epoch = 1;
+	if ((v = json_object_get(o, "family")) != NULL) {
+		/* a fixed family: its guardrails still configured, its size
+		 * as planned (a guardrail removed since still counts) */
+		uint64_t mask = 0;
+		int k;
+		json_array_foreach(json_object_get(v, "guardrails"), i, sv) {
+			const char *gn = json_string_value(sv);
+			for (k = 0; gn != NULL && k < eng->conf->nguardrails;
+			    k++)
+				if (strcmp(eng->conf->guardrails[k].name,
+				    gn) == 0)
+					mask |= (uint64_t)1 << k;
+		}
+		k = (int)json_integer_value(json_object_get(v, "n"));
+		if (k < 1 || k > CONF_GUARDRAILS_MAX) {
+			xasprintf(cause, "experiment %s: bad family", id);
+			return -1;
+		}
+		engine_family_set(eng, e, mask, k);
+	}
 	a = json_object_get(o, "exposures");
 	for (i = 0; i < (size_t)narms; i++)
 		e->exposures[i] = (uint64_t)json_integer_value(

@@ -204,6 +204,17 @@ struct experiment {
 	uint64_t	 exposures[PROTO_PLAN_MAX];	/* this epoch */
 	double		 alpha, srm_alpha, plan_units;
 	int		 family;	/* guardrails x treatment arms */
+	/*
+	 * The guardrails that apply (docs/methods.md sec. 6): with a list
+	 * (the plan's guardrails=, or the [experiment] section's) only those,
+	 * fixed when the experiment was planned: bits over conf->guardrails,
+	 * renumbered on reload, and fam_n of them in the alpha split even if
+	 * a reload removes one. Without a list (fam_fixed 0): every
+	 * configured guardrail.
+	 */
+	uint64_t	 fam_mask;
+	int		 fam_fixed;
+	int		 fam_n;
 
 	/* SRM, this epoch (Lindon & Malek 2022 Dirichlet-multinomial). */
 	double		 srm_a[PROTO_PLAN_MAX];	/* posterior concentration */
@@ -242,6 +253,10 @@ struct experiment {
 
 	double		 last_ts;
 	uint64_t	 last_event;
+	/* the tick clock when a record last reached it (engine_idle): the
+	 * caller's clock, not record time, so a backlog of old records is
+	 * not idleness; NAN until the first tick (not saved) */
+	double		 touched;
 
 	/*
 	 * The previous epoch stays open for epoch_grace after a ramp step, so
@@ -270,6 +285,7 @@ struct engine {
 	void		*sink_arg;
 	struct engine_counters counters;
 	double		 now;
+	double		 clock;		/* the last tick's now, NAN none */
 	uint64_t	 event;
 	int		 force;		/* engine_finish: every costly look */
 	uint32_t	 cursor;	/* where the last tick's budget ran out */
@@ -281,6 +297,10 @@ struct engine {
 };
 
 /* engine.c */
+int		 engine_family_parse(const struct conf *, const char *list,
+		    uint64_t *mask, int *n);
+void		 engine_family_set(struct engine *, struct experiment *,
+		    uint64_t mask, int n);
 struct experiment *engine_exp_new(struct engine *, const char *id,
 		    const struct proto_arm *, int narms, double now);
 struct experiment *engine_exp_make(struct engine *, const char *id,

@@ -184,7 +184,7 @@ engine_json_experiment(const struct engine *eng, const char *id)
 {
 	const struct experiment *e;
 	struct detail_ctx c;
-	json_t *o, *ep, *arms;
+	json_t *o, *ep, *arms, *ga;
 	uint32_t slot;
 	int i, j;
 
@@ -204,6 +204,14 @@ engine_json_experiment(const struct engine *eng, const char *id)
 	json_object_set_new(o, "alpha", finding_num(e->alpha));
 	json_object_set_new(o, "srm_alpha", finding_num(e->srm_alpha));
 	json_object_set_new(o, "family", json_integer(e->family));
+	/* which guardrails apply: fixed by the plan, or all configured */
+	ga = json_array();
+	for (i = 0; i < eng->conf->nguardrails; i++)
+		if (!e->fam_fixed || (e->fam_mask >> i & 1))
+			json_array_append_new(ga, json_string(
+			    eng->conf->guardrails[i].name));
+	json_object_set_new(o, "scope", json_pack("{s:s, s:o}", "rule",
+	    e->fam_fixed ? "planned" : "all", "guardrails", ga));
 	json_object_set_new(o, "plan_units", finding_num(e->plan_units));
 	json_object_set_new(o, "tuning", tuning_json(eng, e->alpha,
 	    e->srm_alpha, e->plan_units, e->narms, e->family));

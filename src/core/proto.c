@@ -19,6 +19,7 @@
  *   k           number                  (count)
  *   n           number                  (expose: units, optional; count)
  *   weights     [{"variant": name, "weight": number}, ...]   (plan)
+ *   guardrails  [name, ...], the experiment's family  (plan; optional)
  *   unit        string, unit= rules     (expose, observe, count; optional)
  *   epoch       integer, epoch= rules   (expose, observe, count; optional)
  * weights is an array of objects, not an object, so that order survives
@@ -29,7 +30,9 @@
  * bad_json, as every duplicate key is.
  *
  * Attributes of the plain form: after the kind's fixed fields, a run of
- * tokens that each hold '=' (unit=ID, epoch=N, each at most once). The run
+ * tokens that each hold '=' (unit=ID, epoch=N, each at most once). A plan
+ * may carry guardrails=NAME,NAME... among its arms (so no arm can be
+ * called "guardrails"): the guardrails that apply to it. The run
  * is found from the end of the line, so "observe e v m unit=u" lacks its
  * value (bad_fields) rather than having a value "unit=u"; a token without
  * '=' after an attribute is a surplus field (bad_fields), as before.
@@ -89,7 +92,8 @@ static const char *const proto_sentences[PROTO_NSTATUS] = {
 	[PROTO_E_JSON] = "not a JSON object with known keys of the right types",
 	[PROTO_E_BYTES] = "line holds a NUL or control character",
 	[PROTO_E_ATTR] = "an attribute is not unit=ID (1-128 bytes of "
-	    "[A-Za-z0-9._:-]) or epoch=N (1-1000000000), or is repeated",
+	    "[A-Za-z0-9._:-]), epoch=N (1-1000000000) or, on a plan, "
+	    "guardrails=NAME,NAME (distinct names), or is repeated",
 };
 
 const char *
@@ -329,6 +333,54 @@ proto_epoch(const char *s, size_t n, struct record *r)
 }
 
 /*
+ * One name of a plan's family, appended to r->family; PROTO_E_ATTR when
+ * it is not a name, is there already, or the list is full.
+ */
+static enum proto_status
+proto_family_add(const char *s, size_t n, struct record *r)
+{
+	const char *p = r->family, *end = r->family + r->family_len, *c;
+
+	if (n == 0 || n > PROTO_NAME_MAX || !proto_name_ok(s, n) ||
+	    (size_t)r->family_len + n + 1 >= sizeof r->family)
+		return PROTO_E_ATTR;
+	while (p < end) {
+		c = memchr(p, ',', (size_t)(end - p));
+		if (c == NULL)
+			c = end;
+		if ((size_t)(c - p) == n && memcmp(p, s, n) == 0)
+			return PROTO_E_ATTR;
+		p = c + 1;
+	}
+	if (r->family_len > 0)
+		r->family[r->family_len++] = ',';
+	memcpy(r->family + r->family_len, s, n);
+	r->family_len += (uint16_t)n;
+	r->family[r->family_len] = '\0';
+	return PROTO_OK;
+}
+
+/* guardrails=a,b of a plain plan: once, at least one name. */
+static enum proto_status
+proto_family(const char *s, size_t n, struct record *r)
+{
+	const char *c, *end = s + n;
+	enum proto_status st;
+
+	if (r->family_len != 0 || n == 0)
+		return PROTO_E_ATTR;
+	for (;;) {
+		c = memchr(s, ',', (size_t)(end - s));
+		if ((st = proto_family_add(s, (size_t)((c ? c : end) - s),
+		    r)) != PROTO_OK)
+			return st;
+		if (c == NULL)
+			return PROTO_OK;
+		s = c + 1;
+	}
+}
+
+/*
  * The attribute tokens of a plain record. A repeat is caught because a
  * set field is never zero (unit_len >= 1, epoch >= 1) and proto_clear
  * zeroed both.
@@ -419,6 +471,14 @@ proto_clear(struct record *r)
 	r->epoch = 0;
 	r->unit_len = 0;
 	r->unit[0] = '\0';
+	r->family_len = 0;
+	r->family[0] = '\0';
+}
+
+static int
+proto_is_family(const struct tok *t)
+{
+	return t->n >= 11 && memcmp(t->p, "guardrails=", 11) == 0;
 }
 
 static enum proto_status
@@ -427,16 +487,23 @@ proto_plain_plan(const struct tok *t, int nt, struct record *r)
 	const char *eq;
 	struct proto_arm *a;
 	enum proto_status st;
-	int i;
+	int i, na = 0;
 
 	if (nt < 1)
 		return PROTO_E_FIELDS;
 	if (proto_tokname(r->experiment, &t[0]) != 0)
 		return PROTO_E_NAME;
-	if (nt - 1 < 2 || nt - 1 > PROTO_PLAN_MAX)
-		return PROTO_E_PLAN;
 	for (i = 1; i < nt; i++) {
-		a = &r->arms[i - 1];
+		if (proto_is_family(&t[i])) {
+			/* the family, once; not an arm */
+			if ((st = proto_family(t[i].p + 11, t[i].n - 11, r)) !=
+			    PROTO_OK)
+				return st;
+			continue;
+		}
+		if (++na > PROTO_PLAN_MAX)
+			return PROTO_E_PLAN;
+		a = &r->arms[na - 1];
 		if ((eq = memchr(t[i].p, '=', t[i].n)) == NULL)
 			return PROTO_E_PLAN;
 		if (proto_name(a->name, t[i].p, eq - t[i].p) != 0)
@@ -447,7 +514,9 @@ proto_plain_plan(const struct tok *t, int nt, struct record *r)
 		if ((st = proto_weight(a->weight)) != PROTO_OK)
 			return st;
 	}
-	r->narms = nt - 1;
+	if (na < 2)
+		return PROTO_E_PLAN;
+	r->narms = na;
 	return proto_plan_unique(r);
 }
 
@@ -563,6 +632,7 @@ enum {
 	JK_WEIGHTS = 1 << 8,
 	JK_UNIT = 1 << 9,
 	JK_EPOCH = 1 << 10,
+	JK_FAMILY = 1 << 11,
 	JK_ATTRS = JK_UNIT | JK_EPOCH
 };
 
@@ -574,6 +644,7 @@ static const struct {
 	{ "variant", JK_VAR }, { "metric", JK_METRIC }, { "value", JK_VALUE },
 	{ "k", JK_K }, { "n", JK_N }, { "weights", JK_WEIGHTS },
 	{ "unit", JK_UNIT }, { "epoch", JK_EPOCH },
+	{ "guardrails", JK_FAMILY },
 };
 
 static enum proto_status
@@ -664,6 +735,26 @@ proto_jattrs(json_t *o, int have, struct record *r)
 	return PROTO_OK;
 }
 
+/* "guardrails": a non-empty array of distinct names. */
+static enum proto_status
+proto_jfamily(json_t *a, struct record *r)
+{
+	enum proto_status st;
+	json_t *v;
+	size_t i;
+
+	if (!json_is_array(a) || json_array_size(a) == 0)
+		return PROTO_E_ATTR;
+	json_array_foreach(a, i, v) {
+		if (!json_is_string(v))
+			return PROTO_E_ATTR;
+		if ((st = proto_family_add(json_string_value(v),
+		    json_string_length(v), r)) != PROTO_OK)
+			return st;
+	}
+	return PROTO_OK;
+}
+
 static enum proto_status
 proto_jrecord(json_t *o, struct record *r)
 {
@@ -701,7 +792,7 @@ proto_jrecord(json_t *o, struct record *r)
 	if (strcmp(kind, "plan") == 0) {
 		r->kind = PROTO_PLAN;
 		need = JK_EXP | JK_WEIGHTS;
-		allow = need;
+		allow = need | JK_FAMILY;
 	} else if (strcmp(kind, "expose") == 0) {
 		r->kind = PROTO_EXPOSE;
 		need = JK_EXP | JK_VAR;
@@ -722,8 +813,13 @@ proto_jrecord(json_t *o, struct record *r)
 
 	if ((st = proto_jname(o, "experiment", r->experiment)) != PROTO_OK)
 		return st;
-	if (r->kind == PROTO_PLAN)
-		return proto_jweights(json_object_get(o, "weights"), r);
+	if (r->kind == PROTO_PLAN) {
+		if ((st = proto_jweights(json_object_get(o, "weights"), r)) !=
+		    PROTO_OK)
+			return st;
+		return have & JK_FAMILY ? proto_jfamily(json_object_get(o,
+		    "guardrails"), r) : PROTO_OK;
+	}
 	if ((st = proto_jname(o, "variant", r->variant)) != PROTO_OK)
 		return st;
 	switch (r->kind) {
@@ -909,8 +1005,12 @@ proto_format(const struct record *r, char *buf, size_t size)
 		return -1;
 	}
 	/* never on a plan: "unit=x" there would read back as an arm */
-	if (r->kind == PROTO_PLAN)
+	if (r->kind == PROTO_PLAN) {
+		if (r->family_len > 0 && r->family_len < sizeof r->family)
+			PROTO_PUT(" guardrails=%.*s", (int)r->family_len,
+			    r->family);
 		return (int)off;
+	}
 	if (r->unit_len > PROTO_UNIT_MAX || r->epoch > PROTO_EPOCH_MAX)
 		return -1;
 	if (r->unit_len > 0)

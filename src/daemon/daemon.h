@@ -166,6 +166,8 @@ void		 metrics_label(struct evbuffer *, const char *key,
  * and let the engine forget it; *path: the archive (caller frees). */
 int		 retire_experiment(struct daemon *, const char *id,
 		    const char *why, char **path, char **cause);
+/* On the tick: retire experiments idle for [defaults] retire_idle. */
+void		 retire_idle(struct daemon *);
 
 /* durable.c: whole-or-nothing files (tmp, fsync, rename, fsync dir). */
 int		 durable_write(const char *dir, const char *path,

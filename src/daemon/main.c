@@ -394,6 +394,7 @@ daemon_tick_cb(evutil_socket_t fd, short what, void *arg)
 	struct daemon *d = arg;
 
 	engine_tick(d->engine, daemon_now());
+	retire_idle(d);
 }
 
 static void

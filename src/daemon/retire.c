@@ -7,13 +7,18 @@
  * fsync, rename, fsync of the directory). The engine has then forgotten
  * the experiment, which frees its slot under max_experiments, and its
  * FINDING_RETIRED (dispatch.c) ends its alerts and tells the webhooks.
+ * With [defaults] retire_idle, the tick retires experiments no record
+ * reached for that long the same way.
  */
 #include <math.h>
+#include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
 
 #include "stopcock/log.h"
 #include "daemon.h"
+
+#define RETIRE_PER_TICK	16	/* idle experiments retired per tick */
 
 int
 retire_experiment(struct daemon *d, const char *id, const char *why,
@@ -56,4 +61,28 @@ retire_experiment(struct daemon *d, const char *id, const char *why,
 	free(text);
 	*path_out = path;
 	return 0;
+}
+
+/* On the tick: retire what was idle for retire_idle, a few at a time. */
+void
+retire_idle(struct daemon *d)
+{
+	const char *id;
+	char *path = NULL, *cause = NULL, name[PROTO_NAME_MAX + 1];
+	int n;
+
+	for (n = 0; n < RETIRE_PER_TICK; n++) {
+		if ((id = engine_idle(d->engine, daemon_now(),
+		    d->conf->retire_idle)) == NULL)
+			return;
+		snprintf(name, sizeof name, "%s", id);
+		if (retire_experiment(d, name, "idle", &path, &cause) != 0) {
+			/* the next tick tries again; no loop on a bad disk */
+			log_warnx("retire: idle experiment=%s not retired: %s",
+			    name, cause ? cause : "?");
+			free(cause);
+			return;
+		}
+		free(path);
+	}
 }

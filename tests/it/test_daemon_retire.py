@@ -6,12 +6,17 @@ Invented scenario: a seed catalogue runs two tests under max_experiments =
 retires "sleeves" (POST /api/experiments/sleeves/retire with the token):
 its final state lands in the state directory as a JSON archive holding
 the exposures it was sent, the experiment is gone from the API, and the
-third experiment is now tracked.
+third experiment is now tracked. With [defaults] retire_idle = 2s a
+second daemon retires an experiment nobody writes to, and keeps one that
+still gets records (stamped long ago: the idle clock is the daemon's,
+not the records').
 """
+import glob
 import json
 import os
 import subprocess
 import sys
+import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _httplib import Daemon, Tap  # noqa: E402
@@ -99,6 +104,24 @@ def main():
         t.ok(p.returncode == 66 and "HTTP 404" in p.stderr,
              "retiring it again: exit 66, HTTP 404", (p.returncode,
                                                       p.stderr))
+        t.ok(d.stop() == 0, "clean stop")
+
+    with Daemon("retire-idle", guardrails="retire_idle = 2s\n" +
+                GUARDRAILS.split("\n", 1)[1]) as d:
+        d.send(["plan quiet control=50 v=50", "plan busy control=50 v=50",
+                "expose quiet control"])
+        end = time.time() + 15
+        while time.time() < end and "quiet" in ids(d):
+            # busy keeps getting records, stamped in 2001
+            d.send(["@1000000000 expose busy control"])
+            time.sleep(0.3)
+        t.eq(ids(d), ["busy"], "retire_idle: the quiet experiment is "
+             "retired, the one still written to is kept")
+        arcs = glob.glob(os.path.join(d.state, "archive-quiet-*.json"))
+        t.ok(len(arcs) == 1 and json.load(open(arcs[0])).get("reason") ==
+             "idle", "its archive is in the state directory, reason idle",
+             arcs)
+        t.ok("reason=idle" in d.log_text(), "the log says why")
         t.ok(d.stop() == 0, "clean stop")
     t.done()
 

@@ -987,6 +987,53 @@ test_load_errors(void **state)
 	unlink(path);
 }
 
+/*
+ * Issue 13, item 5: [experiment ID] guardrails names the guardrails that
+ * apply to it, in any section order; an unknown or repeated name, or an
+ * empty list, is an error at the experiment's line. The copy keeps it.
+ */
+static void
+test_experiment_guardrails(void **state)
+{
+	static const char *g = "[guardrail lat]\nmetric = l\ntest = mean\n"
+	    "[guardrail err]\nmetric = e\ntest = proportion\n";
+	const struct conf_experiment *e;
+	struct conf *c, *d;
+	char *text, *cause;
+
+	xasprintf(&text, "[experiment x]\nguardrails = err  lat\n%s", g);
+	c = good(text);
+	free(text);
+	e = conf_experiment_find(c, "x");
+	assert_non_null(e);
+	assert_string_equal(e->guardrails, "err  lat");
+	d = conf_dup(c);
+	conf_free(c);
+	assert_string_equal(conf_experiment_find(d, "x")->guardrails,
+	    "err  lat");
+	conf_free(d);
+	c = good(g);
+	assert_int_equal(c->nexperiments, 0);
+	conf_free(c);
+
+	xasprintf(&text, "%s[experiment x]\nguardrails = lat nope\n", g);
+	cause = bad(text);
+	assert_true(has_line(cause, "t.conf:7: experiment x: guardrails names "
+	    "nope, which is not a [guardrail] section"));
+	free(cause);
+	free(text);
+	xasprintf(&text, "%s[experiment x]\nguardrails = lat err lat\n", g);
+	cause = bad(text);
+	assert_non_null(strstr(cause, "guardrails names lat twice"));
+	free(cause);
+	free(text);
+	xasprintf(&text, "%s[experiment x]\nguardrails =   \n", g);
+	cause = bad(text);
+	assert_non_null(strstr(cause, "empty value for 'guardrails'"));
+	free(cause);
+	free(text);
+}
+
 int
 main(void)
 {
@@ -1010,6 +1057,7 @@ main(void)
 		cmocka_unit_test(test_test_names),
 		cmocka_unit_test(test_help),
 		cmocka_unit_test(test_load_errors),
+		cmocka_unit_test(test_experiment_guardrails),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);

@@ -880,6 +880,7 @@ test_retire(void **state)
 	struct fx *fx = *state;
 	json_t *archive = NULL, *st;
 	char *cause = NULL;
+	double t0;
 	int i;
 
 	assert_int_equal(feed(fx, "plan a control=50 treatment=50"), 0);
@@ -918,13 +919,112 @@ test_retire(void **state)
 	}
 	assert_int_equal(feed(fx, "expose b control"), ENGINE_E_UNPLANNED);
 	assert_int_equal(feed(fx, "plan d control=50 treatment=50"), 0);
+	/* idle: in the tick's clock, the one no record reached for longest
+	 * (nothing is idle before a tick has said what time it is) */
+	assert_null(engine_idle(fx->eng, fx->now + 1e6, 3600));
+	t0 = fx->now;
+	engine_tick(fx->eng, t0);
 	assert_int_equal(feed(fx, "expose a control"), 0);
+	engine_tick(fx->eng, t0 + 100);
 	assert_int_equal(feed(fx, "expose c control"), 0);
 	assert_int_equal(feed(fx, "expose d control"), 0);
-	/* idle: the one no record reached for longest */
-	assert_null(engine_idle(fx->eng, fx->now, 0));
-	assert_null(engine_idle(fx->eng, fx->now, 3600));
-	assert_string_equal(engine_idle(fx->eng, fx->now + 3600, 3600), "a");
+	assert_null(engine_idle(fx->eng, t0 + 3600, 0));
+	assert_null(engine_idle(fx->eng, t0 + 3599, 3600));
+	assert_string_equal(engine_idle(fx->eng, t0 + 3600, 3600), "a");
+	/* a record stamped long ago still says the experiment is alive */
+	engine_tick(fx->eng, t0 + 3600);
+	assert_int_equal(feed(fx, "@1000 expose a control"), 0);
+	assert_null(engine_idle(fx->eng, t0 + 3600, 3600));
+	assert_string_equal(engine_idle(fx->eng, t0 + 3700, 3600), "c");
+}
+
+/* An experiment's family size and the guardrails of its tests. */
+static int
+family_of(struct engine *eng, const char *id, char *names, size_t size)
+{
+	json_t *j = engine_json_experiment(eng, id), *t;
+	size_t i;
+	int fam;
+
+	assert_non_null(j);
+	fam = (int)json_integer_value(json_object_get(j, "family"));
+	names[0] = '\0';
+	json_array_foreach(json_object_get(j, "guardrails"), i, t)
+		snprintf(names + strlen(names), size - strlen(names), "%s%s",
+		    i ? " " : "", json_string_value(json_object_get(t,
+		    "name")));
+	json_decref(j);
+	return fam;
+}
+
+/*
+ * Issue 13, item 5: the family is fixed when an experiment is planned,
+ * by its plan's guardrails= or its [experiment] section's list, else
+ * every configured guardrail; tests of the others do not exist and the
+ * alpha split counts only the family (Bonferroni: alpha / family, so
+ * 0.05 / 2 = 0.025 for two guardrails and one treatment arm).
+ */
+static void
+test_family(void **state)
+{
+	struct fx *fx = *state;
+	uint8_t key[16] = { 1, 2, 3 };
+	struct conf *c2, *c3;
+	struct engine *eng, *copy;
+	char names[256], *cause = NULL;
+	json_t *j, *a, *b;
+
+	assert_int_equal(feed(fx, "plan all control=50 treatment=50"), 0);
+	assert_int_equal(family_of(fx->eng, "all", names, sizeof names), 4);
+	assert_int_equal(feed(fx, "plan two control=50 treatment=50 "
+	    "guardrails=render,errors"), 0);
+	assert_int_equal(family_of(fx->eng, "two", names, sizeof names), 2);
+	assert_string_equal(names, "render errors");
+	j = engine_json_experiment(fx->eng, "two");
+	assert_float_equal(json_number_value(json_object_get(json_array_get(
+	    json_object_get(j, "tests"), 0), "alpha")), 0.05 / 2, 1e-12);
+	json_decref(j);
+	/* a guardrail nobody configured: the plan is refused, counted */
+	assert_int_equal(feed(fx, "plan bad control=50 treatment=50 "
+	    "guardrails=render,nope"), ENGINE_E_GUARDRAIL);
+	assert_string_equal(engine_reason(ENGINE_E_GUARDRAIL),
+	    "unknown_guardrail");
+	/* a ramp step cannot choose another family after the data */
+	assert_int_equal(feed(fx, "plan two control=40 treatment=60 "
+	    "guardrails=p99"), 0);
+	assert_int_equal(family_of(fx->eng, "two", names, sizeof names), 2);
+	assert_string_equal(names, "render errors");
+	/* a checkpoint keeps it */
+	a = engine_save(fx->eng);
+	copy = engine_restore(fx->conf, key, a, &cause);
+	if (copy == NULL)
+		fail_msg("restore: %s", cause);
+	b = engine_save(copy);
+	assert_true(json_equal(a, b));
+	assert_int_equal(family_of(copy, "two", names, sizeof names), 2);
+	json_decref(a);
+	json_decref(b);
+	engine_free(copy);
+	/* a reload that removes errors drops its test, not its share */
+	c2 = load_edit("[guardrail errors]\nmetric = server_errors\n"
+	    "test = proportion\naction = pause\n", "", NULL, NULL);
+	assert_int_equal(engine_reconfigure(fx->eng, c2, &cause), 0);
+	assert_int_equal(family_of(fx->eng, "two", names, sizeof names), 2);
+	assert_string_equal(names, "render");
+	assert_int_equal(family_of(fx->eng, "all", names, sizeof names), 3);
+	conf_free(c2);
+
+	/* the [experiment] section's list */
+	c3 = load("[experiment cfg]\nguardrails = p99 crashes\n");
+	eng = engine_new(c3, key);
+	assert_int_equal(engine_plan(eng, "cfg", (struct proto_arm[]){
+	    { "control", 50 }, { "treatment", 25 }, { "other", 25 } }, 3,
+	    fx->now, &cause), 0);
+	/* two guardrails x two treatment arms */
+	assert_int_equal(family_of(eng, "cfg", names, sizeof names), 4);
+	assert_string_equal(names, "p99 p99 crashes crashes");
+	engine_free(eng);
+	conf_free(c3);
 }
 
 /* A guardrail's own plan_units tunes its mixture, not the default's: the
@@ -1179,6 +1279,7 @@ main(void)
 		cmocka_unit_test_setup_teardown(test_reload_keeps_verdicts,
 		    setup, teardown),
 		cmocka_unit_test_setup_teardown(test_retire, setup, teardown),
+		cmocka_unit_test_setup_teardown(test_family, setup, teardown),
 		cmocka_unit_test_setup_teardown(test_guardrail_plan_units,
 		    setup, teardown),
 		cmocka_unit_test(test_quantile_outliers),

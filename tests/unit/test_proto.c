@@ -852,6 +852,78 @@ test_bad_between_good(void **state)
 	}
 }
 
+/*
+ * Issue 13, item 5: a plan names the guardrails that apply to its
+ * experiment, guardrails=a,b in the plain form and "guardrails": [...] in
+ * JSON, never an arm; bad or repeated names, an empty list or a second
+ * attribute are bad_attribute, and the attribute is a plan's only. The
+ * plain form writes it back.
+ */
+static void
+test_family(void **state)
+{
+	static const struct pcase bad[] = {
+		{ "plan e a=1 b=1 guardrails=", PROTO_E_ATTR },
+		{ "plan e a=1 b=1 guardrails=x,", PROTO_E_ATTR },
+		{ "plan e a=1 b=1 guardrails=,x", PROTO_E_ATTR },
+		{ "plan e a=1 b=1 guardrails=x,,y", PROTO_E_ATTR },
+		{ "plan e a=1 b=1 guardrails=x,y,x", PROTO_E_ATTR },
+		{ "plan e a=1 b=1 guardrails=x guardrails=y", PROTO_E_ATTR },
+		{ "plan e a=1 b=1 guardrails=no/slash", PROTO_E_ATTR },
+		{ "plan e a=1 b=1 guardrails=" N64 "b", PROTO_E_ATTR },
+		{ "plan e a=1 guardrails=x", PROTO_E_PLAN },	/* one arm */
+		{ "expose e v guardrails=x", PROTO_E_ATTR },
+		{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+		  "[{\"variant\":\"a\",\"weight\":1},{\"variant\":\"b\","
+		  "\"weight\":1}],\"guardrails\":[]}", PROTO_E_ATTR },
+		{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+		  "[{\"variant\":\"a\",\"weight\":1},{\"variant\":\"b\","
+		  "\"weight\":1}],\"guardrails\":\"x\"}", PROTO_E_ATTR },
+		{ "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":"
+		  "[{\"variant\":\"a\",\"weight\":1},{\"variant\":\"b\","
+		  "\"weight\":1}],\"guardrails\":[\"x\",\"x\"]}",
+		  PROTO_E_ATTR },
+		{ JE "\"guardrails\":[\"x\"]}", PROTO_E_FIELDS },
+	};
+	struct record r, r2;
+	char buf[PROTO_LINE_MAX + 1];
+	const char *line;
+	size_t i;
+	int n;
+
+	(void)state;
+	line = "plan checkout control=50 guardrails=p99,errors treatment=50";
+	assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+	assert_int_equal(r.narms, 2);
+	assert_string_equal(r.arms[1].name, "treatment");
+	assert_int_equal(r.family_len, strlen("p99,errors"));
+	assert_string_equal(r.family, "p99,errors");
+	n = proto_format(&r, buf, sizeof buf);
+	assert_true(n > 0);
+	assert_string_equal(buf, "plan checkout control=50 treatment=50 "
+	    "guardrails=p99,errors");
+	assert_int_equal(proto_parse(buf, (size_t)n, &r2), PROTO_OK);
+	assert_string_equal(r2.family, "p99,errors");
+
+	line = "{\"kind\":\"plan\",\"experiment\":\"e\",\"weights\":["
+	    "{\"variant\":\"a\",\"weight\":1},{\"variant\":\"b\","
+	    "\"weight\":1}],\"guardrails\":[\"render\",\"crashes\"]}";
+	assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+	assert_string_equal(r.family, "render,crashes");
+	/* a plan without one has none, even after a record that had one */
+	line = "plan e a=1 b=1";
+	assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+	assert_int_equal(r.family_len, 0);
+
+	for (i = 0; i < sizeof bad / sizeof bad[0]; i++) {
+		enum proto_status st = proto_parse(bad[i].line,
+		    strlen(bad[i].line), &r);
+		if (st != bad[i].want)
+			fail_msg("%s: %s, want %s", bad[i].line,
+			    proto_reason(st), proto_reason(bad[i].want));
+	}
+}
+
 int
 main(void)
 {
@@ -866,6 +938,7 @@ main(void)
 		cmocka_unit_test(test_format_attrs),
 		cmocka_unit_test(test_numbers_vs_strtod),
 		cmocka_unit_test(test_bad_between_good),
+		cmocka_unit_test(test_family),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);
