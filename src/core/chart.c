@@ -38,6 +38,8 @@
 #define CHART_LINE	"#1d3f6e"
 #define CHART_BAND	"#9db4d3"
 #define CHART_HARM	"#b3261e"
+/* amber: a verdict whose epoch lost its trust (SRM) */
+#define CHART_UNTRUSTED "#b26a00"
 #define CHART_SAFE	"#1e6b34"
 #define CHART_FONT	"font-family=\"sans-serif\""
 /* A white outline under labels keeps them legible over lines. */
@@ -694,7 +696,13 @@ chart_test_svg(const json_t *test)
 		colour = CHART_SAFE;
 	else
 		colour = CHART_MUTED;
-	xasprintf(&status, "%s \xc2\xb7 %s", verdict, ptext);
+	/* an untrustworthy epoch is never shown as good news */
+	if (json_is_true(json_object_get(test, "untrusted"))) {
+		colour = CHART_UNTRUSTED;
+		xasprintf(&status, "%s \xc2\xb7 %s \xc2\xb7 untrustworthy "
+		    "(sample ratio mismatch)", verdict, ptext);
+	} else
+		xasprintf(&status, "%s \xc2\xb7 %s", verdict, ptext);
 	chart_title(&b, title, status, colour);
 	chart_axes(&b, &f, "effect (treatment \xe2\x88\x92 control)");
 

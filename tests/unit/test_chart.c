@@ -239,6 +239,24 @@ test_margin_side_decrease(void **state)
 	json_decref(t);
 }
 
+/* A safe verdict in an epoch that lost its trust (SRM) is not drawn as
+ * good news: amber, with the reason in words, never the safe green. */
+static void
+test_untrusted_not_green(void **state)
+{
+	json_t *t = load(harm_test);
+	char *svg;
+
+	json_object_set_new(t, "verdict", json_string("safe"));
+	json_object_set_new(t, "untrusted", json_true());
+	svg = chart_test_svg(t);
+	assert_xml(svg);
+	assert_non_null(strstr(svg, "untrustworthy (sample ratio mismatch)"));
+	assert_null(strstr(svg, "#1e6b34"));
+	free(svg);
+	json_decref(t);
+}
+
 static void
 test_undecided_has_no_marker(void **state)
 {
@@ -407,6 +425,7 @@ main(void)
 	const struct CMUnitTest tests[] = {
 		cmocka_unit_test(test_harm_chart),
 		cmocka_unit_test(test_margin_side_decrease),
+		cmocka_unit_test(test_untrusted_not_green),
 		cmocka_unit_test(test_undecided_has_no_marker),
 		cmocka_unit_test(test_empty_history),
 		cmocka_unit_test(test_nulls),
