@@ -814,22 +814,34 @@ engine_set_sink(struct engine *eng, engine_sink sink, void *arg)
  * only says what harm does, so changing it keeps the evidence. NULL when
  * the definitions agree, else what changed (for the log and webhooks).
  */
-static const char *
+static const char *const restart_reasons[] = {
+	NULL, "metric changed", "test changed", "quantile changed",
+	"harm direction changed", "margin changed", "plan_units changed",
+};
+
+const char *
+engine_restart_reason(int why)
+{
+	return why > 0 && (size_t)why < SC_NELEM(restart_reasons) ?
+	    restart_reasons[why] : NULL;
+}
+
+static int
 guardrail_change(const struct conf_guardrail *a, const struct conf_guardrail *b)
 {
 	if (strcmp(a->metric, b->metric) != 0)
-		return "metric changed";
+		return 1;
 	if (a->test != b->test)
-		return "test changed";
+		return 2;
 	if (a->quantile != b->quantile)
-		return "quantile changed";
+		return 3;
 	if (a->harm != b->harm)
-		return "harm direction changed";
+		return 4;
 	if (a->margin != b->margin || a->margin_relative != b->margin_relative)
-		return "margin changed";
+		return 5;
 	if (a->plan_units != b->plan_units)
-		return "plan_units changed";
-	return NULL;
+		return 6;
+	return 0;
 }
 
 static int
@@ -868,13 +880,15 @@ reconf_tests(struct engine *eng, const struct conf *old, struct experiment *e,
 	char variant[PROTO_NAME_MAX + 1];
 	const char *change;
 	struct test *t;
-	int j, k, n = 0;
+	enum verdict held;
+	int j, k, n = 0, code;
 
 	for (j = 0; j < e->ntests; j++) {
 		t = &e->tests[j];
 		k = guardrail_index(eng->conf, old->guardrails[t->g].name);
-		change = k < 0 ? NULL : guardrail_change(&old->guardrails[t->g],
+		code = k < 0 ? 0 : guardrail_change(&old->guardrails[t->g],
 		    &eng->conf->guardrails[k]);
+		change = engine_restart_reason(code);
 		if (k < 0 || (change != NULL && e->is_closing)) {
 			test_drop(t);
 			continue;
@@ -888,9 +902,14 @@ reconf_tests(struct engine *eng, const struct conf *old, struct experiment *e,
 		}
 		if (change != NULL) {
 			snprintf(variant, sizeof variant, "%s", t->variant);
+			held = t->verdict;
 			test_drop(t);
 			test_init(t, k, variant);
 			t->dirty = 1;
+			/* for the API: the test says when and why it began */
+			t->restart_ts = isnan(eng->clock) ? eng->now : eng->clock;
+			t->restart_why = code;
+			t->restart_prev = (int)held;
 		} else
 			t->g = k;
 		n++;

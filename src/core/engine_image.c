@@ -449,7 +449,8 @@ change_load(struct test *t, const json_t *o)
  * A field missing from an older image keeps the value test_init gave it
  * (look counters missing or null restart at 0).
  */
-enum field_type { FIELD_REAL, FIELD_COUNT, FIELD_BOOL, FIELD_LOOKS };
+enum field_type { FIELD_REAL, FIELD_COUNT, FIELD_BOOL, FIELD_LOOKS,
+	FIELD_INT };
 
 static const struct test_field {
 	const char	*key;
@@ -467,6 +468,8 @@ static const struct test_field {
 	F(first_event, FIELD_COUNT), F(pause_sent, FIELD_BOOL),
 	F(dirty, FIELD_BOOL), F(cs_n, FIELD_LOOKS), F(ev_n, FIELD_LOOKS),
 	F(late_base, FIELD_REAL), F(est_closing, FIELD_BOOL),
+	F(restart_ts, FIELD_REAL), F(restart_why, FIELD_INT),
+	F(restart_prev, FIELD_INT),
 #undef F
 };
 
@@ -492,6 +495,10 @@ fields_save(json_t *to, const struct test *t)
 		case FIELD_BOOL:
 			json_object_set_new(to, f->key,
 			    json_boolean(*(const int *)(base + f->off)));
+			break;
+		case FIELD_INT:
+			json_object_set_new(to, f->key,
+			    json_integer(*(const int *)(base + f->off)));
 			break;
 		}
 	}
@@ -522,6 +529,10 @@ fields_load(const json_t *v, struct test *t)
 			break;
 		case FIELD_BOOL:
 			*(int *)(base + f->off) = json_is_true(
+			    json_object_get(v, f->key));
+			break;
+		case FIELD_INT:
+			*(int *)(base + f->off) = (int)json_integer_value(
 			    json_object_get(v, f->key));
 			break;
 		}

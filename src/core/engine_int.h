@@ -185,6 +185,11 @@ struct test {
 	double		 ev_n;		/* samples at the last costly look */
 	int		 dirty;		/* data changed since last evaluation */
 	int		 hist_dirty;
+	/* the last reload that restarted this test: when (tick clock),
+	 * why (engine_restart_reason) and the verdict it held; why 0: none */
+	double		 restart_ts;
+	int		 restart_why;
+	int		 restart_prev;
 	struct hist	 hist;
 };
 
@@ -297,6 +302,7 @@ struct engine {
 };
 
 /* engine.c */
+const char	*engine_restart_reason(int why);
 int		 engine_family_parse(const struct conf *, const char *list,
 		    uint64_t *mask, int *n);
 void		 engine_family_set(struct engine *, struct experiment *,

@@ -118,6 +118,13 @@ detail_cb(void *arg, const struct finding *f)
 	if (j < c->e->ntests)
 		json_object_set_new(o, "history",
 		    hist_json(&c->e->tests[j].hist, 0));
+	/* a reload restarted its evidence: when, why, what it held */
+	if (j < c->e->ntests && c->e->tests[j].restart_why > 0)
+		json_object_set_new(o, "restarted", json_pack("{s:o, s:s, s:s}",
+		    "at", finding_num(c->e->tests[j].restart_ts), "reason",
+		    engine_restart_reason(c->e->tests[j].restart_why),
+		    "previous", verdict_name((enum verdict)
+		    c->e->tests[j].restart_prev)));
 	json_array_append_new(c->tests, o);
 }
 

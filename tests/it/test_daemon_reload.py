@@ -13,6 +13,8 @@ harm. Then the operator widens the margin of "errors" and sends SIGHUP:
     event (signature checked by the receiver) naming the verdict it held;
   - the harm alert raised for "errors" is not withdrawn by the reload.
 """
+import http.client
+import json
 import os
 import random
 import signal
@@ -122,6 +124,14 @@ def main():
                all(a["headers"].get("webhook-id") != body.get("id")
                    for a in alerts),
                "event: signed, with an id of its own (not an alert's)")
+        view = d_get(d, "/api/experiments/" + EXP) or {}
+        rs = {t.get("guardrail"): t.get("restarted")
+              for t in view.get("tests", [])}
+        tap.eq((rs.get("errors") or {}).get("reason"), "margin changed",
+               "API: the errors test says it restarted, and why")
+        tap.ok(rs.get("refunds") is None and
+               (rs.get("errors") or {}).get("previous") == "harm",
+               "API: what it held; nothing on the unchanged test", rs)
         raised = [a for a in (d_alerts(d) or [])
                   if a.get("guardrail") == "errors"]
         tap.ok(raised, "the harm alert for errors is still raised", raised)
@@ -130,16 +140,17 @@ def main():
     tap.done()
 
 
-def d_alerts(d):
-    import http.client
-    import json
+def d_get(d, path):
     c = http.client.HTTPConnection("127.0.0.1", d.http, timeout=10)
     try:
-        c.request("GET", "/api/alerts")
-        r = c.getresponse()
-        doc = json.loads(r.read() or b"null")
+        c.request("GET", path)
+        return json.loads(c.getresponse().read() or b"null")
     finally:
         c.close()
+
+
+def d_alerts(d):
+    doc = d_get(d, "/api/alerts")
     if isinstance(doc, dict):
         return doc.get("alerts")
     return doc

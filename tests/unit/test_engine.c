@@ -832,6 +832,27 @@ test_reload_keeps_verdicts(void **state)
 	assert_string_equal(fx->seen.restart_reason, "margin changed");
 	assert_int_equal(json_integer_value(json_object_get(image_test(b,
 	    "render"), "verdict")), VERDICT_UNDECIDED);
+	/* the API says which test restarted, why, and what it held */
+	{
+		json_t *x = engine_json_experiment(fx->eng, "r"), *t, *rs;
+		size_t k;
+		int seen = 0;
+		json_array_foreach(json_object_get(x, "tests"), k, t) {
+			rs = json_object_get(t, "restarted");
+			if (strcmp(json_string_value(json_object_get(t,
+			    "guardrail")), "render") != 0) {
+				assert_null(rs);
+				continue;
+			}
+			seen++;
+			assert_string_equal(json_string_value(json_object_get(
+			    rs, "reason")), "margin changed");
+			assert_string_equal(json_string_value(json_object_get(
+			    rs, "previous")), "harm");
+		}
+		assert_int_equal(seen, 1);
+		json_decref(x);
+	}
 	for (i = 0; i < 3; i++) {
 		g = (const char *[]){ "p99", "errors", "crashes" }[i];
 		ta = image_test(a, g);
