@@ -128,6 +128,9 @@ struct conf {
 	double		tick;		/* seconds */
 	double		checkpoint_every;	/* seconds */
 	uint32_t	max_clients;
+	uint32_t	max_clients_per_source;	/* address, /64 or uid */
+	double		client_idle_timeout;	/* s without a byte; 0: never */
+	double		client_line_timeout;	/* s for one line; 0: never */
 	uint32_t	client_buffer;	/* bytes buffered per client */
 	char		*http_token;	/* bearer token for POST; NULL: POST off */
 	char		*public_url;	/* base of links in alerts */

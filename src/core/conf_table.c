@@ -131,7 +131,20 @@ const struct conf_option conf_options[] = {
 	{ S_DAEMON, "checkpoint_every", T_DURATION, C(checkpoint_every),
 	  0.01, 86400, 0, "5s", NULL, "how often state is written to disk" },
 	{ S_DAEMON, "max_clients", T_U32, C(max_clients), 1, 100000, 0,
-	  "256", NULL, "connections accepted at once" },
+	  "256", NULL, "stream connections (TCP and unix) accepted at once; "
+	  "at the cap, a connection on an input holding less than its share "
+	  "closes the longest-idle client of the other input" },
+	{ S_DAEMON, "max_clients_per_source", T_U32,
+	  C(max_clients_per_source), 1, 100000, 0, "64", NULL,
+	  "stream connections at once from one source (TCP: an IPv4 address "
+	  "or an IPv6 /64; unix: a user id); more are refused and counted" },
+	{ S_DAEMON, "client_idle_timeout", T_DURATION, C(client_idle_timeout),
+	  0.1, 86400, F_ZERO_OK, "300s", NULL, "close a stream client that "
+	  "sent nothing for this long (counted, logged); 0: never" },
+	{ S_DAEMON, "client_line_timeout", T_DURATION, C(client_line_timeout),
+	  0.1, 86400, F_ZERO_OK, "10s", NULL, "close a stream client whose "
+	  "line has not ended (newline) this long after its first byte: "
+	  "slow senders (counted, logged); 0: never" },
 	{ S_DAEMON, "client_buffer", T_U32, C(client_buffer), 4096,
 	  1 << 30, 0, "1048576", NULL, "bytes buffered per client before "
 	  "reading pauses" },

@@ -15,8 +15,21 @@
  * a client is cut off when it has sent more than LISTEN_BAD_MAX bad lines
  * and more bad lines than good ones ("garbage"), or when one over-long
  * line runs past client_buffer bytes without a newline ("line_flood").
- * Connections beyond conf->max_clients are closed at once; when accept
- * fails for lack of descriptors the listeners pause for a second.
+ * A client that sends nothing for client_idle_timeout is closed
+ * ("idle"), and so is one whose line has not ended client_line_timeout
+ * after its first byte ("slow_line": bytes trickling without a newline).
+ * One timer sweeps for both: each input's clients are kept in order of
+ * their last read and those with an unfinished line in order of its
+ * start, so a sweep looks only at the clients it closes.
+ *
+ * Limits that hold under a flood: one source (a TCP peer's IPv4 address
+ * or IPv6 /64, a unix peer's user id) holds at most
+ * max_clients_per_source connections; all inputs together hold at most
+ * max_clients, and when that is reached a connection on an input holding
+ * less than its share (max_clients over the stream inputs) closes the
+ * longest-idle client of the input holding more ("evicted"), so a flood
+ * on TCP cannot lock out the Unix socket. Every refusal is counted; when
+ * accept fails for lack of descriptors the listeners pause for a second.
  *
  * A client is never freed inside its own callbacks: it moves to the dead
  * list and a deferred event reaps it.
@@ -27,12 +40,16 @@
 #include <sys/stat.h>
 #include <sys/un.h>
 
+#include <netinet/in.h>
+#include <arpa/inet.h>
+
 #include <errno.h>
 #include <inttypes.h>
 #include <netdb.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <time.h>
 #include <unistd.h>
 
 #include <event2/buffer.h>
@@ -42,6 +59,7 @@
 
 #include "stopcock/addr.h"
 #include "stopcock/log.h"
+#include "stopcock/names.h"
 #include "daemon.h"
 
 #define LISTEN_BACKLOG 512
@@ -52,6 +70,8 @@
 #define LISTEN_DRAIN_MAX (16 * 1024 * 1024)	/* per client at shutdown */
 #define LISTEN_UDP_DRAIN 65536	/* datagrams read at shutdown, at most */
 #define LISTEN_BACKOFF 1	/* seconds without accept after EMFILE */
+#define LISTEN_SWEEP_MS 1000	/* longest time between timeout sweeps */
+#define LISTEN_KEY_MAX 17	/* family byte + IPv6 address */
 
 enum client_state {
 	CLIENT_READING,		/* lines flow */
@@ -62,6 +82,19 @@ enum client_state {
 enum listen_cut { CUT_GARBAGE, CUT_FLOOD, CUT_N };
 
 static const char *listen_cut_names[CUT_N] = { "garbage", "line_flood" };
+
+/* Closed for what the client did not do, or to make room. */
+enum listen_close { CLOSE_IDLE, CLOSE_SLOW, CLOSE_EVICT, CLOSE_N };
+
+static const char *listen_close_names[CLOSE_N] = {
+	"idle", "slow_line", "evicted"
+};
+
+enum listen_refuse { REFUSE_CAP, REFUSE_SOURCE, REFUSE_N };
+
+static const char *listen_refuse_names[REFUSE_N] = {
+	"max_clients", "max_clients_per_source"
+};
 
 struct listen_sock {
 	struct listen		*l;
@@ -78,7 +111,14 @@ struct client {
 	uint64_t		 id;
 	uint64_t		 good, bad;
 	size_t			 discarded;	/* of the current long line */
-	TAILQ_ENTRY(client)	 entry;
+	uint64_t		 last_ms;	/* monotonic, of the last read */
+	uint64_t		 line_ms;	/* the unfinished line began */
+	int			 unfinished;	/* on l->unfinished */
+	uint8_t			 key[LISTEN_KEY_MAX];	/* its source */
+	size_t			 keylen;
+	char			 peer[INET6_ADDRSTRLEN + 8];
+	TAILQ_ENTRY(client)	 entry;		/* by last read, or dead */
+	TAILQ_ENTRY(client)	 uentry;	/* by start of its line */
 };
 
 TAILQ_HEAD(clients, client);
@@ -94,19 +134,67 @@ struct listen {
 	char			*udp_buf;
 	struct event		*backoff_ev;
 	struct event		*reap_ev;
-	struct clients		 clients;
+	struct event		*sweep_ev;
+	uint64_t		 swept_ms;	/* the last sweep ran */
+	uint64_t		 sweep_ms;	/* its period */
+	struct clients		 clients[SRC_N];	/* oldest read first */
+	struct clients		 unfinished;	/* oldest line first */
 	struct clients		 dead;
+	struct nmap		*per_source;	/* key -> connections */
 	uint32_t		 nclients;
 	uint32_t		 nby[SRC_N];
 	uint64_t		 next_id;
 	int			 draining;
 
 	uint64_t		 accepted[SRC_N];
-	uint64_t		 refused;	/* at max_clients */
+	uint64_t		 refused[REFUSE_N];
 	uint64_t		 backoffs;
 	uint64_t		 cut[SRC_N][CUT_N];
+	uint64_t		 closed[SRC_N][CLOSE_N];
 	uint64_t		 udp_datagrams;
 };
+
+static const enum source listen_streams[] = { SRC_TCP, SRC_UNIX };
+
+static uint64_t
+listen_now_ms(void)
+{
+	struct timespec ts;
+
+	clock_gettime(CLOCK_MONOTONIC, &ts);
+	return (uint64_t)ts.tv_sec * 1000 + (uint64_t)ts.tv_nsec / 1000000;
+}
+
+static uint64_t
+listen_ms(double seconds)
+{
+	return seconds > 0 ? (uint64_t)(seconds * 1000 + 0.5) : 0;
+}
+
+/* Connections from one source: +1 or -1; the entry goes at zero. */
+static uint32_t
+listen_source_add(struct listen *l, const struct client *c, int delta)
+{
+	uint32_t n = 0;
+
+	(void)nmap_get(l->per_source, (const char *)c->key, c->keylen, &n);
+	if (delta < 0 && n <= 1) {
+		(void)nmap_del(l->per_source, (const char *)c->key, c->keylen);
+		return 0;
+	}
+	n = delta < 0 ? n - 1 : n + 1;
+	nmap_put(l->per_source, (const char *)c->key, c->keylen, n);
+	return n;
+}
+
+static void
+listen_client_finished(struct client *c)
+{
+	if (c->unfinished) {
+		TAILQ_REMOVE(&c->l->unfinished, c, uentry);
+		c->unfinished = 0;
+	}
+}
 
 static const char *
 listen_client_state_name(enum client_state s)
@@ -135,10 +223,12 @@ listen_client_set_state(struct client *c, enum client_state new)
 	    c->id, source_name(c->src));
 	if (new == CLIENT_DEAD) {
 		bufferevent_disable(c->bev, EV_READ | EV_WRITE);
-		TAILQ_REMOVE(&l->clients, c, entry);
+		listen_client_finished(c);
+		TAILQ_REMOVE(&l->clients[c->src], c, entry);
 		TAILQ_INSERT_TAIL(&l->dead, c, entry);
 		l->nclients--;
 		l->nby[c->src]--;
+		(void)listen_source_add(l, c, -1);
 		event_active(l->reap_ev, EV_TIMEOUT, 0);
 	}
 	c->state = new;
@@ -182,8 +272,23 @@ listen_client_cut(struct client *c, enum listen_cut why)
 
 	l->cut[c->src][why]++;
 	log_warnx("listen: client cut off: %s client=%" PRIu64 " source=%s "
-	    "good=%" PRIu64 " bad=%" PRIu64, listen_cut_names[why], c->id,
-	    source_name(c->src), c->good, c->bad);
+	    "peer=%s good=%" PRIu64 " bad=%" PRIu64, listen_cut_names[why],
+	    c->id, source_name(c->src), c->peer, c->good, c->bad);
+	listen_client_set_state(c, CLIENT_DEAD);
+}
+
+/* Once per client: it dies here. */
+static void
+listen_client_close(struct client *c, enum listen_close why, uint64_t now)
+{
+	struct listen *l = c->l;
+	uint64_t since = why == CLOSE_SLOW ? c->line_ms : c->last_ms;
+
+	l->closed[c->src][why]++;
+	log_warnx("listen: client closed: %s client=%" PRIu64 " source=%s "
+	    "peer=%s waited_ms=%" PRIu64 " good=%" PRIu64 " bad=%" PRIu64,
+	    listen_close_names[why], c->id, source_name(c->src), c->peer,
+	    now - since, c->good, c->bad);
 	listen_client_set_state(c, CLIENT_DEAD);
 }
 
@@ -217,15 +322,23 @@ listen_client_too_long(struct client *c, const char *p, size_t n)
 static void
 listen_client_input(struct client *c, int eof)
 {
+	struct listen *l = c->l;
 	struct evbuffer *in = bufferevent_get_input(c->bev);
 	size_t len = evbuffer_get_length(in), off = 0, n, limit;
 	const char *p, *nl;
+	int ended = 0;
 
 	if (len == 0 || c->state == CLIENT_DEAD) {
 		evbuffer_drain(in, len);
 		return;
 	}
-	limit = listen_buffer(c->l);
+	/* Heard from: to the tail of its input's list, oldest read first. */
+	c->last_ms = listen_now_ms();
+	if (TAILQ_NEXT(c, entry) != NULL) {
+		TAILQ_REMOVE(&l->clients[c->src], c, entry);
+		TAILQ_INSERT_TAIL(&l->clients[c->src], c, entry);
+	}
+	limit = listen_buffer(l);
 	p = (const char *)evbuffer_pullup(in, -1);
 	while (off < len && c->state != CLIENT_DEAD) {
 		nl = memchr(p + off, '\n', len - off);
@@ -239,6 +352,7 @@ listen_client_input(struct client *c, int eof)
 				break;
 			}
 			off += n + 1;
+			ended = 1;
 			listen_client_set_state(c, CLIENT_READING);
 			continue;
 		}
@@ -262,11 +376,26 @@ listen_client_input(struct client *c, int eof)
 		else
 			listen_client_line(c, p + off, n);
 		off += n + 1;
+		ended = 1;
 	}
 	evbuffer_drain(in, off);
 	if (c->state != CLIENT_DEAD && c->bad > LISTEN_BAD_MAX &&
 	    c->bad > c->good)
 		listen_client_cut(c, CUT_GARBAGE);
+	if (c->state == CLIENT_DEAD)
+		return;
+	/* A line left unfinished (kept, or being skipped) is timed from its
+	 * first byte: a new one when a newline went by in this read. */
+	if (off < len || c->state == CLIENT_DISCARDING) {
+		if (c->unfinished && ended)
+			listen_client_finished(c);
+		if (!c->unfinished) {
+			c->line_ms = c->last_ms;
+			c->unfinished = 1;
+			TAILQ_INSERT_TAIL(&l->unfinished, c, uentry);
+		}
+	} else
+		listen_client_finished(c);
 }
 
 static void
@@ -296,41 +425,133 @@ listen_client_event_cb(struct bufferevent *bev, short what, void *arg)
 		listen_client_set_state(c, CLIENT_DEAD);
 }
 
+/*
+ * The source a connection is counted against: an IPv4 address (also when
+ * mapped into IPv6), an IPv6 /64 (one host usually holds a whole /64), or
+ * the peer's user id on the Unix socket. Also its printable name.
+ */
+static void
+listen_source_key(struct client *c, evutil_socket_t fd,
+    const struct sockaddr *sa, int salen)
+{
+	const struct sockaddr_in *sin = (const struct sockaddr_in *)sa;
+	const struct sockaddr_in6 *sin6 = (const struct sockaddr_in6 *)sa;
+	struct ucred uc;
+	socklen_t uclen = sizeof uc;
+	uint32_t uid;
+
+	if (sa != NULL && sa->sa_family == AF_INET &&
+	    (size_t)salen >= sizeof *sin) {
+		c->key[0] = '4';
+		memcpy(c->key + 1, &sin->sin_addr, 4);
+		c->keylen = 5;
+		inet_ntop(AF_INET, &sin->sin_addr, c->peer, sizeof c->peer);
+	} else if (sa != NULL && sa->sa_family == AF_INET6 &&
+	    (size_t)salen >= sizeof *sin6) {
+		if (IN6_IS_ADDR_V4MAPPED(&sin6->sin6_addr)) {
+			c->key[0] = '4';
+			memcpy(c->key + 1, sin6->sin6_addr.s6_addr + 12, 4);
+			c->keylen = 5;
+		} else {
+			c->key[0] = '6';
+			memcpy(c->key + 1, sin6->sin6_addr.s6_addr, 8);
+			c->keylen = 9;
+		}
+		inet_ntop(AF_INET6, &sin6->sin6_addr, c->peer, sizeof c->peer);
+	} else {
+		/* Unknown credentials all count as one source. */
+		uid = UINT32_MAX;
+		if (getsockopt(fd, SOL_SOCKET, SO_PEERCRED, &uc, &uclen) == 0)
+			uid = (uint32_t)uc.uid;
+		c->key[0] = 'u';
+		memcpy(c->key + 1, &uid, sizeof uid);
+		c->keylen = 1 + sizeof uid;
+		snprintf(c->peer, sizeof c->peer, "uid:%ld", uid == UINT32_MAX ?
+		    -1L : (long)uid);
+	}
+}
+
+static void
+listen_refuse(struct listen *l, const struct client *c, enum listen_refuse why,
+    uint32_t held)
+{
+	/* Floods are logged once per thousand; every one is counted. */
+	if (l->refused[why]++ % 1000 == 0)
+		log_warnx("listen: connection refused: %s reached source=%s "
+		    "peer=%s held=%u refused=%" PRIu64, listen_refuse_names[why],
+		    source_name(c->src), c->peer, held, l->refused[why]);
+}
+
+/*
+ * At max_clients: room for a connection on an input holding less than
+ * its share, made by closing the longest-idle client of the input that
+ * holds the most. 0 when there is room now.
+ */
+static int
+listen_make_room(struct listen *l, enum source src, uint64_t now)
+{
+	struct listen_sock *socks[] = { &l->tcp, &l->unix_sock };
+	enum source big = src;
+	uint32_t inputs = 0, share;
+	size_t i;
+
+	for (i = 0; i < SC_NELEM(socks); i++)
+		if (socks[i]->evl != NULL)
+			inputs++;
+	share = l->d->conf->max_clients / (inputs > 0 ? inputs : 1);
+	if (l->nby[src] >= share)
+		return -1;
+	for (i = 0; i < SC_NELEM(listen_streams); i++)
+		if (l->nby[listen_streams[i]] > l->nby[big])
+			big = listen_streams[i];
+	if (big == src || TAILQ_EMPTY(&l->clients[big]))
+		return -1;
+	listen_client_close(TAILQ_FIRST(&l->clients[big]), CLOSE_EVICT, now);
+	return 0;
+}
+
 static void
 listen_accept_cb(struct evconnlistener *evl, evutil_socket_t fd,
     struct sockaddr *sa, int salen, void *arg)
 {
 	struct listen_sock *ls = arg;
 	struct listen *l = ls->l;
+	const struct conf *conf = l->d->conf;
 	struct client *c;
 	struct bufferevent *bev;
 	size_t buf;
+	uint32_t held = 0;
+	uint64_t now = listen_now_ms();
 
 	if (l->draining) {
-		evutil_closesocket(fd);
-		return;
-	}
-	if (l->nclients >= l->d->conf->max_clients) {
-		if (l->refused++ % 1000 == 0)
-			log_warnx("listen: connection refused: max_clients "
-			    "reached source=%s clients=%u refused=%" PRIu64,
-			    source_name(ls->src), l->nclients, l->refused);
-		evutil_closesocket(fd);
-		return;
-	}
-	bev = bufferevent_socket_new(l->d->base, fd, BEV_OPT_CLOSE_ON_FREE);
-	if (bev == NULL) {
-		log_warnx("listen: bufferevent_socket_new failed source=%s",
-		    source_name(ls->src));
 		evutil_closesocket(fd);
 		return;
 	}
 	c = xcalloc(1, sizeof *c);
 	c->l = l;
 	c->src = ls->src;
+	listen_source_key(c, fd, ls->src == SRC_UNIX ? NULL : sa, salen);
+	(void)nmap_get(l->per_source, (const char *)c->key, c->keylen, &held);
+	if (held >= conf->max_clients_per_source) {
+		listen_refuse(l, c, REFUSE_SOURCE, held);
+		goto refuse;
+	}
+	while (l->nclients >= conf->max_clients) {
+		if (listen_make_room(l, ls->src, now) != 0) {
+			listen_refuse(l, c, REFUSE_CAP, l->nclients);
+			goto refuse;
+		}
+	}
+	bev = bufferevent_socket_new(l->d->base, fd, BEV_OPT_CLOSE_ON_FREE);
+	if (bev == NULL) {
+		log_warnx("listen: bufferevent_socket_new failed source=%s",
+		    source_name(ls->src));
+		goto refuse;
+	}
 	c->state = CLIENT_READING;
 	c->bev = bev;
 	c->id = ++l->next_id;
+	c->last_ms = now;
 	buf = listen_buffer(l);
 	bufferevent_setwatermark(bev, EV_READ, 0, buf);
 	bufferevent_set_max_single_read(bev,
@@ -343,12 +564,78 @@ listen_accept_cb(struct evconnlistener *evl, evutil_socket_t fd,
 		listen_client_free(c);
 		return;
 	}
-	TAILQ_INSERT_TAIL(&l->clients, c, entry);
+	TAILQ_INSERT_TAIL(&l->clients[c->src], c, entry);
 	l->nclients++;
 	l->nby[c->src]++;
 	l->accepted[c->src]++;
+	held = listen_source_add(l, c, 1);
 	log_debug("listen: client connected client=%" PRIu64 " source=%s "
-	    "clients=%u", c->id, source_name(c->src), l->nclients);
+	    "peer=%s clients=%u from_peer=%u", c->id, source_name(c->src),
+	    c->peer, l->nclients, held);
+	return;
+refuse:
+	evutil_closesocket(fd);
+	free(c);
+}
+
+static uint64_t
+listen_sweep_period(const struct conf *conf)
+{
+	uint64_t p = LISTEN_SWEEP_MS, idle, line;
+
+	/* A quarter of a timeout: closes come at most 25% late. */
+	idle = listen_ms(conf->client_idle_timeout) / 4;
+	line = listen_ms(conf->client_line_timeout) / 4;
+	if (idle > 0 && idle < p)
+		p = idle;
+	if (line > 0 && line < p)
+		p = line;
+	return p < 10 ? 10 : p;
+}
+
+static void
+listen_sweep_arm(struct listen *l)
+{
+	struct timeval tv;
+
+	l->sweep_ms = listen_sweep_period(l->d->conf);
+	tv.tv_sec = (time_t)(l->sweep_ms / 1000);
+	tv.tv_usec = (suseconds_t)(l->sweep_ms % 1000) * 1000;
+	event_add(l->sweep_ev, &tv);
+}
+
+/*
+ * Close idle and slow clients. The heads of the lists are the oldest, so
+ * each sweep stops at the first client still within its time. A sweep
+ * that comes far too late (the loop was held up) closes nothing: the
+ * clients' bytes may be waiting unread in the kernel.
+ */
+static void
+listen_sweep_cb(evutil_socket_t fd, short what, void *arg)
+{
+	struct listen *l = arg;
+	const struct conf *conf = l->d->conf;
+	uint64_t now = listen_now_ms(), idle, line;
+	struct client *c;
+	size_t i;
+
+	idle = listen_ms(conf->client_idle_timeout);
+	line = listen_ms(conf->client_line_timeout);
+	if (l->swept_ms != 0 && now - l->swept_ms > 3 * l->sweep_ms + 1000) {
+		log_debug("listen: timeout sweep late by %" PRIu64 " ms; "
+		    "closing nothing this time", now - l->swept_ms);
+		idle = line = 0;
+	}
+	l->swept_ms = now;
+	for (i = 0; idle > 0 && i < SC_NELEM(listen_streams); i++)
+		while ((c = TAILQ_FIRST(&l->clients[listen_streams[i]])) !=
+		    NULL && now - c->last_ms >= idle)
+			listen_client_close(c, CLOSE_IDLE, now);
+	while (line > 0 && (c = TAILQ_FIRST(&l->unfinished)) != NULL &&
+	    now - c->line_ms >= line)
+		listen_client_close(c, CLOSE_SLOW, now);
+	if (!l->draining)
+		listen_sweep_arm(l);
 }
 
 static void
@@ -585,15 +872,21 @@ listen_new(struct daemon *d, char **cause)
 {
 	struct listen *l;
 	const struct conf *conf = d->conf;
+	size_t i;
 
 	l = xcalloc(1, sizeof *l);
 	l->d = d;
 	l->udp_fd = -1;
-	TAILQ_INIT(&l->clients);
+	for (i = 0; i < SRC_N; i++)
+		TAILQ_INIT(&l->clients[i]);
+	TAILQ_INIT(&l->unfinished);
 	TAILQ_INIT(&l->dead);
+	l->per_source = nmap_new(d->hashkey);
 	l->reap_ev = event_new(d->base, -1, 0, listen_reap_cb, l);
 	l->backoff_ev = evtimer_new(d->base, listen_backoff_cb, l);
-	if (l->reap_ev == NULL || l->backoff_ev == NULL) {
+	l->sweep_ev = evtimer_new(d->base, listen_sweep_cb, l);
+	if (l->reap_ev == NULL || l->backoff_ev == NULL ||
+	    l->sweep_ev == NULL) {
 		*cause = xstrdup("cannot create listener events");
 		listen_free(l);
 		return NULL;
@@ -605,6 +898,7 @@ listen_new(struct daemon *d, char **cause)
 		listen_free(l);
 		return NULL;
 	}
+	listen_sweep_arm(l);
 	return l;
 }
 
@@ -613,13 +907,15 @@ listen_free(struct listen *l)
 {
 	struct client *c;
 	struct stat st;
+	size_t i;
 
 	if (l == NULL)
 		return;
-	while ((c = TAILQ_FIRST(&l->clients)) != NULL) {
-		TAILQ_REMOVE(&l->clients, c, entry);
-		listen_client_free(c);
-	}
+	for (i = 0; i < SRC_N; i++)
+		while ((c = TAILQ_FIRST(&l->clients[i])) != NULL) {
+			TAILQ_REMOVE(&l->clients[i], c, entry);
+			listen_client_free(c);
+		}
 	while ((c = TAILQ_FIRST(&l->dead)) != NULL) {
 		TAILQ_REMOVE(&l->dead, c, entry);
 		listen_client_free(c);
@@ -640,12 +936,39 @@ listen_free(struct listen *l)
 		event_free(l->reap_ev);
 	if (l->backoff_ev != NULL)
 		event_free(l->backoff_ev);
+	if (l->sweep_ev != NULL)
+		event_free(l->sweep_ev);
+	nmap_free(l->per_source);
 	free(l->tcp.name);
 	free(l->unix_sock.name);
 	free(l->unix_path);
 	free(l->udp_name);
 	free(l->udp_buf);
 	free(l);
+}
+
+/* Shutdown: apply what the kernel already holds for c (bounded). */
+static void
+listen_drain_client(struct client *c)
+{
+	struct evbuffer *in = bufferevent_get_input(c->bev);
+	int fd = bufferevent_getfd(c->bev), n;
+	size_t got;
+
+	for (got = 0, n = 1; fd != -1 && got < LISTEN_DRAIN_MAX &&
+	    c->state != CLIENT_DEAD; got += (size_t)n) {
+		n = evbuffer_read(in, fd, 65536);
+		if (n <= 0)
+			break;
+		listen_client_input(c, 0);
+	}
+	if (c->state != CLIENT_DEAD) {
+		/* A last line without its newline counts only when the
+		 * client has closed; otherwise it is unfinished and dropped
+		 * (sockets are at-most-once). */
+		listen_client_input(c, n == 0);
+		listen_client_set_state(c, CLIENT_DEAD);
+	}
 }
 
 /*
@@ -658,81 +981,84 @@ void
 listen_drain(struct listen *l)
 {
 	struct client *c;
-	struct evbuffer *in;
-	size_t got;
-	int n, fd;
+	size_t i;
 
 	l->draining = 1;
 	listen_set_accept(l, 0);
+	event_del(l->sweep_ev);
 	if (l->udp_ev != NULL) {
 		event_del(l->udp_ev);
 		listen_udp_read(l, LISTEN_UDP_DRAIN);
 	}
-	while ((c = TAILQ_FIRST(&l->clients)) != NULL) {
-		in = bufferevent_get_input(c->bev);
-		fd = bufferevent_getfd(c->bev);
-		for (got = 0, n = 1; fd != -1 && got < LISTEN_DRAIN_MAX &&
-		    c->state != CLIENT_DEAD; got += (size_t)n) {
-			n = evbuffer_read(in, fd, 65536);
-			if (n <= 0)
-				break;
-			listen_client_input(c, 0);
-		}
-		if (c->state != CLIENT_DEAD) {
-			/* A last line without its newline counts only when
-			 * the client has closed; otherwise it is unfinished
-			 * and dropped (sockets are at-most-once). */
-			listen_client_input(c, n == 0);
-			listen_client_set_state(c, CLIENT_DEAD);
-		}
-	}
+	for (i = 0; i < SC_NELEM(listen_streams); i++)
+		while ((c = TAILQ_FIRST(&l->clients[listen_streams[i]])) !=
+		    NULL)
+			listen_drain_client(c);
 	listen_reap_cb(-1, 0, l);
 }
 
 void
 listen_metrics(struct listen *l, struct evbuffer *b)
 {
-	static const enum source stream[] = { SRC_TCP, SRC_UNIX };
+	const enum source *stream = listen_streams;
 	size_t i;
 	int r;
 
 	metrics_family(b, "stopcock_clients", "gauge",
 	    "Connected stream clients.");
-	for (i = 0; i < SC_NELEM(stream); i++)
+	for (i = 0; i < SC_NELEM(listen_streams); i++)
 		evbuffer_add_printf(b, "stopcock_clients{source=\"%s\"} %u\n",
 		    source_name(stream[i]), l->nby[stream[i]]);
 	metrics_family(b, "stopcock_clients_accepted_total", "counter",
 	    "Stream connections accepted.");
-	for (i = 0; i < SC_NELEM(stream); i++)
+	for (i = 0; i < SC_NELEM(listen_streams); i++)
 		evbuffer_add_printf(b, "stopcock_clients_accepted_total{source="
 		    "\"%s\"} %" PRIu64 "\n", source_name(stream[i]),
 		    l->accepted[stream[i]]);
-	metrics_counter(b, "stopcock_clients_refused_total", "Connections "
-	    "closed at once because max_clients was reached.", l->refused);
+	metrics_family(b, "stopcock_clients_refused_total", "counter",
+	    "Connections closed at once: max_clients, or "
+	    "max_clients_per_source from one source, reached.");
+	for (r = 0; r < REFUSE_N; r++)
+		evbuffer_add_printf(b, "stopcock_clients_refused_total{reason="
+		    "\"%s\"} %" PRIu64 "\n", listen_refuse_names[r],
+		    l->refused[r]);
 	metrics_family(b, "stopcock_clients_cut_total", "counter",
 	    "Clients cut off for garbage or an endless line.");
-	for (i = 0; i < SC_NELEM(stream); i++)
+	for (i = 0; i < SC_NELEM(listen_streams); i++)
 		for (r = 0; r < CUT_N; r++)
 			evbuffer_add_printf(b, "stopcock_clients_cut_total{"
 			    "source=\"%s\",reason=\"%s\"} %" PRIu64 "\n",
 			    source_name(stream[i]), listen_cut_names[r],
 			    l->cut[stream[i]][r]);
+	metrics_family(b, "stopcock_clients_closed_total", "counter",
+	    "Clients closed for silence (client_idle_timeout), a line "
+	    "too slow to end (client_line_timeout), or evicted to make room "
+	    "for another input at max_clients.");
+	for (i = 0; i < SC_NELEM(listen_streams); i++)
+		for (r = 0; r < CLOSE_N; r++)
+			evbuffer_add_printf(b, "stopcock_clients_closed_total{"
+			    "source=\"%s\",reason=\"%s\"} %" PRIu64 "\n",
+			    source_name(stream[i]), listen_close_names[r],
+			    l->closed[stream[i]][r]);
 	metrics_counter(b, "stopcock_accept_backoffs_total", "Times accepting "
 	    "paused for lack of file descriptors.", l->backoffs);
 	metrics_counter(b, "stopcock_udp_datagrams_total",
 	    "UDP datagrams received.", l->udp_datagrams);
 }
 
+/* "refused" is the sum over refused_by; "closed" beside "cut". */
 json_t *
 listen_json(struct listen *l)
 {
-	static const enum source stream[] = { SRC_TCP, SRC_UNIX };
+	const enum source *stream = listen_streams;
 	json_t *o = json_object(), *clients = json_object();
 	json_t *accepted = json_object(), *cut = json_object(), *cs;
+	json_t *closed = json_object(), *refused_by = json_object();
+	uint64_t refused = 0;
 	size_t i;
 	int r;
 
-	for (i = 0; i < SC_NELEM(stream); i++) {
+	for (i = 0; i < SC_NELEM(listen_streams); i++) {
 		const char *name = source_name(stream[i]);
 
 		json_object_set_new(clients, name,
@@ -744,11 +1070,23 @@ listen_json(struct listen *l)
 			json_object_set_new(cs, listen_cut_names[r],
 			    json_integer((json_int_t)l->cut[stream[i]][r]));
 		json_object_set_new(cut, name, cs);
+		cs = json_object();
+		for (r = 0; r < CLOSE_N; r++)
+			json_object_set_new(cs, listen_close_names[r],
+			    json_integer((json_int_t)l->closed[stream[i]][r]));
+		json_object_set_new(closed, name, cs);
+	}
+	for (r = 0; r < REFUSE_N; r++) {
+		refused += l->refused[r];
+		json_object_set_new(refused_by, listen_refuse_names[r],
+		    json_integer((json_int_t)l->refused[r]));
 	}
 	json_object_set_new(o, "clients", clients);
 	json_object_set_new(o, "accepted", accepted);
 	json_object_set_new(o, "cut", cut);
-	json_object_set_new(o, "refused", json_integer((json_int_t)l->refused));
+	json_object_set_new(o, "closed", closed);
+	json_object_set_new(o, "refused", json_integer((json_int_t)refused));
+	json_object_set_new(o, "refused_by", refused_by);
 	json_object_set_new(o, "accept_backoffs",
 	    json_integer((json_int_t)l->backoffs));
 	json_object_set_new(o, "udp_datagrams",
