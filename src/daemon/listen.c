@@ -536,11 +536,13 @@ listen_accept_cb(struct evconnlistener *evl, evutil_socket_t fd,
 		listen_refuse(l, c, REFUSE_SOURCE, held);
 		goto refuse;
 	}
-	while (l->nclients >= conf->max_clients) {
-		if (listen_make_room(l, ls->src, now) != 0) {
-			listen_refuse(l, c, REFUSE_CAP, l->nclients);
-			goto refuse;
-		}
+	/* One eviction at most: above the cap (max_clients lowered by a
+	 * reload) connections are refused until enough have gone. */
+	if (l->nclients >= conf->max_clients &&
+	    (l->nclients > conf->max_clients ||
+	    listen_make_room(l, ls->src, now) != 0)) {
+		listen_refuse(l, c, REFUSE_CAP, l->nclients);
+		goto refuse;
 	}
 	bev = bufferevent_socket_new(l->d->base, fd, BEV_OPT_CLOSE_ON_FREE);
 	if (bev == NULL) {
