@@ -1471,14 +1471,16 @@ engine_idle(const struct engine *eng, double now, double idle)
 		return NULL;
 	for (i = 0; i < eng->nexps; i++) {
 		e = eng->exps[i];
+		if (isnan(e->touched) || now - e->touched < idle ||
+		    (best != NULL && e->touched >= best->touched))
+			continue;
 		/* one planned in the configuration stays: it would only
-		 * come back at the next start */
+		 * come back at the next start (looked up last: it is the
+		 * dear test, and this runs on every tick) */
 		if ((ce = conf_experiment_find(eng->conf, e->id)) != NULL &&
 		    ce->narms >= 2)
 			continue;
-		if (!isnan(e->touched) && now - e->touched >= idle &&
-		    (best == NULL || e->touched < best->touched))
-			best = e;
+		best = e;
 	}
 	return best != NULL ? best->id : NULL;
 }

@@ -957,6 +957,27 @@ test_retire(void **state)
 	assert_int_equal(feed(fx, "@1000 expose a control"), 0);
 	assert_null(engine_idle(fx->eng, t0 + 3600, 3600));
 	assert_string_equal(engine_idle(fx->eng, t0 + 3700, 3600), "c");
+
+	/* one planned in the configuration is never idle */
+	{
+		uint8_t key[16] = { 4 };
+		struct conf *pc = load("[experiment pinned]\n"
+		    "plan = control=50 treatment=50\n");
+		struct engine *pe = engine_new(pc, key);
+		struct record r;
+		const char *line = "plan other control=50 treatment=50";
+
+		engine_tick(pe, t0);
+		assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+		assert_int_equal(engine_apply(pe, &r, t0, 1), ENGINE_OK);
+		assert_string_equal(engine_idle(pe, t0 + 7200, 3600), "other");
+		assert_int_equal(engine_retire(pe, "other", "idle", t0 + 7200,
+		    &archive, &cause), 0);
+		json_decref(archive);
+		assert_null(engine_idle(pe, t0 + 7200, 3600));
+		engine_free(pe);
+		conf_free(pc);
+	}
 }
 
 /* An experiment's family size and the guardrails of its tests. */
