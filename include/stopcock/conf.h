@@ -22,6 +22,7 @@
 enum conf_test { TEST_MEAN, TEST_PROPORTION, TEST_RATE, TEST_QUANTILE };
 enum conf_harm { HARM_INCREASE, HARM_DECREASE };
 enum conf_action { ACTION_ALERT, ACTION_PAUSE };
+enum conf_redis_start { REDIS_START_END, REDIS_START_BEGINNING };
 
 struct conf_guardrail {
 	char		name[CONF_NAME_MAX + 1];
@@ -145,6 +146,7 @@ struct conf {
 	double		redis_claim_idle;	/* seconds */
 	uint32_t	redis_batch;	/* entries per XREADGROUP */
 	double		redis_block;	/* seconds per blocking read */
+	int		redis_start;	/* enum conf_redis_start: a new group */
 
 	/* [kafka] */
 	char		*kafka_brokers;	/* NULL: no Kafka input */

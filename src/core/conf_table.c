@@ -56,6 +56,7 @@ const char *const conf_tests[] = {
 };
 static const char *const conf_harms[] = { "increase", "decrease", NULL };
 static const char *const conf_actions[] = { "alert", "pause", NULL };
+static const char *const conf_redis_starts[] = { "end", "beginning", NULL };
 
 #define C(f) offsetof(struct conf, f)
 #define G(f) offsetof(struct conf_guardrail, f)
@@ -178,6 +179,11 @@ const struct conf_option conf_options[] = {
 	  "entries per read" },
 	{ S_REDIS, "block", T_DURATION, C(redis_block), 0.01, 300, 0, "2s",
 	  NULL, "how long one read waits for entries" },
+	{ S_REDIS, "start", T_ENUM, C(redis_start), 0, 0, 0, "end",
+	  conf_redis_starts, "where a new consumer group starts: end (entries "
+	  "already in the stream are skipped, and counted in the log) or "
+	  "beginning (all of them are applied); a group lost after it was "
+	  "made is made again after the last checkpointed entry" },
 
 	{ S_KAFKA, "brokers", T_BROKERS, C(kafka_brokers), 0, 0, 0, NULL,
 	  NULL, "bootstrap brokers, comma-separated host:port; unset: no "

@@ -17,7 +17,11 @@
  *    trimmed before delivery, 0 once the group has read the last entry;
  *    counting entries after the group's last delivered one when Redis
  *    gives no lag), trims before delivery, and pending counts (XPENDING
- *    summary) for metrics and STATUS=.
+ *    summary) for metrics and STATUS=;
+ *  - before any of that, on each connection, the group's setup: a new
+ *    group starts where [redis] start says, a lost one (a Redis restart
+ *    without persistence, XGROUP DESTROY) after the checkpoint's last
+ *    entry, both logged and counted (redis_house_setup).
  * Every command here counts in r->ops; the next read waits for zero.
  */
 #include <inttypes.h>
@@ -34,6 +38,10 @@ const char *const redis_in_dead_names[DEAD_N] = {
 
 const char *const redis_in_trim_names[TRIM_N] = {
 	"pending", "undelivered"
+};
+
+const char *const redis_in_made_names[MADE_N] = {
+	"end", "beginning", "checkpoint", "stream_start"
 };
 
 /* Context of one dead-letter move (XADD then XACK). */
@@ -297,6 +305,12 @@ redis_house_idle_cb(redisAsyncContext *ac, void *reply, void *priv)
 
 	if (redis_in_answer(r, rep) != 0)
 		return;
+	if (rep->type == REDIS_REPLY_ERROR &&
+	    strncmp(rep->str, "NOGROUP", 7) == 0) {
+		/* The group is gone: not an old server; set it up again. */
+		redis_in_fail(r, "XPENDING (claim)", rep);
+		return;
+	}
 	if (rep->type != REDIS_REPLY_ARRAY) {
 		if (!r->no_idle_filter && rep->type == REDIS_REPLY_ERROR) {
 			log_info("redis: XPENDING has no IDLE filter (%.*s): "
@@ -573,3 +587,145 @@ redis_house_info(struct redis_in *r)
 		r->ops++;
 }
 
+
+/* XGROUP CREATE answer: made where redis_house_setup_cb chose, or there. */
+static void
+redis_house_group_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	char at[SID_BUF], old[SID_BUF];
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	if (rep->type == REDIS_REPLY_ERROR) {
+		if (strncmp(rep->str, "BUSYGROUP", 9) != 0) {
+			redis_in_fail(r, "XGROUP CREATE", rep);
+			return;
+		}
+		redis_in_setup_done(r);	/* it was there: nothing to say */
+		return;
+	}
+	redis_in_sid_fmt(r->setup_at, at);
+	r->made[r->setup_made]++;
+	snprintf(r->made_at, sizeof r->made_at, "%s", at);
+	switch (r->setup_made) {
+	case MADE_END:
+		r->start_skipped += (uint64_t)r->setup_len;
+		log_info("redis: new consumer group at the stream's end "
+		    "(start = end): skipped entries=%" PRId64 " after=%s "
+		    "stream=%s group=%s", r->setup_len, at, r->stream,
+		    r->group);
+		break;
+	case MADE_BEGINNING:
+		log_info("redis: new consumer group at the stream's beginning "
+		    "(start = beginning): entries=%" PRId64 " stream=%s "
+		    "group=%s", r->setup_len, r->stream, r->group);
+		break;
+	case MADE_CHECKPOINT:
+		log_warnx("redis: consumer group lost (Redis restarted without "
+		    "it, or it was deleted): made again after the last "
+		    "checkpointed entry after=%s stream=%s group=%s", at,
+		    r->stream, r->group);
+		break;
+	case MADE_STREAM_START:
+		if (r->setup_reset)
+			/* A new stream (Redis lost it) or one that lost its
+			 * tail. Entries at or below the last applied ID are
+			 * taken as applied (read, skipped, counted): never
+			 * twice, at the cost of a new stream whose IDs went
+			 * back (explicit IDs, a server clock behind). */
+			log_warnx("redis: consumer group lost and the stream "
+			    "holds nothing as far as the last applied entry "
+			    "(Redis restarted without persistence, or lost "
+			    "its tail): made again at the stream's start; "
+			    "entries at or below the last applied one are "
+			    "taken as applied; entries the old stream held "
+			    "that were never read are lost with it and "
+			    "cannot be counted last_applied=%s below=%" PRId64
+			    " stream=%s group=%s", redis_in_sid_fmt(r->last,
+			    old), r->setup_len, r->stream, r->group);
+		else
+			log_warnx("redis: consumer group lost before any "
+			    "checkpoint: made again where it first was; "
+			    "entries applied already are skipped after=%s "
+			    "stream=%s group=%s", at, r->stream, r->group);
+		break;
+	case MADE_N:
+		break;
+	}
+	r->origin = r->setup_at;
+	redis_in_setup_done(r);
+}
+
+/*
+ * XINFO STREAM before XGROUP CREATE: where a missing group must start.
+ * A new group starts at the last generated ID (start = end: exactly the
+ * entries counted are skipped, any added meanwhile are read) or at 0. A
+ * lost one starts after the checkpoint's last entry, the one saved with
+ * the engine state, so everything after it is applied once (what was
+ * applied since is read again and skipped by the ID rule), unless the
+ * stream never went that far: then it is a new stream (or one that lost
+ * its tail), read from 0, what it holds at or below the last applied ID
+ * skipped by the same rule (never applied twice).
+ */
+static void
+redis_house_setup_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+	redisReply *rep = reply;
+	const redisReply *v;
+	struct sid lastgen = { 0, 0 }, ref;
+	char at[SID_BUF];
+	int zero_cov;
+
+	if (redis_in_answer(r, rep) != 0)
+		return;
+	r->setup_len = 0;
+	if (rep->type == REDIS_REPLY_ERROR) {
+		/* No stream yet: it is empty; anything else is a failure. */
+		if (strstr(rep->str, "no such key") == NULL) {
+			redis_in_fail(r, "XINFO STREAM (setup)", rep);
+			return;
+		}
+	} else if (rep->type != REDIS_REPLY_ARRAY ||
+	    redis_in_sid_reply(redis_house_field(rep, "last-generated-id"),
+	    &lastgen) != 0 || (v = redis_house_field(rep, "length")) == NULL ||
+	    v->type != REDIS_REPLY_INTEGER) {
+		redis_in_fail(r, "XINFO STREAM (setup, unexpected answer)",
+		    NULL);
+		return;
+	} else
+		r->setup_len = v->integer;
+	zero_cov = r->covered.ms == 0 && r->covered.seq == 0;
+	r->setup_reset = 0;
+	if (!r->had_group && zero_cov &&
+	    r->last.ms == 0 && r->last.seq == 0) {
+		r->setup_made = r->start_beginning ? MADE_BEGINNING : MADE_END;
+		r->setup_at = r->start_beginning ? (struct sid){ 0, 0 } :
+		    lastgen;
+	} else {
+		ref = zero_cov ? r->last : r->covered;
+		if (redis_in_sid_cmp(ref, lastgen) > 0) {
+			r->setup_made = MADE_STREAM_START;
+			r->setup_at = (struct sid){ 0, 0 };
+			r->setup_reset = 1;
+		} else if (zero_cov) {
+			r->setup_made = MADE_STREAM_START;
+			r->setup_at = r->origin;
+		} else {
+			r->setup_made = MADE_CHECKPOINT;
+			r->setup_at = r->covered;
+		}
+	}
+	redis_in_cmd(r, redis_house_group_cb, NULL,
+	    "XGROUP CREATE %s %s %s MKSTREAM", r->stream, r->group,
+	    redis_in_sid_fmt(r->setup_at, at));
+}
+
+void
+redis_house_setup(struct redis_in *r)
+{
+	redis_in_cmd(r, redis_house_setup_cb, NULL, "XINFO STREAM %s",
+	    r->stream);
+}

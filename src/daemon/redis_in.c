@@ -22,6 +22,10 @@
  * acknowledgements, dead letters, reclaiming entries idle on other
  * consumers (never on itself: its own pending entries are applied and
  * wait for a checkpoint), lag and pending counts.
+ * Each connection starts by making the group if it is missing
+ * (redis_house_setup): a new one where [redis] start says, a lost one
+ * (Redis restarted without it, XGROUP DESTROY) just after the entry the
+ * checkpoint holds, never at the stream's end.
  *
  * Poison: Redis's delivery counter is not used, because every restart
  * re-reads our own pending entries and would raise it without anything
@@ -595,19 +599,10 @@ redis_in_pel_next(struct redis_in *r)
 	    redis_in_sid_fmt(r->pel_cursor, cur));
 }
 
-static void
-redis_in_group_cb(redisAsyncContext *ac, void *reply, void *priv)
+void
+redis_in_setup_done(struct redis_in *r)
 {
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type == REDIS_REPLY_ERROR &&
-	    strncmp(rep->str, "BUSYGROUP", 9) != 0) {
-		redis_in_fail(r, "XGROUP CREATE", rep);
-		return;
-	}
+	r->had_group = 1;
 	r->backoff = REDIS_IN_BACKOFF_MIN;
 	r->pel_cursor.ms = r->pel_cursor.seq = 0;
 	redis_in_set_state(r, RS_PENDING);
@@ -630,8 +625,7 @@ redis_in_connect_cb(const redisAsyncContext *cac, int status)
 	}
 	log_info("redis: connected address=%s", r->address);
 	redis_in_set_state(r, RS_SETUP);
-	redis_in_cmd(r, redis_in_group_cb, NULL,
-	    "XGROUP CREATE %s %s $ MKSTREAM", r->stream, r->group);
+	redis_house_setup(r);
 }
 
 static void
@@ -814,6 +808,7 @@ redis_in_new(struct daemon *d, const char *last_id, char **cause)
 	r->group = xstrdup(conf->redis_group);
 	r->consumer = redis_in_consumer(conf->redis_consumer);
 	r->dead = xstrdup(conf->redis_dead_letter);
+	r->start_beginning = conf->redis_start == REDIS_START_BEGINNING;
 	if (redis_in_address(r, conf->redis_address, cause) != 0) {
 		redis_in_free(r);
 		return NULL;
@@ -961,12 +956,23 @@ redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 		    r->trimmed[i]);
 	metrics_counter(b, "stopcock_redis_dead_letter_failed_total",
 	    "Dead-letter moves that Redis refused.", r->dead_failed);
+	metrics_family(b, "stopcock_redis_group_made_total", "counter",
+	    "Consumer groups made: new at the stream's end or beginning, or "
+	    "lost and made again after the checkpoint or at the stream's "
+	    "start.");
+	for (i = 0; i < MADE_N; i++)
+		evbuffer_add_printf(b, "stopcock_redis_group_made_total{"
+		    "from=\"%s\"} %" PRIu64 "\n", redis_in_made_names[i],
+		    r->made[i]);
+	metrics_counter(b, "stopcock_redis_start_skipped_total", "Entries "
+	    "already in the stream that a new group at its end skipped.",
+	    r->start_skipped);
 }
 
 json_t *
 redis_in_json(struct redis_in *r)
 {
-	json_t *o = json_object(), *dead = json_object(), *trimmed;
+	json_t *o = json_object(), *dead = json_object(), *trimmed, *made;
 	char buf[SID_BUF];
 	int i;
 
@@ -1008,5 +1014,13 @@ redis_in_json(struct redis_in *r)
 	json_object_set_new(o, "dead_lettered", dead);
 	json_object_set_new(o, "dead_letter_failed",
 	    json_integer((json_int_t)r->dead_failed));
+	made = json_object();
+	for (i = 0; i < MADE_N; i++)
+		json_object_set_new(made, redis_in_made_names[i],
+		    json_integer((json_int_t)r->made[i]));
+	json_object_set_new(o, "group_made", made);
+	json_object_set_new(o, "group_made_at", json_string(r->made_at));
+	json_object_set_new(o, "start_skipped",
+	    json_integer((json_int_t)r->start_skipped));
 	return o;
 }

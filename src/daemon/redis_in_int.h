@@ -41,6 +41,16 @@ enum redis_in_dead { DEAD_NO_RECORDS, DEAD_APPLY_FAILED, DEAD_N };
 /* Where trimmed entries were found (for the trimmed counter's label). */
 enum redis_in_trim { TRIM_PENDING, TRIM_UNDELIVERED, TRIM_N };
 
+/*
+ * Where the consumer's group was made (for the counter's label): a new
+ * group at the stream's end or its beginning ([redis] start), or one
+ * lost after it was made (a Redis restart without persistence, XGROUP
+ * DESTROY) made again after the last checkpointed entry, or at the
+ * stream's start when the stream holds nothing that far.
+ */
+enum redis_in_made { MADE_END, MADE_BEGINNING, MADE_CHECKPOINT,
+    MADE_STREAM_START, MADE_N };
+
 /* A stream entry ID. 0-0 is below every real entry. */
 struct sid {
 	uint64_t	ms;
@@ -63,6 +73,7 @@ struct redis_in {
 	char			*group;
 	char			*consumer;
 	char			*dead;
+	int			 start_beginning;	/* [redis] start */
 
 	struct sid		 last;		/* last applied */
 	struct sid		 covered;	/* by the last checkpoint */
@@ -85,6 +96,22 @@ struct redis_in {
 	struct sid		 suspect;	/* the last run died in */
 	struct sid		 suspect_last;	/* [suspect, suspect_last] */
 	unsigned		 suspect_failures;
+
+	/*
+	 * The group: had_group once it existed for us (then a missing one
+	 * was lost, not new); origin is where we made it. The setup_*
+	 * fields hold the choice made from XINFO STREAM until XGROUP
+	 * CREATE answers.
+	 */
+	int			 had_group;
+	struct sid		 origin;
+	enum redis_in_made	 setup_made;
+	struct sid		 setup_at;
+	int64_t			 setup_len;	/* entries in the stream */
+	int			 setup_reset;	/* stream behind last applied */
+	uint64_t		 made[MADE_N];
+	uint64_t		 start_skipped;	/* by a new group at the end */
+	char			 made_at[SID_BUF];	/* the last one */
 
 	struct event		*retry_ev;
 	struct event		*watchdog_ev;
@@ -129,6 +156,7 @@ struct redis_in {
 /* Reason labels for metrics, JSON and the dead-letter entries. */
 extern const char *const redis_in_dead_names[DEAD_N];
 extern const char *const redis_in_trim_names[TRIM_N];
+extern const char *const redis_in_made_names[MADE_N];
 
 /* redis_in.c */
 int		 redis_in_sid_parse(const char *, size_t, struct sid *);
@@ -150,6 +178,8 @@ int		 redis_in_entry(struct redis_in *, const redisReply *);
 void		 redis_in_batch_begin(struct redis_in *, const redisReply *);
 void		 redis_in_batch_end(struct redis_in *);
 void		 redis_in_next(struct redis_in *);
+/* The group exists: read our own pending entries back. */
+void		 redis_in_setup_done(struct redis_in *);
 
 /* redis_house.c */
 void		 redis_house_ack_ids(struct redis_in *, const char **ids,
@@ -160,5 +190,7 @@ void		 redis_house_dead_letter(struct redis_in *, struct sid,
 void		 redis_house_sweep(struct redis_in *);
 void		 redis_house_claim(struct redis_in *);
 void		 redis_house_info(struct redis_in *);
+/* After connecting: XINFO STREAM, then XGROUP CREATE at the right place. */
+void		 redis_house_setup(struct redis_in *);
 
 #endif
