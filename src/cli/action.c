@@ -1,8 +1,10 @@
 /*
  * action.c: operator actions on a running daemon from the command line,
- * so nobody needs curl and a JSON body: `stopcock retire EXP` POSTs
- * /api/experiments/EXP/retire with the bearer token and prints what the
- * daemon answered (the archive it wrote). The daemon's address and token
+ * so nobody needs curl and a JSON body: `stopcock VERB EXP [ARGS]` POSTs
+ * /api/experiments/EXP/VERB with the bearer token and prints what the
+ * daemon answered. The verbs: retire (the archive it wrote), ack and
+ * close GUARDRAIL VARIANT, epoch, reset and plan ARM=WEIGHT... (the body
+ * uses the record protocol's own names: "weights", "variant", "weight"). The daemon's address and token
  * come from --url/--token, else $STOPCOCK_URL/$STOPCOCK_TOKEN, else the
  * [daemon] http and http_token of the configuration file given with -c.
  */
@@ -15,6 +17,7 @@
 #include <jansson.h>
 
 #include "stopcock/conf.h"
+#include "stopcock/proto.h"
 #include "stopcock/util.h"
 #include "cli.h"
 
@@ -42,11 +45,11 @@ action_write(char *data, size_t size, size_t n, void *arg)
 	return len;
 }
 
-/* POST an empty JSON object to url with the token; 0 with the HTTP
- * status in *code and the answer in *b, or -1 with *cause. */
+/* POST the JSON body to url with the token; 0 with the HTTP status in
+ * *code and the answer in *b, or -1 with *cause. */
 static int
-action_post(const char *url, const char *token, struct action_buf *b,
-    long *code, char **cause)
+action_post(const char *url, const char *token, const char *body,
+    struct action_buf *b, long *code, char **cause)
 {
 	char err[CURL_ERROR_SIZE] = "", *auth;
 	struct curl_slist *hdr = NULL;
@@ -66,7 +69,7 @@ action_post(const char *url, const char *token, struct action_buf *b,
 	    curl_easy_setopt(c, CURLOPT_PROTOCOLS_STR, "http,https") !=
 	    CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_HTTPHEADER, hdr) != CURLE_OK ||
-	    curl_easy_setopt(c, CURLOPT_POSTFIELDS, "{}") != CURLE_OK ||
+	    curl_easy_setopt(c, CURLOPT_POSTFIELDS, body) != CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_WRITEFUNCTION, action_write) !=
 	    CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_WRITEDATA, b) != CURLE_OK ||
@@ -93,16 +96,83 @@ action_post(const char *url, const char *token, struct action_buf *b,
 	return 0;
 }
 
+/* The verbs, the arguments each takes after the experiment, and what it
+ * does: the one table usage, checking and the body come from. */
+static const struct action_verb {
+	const char	*name;
+	const char	*args;		/* NULL: none; "..." : ARM=WEIGHT... */
+	int		 nargs;		/* fixed count, -1: one or more */
+	const char	*done;		/* printed on success */
+} action_verbs[] = {
+	{ "retire", NULL, 0, "retired" },
+	{ "ack", "GUARDRAIL VARIANT", 2, "acknowledged" },
+	{ "close", "GUARDRAIL VARIANT", 2, "closed: the alert is resolved" },
+	{ "epoch", NULL, 0, "started a new epoch" },
+	{ "reset", NULL, 0, "reset: tallies and evidence forgotten" },
+	{ "plan", "ARM=WEIGHT ARM=WEIGHT...", -1, "planned" },
+};
+
+static const struct action_verb *
+action_find(const char *verb)
+{
+	size_t i;
+
+	for (i = 0; i < SC_NELEM(action_verbs); i++)
+		if (strcmp(action_verbs[i].name, verb) == 0)
+			return &action_verbs[i];
+	return NULL;
+}
+
+/* The request body from the verb's arguments; NULL with *cause. */
+static char *
+action_body(const struct action_verb *v, int argc, char **argv,
+    char **cause)
+{
+	json_t *o = json_object(), *w;
+	char *eq, *body;
+	double weight;
+	int i;
+
+	if (v->nargs == 2) {	/* ack, close: one alert */
+		json_object_set_new(o, "guardrail", json_string(argv[0]));
+		json_object_set_new(o, "variant", json_string(argv[1]));
+	}
+	if (strcmp(v->name, "plan") == 0) {
+		w = json_array();
+		for (i = 0; i < argc; i++) {
+			if ((eq = strchr(argv[i], '=')) == NULL ||
+			    eq == argv[i] || parse_double(eq + 1, 0,
+			    PROTO_WEIGHT_MAX, &weight) != 0) {
+				xasprintf(cause, "\"%s\": an arm is NAME=WEIGHT",
+				    argv[i]);
+				json_decref(w);
+				json_decref(o);
+				return NULL;
+			}
+			json_array_append_new(w, json_pack("{s:s%, s:f}",
+			    "variant", argv[i], (size_t)(eq - argv[i]),
+			    "weight", weight));
+		}
+		json_object_set_new(o, "weights", w);
+	}
+	body = json_dumps(o, JSON_COMPACT);
+	json_decref(o);
+	return body;
+}
+
 static void
 action_usage(FILE *fp, const char *verb)
 {
+	const struct action_verb *v = action_find(verb);
+
 	fprintf(fp, "usage: stopcock %s [-c CONF] [--url URL] [--token TOKEN] "
-	    "EXPERIMENT\n"
-	    "  -c CONF        read [daemon] http and http_token from CONF\n"
+	    "EXPERIMENT%s%s\n", verb, v != NULL && v->args ? " " : "",
+	    v != NULL && v->args ? v->args : "");
+	fputs("  -c CONF        read [daemon] http and http_token from CONF\n"
 	    "  --url URL      the daemon's HTTP address (default $STOPCOCK_URL, "
 	    "CONF's, or " ACTION_URL ")\n"
 	    "  --token TOKEN  the bearer token (default $STOPCOCK_TOKEN or "
-	    "CONF's)\n", verb);
+	    "CONF's)\n", fp);
 }
 
 /* One action verb: POST /api/experiments/EXP/<verb>. */
@@ -115,11 +185,12 @@ action_run(const char *verb, int argc, char **argv)
 		{ "help", no_argument, NULL, 'h' },
 		{ NULL, 0, NULL, 0 },
 	};
+	const struct action_verb *v = action_find(verb);
 	struct action_buf b = { NULL, 0 };
 	struct conf *conf = NULL;
 	const char *url = getenv("STOPCOCK_URL");
 	const char *token = getenv("STOPCOCK_TOKEN"), *path = NULL, *msg;
-	char *full = NULL, *cause = NULL, *base = NULL, *esc;
+	char *full = NULL, *cause = NULL, *base = NULL, *esc, *body = NULL;
 	json_t *root;
 	long code = 0;
 	int c, rc = SC_EX_OK;
@@ -136,8 +207,16 @@ action_run(const char *verb, int argc, char **argv)
 		default: action_usage(stderr, verb); return SC_EX_USAGE;
 		}
 	}
-	if (argc - optind != 1) {
+	if (v == NULL || argc - optind < 1 || (v->nargs >= 0 &&
+	    argc - optind - 1 != v->nargs) || (v->nargs < 0 &&
+	    argc - optind < 3)) {
 		action_usage(stderr, verb);
+		return SC_EX_USAGE;
+	}
+	if ((body = action_body(v, argc - optind - 1, argv + optind + 1,
+	    &cause)) == NULL) {
+		fprintf(stderr, "stopcock %s: %s\n", verb, cause);
+		free(cause);
 		return SC_EX_USAGE;
 	}
 	if (path != NULL) {
@@ -174,7 +253,7 @@ action_run(const char *verb, int argc, char **argv)
 	    verb);
 	curl_free(esc);
 	curl_easy_cleanup(e);
-	if (action_post(full, token, &b, &code, &cause) != 0) {
+	if (action_post(full, token, body, &b, &code, &cause) != 0) {
 		fprintf(stderr, "stopcock %s: %s\n", verb, cause);
 		free(cause);
 		rc = SC_EX_IOERR;
@@ -189,14 +268,14 @@ action_run(const char *verb, int argc, char **argv)
 		    SC_EX_CONFIG : SC_EX_IOERR;
 	} else {
 		msg = json_string_value(json_object_get(root, "archive"));
-		printf("%s %s%s%s\n", argv[optind], strcmp(verb, "retire") == 0 ?
-		    "retired" : verb, msg != NULL ? "; archive " : "",
-		    msg != NULL ? msg : "");
+		printf("%s %s%s%s\n", argv[optind], v->done, msg != NULL ?
+		    "; archive " : "", msg != NULL ? msg : "");
 	}
 	json_decref(root);
 done:
 	curl_global_cleanup();
 out:
+	free(body);
 	free(full);
 	free(base);
 	free(b.p);
@@ -208,4 +287,34 @@ int
 cmd_retire(int argc, char **argv)
 {
 	return action_run("retire", argc, argv);
+}
+
+int
+cmd_ack(int argc, char **argv)
+{
+	return action_run("ack", argc, argv);
+}
+
+int
+cmd_close(int argc, char **argv)
+{
+	return action_run("close", argc, argv);
+}
+
+int
+cmd_epoch(int argc, char **argv)
+{
+	return action_run("epoch", argc, argv);
+}
+
+int
+cmd_reset(int argc, char **argv)
+{
+	return action_run("reset", argc, argv);
+}
+
+int
+cmd_plan(int argc, char **argv)
+{
+	return action_run("plan", argc, argv);
 }

@@ -12,5 +12,10 @@ int	cmd_simulate(int, char **);	/* simulate.c */
 int	cmd_generate(int, char **);	/* generate.c */
 int	cmd_status(int, char **);	/* status.c */
 int	cmd_retire(int, char **);	/* action.c */
+int	cmd_ack(int, char **);
+int	cmd_close(int, char **);
+int	cmd_epoch(int, char **);
+int	cmd_reset(int, char **);
+int	cmd_plan(int, char **);
 
 #endif

@@ -28,6 +28,11 @@ static const struct {
 	{ "status", cmd_status, "show a running daemon's experiments" },
 	{ "retire", cmd_retire,
 	  "archive an experiment and free its slot on a running daemon" },
+	{ "ack", cmd_ack, "acknowledge a guardrail's alert on a running daemon" },
+	{ "close", cmd_close, "close a guardrail's alert (resolved)" },
+	{ "epoch", cmd_epoch, "start a new epoch of an experiment" },
+	{ "reset", cmd_reset, "forget an experiment's tallies and evidence" },
+	{ "plan", cmd_plan, "plan an experiment: ARM=WEIGHT ARM=WEIGHT..." },
 	{ "check-config", cmd_check_config,
 	  "validate a configuration file" },
 };

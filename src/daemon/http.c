@@ -463,17 +463,20 @@ http_chart_get(struct http *h, struct evhttp_request *req, const char *id,
 
 /* ---- POST actions ---- */
 
-/* {"arms": [{"variant": "control", "weight": 50}, ...]} -> arms. */
+/* {"weights": [{"variant": "control", "weight": 50}, ...]} -> arms: the
+ * JSON plan record's own names ("arms" is the older spelling, kept). */
 static int
 http_plan_arms(const json_t *body, struct proto_arm *arms, int *narms,
     char **cause)
 {
-	const json_t *list = json_object_get(body, "arms"), *a, *w;
+	const json_t *list = json_object_get(body, "weights"), *a, *w;
 	const char *name;
 	size_t i, j;
 
+	if (list == NULL)
+		list = json_object_get(body, "arms");
 	if (!json_is_array(list) || json_array_size(list) == 0) {
-		*cause = xstrdup("\"arms\" must be a non-empty array of "
+		*cause = xstrdup("\"weights\" must be a non-empty array of "
 		    "{\"variant\": NAME, \"weight\": NUMBER}");
 		return -1;
 	}
