@@ -36,6 +36,9 @@ struct conf_guardrail {
 	enum conf_action action;
 	double		plan_units;	/* 0: use the experiment's / default */
 	char		unit[CONF_NAME_MAX + 1];	/* of the metric, "" none */
+	/* plausible values of an observe record (min, max): others are
+	 * refused as implausible before any test sees them */
+	double		vmin, vmax;
 	int		line;		/* where it was defined, for messages */
 };
 

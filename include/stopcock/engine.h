@@ -36,6 +36,8 @@ enum engine_reject {
 	ENGINE_E_FUTURE_EPOCH,	/* "future_epoch": epoch= not planned yet */
 	ENGINE_E_GUARDRAIL,	/* "unknown_guardrail": a plan's guardrails=
 				 * names one not configured */
+	ENGINE_E_IMPLAUSIBLE,	/* "implausible": outside a guardrail's
+				 * min and max */
 	ENGINE_NREJECT
 };
 

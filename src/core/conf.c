@@ -197,6 +197,12 @@ conf_close_section(struct conf_parser *p)
 			    "quantile, not %s, in %s", conf_tests[g->test],
 			    p->label);
 	}
+	if (p->sect == S_GUARDRAIL) {
+		g = p->base;
+		if (!(g->vmin < g->vmax))
+			conf_error(p, p->sect_line, "%s: min (%g) must be below "
+			    "max (%g)", p->label, g->vmin, g->vmax);
+	}
 	p->sect = S_NONE;
 }
 

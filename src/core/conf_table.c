@@ -234,6 +234,12 @@ const struct conf_option conf_options[] = {
 	  "0: the experiment's" },
 	{ S_GUARDRAIL, "unit", T_NAME, G(unit), 0, 0, 0, NULL, NULL,
 	  "unit of the metric (ms, bytes, ...), shown beside its effects" },
+	{ S_GUARDRAIL, "min", T_DOUBLE, G(vmin), -1e300, 1e300, F_ZERO_OK,
+	  "-1e300", NULL, "the least plausible value of the metric (observe "
+	  "records): lower ones are refused and counted as implausible" },
+	{ S_GUARDRAIL, "max", T_DOUBLE, G(vmax), -1e300, 1e300, F_ZERO_OK,
+	  "1e300", NULL, "the largest plausible value of the metric (observe "
+	  "records): higher ones are refused and counted as implausible" },
 
 	{ S_EXPERIMENT, "plan", T_PLAN, E(arms), 0, 0, 0, NULL, NULL,
 	  "arms and weights, control first, as in a plan record" },

@@ -23,7 +23,7 @@
 static const char *reject_names[ENGINE_NREJECT] = {
 	"ok", "unplanned", "unknown_variant", "cap_experiments",
 	"cap_variants", "cap_metrics", "kind_mismatch", "k_exceeds_n",
-	"closed_epoch", "future_epoch", "unknown_guardrail",
+	"closed_epoch", "future_epoch", "unknown_guardrail", "implausible",
 };
 
 const char *
@@ -254,9 +254,17 @@ engine_metric_needs(const struct conf *conf, struct metric *m)
 	int i;
 
 	m->want_sketch = m->want_k_le_n = 0;
+	m->vmin = -INFINITY;
+	m->vmax = INFINITY;
 	for (i = 0; i < conf->nguardrails; i++) {
 		if (strcmp(conf->guardrails[i].metric, m->name) != 0)
 			continue;
+		/* the narrowest plausible range of the guardrails reading it
+		 * (a guardrail without bounds has -1e300 and 1e300) */
+		if (conf->guardrails[i].vmin < conf->guardrails[i].vmax) {
+			m->vmin = fmax(m->vmin, conf->guardrails[i].vmin);
+			m->vmax = fmin(m->vmax, conf->guardrails[i].vmax);
+		}
 		if (conf->guardrails[i].test == TEST_QUANTILE)
 			m->want_sketch = 1;
 		if (conf->guardrails[i].test == TEST_PROPORTION)
@@ -1201,6 +1209,13 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 			goto done;
 		if (kind == METRIC_COUNT && m->want_k_le_n && r->k > r->n) {
 			rc = ENGINE_E_K_GT_N;
+			goto done;
+		}
+		/* a value no guardrail finds plausible never reaches a test:
+		 * forged or broken (1e9 ms latencies) is refused, counted */
+		if (kind == METRIC_OBSERVE && (r->value < m->vmin ||
+		    r->value > m->vmax)) {
+			rc = ENGINE_E_IMPLAUSIBLE;
 			goto done;
 		}
 		h.t = r->has_ts ? r->ts : now;

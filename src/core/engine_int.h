@@ -101,6 +101,7 @@ struct metric {
 	enum metric_kind kind;
 	int		 want_sketch;
 	int		 want_k_le_n;	/* a proportion guardrail reads it */
+	double		 vmin, vmax;	/* plausible values: every guardrail's */
 	/*
 	 * Event time (engine.c align_*): records are applied to the tallies
 	 * only up to the watermark, the oldest of the arms' newest record

@@ -485,6 +485,8 @@ static const struct ecase ecases[] = {
 	{ "quantile one", GQ "test = quantile\nquantile = 1\n",
 	  "t.conf:4: bad value '1' for 'quantile' in [guardrail g]: expected "
 	  "a number in (0, 1)" },
+	{ "min not below max", GQ "test = mean\nmin = 5\nmax = 5\n",
+	  "t.conf:1: [guardrail g]: min (5) must be below max (5)" },
 	{ "webhook without url", "[webhook w]\ntimeout = 1s\n",
 	  "t.conf:1: [webhook w] is missing required key 'url'" },
 

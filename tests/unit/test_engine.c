@@ -624,6 +624,38 @@ test_quantile_windows(void **state)
 	json_decref(j);
 }
 
+/*
+ * Plausible values (issue 12, item 2): a guardrail's min and max refuse,
+ * and count, values no test should see (a forged 1e9 ms latency, a
+ * negative one), whatever guardrail kind reads the metric; the values
+ * around them count as usual.
+ */
+static void
+test_implausible(void **state)
+{
+	struct fx *fx = *state;
+	struct engine_counters c;
+
+	engine_free(fx->eng);
+	conf_free(fx->conf);
+	fx->conf = load("[guardrail render_cap]\nmetric = render_ms\n"
+	    "test = quantile\nquantile = 0.9\nmin = 0\nmax = 60000\n");
+	fx->eng = engine_new(fx->conf, (const uint8_t *)"0123456789abcdef");
+	engine_set_sink(fx->eng, sink, &fx->seen);
+	assert_int_equal(feed(fx, "plan pl control=1 treatment=1"), 0);
+	assert_int_equal(feed(fx, "observe pl control render_ms 120"), 0);
+	assert_int_equal(feed(fx, "observe pl treatment render_ms 1e9"),
+	    ENGINE_E_IMPLAUSIBLE);
+	assert_int_equal(feed(fx, "observe pl treatment render_ms -5"),
+	    ENGINE_E_IMPLAUSIBLE);
+	assert_int_equal(feed(fx, "observe pl treatment render_ms 60000"), 0);
+	/* a metric no bounded guardrail reads takes any finite value */
+	assert_int_equal(feed(fx, "observe pl treatment latency_ms 1e9"), 0);
+	engine_counters(fx->eng, &c);
+	assert_int_equal(c.rejected[ENGINE_E_IMPLAUSIBLE], 2);
+	assert_string_equal(engine_reason(ENGINE_E_IMPLAUSIBLE), "implausible");
+}
+
 /* Save, restore, save again: the same image; and both engines then
  * evolve identically under the same further records. */
 static void
@@ -1313,6 +1345,8 @@ main(void)
 		cmocka_unit_test_setup_teardown(test_quantile_harm_on_tick,
 		    setup, teardown),
 		cmocka_unit_test_setup_teardown(test_quantile_windows, setup,
+		    teardown),
+		cmocka_unit_test_setup_teardown(test_implausible, setup,
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_save_restore, setup,
 		    teardown),
