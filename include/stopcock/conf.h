@@ -107,6 +107,7 @@ struct conf {
 	/* event time: the SRM test reads only complete intervals */
 	double		lateness;	/* allowed lateness of an exposure, s */
 	double		epoch_grace;	/* previous epoch open to epoch=, s */
+	int		declared_only;	/* stream plans: [experiment] only */
 	double		srm_interval;	/* SRM interval length, s */
 	uint32_t	unit_groups;	/* variance groups per arm (unit=) */
 	double		detect_arl;	/* s of record time between false

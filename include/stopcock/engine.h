@@ -38,6 +38,9 @@ enum engine_reject {
 				 * names one not configured */
 	ENGINE_E_IMPLAUSIBLE,	/* "implausible": outside a guardrail's
 				 * min and max */
+	ENGINE_E_UNDECLARED,	/* "undeclared": a plan record for an
+				 * experiment the config does not declare,
+				 * with declared_only */
 	ENGINE_NREJECT
 };
 

@@ -109,6 +109,10 @@ const struct conf_option conf_options[] = {
 	  3660 * 86400.0, F_ZERO_OK, "0", NULL, "retire an experiment that no "
 	  "record reached for this long (stopcockd: archived in the state "
 	  "directory, its slot freed); 0: never" },
+	{ S_DEFAULTS, "declared_only", T_BOOL, C(declared_only), 0, 0, 0, "no",
+	  NULL, "plan records from the inputs may only plan experiments "
+	  "this file declares ([experiment ID]); others are refused and "
+	  "counted (undeclared). The HTTP plan action is not bound by it" },
 	{ S_DEFAULTS, "max_experiments", T_U32, C(max_experiments), 1, 1e6, 0,
 	  "10000", NULL, "experiments tracked at once; records beyond are "
 	  "refused and counted" },

@@ -24,6 +24,7 @@ static const char *reject_names[ENGINE_NREJECT] = {
 	"ok", "unplanned", "unknown_variant", "cap_experiments",
 	"cap_variants", "cap_metrics", "kind_mismatch", "k_exceeds_n",
 	"closed_epoch", "future_epoch", "unknown_guardrail", "implausible",
+	"undeclared",
 };
 
 const char *
@@ -1152,6 +1153,13 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 	eng->now = now;
 	eng->event = event;
 	if (r->kind == PROTO_PLAN) {
+		/* with declared_only a record cannot plan what the config
+		 * does not name: forged plans cannot fill max_experiments */
+		if (eng->conf->declared_only &&
+		    conf_experiment_find(eng->conf, r->experiment) == NULL) {
+			rc = ENGINE_E_UNDECLARED;
+			goto done;
+		}
 		rc = apply_plan(eng, r->arms, r->narms, r->experiment,
 		    r->family_len > 0 ? r->family : NULL,
 		    r->has_ts && r->ts < now ? r->ts : now);

@@ -656,6 +656,35 @@ test_implausible(void **state)
 	assert_string_equal(engine_reason(ENGINE_E_IMPLAUSIBLE), "implausible");
 }
 
+/* declared_only: plan records may plan only experiments the config
+ * declares (forged plans cannot fill max_experiments); the operator's
+ * plan action is not bound by it. */
+static void
+test_declared_only(void **state)
+{
+	struct fx *fx = *state;
+	char *cause = NULL, *text;
+	struct proto_arm arms[2] = { { "control", 1 }, { "b", 1 } };
+
+	engine_free(fx->eng);
+	conf_free(fx->conf);
+	xasprintf(&text, "[defaults]\ndeclared_only = yes\n%s[experiment "
+	    "known]\n", base_conf + strlen("[defaults]\n"));
+	if (conf_parse(text, "test.conf", &fx->conf, &cause) != 0)
+		fail_msg("config: %s", cause);
+	free(text);
+	fx->eng = engine_new(fx->conf, (const uint8_t *)"0123456789abcdef");
+	engine_set_sink(fx->eng, sink, &fx->seen);
+	assert_int_equal(feed(fx, "plan known control=1 b=1"), 0);
+	assert_int_equal(feed(fx, "plan forged control=1 b=1"),
+	    ENGINE_E_UNDECLARED);
+	assert_int_equal(feed(fx, "expose forged control"),
+	    ENGINE_E_UNPLANNED);
+	assert_int_equal(engine_plan(fx->eng, "by_hand", arms, 2, fx->now,
+	    &cause), 0);
+	free(cause);
+}
+
 /* Save, restore, save again: the same image; and both engines then
  * evolve identically under the same further records. */
 static void
@@ -1347,6 +1376,8 @@ main(void)
 		cmocka_unit_test_setup_teardown(test_quantile_windows, setup,
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_implausible, setup,
+		    teardown),
+		cmocka_unit_test_setup_teardown(test_declared_only, setup,
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_save_restore, setup,
 		    teardown),
