@@ -83,6 +83,10 @@ struct conf_webhook {
 	double		timeout;	/* seconds per request */
 	int		max_attempts;
 	uint32_t	queue;		/* bounded queue length */
+	double		backoff_cap;	/* seconds, largest backoff */
+	double		probe;		/* seconds between probes of a
+					 * receiver that keeps failing */
+	uint32_t	spool_bytes;	/* bound of the spool's bodies */
 	int		line;
 };
 

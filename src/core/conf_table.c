@@ -300,9 +300,20 @@ const struct conf_option conf_options[] = {
 	{ S_WEBHOOK, "timeout", T_DURATION, W(timeout), 0.1, 300, 0, "5s",
 	  NULL, "time allowed per request" },
 	{ S_WEBHOOK, "max_attempts", T_INT, W(max_attempts), 1, 100, 0, "8",
-	  NULL, "attempts per alert, with backoff, before it is dropped" },
+	  NULL, "attempts per alert when there is no state_dir to spool "
+	  "it; a spooled alert is retried until delivered" },
+	{ S_WEBHOOK, "backoff_cap", T_DURATION, W(backoff_cap), 0.1, 3600, 0,
+	  "300s", NULL, "largest wait between attempts (full jitter below it)" },
+	{ S_WEBHOOK, "probe", T_DURATION, W(probe), 0.1, 300, 0, "5s", NULL,
+	  "once the backoff is longer, a failing receiver is probed this "
+	  "often with its oldest delivery; an answer sends the rest at once" },
+	{ S_WEBHOOK, "spool_bytes", T_U32, W(spool_bytes), 4096, 4e9, 0,
+	  "67108864", NULL, "bytes of deliveries the spool holds; when full "
+	  "the oldest info alerts are dropped (counted), never harm, SRM or "
+	  "pause" },
 	{ S_WEBHOOK, "queue", T_U32, W(queue), 1, 1000000, 0, "1000", NULL,
-	  "alerts waiting at most; the oldest is dropped beyond" },
+	  "alerts waiting at most; beyond, the oldest info alert is "
+	  "dropped, never harm, SRM or pause" },
 	{ S_WEBHOOK, "kinds", T_KINDS, W(kinds), 0, 0, 0, CONF_KINDS_DEFAULT,
 	  conf_kind_names, "alert kinds and lifecycle events this receiver "
 	  "gets" },

@@ -5,7 +5,11 @@
  * for the pause URL (pause.c posts through webhook_post). Each delivery
  * is spooled to <state_dir>/spool/<receiver>/ before it is attempted and
  * deleted once the receiver answers 2xx, so an outage or a restart loses
- * nothing; the queue per receiver is bounded (oldest dropped, counted).
+ * nothing. A spooled delivery is retried until the receiver takes it: the
+ * spool per receiver is bounded by bytes and by entries, and when it is
+ * full the oldest info alert goes (logged, counted); harm, SRM, pause and
+ * anything without a severity are never dropped, they are kept beyond
+ * the bound (counted as overfull) rather than lost.
  *
  * Signing follows the Standard Webhooks specification: the secret is
  * "whsec_" + base64 key bytes; webhook-signature is "v1," +
@@ -16,6 +20,10 @@
  * capped exponential backoff with full jitter (Brooker, "Exponential
  * backoff and jitter", AWS Architecture Blog, 2015); the backoff is per
  * receiver, and while a receiver is failing only one request probes it.
+ * Once the backoff would wait longer than the probe interval (5 s unless
+ * configured), the oldest delivery probes at that interval instead, and
+ * the first answer sends the rest at once: a receiver that comes back is
+ * reached within seconds, not after the backoff cap.
  * Any other answer (4xx, 3xx) is final: counted as failed and dropped.
  */
 #include <sys/queue.h>
@@ -44,6 +52,8 @@
 #define WEBHOOK_BACKOFF_BASE	1.0	/* seconds */
 #define WEBHOOK_BACKOFF_CAP	300.0
 #define WEBHOOK_TIMEOUT		10.0	/* when the config gives none */
+#define WEBHOOK_PROBE		5.0	/* seconds, when not configured */
+#define WEBHOOK_SPOOL_BYTES	(64u * 1024 * 1024)
 #define WEBHOOK_QUEUE		1000
 #define WEBHOOK_KEY_MAX		256	/* bytes of a decoded secret */
 #define WEBHOOK_SPOOL_MAX	(1024 * 1024)	/* bytes of one spool file */
@@ -60,6 +70,7 @@ struct delivery {
 	size_t			 len;
 	char			*path;		/* spool file, NULL if none */
 	int			 attempts;
+	int			 info;		/* severity info: droppable */
 	CURL			*easy;
 	struct curl_slist	*headers;
 	char			 error[CURL_ERROR_SIZE];
@@ -80,7 +91,12 @@ struct receiver {
 	uint32_t		 kinds;		/* what webhook_send brings */
 	double			 timeout;
 	int			 max_attempts;	/* <= 0: unlimited */
+	int			 supersede;	/* a later post repeats it */
 	uint32_t		 queue_max;
+	double			 backoff_cap;
+	double			 probe;
+	uint64_t		 spool_max;	/* bytes of bodies held */
+	uint64_t		 spool_used;
 
 	struct deliveries	 waiting;	/* oldest first */
 	struct deliveries	 inflight;
@@ -93,6 +109,7 @@ struct receiver {
 	uint64_t		 sent;
 	uint64_t		 failed;
 	uint64_t		 dropped;
+	uint64_t		 overfull;	/* kept beyond the bound */
 	uint64_t		 retries;
 	uint64_t		 spool_errors;
 };
@@ -186,17 +203,22 @@ webhook_sign(const struct receiver *r, const char *id, long long ts,
 	return 0;
 }
 
-/* Full jitter: uniform in [0, min(cap, base * 2^(failures - 1))]. */
+/*
+ * Full jitter: uniform in [0, min(cap, base * 2^(failures - 1))]; once
+ * that ceiling passes the probe interval, the probe interval itself.
+ */
 static double
-webhook_backoff(uint32_t failures)
+webhook_backoff(const struct receiver *r)
 {
 	double ceiling;
-	uint32_t u;
+	uint32_t u, failures = r->failing;
 
 	ceiling = WEBHOOK_BACKOFF_BASE * ldexp(1.0,
 	    (int)(failures > 20 ? 20 : failures) - 1);
-	if (ceiling > WEBHOOK_BACKOFF_CAP)
-		ceiling = WEBHOOK_BACKOFF_CAP;
+	if (ceiling > r->backoff_cap)
+		ceiling = r->backoff_cap;
+	if (ceiling > r->probe)
+		return r->probe;
 	if (RAND_bytes((unsigned char *)&u, sizeof u) != 1)
 		u = (uint32_t)random();
 	return ceiling * ((double)u / 4294967296.0);
@@ -210,6 +232,7 @@ webhook_delivery_free(struct delivery *dl)
 		curl_easy_cleanup(dl->easy);
 	}
 	curl_slist_free_all(dl->headers);
+	dl->rcv->spool_used -= dl->len;
 	free(dl->id);
 	free(dl->body);
 	free(dl->path);
@@ -233,8 +256,9 @@ webhook_spool_write(struct receiver *r, struct delivery *dl)
 	const char *parts[1];
 	size_t lens[1];
 
-	j = json_pack("{s:s, s:s%, s:s, s:I}", "id", dl->id, "body", dl->body,
-	    dl->len, "receiver", r->name, "seq", (json_int_t)dl->seq);
+	j = json_pack("{s:s, s:s%, s:s, s:I, s:b}", "id", dl->id, "body",
+	    dl->body, dl->len, "receiver", r->name, "seq", (json_int_t)dl->seq,
+	    "info", dl->info);
 	if (j == NULL)
 		return -1;
 	text = json_dumps(j, JSON_COMPACT);
@@ -256,28 +280,61 @@ webhook_spool_write(struct receiver *r, struct delivery *dl)
 	return 0;
 }
 
-static void
-webhook_drop_oldest(struct receiver *r)
+static int
+webhook_full(const struct receiver *r, const struct delivery *dl)
 {
-	struct delivery *dl, *old = TAILQ_FIRST(&r->waiting);
+	return r->nwaiting + r->ninflight >= r->queue_max ||
+	    r->spool_used + dl->len > r->spool_max;
+}
 
-	TAILQ_FOREACH(dl, &r->inflight, entry)
-		if (old == NULL || dl->seq < old->seq)
-			old = dl;
-	if (old == NULL)
-		return;
-	if (old->easy != NULL) {
-		TAILQ_REMOVE(&r->inflight, old, entry);
-		r->ninflight--;
-	} else {
-		TAILQ_REMOVE(&r->waiting, old, entry);
-		r->nwaiting--;
+/*
+ * Room for the new delivery dl (not yet queued): drop the oldest waiting
+ * info alerts while the spool is full. With none left, a new info alert
+ * is itself dropped (-1); anything else is kept beyond the bound, since
+ * losing a harm, SRM or pause alert is worse than a fuller disk.
+ */
+static int
+webhook_make_room(struct receiver *r, struct delivery *dl)
+{
+	struct delivery *old;
+
+	while (webhook_full(r, dl)) {
+		TAILQ_FOREACH(old, &r->waiting, entry)
+			if (old->info)
+				break;
+		if (old != NULL) {
+			TAILQ_REMOVE(&r->waiting, old, entry);
+			r->nwaiting--;
+		} else {
+			/* An attempt under way is cancelled with its handle. */
+			TAILQ_FOREACH(old, &r->inflight, entry)
+				if (old->info)
+					break;
+			if (old == NULL)
+				break;
+			TAILQ_REMOVE(&r->inflight, old, entry);
+			r->ninflight--;
+		}
+		r->dropped++;
+		log_warnx("webhook: spool full, dropped oldest info alert "
+		    "receiver=%s id=%s queue=%u bytes=%" PRIu64, r->name,
+		    old->id, r->nwaiting + r->ninflight, r->spool_used);
+		webhook_unspool(old);
+		webhook_delivery_free(old);
 	}
-	r->dropped++;
-	log_warnx("webhook: queue full, dropped oldest receiver=%s id=%s "
-	    "queue=%u", r->name, old->id, r->queue_max);
-	webhook_unspool(old);
-	webhook_delivery_free(old);
+	if (!webhook_full(r, dl))
+		return 0;
+	if (dl->info) {
+		r->dropped++;
+		log_warnx("webhook: spool full, dropped new info alert "
+		    "receiver=%s id=%s", r->name, dl->id);
+		return -1;
+	}
+	r->overfull++;
+	log_warnx("webhook: spool full, kept beyond the bound receiver=%s "
+	    "id=%s queue=%u bytes=%" PRIu64, r->name, dl->id,
+	    r->nwaiting + r->ninflight, r->spool_used);
+	return 0;
 }
 
 /* Insert by seq so spool loading and re-queued retries keep the order. */
@@ -286,9 +343,6 @@ webhook_enqueue(struct receiver *r, struct delivery *dl)
 {
 	struct delivery *at;
 
-	while (r->nwaiting + r->ninflight >= r->queue_max &&
-	    r->nwaiting + r->ninflight > 0)
-		webhook_drop_oldest(r);
 	TAILQ_FOREACH(at, &r->waiting, entry)
 		if (at->seq > dl->seq)
 			break;
@@ -394,7 +448,10 @@ webhook_retry(struct receiver *r, struct delivery *dl, double retry_after)
 {
 	double delay, now = daemon_now();
 
-	if (r->max_attempts > 0 && dl->attempts >= r->max_attempts) {
+	/* Only what is not on disk, or what a later post repeats, is given
+	 * up: a spooled alert waits for its receiver however long it takes. */
+	if ((dl->path == NULL || r->supersede) && r->max_attempts > 0 &&
+	    dl->attempts >= r->max_attempts) {
 		r->failed++;
 		log_warnx("webhook: giving up receiver=%s id=%s attempts=%d",
 		    r->name, dl->id, dl->attempts);
@@ -404,10 +461,10 @@ webhook_retry(struct receiver *r, struct delivery *dl, double retry_after)
 	}
 	r->retries++;
 	r->failing++;
-	delay = webhook_backoff(r->failing);
+	delay = webhook_backoff(r);
 	if (retry_after > delay)
-		delay = retry_after > WEBHOOK_BACKOFF_CAP ?
-		    WEBHOOK_BACKOFF_CAP : retry_after;
+		delay = retry_after > r->backoff_cap ? r->backoff_cap :
+		    retry_after;
 	if (now + delay > r->next_try)
 		r->next_try = now + delay;
 	webhook_enqueue(r, dl);
@@ -613,7 +670,7 @@ webhook_kick(struct receiver *r)
 
 static void
 webhook_queue(struct receiver *r, const char *id, const char *body,
-    size_t len)
+    size_t len, int info)
 {
 	struct delivery *dl;
 
@@ -625,6 +682,13 @@ webhook_queue(struct receiver *r, const char *id, const char *body,
 	memcpy(dl->body, body, len);
 	dl->body[len] = '\0';
 	dl->len = len;
+	dl->info = info;
+	if (webhook_make_room(r, dl) == -1) {
+		dl->len = 0;	/* never counted in spool_used */
+		webhook_delivery_free(dl);
+		return;
+	}
+	r->spool_used += len;
 	if (r->spool != NULL && webhook_spool_write(r, dl) == -1)
 		r->spool_errors++;
 	webhook_enqueue(r, dl);
@@ -640,11 +704,15 @@ webhook_spool_load_one(struct receiver *r, const char *path, uint64_t seq)
 	json_t *j;
 	const char *id = NULL, *body = NULL;
 	size_t len = 0;
+	int info = 0;
 	char *bad;
 
+	/* "info" is absent from files written before the spool had a
+	 * bound: such an entry is kept like a harm alert. */
 	j = json_load_file(path, 0, &err);
-	if (j == NULL || json_unpack(j, "{s:s, s:s%}", "id", &id, "body",
-	    &body, &len) == -1 || strlen(id) == 0 || strlen(id) > 128) {
+	if (j == NULL || json_unpack(j, "{s:s, s:s%, s?b}", "id", &id, "body",
+	    &body, &len, "info", &info) == -1 || strlen(id) == 0 ||
+	    strlen(id) > 128) {
 		xasprintf(&bad, "%s.bad", path);
 		log_warnx("webhook: damaged spool file %s kept as %s", path,
 		    bad);
@@ -664,10 +732,18 @@ webhook_spool_load_one(struct receiver *r, const char *path, uint64_t seq)
 	dl->body[len] = '\0';
 	dl->len = len;
 	dl->path = xstrdup(path);
+	dl->info = info;
 	json_decref(j);
-	webhook_enqueue(r, dl);
 	if (seq >= r->w->seq)
 		r->w->seq = seq + 1;
+	if (webhook_make_room(r, dl) == -1) {
+		webhook_unspool(dl);
+		dl->len = 0;
+		webhook_delivery_free(dl);
+		return;
+	}
+	r->spool_used += len;
+	webhook_enqueue(r, dl);
 }
 
 static void
@@ -718,10 +794,12 @@ webhook_spool_load(struct receiver *r)
 		    r->name, r->nwaiting);
 }
 
+/* cw: a configured receiver's tunables; NULL for the internal ones. */
 static int
 webhook_add(struct webhook *w, const char *name, const char *url,
     const char *secret, double timeout, int max_attempts, uint32_t queue,
-    int internal, uint32_t kinds, char **cause)
+    int internal, uint32_t kinds, const struct conf_webhook *cw,
+    char **cause)
 {
 	struct daemon *d = w->d;
 	struct receiver *r;
@@ -757,6 +835,13 @@ webhook_add(struct webhook *w, const char *name, const char *url,
 	r->timeout = timeout > 0 ? timeout : WEBHOOK_TIMEOUT;
 	r->max_attempts = max_attempts;
 	r->queue_max = queue > 0 ? queue : WEBHOOK_QUEUE;
+	r->backoff_cap = cw != NULL && cw->backoff_cap > 0 ? cw->backoff_cap :
+	    WEBHOOK_BACKOFF_CAP;
+	r->probe = cw != NULL && cw->probe > 0 ? cw->probe : WEBHOOK_PROBE;
+	r->spool_max = cw != NULL && cw->spool_bytes > 0 ? cw->spool_bytes :
+	    WEBHOOK_SPOOL_BYTES;
+	/* Alertmanager's next refresh carries every alert again. */
+	r->supersede = strcmp(name, WEBHOOK_ALERTMANAGER) == 0 && internal;
 	if ((r->wake = evtimer_new(d->base, webhook_wake_event, r)) == NULL)
 		fatalx("webhook: evtimer_new failed");
 	w->rcv = xreallocarray(w->rcv, (size_t)w->nrcv + 1, sizeof *w->rcv);
@@ -792,7 +877,7 @@ webhook_alertmanager(struct webhook *w, const struct conf *c, char **cause)
 	xasprintf(&url, "%s/api/v2/alerts", base);
 	free(base);
 	rc = webhook_add(w, WEBHOOK_ALERTMANAGER, url, NULL, 0, 4, 1000, 1, 0,
-	    cause);
+	    NULL, cause);
 	free(url);
 	return rc;
 }
@@ -837,14 +922,15 @@ webhook_new(struct daemon *d, char **cause)
 		const struct conf_webhook *cw = &c->webhooks[i];
 
 		if (webhook_add(w, cw->name, cw->url, cw->secret, cw->timeout,
-		    cw->max_attempts, cw->queue, 0, cw->kinds, cause) == -1) {
+		    cw->max_attempts, cw->queue, 0, cw->kinds, cw, cause) ==
+		    -1) {
 			webhook_free(w);
 			return NULL;
 		}
 	}
 	if (c->pause_url != NULL && *c->pause_url != '\0' &&
 	    webhook_add(w, WEBHOOK_PAUSE, c->pause_url, c->pause_secret, 0, 0,
-	    0, 1, 0, cause) == -1) {
+	    0, 1, 0, NULL, cause) == -1) {
 		webhook_free(w);
 		return NULL;
 	}
@@ -894,6 +980,15 @@ webhook_free(struct webhook *w)
 	curl_global_cleanup();
 }
 
+/* An alert of severity info is the only kind a full spool may drop. */
+static int
+webhook_info(json_t *body)
+{
+	const char *sev = json_string_value(json_object_get(body, "severity"));
+
+	return sev != NULL && strcmp(sev, "info") == 0;
+}
+
 static char *
 webhook_dump(json_t *body, size_t *len)
 {
@@ -918,7 +1013,8 @@ webhook_send(struct webhook *w, uint32_t need, const char *id, json_t *body)
 		return;
 	for (i = 0; i < w->nrcv; i++)
 		if (!w->rcv[i]->internal && (w->rcv[i]->kinds & need) == need)
-			webhook_queue(w->rcv[i], id, text, len);
+			webhook_queue(w->rcv[i], id, text, len,
+			    webhook_info(body));
 	free(text);
 }
 
@@ -937,7 +1033,7 @@ webhook_post(struct webhook *w, const char *receiver, const char *id,
 			continue;
 		if ((text = webhook_dump(body, &len)) == NULL)
 			return -1;
-		webhook_queue(w->rcv[i], id, text, len);
+		webhook_queue(w->rcv[i], id, text, len, webhook_info(body));
 		free(text);
 		return 0;
 	}
@@ -955,9 +1051,10 @@ webhook_metrics(struct webhook *w, struct evbuffer *b)
 		{ "stopcock_webhook_sent_total", "counter",
 		  "Webhook deliveries answered with 2xx." },
 		{ "stopcock_webhook_failed_total", "counter",
-		  "Webhook deliveries given up (4xx, or attempts exhausted)." },
+		  "Webhook deliveries given up (4xx, or attempts exhausted "
+		  "where nothing is spooled)." },
 		{ "stopcock_webhook_dropped_total", "counter",
-		  "Webhook deliveries dropped because the queue was full." },
+		  "Info alerts dropped because the spool was full." },
 		{ "stopcock_webhook_retries_total", "counter",
 		  "Webhook attempts that failed and were scheduled again." },
 		{ "stopcock_webhook_retrying", "gauge",
@@ -966,6 +1063,10 @@ webhook_metrics(struct webhook *w, struct evbuffer *b)
 		  "Webhook deliveries not yet settled (spooled)." },
 		{ "stopcock_webhook_spool_errors_total", "counter",
 		  "Webhook spool files that could not be written or read." },
+		{ "stopcock_webhook_spool_bytes", "gauge",
+		  "Bytes of webhook bodies held (the spool_bytes bound)." },
+		{ "stopcock_webhook_overfull_total", "counter",
+		  "Alerts kept beyond a full spool (never dropped: not info)." },
 	};
 	struct receiver *r;
 	struct delivery *dl;
@@ -991,7 +1092,9 @@ webhook_metrics(struct webhook *w, struct evbuffer *b)
 						v++;
 				break;
 			case 5: v = r->nwaiting + r->ninflight; break;
-			default: v = r->spool_errors; break;
+			case 6: v = r->spool_errors; break;
+			case 7: v = r->spool_used; break;
+			default: v = r->overfull; break;
 			}
 			evbuffer_add_printf(b, "%s{", m[k].name);
 			metrics_label(b, "receiver", r->name, 1);
