@@ -597,8 +597,27 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 	h->actions++;
 	log_info("http: %s experiment=%s", action, id);
 	json_decref(body);
-	body = json_pack("{s:b, s:s, s:s}", "ok", 1, "experiment", id,
-	    "action", action);
+	/*
+	 * Answered only once it is on disk: the action's findings are handed
+	 * on, then a checkpoint is written here, in the loop. That stalls the
+	 * loop for one checkpoint per operator action (rare, and a person is
+	 * waiting), where a crash would otherwise undo an answered action.
+	 */
+	if (d->state_dir != NULL) {
+		dispatch_drain(d->dispatch);
+		if (ckpt_write(d, &cause) != 0) {
+			log_warnx("http: %s experiment=%s applied but not on "
+			    "disk: %s", action, id, cause);
+			http_error(h, req, 500, "%s applied, but the checkpoint "
+			    "that keeps it failed: %s (it is written again "
+			    "at the next checkpoint)", action, cause);
+			free(cause);
+			free(archive);
+			return;
+		}
+	}
+	body = json_pack("{s:b, s:s, s:s, s:b}", "ok", 1, "experiment", id,
+	    "action", action, "durable", d->state_dir != NULL);
 	if (archive != NULL)
 		json_object_set_new(body, "archive", json_string(archive));
 	free(archive);
