@@ -25,31 +25,12 @@
 #define ACTION_BODY_MAX	(1024u * 1024)	/* bytes of an answer we keep */
 #define ACTION_TIMEOUT	30L		/* seconds */
 
-struct action_buf {
-	char	*p;
-	size_t	 len;
-};
-
-static size_t
-action_write(char *data, size_t size, size_t n, void *arg)
-{
-	struct action_buf *b = arg;
-	size_t len = size * n;
-
-	if (b->len + len > ACTION_BODY_MAX)
-		return 0;
-	b->p = xreallocarray(b->p, b->len + len + 1, 1);
-	memcpy(b->p + b->len, data, len);
-	b->len += len;
-	b->p[b->len] = '\0';
-	return len;
-}
 
 /* POST the JSON body to url with the token; 0 with the HTTP status in
  * *code and the answer in *b, or -1 with *cause. */
 static int
 action_post(const char *url, const char *token, const char *body,
-    struct action_buf *b, long *code, char **cause)
+    struct status_body *b, long *code, char **cause)
 {
 	char err[CURL_ERROR_SIZE] = "", *auth;
 	struct curl_slist *hdr = NULL;
@@ -70,7 +51,7 @@ action_post(const char *url, const char *token, const char *body,
 	    CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_HTTPHEADER, hdr) != CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_POSTFIELDS, body) != CURLE_OK ||
-	    curl_easy_setopt(c, CURLOPT_WRITEFUNCTION, action_write) !=
+	    curl_easy_setopt(c, CURLOPT_WRITEFUNCTION, status_body_write) !=
 	    CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_WRITEDATA, b) != CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_ERRORBUFFER, err) != CURLE_OK ||
@@ -186,7 +167,7 @@ action_run(const char *verb, int argc, char **argv)
 		{ NULL, 0, NULL, 0 },
 	};
 	const struct action_verb *v = action_find(verb);
-	struct action_buf b = { NULL, 0 };
+	struct status_body b = { NULL, 0, ACTION_BODY_MAX, 0 };
 	struct conf *conf = NULL;
 	const char *url = getenv("STOPCOCK_URL");
 	const char *token = getenv("STOPCOCK_TOKEN"), *path = NULL, *msg;

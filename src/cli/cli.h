@@ -6,6 +6,17 @@
 #ifndef STOPCOCK_CLI_H
 #define STOPCOCK_CLI_H
 
+#include <stddef.h>
+
+/* An HTTP answer read by libcurl (status.c; action.c uses it too). */
+struct status_body {
+	char	*p;		/* NUL-terminated, NULL when empty */
+	size_t	 len;
+	size_t	 max;		/* bytes kept at most */
+	int	 overflow;	/* the answer was longer than max */
+};
+size_t	status_body_write(char *, size_t, size_t, void *);
+
 int	cmd_replay(int, char **);	/* replay.c */
 int	cmd_check_config(int, char **);	/* main.c */
 int	cmd_simulate(int, char **);	/* simulate.c */

@@ -27,11 +27,6 @@
 #define STATUS_BODY_MAX	(64u * 1024 * 1024)	/* bytes we accept */
 #define STATUS_TIMEOUT	10L			/* seconds */
 
-struct status_buf {
-	char	*p;
-	size_t	 len;
-	int	 overflow;
-};
 
 struct status_style {
 	const char	*harm, *safe, *warn, *dim, *bold, *off;
@@ -41,13 +36,14 @@ static const struct status_style status_plain = { "", "", "", "", "", "" };
 static const struct status_style status_ansi = { "\033[1;31m", "\033[32m",
     "\033[1;33m", "\033[2m", "\033[1m", "\033[0m" };
 
-static size_t
-status_write(char *data, size_t size, size_t n, void *arg)
+/* libcurl's write callback: append to a status_body up to its max. */
+size_t
+status_body_write(char *data, size_t size, size_t n, void *arg)
 {
-	struct status_buf *b = arg;
+	struct status_body *b = arg;
 	size_t len = size * n;
 
-	if (b->len + len > STATUS_BODY_MAX) {
+	if (b->len + len > b->max) {
 		b->overflow = 1;
 		return 0;
 	}
@@ -61,7 +57,7 @@ status_write(char *data, size_t size, size_t n, void *arg)
 /* GET url into *body. 0 with the HTTP status in *code, or -1 with the
  * reason in *cause. */
 static int
-status_get(const char *url, struct status_buf *body, long *code,
+status_get(const char *url, struct status_body *body, long *code,
     char **cause)
 {
 	char err[CURL_ERROR_SIZE] = "";
@@ -75,7 +71,7 @@ status_get(const char *url, struct status_buf *body, long *code,
 	if (curl_easy_setopt(c, CURLOPT_URL, url) != CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_PROTOCOLS_STR, "http,https") !=
 	    CURLE_OK ||
-	    curl_easy_setopt(c, CURLOPT_WRITEFUNCTION, status_write) !=
+	    curl_easy_setopt(c, CURLOPT_WRITEFUNCTION, status_body_write) !=
 	    CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_WRITEDATA, body) != CURLE_OK ||
 	    curl_easy_setopt(c, CURLOPT_ERRORBUFFER, err) != CURLE_OK ||
@@ -379,7 +375,7 @@ cmd_status(int argc, char **argv)
 		{ NULL, 0, NULL, 0 },
 	};
 	const struct status_style *st = &status_plain;
-	struct status_buf body = { NULL, 0, 0 };
+	struct status_body body = { NULL, 0, STATUS_BODY_MAX, 0 };
 	const char *base = getenv("STOPCOCK_URL"), *exp = NULL, *msg;
 	char *url, *cause = NULL, *esc;
 	json_error_t jerr;
