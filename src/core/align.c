@@ -50,7 +50,19 @@ align_drain(struct engine *eng, struct experiment *e, int mi, double w)
 
 	if (m->arm == NULL)
 		return;
-	if (w > m->wm)
+	/*
+	 * A drain of everything (a silent metric, end of input) applies what
+	 * is held but moves the watermark only to the newest record seen:
+	 * records that come later are still on time, not late.
+	 */
+	if (!isfinite(w)) {
+		double top = -INFINITY;
+		for (i = 0; i < e->narms; i++)
+			if (m->arm[i].hq.latest > top)
+				top = m->arm[i].hq.latest;
+		if (top > m->wm)
+			m->wm = top;
+	} else if (w > m->wm)
 		m->wm = w;
 	for (;;) {
 		best = -1;

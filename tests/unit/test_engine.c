@@ -380,6 +380,18 @@ test_aligned_arms(void **state)
 	    t0 + 240), 0);
 	engine_counters(fx->eng, &c);
 	assert_int_equal(c.metric_late, 1);
+	/* the metric falls silent for longer than the lateness: a tick
+	 * applies what it held, and records that come later are on time */
+	fx->now += 31;
+	engine_tick(fx->eng, fx->now);
+	engine_counters(fx->eng, &c);
+	assert_int_equal(c.held, 0);
+	assert_int_equal(feed(fx, "@%.3f observe cold control render_ms 100",
+	    t0 + 301), 0);
+	assert_int_equal(feed(fx, "@%.3f observe cold treatment render_ms 100",
+	    t0 + 301), 0);
+	engine_counters(fx->eng, &c);
+	assert_int_equal(c.metric_late, 1);
 	engine_finish(fx->eng, fx->now);
 	engine_counters(fx->eng, &c);
 	assert_int_equal(c.held, 0);
