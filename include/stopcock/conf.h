@@ -18,6 +18,7 @@
 #define CONF_GUARDRAILS_MAX 64
 #define CONF_EXPERIMENTS_MAX 256	/* planned in the file */
 #define CONF_WEBHOOKS_MAX 16
+#define CONF_PRODUCERS_MAX 32	/* [producer NAME] sections */
 
 enum conf_test { TEST_MEAN, TEST_PROPORTION, TEST_RATE, TEST_QUANTILE };
 enum conf_harm { HARM_INCREASE, HARM_DECREASE };
@@ -52,6 +53,18 @@ struct conf_experiment {
 	/* the guardrails that apply, names separated by blanks; NULL:
 	 * every configured guardrail (engine.c, docs/methods.md sec. 6) */
 	char		*guardrails;
+	/* records from untrusted inputs count even though a guardrail
+	 * may pause it (its pauses are then refused) */
+	int		accept_untrusted;
+	int		line;
+};
+
+/* A producer of signed batches (frame.h): its secrets, for rotation. */
+struct conf_producer {
+	char		name[CONF_NAME_MAX + 1];
+	char		*secret;	/* "whsec_" + base64, may be NULL */
+	char		*previous_secret;	/* still accepted, may be NULL */
+	char		*secret_file;	/* one secret a line, may be NULL */
 	int		line;
 };
 
@@ -142,6 +155,13 @@ struct conf {
 	double		client_line_timeout;	/* s for one line; 0: never */
 	uint32_t	client_buffer;	/* bytes buffered per client */
 	char		*http_token;	/* bearer token for POST; NULL: POST off */
+	/* inputs: signed batches required (frame.h), and trust: what
+	 * auto-pause may act on (a signed input is trusted) */
+	int		tcp_signed, udp_signed, unix_signed;
+	int		tcp_trusted, udp_trusted, unix_trusted;
+	double		signature_tolerance;	/* s either side of now */
+	uint32_t	unix_mode;	/* permission bits of the socket */
+	char		*unix_group;	/* group of the socket; NULL: ours */
 	char		*public_url;	/* base of links in alerts */
 
 	/* [redis] */
@@ -155,6 +175,7 @@ struct conf {
 	uint32_t	redis_batch;	/* entries per XREADGROUP */
 	double		redis_block;	/* seconds per blocking read */
 	int		redis_start;	/* enum conf_redis_start: a new group */
+	int		redis_signed, redis_trusted;
 
 	/* [kafka] */
 	char		*kafka_brokers;	/* NULL: no Kafka input */
@@ -166,6 +187,7 @@ struct conf {
 	double		kafka_commit_every;	/* seconds between transactions */
 	double		kafka_session_timeout;	/* seconds */
 	uint32_t	kafka_max_message;	/* bytes of one message value */
+	int		kafka_signed, kafka_trusted;
 
 	/* [alerts] */
 	double		remind_every;	/* 0: no reminders */
@@ -193,6 +215,9 @@ struct conf {
 
 	int		nwebhooks;
 	struct conf_webhook webhooks[CONF_WEBHOOKS_MAX];
+
+	int		nproducers;
+	struct conf_producer producers[CONF_PRODUCERS_MAX];
 };
 
 /* Defaults only (no guardrails, no listeners). */
@@ -217,6 +242,13 @@ const char	*conf_test_name(enum conf_test);
 /* What stopcockd needs beyond conf_load: an input and a state
  * directory. 0, or -1 and *cause (stopcockd -t and check-config). */
 int		 conf_check_daemon(const struct conf *, char **cause);
+/* [daemon] unix_group (a name or a number) as a group id; 0 or -1. */
+int		 conf_unix_group(const char *, unsigned *gid, char **cause);
+/* Read a producer's secret file: fn(arg, secret, &why) for each secret
+ * (fn may be NULL: only checked); 0, or -1 with *cause naming the file
+ * and line but never a secret. */
+int		 conf_secret_file(const char *path, int (*fn)(void *,
+		    const char *, char **), void *arg, char **cause);
 /* A deep copy (the engine keeps its own); free with conf_free. */
 struct conf	*conf_dup(const struct conf *);
 

@@ -41,6 +41,9 @@ enum engine_reject {
 	ENGINE_E_UNDECLARED,	/* "undeclared": a plan record for an
 				 * experiment the config does not declare,
 				 * with declared_only */
+	ENGINE_E_UNTRUSTED,	/* "untrusted_input": a record from an
+				 * untrusted input for an experiment a
+				 * guardrail may pause */
 	ENGINE_NREJECT
 };
 
@@ -117,6 +120,9 @@ struct finding {
 	/* the record time a verdict speaks of: epoch start to now */
 	double		 covers_from, covers_to;
 	int		 untrusted;	/* SRM has fired in this epoch */
+	/* records of this epoch that came from untrusted inputs (see
+	 * record.untrusted): auto-pause does not act on such evidence */
+	uint64_t	 untrusted_records;
 	double		 ts;		/* record time of the finding */
 	double		 first_ts;	/* when the verdict first held */
 	uint64_t	 event;		/* record number it was found at */

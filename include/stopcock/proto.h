@@ -97,6 +97,11 @@ struct record {
 	 * none twice; family_len 0 when absent */
 	uint16_t	family_len;
 	char		family[PROTO_FAMILY_BYTES];
+	/* not parsed (proto_parse sets 0): the caller says whether the record came from an
+	 * untrusted input (unsigned, and the input not trusted by the
+	 * configuration); the engine keeps such records away from
+	 * experiments that may pause, and counts them */
+	uint8_t		untrusted;
 };
 
 /*

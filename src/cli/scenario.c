@@ -651,6 +651,7 @@ scenario_next(struct scenario_gen *g, struct record *r)
 	r->unit[0] = '\0';
 	r->family_len = 0;
 	r->family[0] = '\0';
+	r->untrusted = 0;	/* replay and simulate trust their input */
 	if (g->phase == 0 && g->next_plan == 0 && !g->ramped &&
 	    s->ramp_at > 0 && (double)g->emitted >= s->ramp_at *
 	    (double)s->records) {

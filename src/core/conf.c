@@ -101,6 +101,10 @@ conf_strings(struct conf *c, void (*fn)(char **))
 			for (i = 0; i < c->nwebhooks; i++)
 				fn((char **)((char *)&c->webhooks[i] +
 				    o->offset));
+		} else if (o->section == S_PRODUCER) {
+			for (i = 0; i < c->nproducers; i++)
+				fn((char **)((char *)&c->producers[i] +
+				    o->offset));
 		} else if (o->section == S_EXPERIMENT) {
 			for (i = 0; i < c->nexperiments; i++)
 				fn((char **)((char *)&c->experiments[i] +
@@ -234,6 +238,12 @@ conf_open_named(struct conf_parser *p, enum conf_section s,
 			if (strcmp(c->experiments[i].id, name) == 0)
 				first = c->experiments[i].line;
 		break;
+	case S_PRODUCER:
+		n = c->nproducers, max = CONF_PRODUCERS_MAX;
+		for (i = 0; i < n && !first; i++)
+			if (strcmp(c->producers[i].name, name) == 0)
+				first = c->producers[i].line;
+		break;
 	default:
 		n = c->nwebhooks, max = CONF_WEBHOOKS_MAX;
 		for (i = 0; i < n && !first; i++)
@@ -263,6 +273,12 @@ conf_open_named(struct conf_parser *p, enum conf_section s,
 		memset(base, 0, sizeof c->experiments[0]);
 		snprintf(c->experiments[n].id, CONF_NAME_MAX + 1, "%s", name);
 		c->experiments[n].line = p->line;
+		break;
+	case S_PRODUCER:
+		base = &c->producers[c->nproducers++];
+		memset(base, 0, sizeof c->producers[0]);
+		snprintf(c->producers[n].name, CONF_NAME_MAX + 1, "%s", name);
+		c->producers[n].line = p->line;
 		break;
 	default:
 		base = &c->webhooks[c->nwebhooks++];
@@ -618,6 +634,18 @@ conf_check(struct conf_parser *p)
 		conf_error(p, kline, "[kafka] topic and state_topic are both "
 		    "%s; the state needs its own compacted topic",
 		    c->kafka_topic);
+	for (i = 0; i < c->nproducers; i++)
+		if (c->producers[i].secret == NULL &&
+		    c->producers[i].previous_secret == NULL &&
+		    c->producers[i].secret_file == NULL)
+			conf_error(p, c->producers[i].line, "[producer %s] has "
+			    "no secret: set secret or secret_file",
+			    c->producers[i].name);
+	if ((c->tcp_signed || c->udp_signed || c->unix_signed ||
+	    c->redis_signed || c->kafka_signed) && c->nproducers == 0)
+		conf_error(p, 0, "an input requires signed batches (tcp_signed, "
+		    "udp_signed, unix_signed, [redis] signed or [kafka] "
+		    "signed) but no [producer NAME] section names a signer");
 	if (c->nexperiments > (int)c->max_experiments)
 		conf_error(p, c->experiments[c->max_experiments].line,
 		    "more [experiment] sections than max_experiments (%u)",

@@ -9,7 +9,7 @@
 
 #include "stopcock/conf.h"
 
-#define CONF_OPTIONS_MAX 96	/* rows the table may grow to */
+#define CONF_OPTIONS_MAX 128	/* rows the table may grow to */
 
 enum conf_section {
 	S_NONE = -1,
@@ -24,6 +24,7 @@ enum conf_section {
 	S_SYSLOG,
 	S_WEBHOOK,
 	S_ALERTMANAGER,
+	S_PRODUCER,
 	S_COUNT
 };
 
@@ -49,7 +50,8 @@ enum conf_type {
 	T_PLAN,		/* experiment arms: "control=50 treatment=50" */
 	T_BROKERS,	/* char *: host:port[,host:port...] */
 	T_TOPIC,	/* char *: a Kafka topic name, 1-max of A-Za-z0-9._- */
-	T_KINDS		/* uint32_t: a set of words of extra, bit i = word i */
+	T_KINDS,	/* uint32_t: a set of words of extra, bit i = word i */
+	T_MODE		/* uint32_t: octal permission bits, 0 to max */
 };
 
 #define F_OPEN_MIN	0x01	/* min itself is outside the range */

@@ -41,6 +41,7 @@ const struct conf_section_info conf_sections[S_COUNT] = {
 	[S_SYSLOG] = { "syslog", 0 },
 	[S_WEBHOOK] = { "webhook", 1 },
 	[S_ALERTMANAGER] = { "alertmanager", 0 },
+	[S_PRODUCER] = { "producer", 1 },
 };
 
 const char *const conf_kind_names[] = {
@@ -62,6 +63,7 @@ static const char *const conf_redis_starts[] = { "end", "beginning", NULL };
 #define G(f) offsetof(struct conf_guardrail, f)
 #define E(f) offsetof(struct conf_experiment, f)
 #define W(f) offsetof(struct conf_webhook, f)
+#define P(f) offsetof(struct conf_producer, f)
 
 const struct conf_option conf_options[] = {
 	{ S_DEFAULTS, "alpha", T_DOUBLE, C(alpha), 0, 0.5, F_OPEN_MIN,
@@ -155,6 +157,30 @@ const struct conf_option conf_options[] = {
 	  "reading pauses" },
 	{ S_DAEMON, "http_token", T_TOKEN, C(http_token), 16, 1024, 0, NULL,
 	  NULL, "bearer token for POST requests; unset: POST is refused" },
+	{ S_DAEMON, "tcp_signed", T_BOOL, C(tcp_signed), 0, 0, 0, "no", NULL,
+	  "TCP clients must send signed batches of a [producer]; anything "
+	  "else is refused and counted" },
+	{ S_DAEMON, "udp_signed", T_BOOL, C(udp_signed), 0, 0, 0, "no", NULL,
+	  "each UDP datagram must be one signed batch" },
+	{ S_DAEMON, "unix_signed", T_BOOL, C(unix_signed), 0, 0, 0, "no",
+	  NULL, "unix socket clients must send signed batches" },
+	{ S_DAEMON, "tcp_trusted", T_BOOL, C(tcp_trusted), 0, 0, 0, "no",
+	  NULL, "auto-pause may act on unsigned TCP records (anyone who "
+	  "reaches the port could write them); signed ones always count" },
+	{ S_DAEMON, "udp_trusted", T_BOOL, C(udp_trusted), 0, 0, 0, "no",
+	  NULL, "auto-pause may act on unsigned UDP records" },
+	{ S_DAEMON, "unix_trusted", T_BOOL, C(unix_trusted), 0, 0, 0, "yes",
+	  NULL, "auto-pause may act on unsigned unix socket records (the "
+	  "socket's mode and group say who may write)" },
+	{ S_DAEMON, "signature_tolerance", T_DURATION,
+	  C(signature_tolerance), 1, 86400, 0, "5m", NULL, "a signed "
+	  "batch stamped further than this from the daemon's clock is "
+	  "refused (stale_timestamp)" },
+	{ S_DAEMON, "unix_mode", T_MODE, C(unix_mode), 0, 0777, 0, "0660",
+	  NULL, "permission bits of the unix socket, octal, set at bind" },
+	{ S_DAEMON, "unix_group", T_WORD, C(unix_group), 0, 256, 0, NULL,
+	  NULL, "group owning the unix socket (a name or a number); unset: "
+	  "the daemon's" },
 	{ S_DAEMON, "public_url", T_URL, C(public_url), 0, 0, 0,
 	  "http://127.0.0.1:7721", NULL, "base of the links in alerts" },
 
@@ -189,6 +215,19 @@ const struct conf_option conf_options[] = {
 	  "beginning (all of them are applied); a group lost after it was "
 	  "made is made again after the last checkpointed entry" },
 
+	{ S_REDIS, "signed", T_BOOL, C(redis_signed), 0, 0, 0, "no", NULL,
+	  "entries must carry a signed batch: fields producer, id, ts and "
+	  "signature beside records" },
+	{ S_REDIS, "trusted", T_BOOL, C(redis_trusted), 0, 0, 0, "no", NULL,
+	  "auto-pause may act on unsigned entries (anyone who may XADD "
+	  "could write them)" },
+
+	{ S_KAFKA, "signed", T_BOOL, C(kafka_signed), 0, 0, 0, "no", NULL,
+	  "messages must carry a signed batch: headers producer, id, ts "
+	  "and signature beside the records" },
+	{ S_KAFKA, "trusted", T_BOOL, C(kafka_trusted), 0, 0, 0, "no", NULL,
+	  "auto-pause may act on unsigned messages (anyone who may produce "
+	  "to the topic could write them)" },
 	{ S_KAFKA, "brokers", T_BROKERS, C(kafka_brokers), 0, 0, 0, NULL,
 	  NULL, "bootstrap brokers, comma-separated host:port; unset: no "
 	  "Kafka input (then the daemon's only record input)" },
@@ -256,6 +295,11 @@ const struct conf_option conf_options[] = {
 	{ S_EXPERIMENT, "guardrails", T_STRING, E(guardrails), 0, 1024, 0,
 	  NULL, NULL, "the guardrails that apply to it, by name, fixed when "
 	  "it is planned; unset: every configured guardrail" },
+	{ S_EXPERIMENT, "accept_untrusted", T_BOOL, E(accept_untrusted), 0, 0,
+	  0, "no", NULL, "records from untrusted inputs count for it even "
+	  "when a guardrail may pause it; its pauses are then refused "
+	  "(untrusted_input). no: they are refused (untrusted_input) unless "
+	  "no guardrail of it may pause" },
 
 	{ S_ALERTS, "remind", T_DURATION, C(remind_every), 0.1, 30 * 86400.0,
 	  F_ZERO_OK, "0", NULL, "repeat an unacknowledged harm alert this "
@@ -325,12 +369,21 @@ const struct conf_option conf_options[] = {
 	{ S_SYSLOG, "kinds", T_KINDS, C(syslog_kinds), 0, 0, 0,
 	  CONF_KINDS_DEFAULT, conf_kind_names, "alert kinds and lifecycle "
 	  "events written to syslog" },
+
+	{ S_PRODUCER, "secret", T_SECRET, P(secret), 0, 0, 0, NULL, NULL,
+	  "Standard Webhooks secret its batches are signed with" },
+	{ S_PRODUCER, "previous_secret", T_SECRET, P(previous_secret), 0, 0, 0,
+	  NULL, NULL, "a secret still accepted while the producer rotates" },
+	{ S_PRODUCER, "secret_file", T_PATH, P(secret_file), 0,
+	  CONF_STRING_MAX, 0, NULL, NULL, "file holding its secrets, one a "
+	  "line (kept out of this file; read at start and reload)" },
 };
 
 #undef C
 #undef G
 #undef E
 #undef W
+#undef P
 const int conf_noptions = (int)SC_NELEM(conf_options);
 _Static_assert(SC_NELEM(conf_options) <= CONF_OPTIONS_MAX,
     "raise CONF_OPTIONS_MAX");
@@ -446,6 +499,9 @@ conf_table_range_text(const struct conf_option *o, char *buf, size_t size)
 		break;
 	case T_SECRET:
 		snprintf(buf, size, "whsec_ followed by base64");
+		break;
+	case T_MODE:
+		snprintf(buf, size, "octal permission bits 0-%o", (unsigned)o->max);
 		break;
 	case T_TOKEN:
 		snprintf(buf, size, "%.0f-%.0f bytes without blanks", o->min,
@@ -709,6 +765,17 @@ conf_table_set(const struct conf_option *o, void *base, const char *v, char **wh
 		else
 			*(int *)field = (int)u;
 		return 0;
+	case T_MODE:
+		/* octal, as chmod(1) spells it: 0660 or 660 */
+		for (i = 0; v[i] >= '0' && v[i] <= '7'; i++)
+			;
+		if (i == 0 || i > 4 || v[i] != '\0' ||
+		    (u = strtoull(v, NULL, 8)) > (uint64_t)o->max) {
+			xasprintf(why, "expected %s", range);
+			return -1;
+		}
+		*(uint32_t *)field = (uint32_t)u;
+		return 0;
 	case T_BOOL:
 		if (strcasecmp(v, "yes") == 0 || strcasecmp(v, "true") == 0 ||
 		    strcasecmp(v, "on") == 0 || strcmp(v, "1") == 0)
@@ -850,7 +917,7 @@ conf_table_type_name(enum conf_type t)
 		[T_SECRET] = "secret", [T_TOKEN] = "token",
 		[T_MARGIN] = "margin", [T_PLAN] = "plan",
 		[T_BROKERS] = "brokers", [T_TOPIC] = "topic",
-		[T_KINDS] = "words",
+		[T_KINDS] = "words", [T_MODE] = "mode",
 	};
 
 	return names[t];

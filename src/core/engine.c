@@ -24,7 +24,7 @@ static const char *reject_names[ENGINE_NREJECT] = {
 	"ok", "unplanned", "unknown_variant", "cap_experiments",
 	"cap_variants", "cap_metrics", "kind_mismatch", "k_exceeds_n",
 	"closed_epoch", "future_epoch", "unknown_guardrail", "implausible",
-	"undeclared",
+	"undeclared", "untrusted_input",
 };
 
 const char *
@@ -487,6 +487,7 @@ exp_srm_start(const struct engine *eng, struct experiment *e)
 	e->srm_ntop = 0;
 	e->srm_log_e = e->srm_max_log_e = 0;
 	e->srm_fired = 0;
+	e->untrusted_records = 0;
 	e->srm_first_ts = NAN;
 	e->srm_first_event = 0;
 }
@@ -1139,6 +1140,51 @@ engine_fold(struct engine *eng, struct experiment *e, int mi, int arm,
 }
 
 
+/*
+ * May a guardrail of this family pause? fixed: the family is the mask;
+ * else every configured guardrail applies.
+ */
+static int
+family_may_pause(const struct engine *eng, int fixed, uint64_t mask)
+{
+	int g;
+
+	for (g = 0; g < eng->conf->nguardrails; g++)
+		if ((!fixed || ((mask >> g) & 1)) &&
+		    eng->conf->guardrails[g].action == ACTION_PAUSE)
+			return 1;
+	return 0;
+}
+
+/*
+ * Untrusted records (record.untrusted) never reach an experiment a
+ * guardrail may pause, unless its [experiment] section accepts them: a
+ * forger who reaches an unsigned input can then neither steer such an
+ * experiment into a pause nor dilute the evidence of a real one. The
+ * family of an experiment not yet planned is the one apply_plan would
+ * fix.
+ */
+static int
+untrusted_refused(struct engine *eng, const struct record *r,
+    const struct experiment *e)
+{
+	const struct conf_experiment *ce;
+	const char *family;
+	uint64_t mask = 0;
+	int n = 0, fixed;
+
+	ce = conf_experiment_find(eng->conf, r->experiment);
+	if (ce != NULL && ce->accept_untrusted)
+		return 0;
+	if (e != NULL)
+		return family_may_pause(eng, e->fam_fixed, e->fam_mask);
+	family = r->family_len > 0 ? r->family :
+	    ce != NULL ? ce->guardrails : NULL;
+	fixed = family != NULL &&
+	    engine_family_parse(eng->conf, family, &mask, &n) == 0;
+	return family_may_pause(eng, fixed, mask);
+}
+
 enum engine_reject
 engine_apply(struct engine *eng, const struct record *r, double now,
     uint64_t event)
@@ -1160,6 +1206,11 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 			rc = ENGINE_E_UNDECLARED;
 			goto done;
 		}
+		if (r->untrusted && untrusted_refused(eng, r,
+		    exp_find(eng, r->experiment))) {
+			rc = ENGINE_E_UNTRUSTED;
+			goto done;
+		}
 		rc = apply_plan(eng, r->arms, r->narms, r->experiment,
 		    r->family_len > 0 ? r->family : NULL,
 		    r->has_ts && r->ts < now ? r->ts : now);
@@ -1167,6 +1218,10 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 	}
 	if ((e = exp_find_recent(eng, r->experiment)) == NULL) {
 		rc = ENGINE_E_UNPLANNED;
+		goto done;
+	}
+	if (r->untrusted && untrusted_refused(eng, r, e)) {
+		rc = ENGINE_E_UNTRUSTED;
 		goto done;
 	}
 	e->last_ts = now;
@@ -1237,6 +1292,8 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 	default:
 		break;
 	}
+	if (rc == ENGINE_OK && r->untrusted)
+		e->untrusted_records++;
 done:
 	if (rc == ENGINE_OK)
 		eng->counters.applied[r->kind]++;

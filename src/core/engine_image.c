@@ -587,6 +587,8 @@ exp_save(const struct experiment *e, const struct conf *conf)
 	}
 	json_object_set_new(o, "late_epoch", json_integer(
 	    (json_int_t)e->late_epoch));
+	json_object_set_new(o, "untrusted_records", json_integer(
+	    (json_int_t)e->untrusted_records));
 	{
 		char hex[33];
 		for (i = 0; i < 16; i++)
@@ -795,6 +797,9 @@ exp_fill(struct engine *eng, struct experiment *e, const json_t *o,
 	}
 	e->late_epoch = (uint64_t)json_integer_value(json_object_get(o,
 	    "late_epoch"));
+	/* older images have none: 0, as no input was untrusted then */
+	e->untrusted_records = (uint64_t)json_integer_value(
+	    json_object_get(o, "untrusted_records"));
 	if ((hex = json_string_value(json_object_get(o, "unit_key"))) !=
 	    NULL) {
 		unsigned int byte;

@@ -240,6 +240,8 @@ struct experiment {
 	double		 srm_floor;	/* exposures before it: late */
 	int		 srm_stamped;	/* an exposure carried its own time */
 	uint64_t	 late_epoch;	/* records naming a closed epoch */
+	uint64_t	 untrusted_records;	/* from untrusted inputs, this
+						 * epoch */
 	uint32_t	 held;		/* metric records held, all series */
 	uint8_t		 unit_key[16];	/* unit-group hash key, kept */
 	double		 srm_log_e, srm_max_log_e;

@@ -55,6 +55,8 @@ exp_summary(const struct engine *eng, const struct experiment *e)
 	    (int)e->epoch, "untrusted", e->srm_fired, "arms", arms,
 	    "guardrails", c.guardrails, "srm", c.srm ? c.srm : json_null());
 	json_object_set_new(o, "last_ts", finding_num(e->last_ts));
+	json_object_set_new(o, "untrusted_records",
+	    json_integer((json_int_t)e->untrusted_records));
 	return o;
 }
 

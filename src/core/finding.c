@@ -113,6 +113,7 @@ finding_fill(const struct engine *eng, const struct experiment *e,
 			    &f->recent_since[i], f->recent_records[i]);
 	}
 	f->untrusted = e->srm_fired;
+	f->untrusted_records = e->untrusted_records;
 	f->ts = eng->now;
 	f->first_ts = t->first_ts;
 	f->event = t->first_event ? t->first_event : eng->event;
@@ -161,6 +162,7 @@ finding_fill_srm(const struct engine *eng, const struct experiment *e,
 	/* The classic chi-square, shown as a one-look figure only. */
 	f->chi2_p = stats_srm_chi2(e->narms, counts, e->theta0, &x2);
 	f->untrusted = e->srm_fired;
+	f->untrusted_records = e->untrusted_records;
 	f->ts = eng->now;
 	f->first_ts = e->srm_first_ts;
 	f->event = e->srm_first_event ? e->srm_first_event : eng->event;
@@ -289,6 +291,8 @@ finding_json(const struct finding *f)
 		    finding_num(f->recent_threshold));
 	}
 	json_object_set_new(o, "untrusted", json_boolean(f->untrusted));
+	json_object_set_new(o, "untrusted_records",
+	    json_integer((json_int_t)f->untrusted_records));
 	json_object_set_new(o, "ts", finding_num(f->ts));
 	json_object_set_new(o, "first_ts", finding_num(f->first_ts));
 	json_object_set_new(o, "event", json_integer((json_int_t)f->event));

@@ -473,6 +473,7 @@ proto_clear(struct record *r)
 	r->unit[0] = '\0';
 	r->family_len = 0;
 	r->family[0] = '\0';
+	r->untrusted = 0;
 }
 
 static int

@@ -120,6 +120,10 @@ alert_text_summary(const struct finding *f, enum alert_kind kind,
 		alert_text_printf(&l, "; UNTRUSTED: sample ratio mismatch "
 		    "in this "
 		    "epoch");
+	if (f->untrusted_records > 0)
+		alert_text_printf(&l, "; %llu records from untrusted inputs "
+		    "in this epoch: auto-pause does not act on it",
+		    (unsigned long long)f->untrusted_records);
 	return xstrdup(l.buf);
 }
 
@@ -160,8 +164,9 @@ alert_text_fields(const struct finding *f, const char *id,
 	}
 	alert_text_num(&l, "p", f->p);
 	alert_text_num(&l, "alpha", f->alpha);
-	alert_text_printf(&l, " family=%d untrusted=%s", f->family,
-	    f->untrusted ? "yes" : "no");
+	alert_text_printf(&l, " family=%d untrusted=%s untrusted_records=%llu",
+	    f->family, f->untrusted ? "yes" : "no",
+	    (unsigned long long)f->untrusted_records);
 	/* Counts per arm: every arm for SRM, the two compared otherwise. */
 	for (i = 0; i < f->narms; i++) {
 		const struct finding_arm *arm = &f->arms[i];

@@ -111,6 +111,7 @@ ckpt_build(struct daemon *d, char **cause)
 		json_object_set_new(root, "redis_stream", json_string(stream));
 	counters = json_object();
 	json_object_set_new(counters, "ingest", ingest_json(d));
+	json_object_set_new(counters, "auth", auth_json(d));
 	if (d->listen != NULL)
 		json_object_set_new(counters, "listen", listen_json(d->listen));
 	if (d->redis != NULL)
@@ -623,6 +624,7 @@ ckpt_restore_state(struct daemon *d, const char *path, json_t *root,
 	}
 	counters = json_object_get(root, "counters");
 	ingest_restore(d, json_object_get(counters, "ingest"));
+	auth_restore(d, json_object_get(counters, "auth"));
 	d->checkpoints = (uint64_t)json_integer_value(json_object_get(counters,
 	    "checkpoints"));
 	return 0;

@@ -62,6 +62,8 @@ struct pause;
 struct http;
 struct notify;
 struct ckpt;
+struct auth;
+struct frame;
 
 /*
  * d->conf is replaced on SIGHUP (all-or-nothing). Read it afresh in each
@@ -76,6 +78,8 @@ struct ingest_counters {
 	uint64_t	bytes[SRC_N];
 	uint64_t	proto_rejected[SRC_N][PROTO_NSTATUS];
 	uint64_t	engine_rejected[SRC_N][ENGINE_NREJECT];
+	uint64_t	unsigned_records[SRC_N];	/* applied, not in a
+							 * signed batch */
 };
 
 enum ingest_status {
@@ -103,6 +107,7 @@ struct daemon {
 	struct http		*http;
 	struct notify		*notify;	/* NULL: not under systemd */
 	struct ckpt		*ckpt;		/* ckpt.c's writer child */
+	struct auth		*auth;		/* producers, signed batches */
 
 	double			 started;	/* wall time */
 	double			 last_checkpoint;	/* wall time, 0 never */
@@ -145,11 +150,49 @@ void		 ingest_reject(struct daemon *, enum source, enum proto_status,
 /* Several lines in one block (a datagram, a Redis entry). */
 void		 ingest_lines(struct daemon *, enum source, const char *,
 		    size_t);
+/* The same for the body of a verified batch (auth.c): its records are
+ * authenticated, so trusted. Returns the records applied. */
+uint64_t	 ingest_lines_signed(struct daemon *, enum source,
+		    const char *, size_t);
 void		 ingest_metrics(struct daemon *, struct evbuffer *);
 /* The counters as JSON (kept in the checkpoint) and back. */
 json_t		*ingest_json(struct daemon *);
 void		 ingest_restore(struct daemon *, const json_t *);
 uint64_t	 ingest_records_total(struct daemon *);
+
+/* auth.c: producers, signed batches, trust of inputs. */
+enum auth_reason {
+	AUTH_BAD_SIGNATURE, AUTH_UNKNOWN_PRODUCER, AUTH_STALE, AUTH_REPLAYED,
+	AUTH_MALFORMED, AUTH_UNSIGNED, AUTH_NREASON
+};
+struct auth	*auth_new(struct daemon *, char **cause);
+void		 auth_free(struct auth *);
+/* New producers and secrets on reload (ids and floors kept); all or
+ * nothing: 0, or -1 with *cause and nothing changed. */
+int		 auth_configure(struct auth *, const struct conf *,
+		    char **cause);
+const char	*auth_reason(enum auth_reason);
+/* Does the input require signed batches; may auto-pause act on its
+ * records (signed, or trusted by the configuration)? */
+int		 auth_signed(const struct conf *, enum source);
+int		 auth_trusted(const struct conf *, enum source);
+/* Count and log (rate-limited) one refused batch; f may be NULL. */
+void		 auth_refuse(struct daemon *, enum source, enum auth_reason,
+		    const struct frame *f, size_t bytes);
+/* Verify a parsed frame and its body; 0 applied, -1 refused (counted). */
+int		 auth_batch(struct daemon *, enum source, const struct frame *,
+		    const char *body);
+/* A Redis entry's or Kafka message's fields beside its records: any of
+ * them NULL when absent (all absent: unsigned). 0 or -1, as above. */
+int		 auth_fields(struct daemon *, enum source, const char *producer,
+		    size_t, const char *id, size_t, const char *ts, size_t,
+		    const char *sig, size_t, const char *body, size_t len);
+/* One datagram holding exactly one frame. */
+int		 auth_datagram(struct daemon *, enum source, const char *,
+		    size_t);
+void		 auth_metrics(struct daemon *, struct evbuffer *);
+json_t		*auth_json(struct daemon *);
+void		 auth_restore(struct daemon *, const json_t *);
 
 /* metrics.c: Prometheus text exposition format helpers. */
 void		 metrics_family(struct evbuffer *, const char *name,
@@ -306,6 +349,7 @@ enum pause_decision {
 	PAUSE_REFUSED_UNTRUSTED,
 	PAUSE_REFUSED_REPEAT,
 	PAUSE_REFUSED_RATE,
+	PAUSE_REFUSED_UNTRUSTED_INPUT,	/* evidence from untrusted inputs */
 	PAUSE_NDECISIONS
 };
 

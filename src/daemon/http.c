@@ -414,6 +414,7 @@ http_health_get(struct http *h, struct evhttp_request *req)
 	    "bytes", (json_int_t)c.bytes);
 	if (d->kafka != NULL)
 		json_object_set_new(j, "kafka", kafka_in_json(d->kafka));
+	json_object_set_new(j, "sources", auth_json(d));
 	http_json(h, req, 200, j);
 }
 
@@ -819,6 +820,7 @@ http_metrics(struct http *h, struct evbuffer *b)
 	    (unsigned long long)ec.grouped_series);
 
 	ingest_metrics(d, b);
+	auth_metrics(d, b);
 	if (d->listen != NULL)
 		listen_metrics(d->listen, b);
 	if (d->redis != NULL)

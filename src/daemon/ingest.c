@@ -4,6 +4,10 @@
  * is parsed by proto_parse, stamped with the loop's cached wall time when
  * it carries no timestamp, and applied with the next event number.
  *
+ * A line knows its origin: in a producer's verified batch (auth.c) or
+ * not, and, when not, whether its input is trusted; the record carries
+ * that trust to the engine and the applied record is counted by source.
+ *
  * Bad lines never stop anything: each one is counted per source and
  * reason, and the first few per source and minute are logged with the
  * reason and a short, escaped sample; the rest are summed up once the
@@ -145,8 +149,13 @@ ingest_reject(struct daemon *d, enum source src, enum proto_status st,
 	    samplelen, len);
 }
 
-enum ingest_status
-ingest_line_status(struct daemon *d, enum source src, const char *line,
+/*
+ * One line; authed: it came in a verified batch. The record carries its
+ * trust to the engine (record.untrusted), which keeps untrusted records
+ * away from experiments that may pause.
+ */
+static enum ingest_status
+ingest_one(struct daemon *d, enum source src, int authed, const char *line,
     size_t len)
 {
 	struct ingest_counters *c = &d->ingest->counters;
@@ -167,6 +176,7 @@ ingest_line_status(struct daemon *d, enum source src, const char *line,
 		    line, len, len);
 		return INGEST_BAD_LINE;
 	}
+	rec.untrusted = !authed && !auth_trusted(d->conf, src);
 	er = engine_apply(d->engine, &rec, rec.has_ts ? rec.ts : ingest_now(d),
 	    ++d->ingest->seq);
 	if (er != ENGINE_OK) {
@@ -178,7 +188,16 @@ ingest_line_status(struct daemon *d, enum source src, const char *line,
 		return INGEST_REFUSED;
 	}
 	c->records[src]++;
+	if (!authed)
+		c->unsigned_records[src]++;
 	return INGEST_OK;
+}
+
+enum ingest_status
+ingest_line_status(struct daemon *d, enum source src, const char *line,
+    size_t len)
+{
+	return ingest_one(d, src, 0, line, len);
 }
 
 /*
@@ -186,24 +205,40 @@ ingest_line_status(struct daemon *d, enum source src, const char *line,
  * field); a final newline is optional. Over-long lines cost only
  * themselves.
  */
-void
-ingest_lines(struct daemon *d, enum source src, const char *p, size_t len)
+static uint64_t
+ingest_block(struct daemon *d, enum source src, int authed, const char *p,
+    size_t len)
 {
 	const char *nl;
 	size_t n;
+	uint64_t applied = 0;
 
 	while (len > 0) {
 		nl = memchr(p, '\n', len);
 		n = nl != NULL ? (size_t)(nl - p) : len;
 		if (n > PROTO_LINE_MAX)
 			ingest_reject(d, src, PROTO_E_LONG, n, p, n);
-		else
-			ingest_line(d, src, p, n);
+		else if (ingest_one(d, src, authed, p, n) == INGEST_OK)
+			applied++;
 		if (nl == NULL)
 			break;
 		p += n + 1;
 		len -= n + 1;
 	}
+	return applied;
+}
+
+void
+ingest_lines(struct daemon *d, enum source src, const char *p, size_t len)
+{
+	(void)ingest_block(d, src, 0, p, len);
+}
+
+uint64_t
+ingest_lines_signed(struct daemon *d, enum source src, const char *p,
+    size_t len)
+{
+	return ingest_block(d, src, 1, p, len);
 }
 
 int

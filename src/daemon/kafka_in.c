@@ -344,6 +344,37 @@ kafka_rebalance_cb(rd_kafka_t *rk, rd_kafka_resp_err_t err,
 
 /* ---- consuming ---- */
 
+/* One header's value, or NULL (absent, or more than one byte limit). */
+static const char *
+kafka_header(rd_kafka_headers_t *h, const char *name, size_t *len)
+{
+	const void *v = NULL;
+
+	*len = 0;
+	if (h == NULL || rd_kafka_header_get_last(h, name, &v, len) !=
+	    RD_KAFKA_RESP_ERR_NO_ERROR || v == NULL)
+		return NULL;
+	return v;
+}
+
+/* A signed batch: headers producer, id, ts, signature (frame.h). */
+static void
+kafka_signed(struct kafka_in *k, rd_kafka_message_t *m)
+{
+	rd_kafka_headers_t *h = NULL;
+	const char *pr, *id, *ts, *sig;
+	size_t prl, idl, tsl, sigl;
+
+	if (rd_kafka_message_headers(m, &h) != RD_KAFKA_RESP_ERR_NO_ERROR)
+		h = NULL;
+	pr = kafka_header(h, "producer", &prl);
+	id = kafka_header(h, "id", &idl);
+	ts = kafka_header(h, "ts", &tsl);
+	sig = kafka_header(h, "signature", &sigl);
+	(void)auth_fields(k->d, SRC_KAFKA, pr, prl, id, idl, ts, tsl, sig,
+	    sigl, m->payload, m->len);
+}
+
 static void
 kafka_message(struct kafka_in *k, rd_kafka_message_t *m)
 {
@@ -386,7 +417,10 @@ kafka_message(struct kafka_in *k, rd_kafka_message_t *m)
 		json_object_setn_new(p->keys, m->key, m->key_len, json_true());
 	/* The same door as a Redis entry; the differences are ours. */
 	before = *ic;
-	ingest_lines(k->d, SRC_KAFKA, m->payload, m->len);
+	if (auth_signed(k->d->conf, SRC_KAFKA))
+		kafka_signed(k, m);
+	else
+		ingest_lines(k->d, SRC_KAFKA, m->payload, m->len);
 	p->c.lines += ic->lines[SRC_KAFKA] - before.lines[SRC_KAFKA];
 	p->c.records += ic->records[SRC_KAFKA] - before.records[SRC_KAFKA];
 	for (r = 0; r < PROTO_NSTATUS; r++)

@@ -10,6 +10,12 @@
  * no per-line allocation or libevent call, which keeps the hot path at
  * millions of lines a second.
  *
+ * An input with tcp_signed or unix_signed takes only signed batches
+ * (frame.h): listen_client_frames cuts them off the stream and auth.c
+ * verifies each; with udp_signed each datagram is one batch. The unix
+ * socket gets unix_mode and unix_group at bind, so its file says who may
+ * write (which is why it may be trusted unsigned).
+ *
  * A slow or hostile client costs only its own connection: a line over
  * PROTO_LINE_MAX is skipped up to its newline and counted as too_long;
  * a client is cut off when it has sent more than LISTEN_BAD_MAX bad lines
@@ -58,6 +64,7 @@
 #include <event2/listener.h>
 
 #include "stopcock/addr.h"
+#include "stopcock/frame.h"
 #include "stopcock/log.h"
 #include "stopcock/names.h"
 #include "daemon.h"
@@ -111,6 +118,9 @@ struct client {
 	uint64_t		 id;
 	uint64_t		 good, bad;
 	size_t			 discarded;	/* of the current long line */
+	int			 skip_line;	/* signed input: skipping to the
+						 * end of a line, not at its
+						 * start */
 	uint64_t		 last_ms;	/* monotonic, of the last read */
 	uint64_t		 line_ms;	/* the unfinished line began */
 	int			 unfinished;	/* on l->unfinished */
@@ -255,13 +265,17 @@ listen_reap_cb(evutil_socket_t fd, short what, void *arg)
 }
 
 static size_t
-listen_buffer(struct listen *l)
+listen_buffer(struct listen *l, enum source src)
 {
 	size_t b = l->d->conf->client_buffer;
 
-	/* A line at the limit plus its newline must always fit. */
+	/* A line at the limit plus its newline must always fit; on a
+	 * signed input, a whole frame. */
 	if (b < 2 * (PROTO_LINE_MAX + 1))
 		b = 2 * (PROTO_LINE_MAX + 1);
+	if (auth_signed(l->d->conf, src) && b < FRAME_HEADER_MAX +
+	    FRAME_BODY_MAX)
+		b = FRAME_HEADER_MAX + FRAME_BODY_MAX;
 	return b;
 }
 
@@ -314,32 +328,107 @@ listen_client_too_long(struct client *c, const char *p, size_t n)
 	c->bad++;
 }
 
-/*
- * Consume every complete line in the input. At eof a last line without
- * its newline still counts. Lines are parsed in place: the buffer is made
- * contiguous once per call and drained once at the end.
- */
-static void
-listen_client_input(struct client *c, int eof)
+/* Could p[0..n), with more bytes, still become a frame's header? */
+static int
+listen_header_prefix(const char *p, size_t n)
 {
-	struct listen *l = c->l;
-	struct evbuffer *in = bufferevent_get_input(c->bev);
-	size_t len = evbuffer_get_length(in), off = 0, n, limit;
-	const char *p, *nl;
-	int ended = 0;
+	return n < FRAME_KEYWORD_LEN && memchr(p, '\n', n) == NULL &&
+	    memcmp(p, FRAME_KEYWORD, n) == 0;
+}
 
-	if (len == 0 || c->state == CLIENT_DEAD) {
-		evbuffer_drain(in, len);
-		return;
+/*
+ * A signed input: frames (frame.h) one after another, blank lines
+ * between them allowed. Whatever is not a frame costs one refusal per
+ * run (unsigned, malformed_frame) and is skipped up to the next line
+ * that begins a header, so a bad batch never takes the good ones after
+ * it. Returns the bytes consumed; *ended: a frame or line ended.
+ */
+static size_t
+listen_client_frames(struct client *c, const char *p, size_t len, int eof,
+    int *ended)
+{
+	struct daemon *d = c->l->d;
+	size_t off = 0, rest, limit = listen_buffer(c->l, c->src);
+	enum frame_status st;
+	struct frame f;
+	const char *nl;
+
+	while (off < len && c->state != CLIENT_DEAD) {
+		rest = len - off;
+		if (c->state == CLIENT_DISCARDING) {
+			if (!c->skip_line) {
+				if (frame_is_header(p + off, rest)) {
+					listen_client_set_state(c,
+					    CLIENT_READING);
+					continue;
+				}
+				if (!eof && listen_header_prefix(p + off, rest))
+					break;
+				c->skip_line = 1;
+			}
+			if ((nl = memchr(p + off, '\n', rest)) == NULL) {
+				c->discarded += rest;
+				off = len;
+				if (c->discarded > limit)
+					listen_client_cut(c, CUT_FLOOD);
+				break;
+			}
+			off = (size_t)(nl - p) + 1;
+			c->skip_line = 0;
+			c->discarded = 0;
+			*ended = 1;
+			continue;
+		}
+		if (p[off] == '\n' || (rest >= 2 && p[off] == '\r' &&
+		    p[off + 1] == '\n')) {
+			off += p[off] == '\n' ? 1 : 2;
+			*ended = 1;
+			continue;
+		}
+		if (!frame_is_header(p + off, rest)) {
+			if (!eof && (listen_header_prefix(p + off, rest) ||
+			    (rest == 1 && p[off] == '\r')))
+				break;
+			auth_refuse(d, c->src, AUTH_UNSIGNED, NULL, rest);
+			c->bad++;
+			c->skip_line = 1;
+			listen_client_set_state(c, CLIENT_DISCARDING);
+			continue;
+		}
+		st = frame_parse(p + off, rest, &f);
+		if (st == FRAME_PARTIAL && !eof)
+			break;
+		if (st == FRAME_OK) {
+			if (auth_batch(d, c->src, &f, p + off + f.header_len) ==
+			    0)
+				c->good++;
+			else
+				c->bad++;
+			off += f.header_len + f.body_len;
+			*ended = 1;
+			continue;
+		}
+		/* malformed, over FRAME_BODY_MAX, or cut short by eof */
+		auth_refuse(d, c->src, AUTH_MALFORMED,
+		    f.producer[0] != '\0' ? &f : NULL, rest);
+		c->bad++;
+		off += f.header_len;
+		if (f.header_len > 0)
+			*ended = 1;
+		c->skip_line = f.header_len == 0;
+		listen_client_set_state(c, CLIENT_DISCARDING);
 	}
-	/* Heard from: to the tail of its input's list, oldest read first. */
-	c->last_ms = listen_now_ms();
-	if (TAILQ_NEXT(c, entry) != NULL) {
-		TAILQ_REMOVE(&l->clients[c->src], c, entry);
-		TAILQ_INSERT_TAIL(&l->clients[c->src], c, entry);
-	}
-	limit = listen_buffer(l);
-	p = (const char *)evbuffer_pullup(in, -1);
+	return off;
+}
+
+/* Plain lines, one record each; as listen_client_frames returns. */
+static size_t
+listen_client_lines(struct client *c, const char *p, size_t len, int eof,
+    int *ended)
+{
+	size_t off = 0, n, limit = listen_buffer(c->l, c->src);
+	const char *nl;
+
 	while (off < len && c->state != CLIENT_DEAD) {
 		nl = memchr(p + off, '\n', len - off);
 		n = nl != NULL ? (size_t)(nl - (p + off)) : len - off;
@@ -352,7 +441,7 @@ listen_client_input(struct client *c, int eof)
 				break;
 			}
 			off += n + 1;
-			ended = 1;
+			*ended = 1;
 			listen_client_set_state(c, CLIENT_READING);
 			continue;
 		}
@@ -376,8 +465,40 @@ listen_client_input(struct client *c, int eof)
 		else
 			listen_client_line(c, p + off, n);
 		off += n + 1;
-		ended = 1;
+		*ended = 1;
 	}
+	return off;
+}
+
+/*
+ * Consume every complete line in the input. At eof a last line without
+ * its newline still counts. Lines are parsed in place: the buffer is made
+ * contiguous once per call and drained once at the end.
+ */
+static void
+listen_client_input(struct client *c, int eof)
+{
+	struct listen *l = c->l;
+	struct evbuffer *in = bufferevent_get_input(c->bev);
+	size_t len = evbuffer_get_length(in), off = 0;
+	const char *p;
+	int ended = 0, skipping;
+
+	if (len == 0 || c->state == CLIENT_DEAD) {
+		evbuffer_drain(in, len);
+		return;
+	}
+	/* Heard from: to the tail of its input's list, oldest read first. */
+	c->last_ms = listen_now_ms();
+	if (TAILQ_NEXT(c, entry) != NULL) {
+		TAILQ_REMOVE(&l->clients[c->src], c, entry);
+		TAILQ_INSERT_TAIL(&l->clients[c->src], c, entry);
+	}
+	p = (const char *)evbuffer_pullup(in, -1);
+	if (auth_signed(l->d->conf, c->src))
+		off = listen_client_frames(c, p, len, eof, &ended);
+	else
+		off = listen_client_lines(c, p, len, eof, &ended);
 	evbuffer_drain(in, off);
 	if (c->state != CLIENT_DEAD && c->bad > LISTEN_BAD_MAX &&
 	    c->bad > c->good)
@@ -386,7 +507,9 @@ listen_client_input(struct client *c, int eof)
 		return;
 	/* A line left unfinished (kept, or being skipped) is timed from its
 	 * first byte: a new one when a newline went by in this read. */
-	if (off < len || c->state == CLIENT_DISCARDING) {
+	skipping = c->state == CLIENT_DISCARDING &&
+	    (!auth_signed(l->d->conf, c->src) || c->skip_line);
+	if (off < len || skipping) {
 		if (c->unfinished && ended)
 			listen_client_finished(c);
 		if (!c->unfinished) {
@@ -554,7 +677,7 @@ listen_accept_cb(struct evconnlistener *evl, evutil_socket_t fd,
 	c->bev = bev;
 	c->id = ++l->next_id;
 	c->last_ms = now;
-	buf = listen_buffer(l);
+	buf = listen_buffer(l, c->src);
 	bufferevent_setwatermark(bev, EV_READ, 0, buf);
 	bufferevent_set_max_single_read(bev,
 	    buf < LISTEN_READ_MAX ? buf : LISTEN_READ_MAX);
@@ -757,6 +880,7 @@ listen_unix(struct listen *l, const char *path, char **cause)
 {
 	struct sockaddr_un sun;
 	struct stat st;
+	unsigned gid;
 	int fd;
 
 	memset(&sun, 0, sizeof sun);
@@ -792,10 +916,24 @@ listen_unix(struct listen *l, const char *path, char **cause)
 	if (listen_stream(l, &l->unix_sock, SRC_UNIX, (struct sockaddr *)&sun,
 	    sizeof sun, 0, path, cause) != 0)
 		return -1;
-	if (chmod(path, 0660) != 0 || lstat(path, &st) != 0) {
-		xasprintf(cause, "unix %s: %s", path, strerror(errno));
+	/* who may write records here: the socket's mode and group */
+	if (l->d->conf->unix_group != NULL) {
+		if (conf_unix_group(l->d->conf->unix_group, &gid, cause) != 0)
+			return -1;
+		if (chown(path, (uid_t)-1, (gid_t)gid) != 0) {
+			xasprintf(cause, "unix %s: unix_group %s: chown: %s",
+			    path, l->d->conf->unix_group, strerror(errno));
+			return -1;
+		}
+	}
+	if (chmod(path, (mode_t)l->d->conf->unix_mode) != 0 ||
+	    lstat(path, &st) != 0) {
+		xasprintf(cause, "unix %s: unix_mode %04o: %s", path,
+		    (unsigned)l->d->conf->unix_mode, strerror(errno));
 		return -1;
 	}
+	log_info("listen: unix socket path=%s mode=%04o group=%u", path,
+	    (unsigned)(st.st_mode & 07777), (unsigned)st.st_gid);
 	l->unix_path = xstrdup(path);
 	l->unix_ino = st.st_ino;
 	return 0;
@@ -823,7 +961,11 @@ listen_udp_read(struct listen *l, int burst)
 			    l->udp_buf, 80);
 			continue;
 		}
-		ingest_lines(l->d, SRC_UDP, l->udp_buf, (size_t)n);
+		if (auth_signed(l->d->conf, SRC_UDP))
+			(void)auth_datagram(l->d, SRC_UDP, l->udp_buf,
+			    (size_t)n);
+		else
+			ingest_lines(l->d, SRC_UDP, l->udp_buf, (size_t)n);
 	}
 }
 

@@ -314,6 +314,14 @@ daemon_reload(struct daemon *d)
 		log_warnx("reload: failed; keeping the running configuration");
 		goto done;
 	}
+	/* secret files were read by daemon_check just now; one that
+	 * changed since is refused here, the old keys kept */
+	if (auth_configure(d->auth, nc, &cause) != 0) {
+		daemon_log_lines("reload: ", cause);
+		log_warnx("reload: producers' secrets kept from before");
+		free(cause);
+		cause = NULL;
+	}
 	daemon_reload_notes(d->conf, nc);
 	tick = d->conf->tick;
 	every = d->conf->checkpoint_every;
@@ -600,6 +608,7 @@ daemon_stop(struct daemon *d)
 	conf_free(d->conf);
 	event_base_free(d->base);
 	free(d->main->conf_path);
+	auth_free(d->auth);
 	ingest_free(d->ingest);
 	free(d->state_dir);
 	free(d->restored_redis_id);
@@ -678,6 +687,11 @@ main(int argc, char **argv)
 
 	d->main->conf_path = xstrdup(path);
 	d->ingest = ingest_new();
+	if ((d->auth = auth_new(d, &cause)) == NULL) {
+		fprintf(stderr, "stopcockd: %s\n", cause);
+		free(cause);
+		return SC_EX_CONFIG;
+	}
 	d->state_dir = xstrdup(d->conf->state_dir);
 	d->started = daemon_now();
 	daemon_hashkey(d);

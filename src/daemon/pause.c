@@ -4,7 +4,9 @@
  * finding carries that level); dispatch.c asks pause_decide whether to
  * act on it, then pause_deliver delivers it and alert.c raises the
  * pause alert. The
- * rules, in order: never on data that SRM made untrustworthy (unless the
+ * rules, in order: never on evidence that records from untrusted inputs
+ * (unsigned, and not trusted by the configuration) went into, never on
+ * data that SRM made untrustworthy (unless the
  * pause is for SRM itself and pause_on_srm allows it), at most once per
  * experiment and epoch, at most pause_max_per_hour pauses in any hour,
  * and nothing at all under dry_run. Every decision, pause or refusal, is
@@ -58,6 +60,7 @@ static const struct {
 	{ "refused", "untrusted" },
 	{ "refused", "already_paused_this_epoch" },
 	{ "refused", "rate_limited" },
+	{ "refused", "untrusted_input" },
 };
 
 /* The pause connection to Redis; changed only by pause_redis_set_state. */
@@ -176,6 +179,9 @@ pause_evidence(const struct finding *f)
 	    finding_num(f->upper), "rel_estimate", finding_num(f->rel_estimate),
 	    "rel_lower", finding_num(f->rel_lower), "rel_upper",
 	    finding_num(f->rel_upper), "untrusted", f->untrusted, "arms", arms);
+	if (e != NULL)
+		json_object_set_new(e, "untrusted_records",
+		    json_integer((json_int_t)f->untrusted_records));
 	return e;
 }
 
@@ -741,7 +747,9 @@ pause_decide(struct pause *p, const struct finding *f, char **reason)
 	if (srm && !c->pause_on_srm)
 		return PAUSE_NONE;	/* it alerts; it pauses if allowed */
 
-	if (f->untrusted && !srm)
+	if (f->untrusted_records > 0)
+		dec = PAUSE_REFUSED_UNTRUSTED_INPUT;
+	else if (f->untrusted && !srm)
 		dec = PAUSE_REFUSED_UNTRUSTED;
 	else if (pause_is_done(p, f->experiment, f->epoch))
 		dec = PAUSE_REFUSED_REPEAT;

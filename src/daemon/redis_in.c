@@ -398,12 +398,43 @@ redis_in_batch_end(struct redis_in *r)
 	redis_in_trim_flush(r);
 }
 
-static void
-redis_in_apply(struct redis_in *r, struct sid id, const redisReply *v)
+/* The string value of field name in an entry's fields, or NULL. */
+static const redisReply *
+redis_in_field(const redisReply *fields, const char *name)
 {
+	size_t i, len = strlen(name);
+
+	for (i = 0; i + 1 < fields->elements; i += 2)
+		if (fields->element[i]->type == REDIS_REPLY_STRING &&
+		    fields->element[i]->len == len &&
+		    memcmp(fields->element[i]->str, name, len) == 0)
+			return fields->element[i + 1]->type ==
+			    REDIS_REPLY_STRING ? fields->element[i + 1] : NULL;
+	return NULL;
+}
+
+static void
+redis_in_apply(struct redis_in *r, struct sid id, const redisReply *fields,
+    const redisReply *v)
+{
+	const redisReply *pr, *mid, *ts, *sig;
+
 	if (r->mark_each)
 		redis_in_mark_range(r, id, id, redis_in_failures(r, id));
-	ingest_lines(r->d, SRC_REDIS, v->str, v->len);
+	if (auth_signed(r->d->conf, SRC_REDIS)) {
+		/* a signed batch: producer, id, ts, signature beside records
+		 * (frame.h); refused whole or applied whole */
+		pr = redis_in_field(fields, "producer");
+		mid = redis_in_field(fields, "id");
+		ts = redis_in_field(fields, "ts");
+		sig = redis_in_field(fields, "signature");
+		(void)auth_fields(r->d, SRC_REDIS,
+		    pr ? pr->str : NULL, pr ? pr->len : 0,
+		    mid ? mid->str : NULL, mid ? mid->len : 0,
+		    ts ? ts->str : NULL, ts ? ts->len : 0,
+		    sig ? sig->str : NULL, sig ? sig->len : 0, v->str, v->len);
+	} else
+		ingest_lines(r->d, SRC_REDIS, v->str, v->len);
 	r->last = id;
 	r->entries++;
 }
@@ -479,7 +510,7 @@ redis_in_entry(struct redis_in *r, const redisReply *e)
 		if (f->type == REDIS_REPLY_STRING && f->len == 7 &&
 		    memcmp(f->str, "records", 7) == 0 &&
 		    v->type == REDIS_REPLY_STRING) {
-			redis_in_apply(r, id, v);
+			redis_in_apply(r, id, fields, v);
 			return 0;
 		}
 	}

@@ -13,7 +13,8 @@
  *
  * Signing follows the Standard Webhooks specification: the secret is
  * "whsec_" + base64 key bytes; webhook-signature is "v1," +
- * base64(HMAC-SHA256(key, id "." timestamp "." body)). The webhook-id is
+ * base64(HMAC-SHA256(key, id "." timestamp "." body)), made by sign.c,
+ * the same code that verifies producers' batches. The webhook-id is
  * stable for one message across attempts, so receivers can deduplicate.
  *
  * Retries: timeouts, connection errors, 429 and 5xx are retried with
@@ -41,11 +42,10 @@
 #include <unistd.h>
 
 #include <curl/curl.h>
-#include <openssl/evp.h>
-#include <openssl/hmac.h>
 #include <openssl/rand.h>
 
 #include "stopcock/log.h"
+#include "stopcock/sign.h"
 #include "daemon.h"
 
 #define WEBHOOK_INFLIGHT_MAX	4	/* requests per healthy receiver */
@@ -55,7 +55,6 @@
 #define WEBHOOK_PROBE		5.0	/* seconds, when not configured */
 #define WEBHOOK_SPOOL_BYTES	(64u * 1024 * 1024)
 #define WEBHOOK_QUEUE		1000
-#define WEBHOOK_KEY_MAX		256	/* bytes of a decoded secret */
 #define WEBHOOK_SPOOL_MAX	(1024 * 1024)	/* bytes of one spool file */
 #define WEBHOOK_REPLY_MAX	256	/* bytes of an answer kept for logs */
 
@@ -84,7 +83,7 @@ struct receiver {
 	char			*name;
 	char			*url;
 	char			*spool;		/* directory, NULL: memory only */
-	unsigned char		 key[WEBHOOK_KEY_MAX];
+	unsigned char		 key[SIGN_KEY_MAX];
 	size_t			 keylen;
 	int			 sign;
 	int			 internal;	/* not reached by webhook_send */
@@ -124,84 +123,6 @@ struct webhook {
 };
 
 static void	webhook_kick(struct receiver *);
-
-/*
- * Decode a Standard Webhooks secret ("whsec_" + base64) into key bytes.
- * EVP_DecodeBlock wants a multiple of four characters and counts padding
- * as zero bytes, so pad first and trim after.
- */
-static int
-webhook_secret_key(const char *secret, unsigned char *key, size_t *keylen,
-    char **cause)
-{
-	const char *b64;
-	char *padded;
-	size_t len, i, pad = 0;
-	int n;
-
-	if (strncmp(secret, "whsec_", 6) != 0) {
-		*cause = xstrdup("secret must start with whsec_");
-		return -1;
-	}
-	b64 = secret + 6;
-	len = strlen(b64);
-	if (len == 0 || len > (WEBHOOK_KEY_MAX / 3) * 4) {
-		*cause = xstrdup("secret has no key or a key that is too long");
-		return -1;
-	}
-	for (i = 0; i < len; i++) {
-		if (b64[i] == '=' && i + 2 < len) {
-			*cause = xstrdup("secret is not valid base64");
-			return -1;
-		}
-	}
-	padded = xmalloc(len + 4);
-	memcpy(padded, b64, len);
-	while ((len % 4) != 0)
-		padded[len++] = '=';
-	padded[len] = '\0';
-	for (i = len; i > 0 && padded[i - 1] == '='; i--)
-		pad++;
-	n = EVP_DecodeBlock(key, (unsigned char *)padded, (int)len);
-	free(padded);
-	if (n < 0 || pad > 2 || (size_t)n < pad || (size_t)n - pad == 0) {
-		*cause = xstrdup("secret is not valid base64");
-		return -1;
-	}
-	*keylen = (size_t)n - pad;
-	return 0;
-}
-
-/* "v1," + base64(HMAC-SHA256(key, id.timestamp.body)) into out. */
-static int
-webhook_sign(const struct receiver *r, const char *id, long long ts,
-    const char *body, size_t len, char *out, size_t outsize)
-{
-	unsigned char mac[EVP_MAX_MD_SIZE];
-	unsigned int maclen = 0;
-	char *msg;
-	size_t msglen;
-	int n;
-
-	msglen = (size_t)xasprintf(&msg, "%s.%lld.", id, ts);
-	msg = xreallocarray(msg, msglen + len + 1, 1);
-	memcpy(msg + msglen, body, len);
-	msglen += len;
-	if (HMAC(EVP_sha256(), r->key, (int)r->keylen, (unsigned char *)msg,
-	    msglen, mac, &maclen) == NULL) {
-		free(msg);
-		return -1;
-	}
-	free(msg);
-	if (outsize < 3 + 4 * ((maclen + 2) / 3) + 1)
-		return -1;
-	memcpy(out, "v1,", 3);
-	n = EVP_EncodeBlock((unsigned char *)out + 3, mac, (int)maclen);
-	if (n < 0)
-		return -1;
-	out[3 + n] = '\0';
-	return 0;
-}
 
 /*
  * Full jitter: uniform in [0, min(cap, base * 2^(failures - 1))]; once
@@ -389,8 +310,8 @@ webhook_start(struct receiver *r, struct delivery *dl, char **cause)
 	dl->headers = curl_slist_append(dl->headers, h);
 	free(h);
 	if (r->sign) {
-		if (webhook_sign(r, dl->id, ts, dl->body, dl->len, sig,
-		    sizeof sig) == -1) {
+		if (sign_make(r->key, r->keylen, dl->id, strlen(dl->id), ts,
+		    dl->body, dl->len, sig, sizeof sig) == -1) {
 			*cause = xstrdup("signing failed");
 			return -1;
 		}
@@ -819,7 +740,7 @@ webhook_add(struct webhook *w, const char *name, const char *url,
 	TAILQ_INIT(&r->waiting);
 	TAILQ_INIT(&r->inflight);
 	if (secret != NULL && *secret != '\0') {
-		if (webhook_secret_key(secret, r->key, &r->keylen, &why) ==
+		if (sign_secret_key(secret, r->key, &r->keylen, &why) ==
 		    -1) {
 			xasprintf(cause, "webhook %s: %s", name, why);
 			free(why);
