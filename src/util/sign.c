@@ -39,7 +39,9 @@ sign_secret_key(const char *secret, unsigned char *key, size_t *keylen,
 		return -1;
 	}
 	for (i = 0; i < len; i++) {
-		if (b64[i] == '=' && i + 2 < len) {
+		/* padding only at the end: "=" or "==" */
+		if (b64[i] == '=' && (i + 2 < len ||
+		    (i + 1 < len && b64[i + 1] != '='))) {
 			*cause = xstrdup("secret is not valid base64");
 			return -1;
 		}

@@ -35,6 +35,10 @@ from _lib import Daemon, Redis, Tap, _Resp, wait_for  # noqa: E402
 from _alertlib import (PAUSE_SECRET, SECRET, Receiver,  # noqa: E402
                        harmful_records, unit_records)
 
+# The records come over unsigned TCP: trusted here, so auto-pause acts
+# on them (test_daemon_auth.py covers the shipped default, untrusted).
+TRUST_TCP = {"tcp_trusted": "yes"}
+
 GUARDRAILS = """
 [guardrail errors]
 metric = errors
@@ -109,7 +113,7 @@ def main():
         sub = subscriber(redis.port, "it:pauses")
         with Daemon("alerts-pause", redis=redis, guardrails=GUARDRAILS,
                     extra=pause_conf(ops, prcv, False), udp=False,
-                    unix=False) as d:
+                    unix=False, daemon_keys=TRUST_TCP) as d:
             # basket_a: two harmful treatments; the first pauses.
             d.send_tcp(unit_records("basket_a", "errors", [
                 ("control", 2500, 0.02), ("t1", 2500, 0.09),
@@ -211,7 +215,7 @@ def main():
         n_ops = len(ops.snapshot())
         with Daemon("alerts-pause-dry", redis=redis, guardrails=GUARDRAILS,
                     extra=pause_conf(ops, prcv, True), udp=False,
-                    unix=False) as d:
+                    unix=False, daemon_keys=TRUST_TCP) as d:
             d.send_tcp(harmful_records("basket_dry", "errors", 2500, 0.02,
                                        0.09, 14))
             dry = wait_for(lambda: audit(d), 20)

@@ -123,7 +123,7 @@ def main():
         return
     d = Daemon("alerts-syslog", guardrails=GUARDRAILS, extra=EXTRA,
                udp=False, unix=False, http=True, start=False,
-               daemon_keys={"http_token": TOKEN})
+               daemon_keys={"http_token": TOKEN, "tcp_trusted": "yes"})
     log = SyslogSocket(os.path.join(d.dir, "log.sock"))
     namespace_wrap(d, syslog_socket=log.path)
     lines = records(21, 3000)
