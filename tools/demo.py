@@ -16,6 +16,9 @@ it ends, also on an error.
 
 Usage: /usr/bin/python3 tools/demo.py BUILD_DIR
 """
+import base64
+import hashlib
+import hmac
 import json
 import os
 import re
@@ -55,6 +58,21 @@ def guardrails():
     g = "\n".join(out) + "\n"
     return re.sub(r"(\[guardrail checkout_p99\][^\[]*?)action = alert",
                   r"\1action = pause", g, flags=re.S)
+
+
+FEED_KEY = b"larder-and-lane-feed-key-0001"
+FEED_SECRET = "whsec_" + base64.b64encode(FEED_KEY).decode()
+
+
+def signed_entry(records, mid):
+    """A Redis entry as a signed batch: Standard Webhooks HMAC-SHA256 of
+    id "." ts "." records, fields beside the records."""
+    ts = int(time.time())
+    body = records.encode()
+    mac = hmac.new(FEED_KEY, ("%s.%d." % (mid, ts)).encode() + body,
+                   hashlib.sha256).digest()
+    return {"records": body, "producer": "larder_feed", "id": mid,
+            "ts": str(ts), "signature": "v1," + base64.b64encode(mac).decode()}
 
 
 def fmt(x, pct=False):
@@ -97,11 +115,16 @@ dry_run = no
 [syslog]
 ident = stopcockd
 facility = local0
-""" % (hook.url, SECRET)
+
+# The feed signs its entries: auto-pause acts only on trusted records.
+[producer larder_feed]
+secret = %s
+""" % (hook.url, SECRET, FEED_SECRET)
     d = Daemon("demo", redis=redis, guardrails=guardrails(), extra=extra,
                http=True, udp=False, unix=False, start=False,
                daemon_keys={"http_token": TOKEN, "tick": "500ms",
-                            "checkpoint_every": "1s"})
+                            "checkpoint_every": "1s"},
+               redis_keys={"signed": "yes"})
     d.write_conf(d.conf_text.replace("plan_units = 2000",
                                      "plan_units = 20000") +
                  "\n# links in alerts point at this demo's page\n")
@@ -126,7 +149,8 @@ facility = local0
     say("feeding %d records through the Redis stream %s in entries of %d"
         % (len(lines), d.stream, BATCH))
     for i in range(0, len(lines), BATCH):
-        redis.xadd(d.stream, {"records": "\n".join(lines[i:i + BATCH])})
+        redis.xadd(d.stream, signed_entry("\n".join(lines[i:i + BATCH]),
+                                          "feed-%d" % i))
 
     def api(path):
         out = subprocess.run(["curl", "-sf", url + path],

@@ -257,6 +257,7 @@ daemon_reload_notes(const struct conf *old, const struct conf *new)
 		{ "[syslog] ident", offsetof(struct conf, syslog_ident) },
 		{ "[syslog] facility", offsetof(struct conf, syslog_facility) },
 		{ "[alertmanager] url", offsetof(struct conf, am_url) },
+		{ "[daemon] unix_group", offsetof(struct conf, unix_group) },
 	};
 	size_t i;
 	int j, same;
@@ -287,6 +288,11 @@ daemon_reload_notes(const struct conf *old, const struct conf *new)
 	if (!same)
 		log_warnx("reload: [webhook] sections changed; they take "
 		    "effect at the next restart");
+	/* set at bind; the producers, their secrets and the inputs'
+	 * signed and trusted keys apply at once (auth_configure) */
+	if (old->unix_mode != new->unix_mode)
+		log_warnx("reload: [daemon] unix_mode changed; it takes effect "
+		    "at the next restart");
 	if (old->am_resend != new->am_resend ||
 	    old->remind_every != new->remind_every)
 		log_warnx("reload: [alerts] remind or [alertmanager] resend "
