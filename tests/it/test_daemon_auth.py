@@ -226,7 +226,9 @@ def part_signed(tap, redis):
     secret_file = None
     d = Daemon("auth-signed", redis=redis, guardrails=GUARDRAILS,
                http=True, start=False,
-               daemon_keys={"unix_signed": "yes", "udp_signed": "yes"},
+               daemon_keys={"unix_signed": "yes", "udp_signed": "yes",
+                            "unix_mode": "0620",
+                            "unix_group": str(os.getgid())},
                redis_keys={"signed": "yes", "start": "beginning"})
     secret_file = os.path.join(d.dir, "harbour.secrets")
     with open(secret_file, "w") as f:
@@ -237,9 +239,17 @@ secret = %s
 
 [producer harbour]
 secret_file = %s
+
+[experiment ferry_open]
+plan = control=50 treatment=50
+accept_untrusted = yes
 """ % (whsec(KEY_OPS), secret_file))
     d.start()
     try:
+        st = os.stat(d.unix)
+        tap.eq((oct(st.st_mode & 0o7777), st.st_gid),
+               (oct(0o620), os.getgid()),
+               "unix_mode and unix_group applied to the socket at bind")
         now = int(time.time())
         good1 = frame("ferry_ops", KEY_OPS, "ops-1",
                       ["plan ferry_s control=50 treatment=50"] +
@@ -325,6 +335,17 @@ secret_file = %s
         tap.eq(paused, [("paused", "harm established at pause_alpha")],
                "signed: harm from a signed producer pauses ferry_p "
                "(%d batches)" % len(batches))
+
+        # an experiment opened to untrusted inputs: its pause is refused
+        forged = harmful_records("ferry_open", "errors", 2500, 0.02, 0.09, 32)
+        d.send_tcp([l for l in forged if not l.startswith("plan")])
+        refused = wait_for(lambda: decisions(d, "ferry_open") or None, 30)
+        tap.eq(refused, [("refused", "untrusted_input")],
+               "accept_untrusted: harm on untrusted records is not paused "
+               "(audited as untrusted_input)")
+        e = experiments(d).get("ferry_open", {})
+        tap.eq(e.get("untrusted_records"), len(forged) - 1,
+               "accept_untrusted: the untrusted records are counted")
 
         m = metrics(d)
         ops = 51 + 5 + 4 + len(harm)

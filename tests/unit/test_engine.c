@@ -697,6 +697,107 @@ test_declared_only(void **state)
 	free(cause);
 }
 
+/* One line from an input that is (untrusted 1) or is not trusted. */
+static enum engine_reject
+feed_from(struct engine *eng, int untrusted, double now, uint64_t ev,
+    const char *line)
+{
+	struct record r;
+
+	assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+	assert_int_equal(r.untrusted, 0);	/* the parser trusts no one */
+	r.untrusted = (uint8_t)untrusted;
+	return engine_apply(eng, &r, now, ev);
+}
+
+static long long
+untrusted_of(const struct engine *eng, const char *id)
+{
+	json_t *x = engine_json_experiment(eng, id);
+	long long n;
+
+	assert_non_null(x);
+	n = json_integer_value(json_object_get(x, "untrusted_records"));
+	json_decref(x);
+	return n;
+}
+
+/*
+ * Untrusted records never reach an experiment a guardrail may pause
+ * (untrusted_input), unless its section accepts them; where they are
+ * applied they are counted, and the count survives the state image.
+ */
+static void
+test_untrusted(void **state)
+{
+	static const char *text =
+	    "[guardrail errs]\nmetric = errs\ntest = proportion\n"
+	    "harm = increase\naction = pause\n\n"
+	    "[guardrail slow]\nmetric = slow_ms\ntest = mean\n"
+	    "harm = increase\n\n"
+	    "[experiment quiet]\nplan = control=50 b=50\nguardrails = slow\n"
+	    "\n[experiment guarded]\nplan = control=50 b=50\n\n"
+	    "[experiment opened]\nplan = control=50 b=50\n"
+	    "accept_untrusted = yes\n";
+	uint8_t key[16] = { 9 };
+	struct engine_counters c;
+	struct engine *eng, *copy;
+	struct conf *conf;
+	json_t *img;
+	char *cause = NULL;
+	double now = 1700000000;
+	uint64_t ev = 0;
+
+	(void)state;
+	if (conf_parse(text, "untrusted.conf", &conf, &cause) != 0)
+		fail_msg("config: %s", cause);
+	eng = engine_new(conf, key);
+	/* a new experiment whose family (every guardrail) may pause */
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "plan forged control=1 b=1"), ENGINE_E_UNTRUSTED);
+	/* one whose family only alerts may be planned */
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "plan alerting control=1 b=1 guardrails=slow"), ENGINE_OK);
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "expose alerting b"), ENGINE_OK);
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "expose quiet control"), ENGINE_OK);
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "observe quiet control slow_ms 12.5"), ENGINE_OK);
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "expose guarded control"), ENGINE_E_UNTRUSTED);
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "count guarded b errs 1 1"), ENGINE_E_UNTRUSTED);
+	assert_int_equal(feed_from(eng, 0, now, ++ev,
+	    "expose guarded control"), ENGINE_OK);
+	assert_int_equal(feed_from(eng, 1, now, ++ev,
+	    "expose opened control"), ENGINE_OK);
+	assert_int_equal(feed_from(eng, 0, now, ++ev,
+	    "expose opened b"), ENGINE_OK);
+	assert_int_equal(untrusted_of(eng, "quiet"), 2);
+	assert_int_equal(untrusted_of(eng, "alerting"), 1);
+	assert_int_equal(untrusted_of(eng, "guarded"), 0);
+	assert_int_equal(untrusted_of(eng, "opened"), 1);
+	engine_counters(eng, &c);
+	assert_int_equal(c.rejected[ENGINE_E_UNTRUSTED], 3);
+	assert_string_equal(engine_reason(ENGINE_E_UNTRUSTED),
+	    "untrusted_input");
+
+	img = engine_save(eng);
+	copy = engine_restore(conf, key, img, &cause);
+	assert_non_null(copy);
+	assert_int_equal(untrusted_of(copy, "quiet"), 2);
+	assert_int_equal(untrusted_of(copy, "opened"), 1);
+	/* a new epoch starts the count afresh */
+	assert_int_equal(feed_from(copy, 0, now, ++ev,
+	    "plan quiet control=60 b=40"), ENGINE_OK);
+	assert_int_equal(untrusted_of(copy, "quiet"), 0);
+	json_decref(img);
+	engine_free(copy);
+	engine_free(eng);
+	conf_free(conf);
+}
+
 /* Save, restore, save again: the same image; and both engines then
  * evolve identically under the same further records. */
 static void
@@ -1402,6 +1503,7 @@ main(void)
 		cmocka_unit_test_setup_teardown(test_guardrail_plan_units,
 		    setup, teardown),
 		cmocka_unit_test(test_quantile_outliers),
+		cmocka_unit_test(test_untrusted),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);
