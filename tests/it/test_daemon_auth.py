@@ -29,7 +29,14 @@ independent of the daemon's (OpenSSL).
     under its reason in /metrics;
   - harm from a signed producer pauses (ferry_p);
   - the records are counted per producer and per input;
-  - after a restart a replayed batch is still refused.
+  - after a restart a replayed batch is still refused;
+  - the Unix socket gets unix_mode and unix_group at bind;
+  - an experiment with accept_untrusted takes forged TCP records, counts
+    them, and its pause is refused as untrusted_input.
+
+Part 3, [kafka] signed (librdkafka's mock cluster, tests/tools/kafkamock):
+the four values as message headers; a good batch, a bad signature, an
+unsigned message and a good batch: exactly the good ones count.
 """
 import base64
 import hashlib
@@ -37,11 +44,13 @@ import hmac
 import json
 import os
 import socket
+import subprocess
 import sys
 import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _lib import Daemon, Redis, Tap, metrics, wait_for  # noqa: E402
+from _lib import (BUILD, OUT, Daemon, Redis, Tap, metrics,  # noqa: E402
+                  wait_for)
 from _alertlib import harmful_records  # noqa: E402
 
 GUARDRAILS = """
@@ -375,11 +384,78 @@ accept_untrusted = yes
         d.close()
 
 
+def part_kafka(tap):
+    """[kafka] signed: messages carry the batch's values as headers."""
+    log = open(os.path.join(OUT, "auth-kafkamock.log"), "w")
+    mock = subprocess.Popen(
+        [os.path.join(BUILD, "tests", "kafkamock"), "-b", "1", "-t", "rec:1",
+         "-t", "st:1"], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+        stderr=log, text=True, bufsize=1)
+
+    def cmd(line, payload=()):
+        mock.stdin.write(line + "\n")
+        for p in payload:
+            mock.stdin.write(p + "\n")
+        mock.stdin.flush()
+        return mock.stdout.readline().strip()
+
+    def send(lines, producer="-", key=None, mid="-", ts=None, sig=None):
+        body = "\n".join(lines).encode()
+        ts = int(time.time()) if ts is None else ts
+        if key is not None:
+            sig = signature(key, mid, ts, body)
+        return cmd("hmsg ferry_k %d %s %s %s %s" % (
+            len(lines), producer, mid, ts if producer != "-" else "-",
+            sig or "-"), lines)
+
+    bootstrap = mock.stdout.readline().split()[1]
+    d = Daemon("auth-kafka", tcp=False, udp=False, unix=False, http=True,
+               conf="", start=False)
+    d.write_conf(
+        "[defaults]\nalpha = 0.05\nplan_units = 2000\nlateness = 0\n"
+        "srm_interval = 1ms\n" + GUARDRAILS +
+        "\n[daemon]\nstate = %s\ntick = 200ms\ncheckpoint_every = 1s\n"
+        "http = 127.0.0.1:%d\n" % (d.state, d.http) +
+        "\n[kafka]\nbrokers = %s\ntopic = rec\nstate_topic = st\n"
+        "group = auth\ncommit_every = 200ms\nsession_timeout = 6s\n"
+        "signed = yes\n\n[producer ferry_ops]\nsecret = %s\n"
+        % (bootstrap, whsec(KEY_OPS)))
+    d.start()
+    try:
+        sent = [
+            send(["plan ferry_k control=50 treatment=50"] +
+                 expose("ferry_k", "control", 2), "ferry_ops", KEY_OPS,
+                 "k-1"),
+            send(expose("ferry_k", "treatment", 5), "ferry_ops",
+                 KEY_STRANGER, "k-2"),			# bad signature
+            send(expose("ferry_k", "control", 4)),		# unsigned
+            send(expose("ferry_k", "treatment", 3), "ferry_ops", KEY_OPS,
+                 "k-3"),
+        ]
+        tap.eq(sent, ["ok"] * 4, "kafka: four messages produced")
+        want = {"control": 2, "treatment": 3}
+        got = wait_for(lambda: tallies(d, "ferry_k") if tallies(
+            d, "ferry_k") == want else None, 30)
+        tap.eq(got or tallies(d, "ferry_k"), want,
+               "kafka signed: the two good batches counted, the bad not")
+        m = metrics(d)
+        tap.eq([m.get('stopcock_batches_refused_total{source="kafka",'
+                      'reason="%s"}' % r) for r in ("bad_signature",
+                                                    "unsigned")],
+               [1.0, 1.0], "kafka signed: refusals counted by reason")
+    finally:
+        d.close()
+        cmd("quit")
+        mock.wait(timeout=20)
+        log.close()
+
+
 def main():
     tap = Tap()
     part_defaults(tap)
     with Redis("auth") as redis:
         part_signed(tap, redis)
+    part_kafka(tap)
     tap.done()
 
 

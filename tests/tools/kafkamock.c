@@ -14,6 +14,9 @@
  *   msg KEY N      the next N lines are one message value (joined with
  *                  newlines), produced to the first topic with KEY;
  *                  "ok"
+ *   hmsg KEY N PRODUCER ID TS SIGNATURE
+ *                  the same, with headers producer, id, ts and signature
+ *                  (a signed batch; "-" leaves one header out); "ok"
  *   flush          wait for every message; "flushed DELIVERED FAILED"
  *   down ID, up ID take broker ID (1-based) down or up; "ok"
  *   bounce ID MS   take broker ID down now and up again MS ms later
@@ -171,6 +174,10 @@ main(int argc, char **argv)
 	rd_kafka_mock_cluster_t *mc;
 	rd_kafka_resp_err_t err;
 	char errstr[512], *line, *value, *colon, key[512], group[512];
+	static const char *const hn[4] = { "producer", "id", "ts",
+	    "signature" };
+	char hv[4][128];
+	rd_kafka_headers_t *hdrs;
 	long long offset;
 	const char *topics[KM_TOPICS_MAX];
 	int parts[KM_TOPICS_MAX], ntopics = 0, nbrokers = 3, ch, i, n;
@@ -235,7 +242,16 @@ main(int argc, char **argv)
 	if (line == NULL || value == NULL)
 		km_die("malloc", strerror(errno));
 	while (km_getline(line, KM_LINE_MAX) == 0) {
-		if (sscanf(line, "msg %511s %d", key, &n) == 2) {
+		hdrs = NULL;
+		if (sscanf(line, "hmsg %511s %d %127s %127s %127s %127s", key,
+		    &n, hv[0], hv[1], hv[2], hv[3]) == 6) {
+			hdrs = rd_kafka_headers_new(4);
+			for (i = 0; i < 4; i++)
+				if (strcmp(hv[i], "-") != 0)
+					rd_kafka_header_add(hdrs, hn[i], -1,
+					    hv[i], -1);
+		}
+		if (hdrs != NULL || sscanf(line, "msg %511s %d", key, &n) == 2) {
 			vlen = 0;
 			for (i = 0; i < n; i++) {
 				if (km_getline(line, KM_LINE_MAX) != 0)
@@ -248,7 +264,14 @@ main(int argc, char **argv)
 				memcpy(value + vlen, line, len);
 				vlen += len;
 			}
-			while ((err = rd_kafka_producev(p,
+			/* on success the message owns the headers */
+			while ((err = hdrs != NULL ? rd_kafka_producev(p,
+			    RD_KAFKA_V_TOPIC(topics[0]),
+			    RD_KAFKA_V_KEY(key, strlen(key)),
+			    RD_KAFKA_V_VALUE(value, vlen),
+			    RD_KAFKA_V_HEADERS(hdrs),
+			    RD_KAFKA_V_MSGFLAGS(RD_KAFKA_MSG_F_COPY),
+			    RD_KAFKA_V_END) : rd_kafka_producev(p,
 			    RD_KAFKA_V_TOPIC(topics[0]),
 			    RD_KAFKA_V_KEY(key, strlen(key)),
 			    RD_KAFKA_V_VALUE(value, vlen),
