@@ -513,6 +513,24 @@ static const struct ecase ecases[] = {
 	{ "experiments over cap", "[defaults]\nmax_experiments = 1\n"
 	  "[experiment a]\n[experiment b]\n",
 	  "t.conf:4: more [experiment] sections than max_experiments (1)" },
+	/* producers and signed inputs */
+	{ "producer without secret", "[producer ferry]\n",
+	  "t.conf:1: [producer ferry] has no secret: set secret or "
+	  "secret_file" },
+	{ "signed without producers", "[daemon]\ntcp_signed = yes\n",
+	  "t.conf: an input requires signed batches" },
+	{ "producer bad secret", "[producer ferry]\nsecret = abc\n",
+	  "t.conf:2: bad value (hidden) for 'secret' in [producer ferry]" },
+	{ "duplicate producer", "[producer p]\nsecret = whsec_YWJj\n"
+	  "[producer p]\nsecret = whsec_YWJj\n",
+	  "t.conf:3: duplicate section [producer p] (first at line 1)" },
+	{ "unix_mode not octal", "[daemon]\nunix_mode = 0668\n",
+	  "t.conf:2: bad value '0668' for 'unix_mode' in [daemon]: expected "
+	  "octal permission bits 0-777" },
+	{ "unix_mode too big", "[daemon]\nunix_mode = 1777\n",
+	  "t.conf:2: bad value '1777' for 'unix_mode'" },
+	{ "signature_tolerance zero", "[daemon]\nsignature_tolerance = 0\n",
+	  "t.conf:2: bad value '0' for 'signature_tolerance'" },
 };
 
 static void
@@ -1036,6 +1054,55 @@ test_experiment_guardrails(void **state)
 	free(text);
 }
 
+/* Producers, signed and trusted inputs, the unix socket's mode. */
+static void
+test_auth_keys(void **state)
+{
+	struct conf *c, *d;
+
+	c = good("[daemon]\nunix = /run/s.sock\n");
+	assert_int_equal(c->tcp_signed + c->udp_signed + c->unix_signed +
+	    c->redis_signed + c->kafka_signed, 0);
+	/* the safe default: only the unix socket is trusted */
+	assert_int_equal(c->tcp_trusted, 0);
+	assert_int_equal(c->udp_trusted, 0);
+	assert_int_equal(c->unix_trusted, 1);
+	assert_int_equal(c->redis_trusted, 0);
+	assert_int_equal(c->kafka_trusted, 0);
+	assert_true(c->signature_tolerance == 300);
+	assert_int_equal(c->unix_mode, 0660);
+	assert_null(c->unix_group);
+	conf_free(c);
+
+	c = good("[daemon]\nunix_signed = yes\nunix_mode = 600\n"
+	    "unix_group = stopcock\nsignature_tolerance = 90s\n"
+	    "[redis]\nsigned = yes\ntrusted = yes\n"
+	    "[producer ferry]\nsecret = whsec_YWJj\n"
+	    "previous_secret = whsec_ZGVm\n"
+	    "[producer bakery]\nsecret_file = /etc/stopcock/bakery\n"
+	    "[experiment e]\naccept_untrusted = yes\n");
+	assert_int_equal(c->unix_signed, 1);
+	assert_int_equal(c->unix_mode, 0600);
+	assert_string_equal(c->unix_group, "stopcock");
+	assert_true(c->signature_tolerance == 90);
+	assert_int_equal(c->redis_signed, 1);
+	assert_int_equal(c->redis_trusted, 1);
+	assert_int_equal(c->nproducers, 2);
+	assert_string_equal(c->producers[0].name, "ferry");
+	assert_string_equal(c->producers[0].previous_secret, "whsec_ZGVm");
+	assert_null(c->producers[0].secret_file);
+	assert_string_equal(c->producers[1].secret_file,
+	    "/etc/stopcock/bakery");
+	assert_int_equal(c->experiments[0].accept_untrusted, 1);
+	/* the copy owns its strings */
+	d = conf_dup(c);
+	conf_free(c);
+	assert_string_equal(d->producers[0].secret, "whsec_YWJj");
+	assert_string_equal(d->producers[1].secret_file,
+	    "/etc/stopcock/bakery");
+	conf_free(d);
+}
+
 int
 main(void)
 {
@@ -1044,6 +1111,7 @@ main(void)
 		cmocka_unit_test(test_defaults),
 		cmocka_unit_test(test_section_defaults),
 		cmocka_unit_test(test_errors),
+		cmocka_unit_test(test_auth_keys),
 		cmocka_unit_test(test_accepted),
 		cmocka_unit_test(test_multiple_errors),
 		cmocka_unit_test(test_error_cap),
