@@ -194,6 +194,38 @@ auth_configure(struct auth *a, const struct conf *c, char **cause)
 	return 0;
 }
 
+/*
+ * Say at start which inputs cannot feed a pause: after an upgrade, an
+ * unsigned Redis feed that used to pause experiments is refused for them
+ * (untrusted_input), and the log should say why before anyone looks.
+ */
+static void
+auth_log_inputs(const struct conf *c)
+{
+	static const enum source inputs[] = {
+		SRC_TCP, SRC_UDP, SRC_UNIX, SRC_REDIS, SRC_KAFKA
+	};
+	const char *set[] = { c->tcp, c->udp, c->unix_path, c->redis_address,
+	    c->kafka_brokers };
+	size_t i;
+	int g, pauses = 0;
+
+	for (g = 0; g < c->nguardrails; g++)
+		pauses |= c->guardrails[g].action == ACTION_PAUSE;
+	for (i = 0; i < SC_NELEM(inputs); i++) {
+		if (set[i] == NULL)
+			continue;
+		if (auth_signed(c, inputs[i]))
+			log_info("auth: input source=%s takes signed batches "
+			    "only", source_name(inputs[i]));
+		else if (!auth_trusted(c, inputs[i]) && pauses)
+			log_warnx("auth: input source=%s is unsigned and not "
+			    "trusted: its records are refused for experiments "
+			    "a guardrail may pause (untrusted_input)",
+			    source_name(inputs[i]));
+	}
+}
+
 struct auth *
 auth_new(struct daemon *d, char **cause)
 {
@@ -207,6 +239,7 @@ auth_new(struct daemon *d, char **cause)
 		free(a);
 		return NULL;
 	}
+	auth_log_inputs(d->conf);
 	return a;
 }
 
