@@ -26,6 +26,7 @@
  * Resolved alerts are kept (bounded) so a replay never pages again. The
  * state is saved in the checkpoint (alert_save / alert_restore).
  */
+#include <inttypes.h>
 #include <math.h>
 #include <stdarg.h>
 #include <stdio.h>
@@ -91,6 +92,8 @@ struct alert {
 	uint64_t		 untrusted_safe;	/* safe under SRM */
 	struct event		*am_timer;	/* Alertmanager refreshes */
 	double			 am_resend;
+	struct alert_journal	*journal;	/* NULL until started */
+	uint64_t		 jseq;		/* newest event journaled */
 };
 
 /* The names in syslog, webhooks, the API, metrics and the state. */
@@ -112,6 +115,9 @@ static const uint32_t alert_kind_bits[ALERT_NKINDS] = {
 	[ALERT_PAUSE] = CONF_KIND_PAUSE,
 	[ALERT_PAUSE_DRY_RUN] = CONF_KIND_DRY_RUN,
 };
+
+static void	alert_journal_note(struct alert *,
+		    const struct alert_entry *);
 
 /*
  * syslog(3) keeps the ident pointer for the life of the process, so it
@@ -381,6 +387,7 @@ alert_emit(struct alert *a, struct alert_entry *e, enum alert_ev ev)
 	char *id, more[64] = "";
 	json_t *body;
 
+	alert_journal_note(a, e);
 	if (ev == EV_REMINDER)
 		snprintf(more, sizeof more, " reminder=%u", e->reminders);
 	else if (ev == EV_RESOLVED)
@@ -726,43 +733,62 @@ alert_free(struct alert *a)
 		event_free(a->am_timer);
 	if (a->remind != NULL)
 		event_free(a->remind);
+	alert_journal_free(a->journal);
 	for (i = 0; i < a->n; i++)
 		alert_entry_free(a->v[i]);
 	free(a->v);
 	free(a);
 }
 
+/* One alert as the checkpoint and the journal keep it. */
+static json_t *
+alert_entry_save(const struct alert_entry *e)
+{
+	json_t *o;
+
+	o = json_pack("{s:s, s:s, s:I, s:s, s:s, s:s, s:s, s:i, s:f, "
+	    "s:f, s:I, s:s, s:O, s:s}",
+	    "id", e->id, "experiment", e->experiment, "epoch",
+	    (json_int_t)e->epoch, "guardrail", e->guardrail, "variant",
+	    e->variant, "alert", alert_kinds[e->kind], "state",
+	    alert_states[e->state], "priority", e->priority,
+	    "first_seen", e->first_seen, "last_sent", e->last_sent,
+	    "reminders", (json_int_t)e->reminders, "line", e->line,
+	    "body", e->body, "severity", alert_sevs[e->severity]);
+	if (isfinite(e->epoch_start))
+		json_object_set_new(o, "epoch_start", json_real(e->epoch_start));
+	if (e->state == ALERT_RESOLVED) {
+		json_object_set_new(o, "resolved_at", json_real(e->resolved_at));
+		json_object_set_new(o, "resolution", json_string(e->resolution ?
+		    e->resolution : "closed"));
+	}
+	return o;
+}
+
+/* Before any output hears of an event, the journal has it on disk. */
+static void
+alert_journal_note(struct alert *a, const struct alert_entry *e)
+{
+	json_t *o;
+
+	if (a->journal == NULL)
+		return;
+	o = alert_entry_save(e);
+	a->jseq++;
+	alert_journal_append(a->journal, a->jseq, o);
+	json_decref(o);
+}
+
 json_t *
 alert_save(struct alert *a)
 {
-	struct alert_entry *e;
-	json_t *list = json_array(), *o;
+	json_t *list = json_array();
 	size_t i;
 
-	for (i = 0; a != NULL && i < a->n; i++) {
-		e = a->v[i];
-		o = json_pack("{s:s, s:s, s:I, s:s, s:s, s:s, s:s, s:i, s:f, "
-		    "s:f, s:I, s:s, s:O, s:s}",
-		    "id", e->id, "experiment", e->experiment, "epoch",
-		    (json_int_t)e->epoch, "guardrail", e->guardrail, "variant",
-		    e->variant, "alert", alert_kinds[e->kind], "state",
-		    alert_states[e->state], "priority", e->priority,
-		    "first_seen", e->first_seen, "last_sent", e->last_sent,
-		    "reminders", (json_int_t)e->reminders, "line", e->line,
-		    "body", e->body, "severity", alert_sevs[e->severity]);
-		if (isfinite(e->epoch_start))
-			json_object_set_new(o, "epoch_start",
-			    json_real(e->epoch_start));
-		if (e->state == ALERT_RESOLVED) {
-			json_object_set_new(o, "resolved_at",
-			    json_real(e->resolved_at));
-			json_object_set_new(o, "resolution",
-			    json_string(e->resolution ? e->resolution :
-			    "closed"));
-		}
-		json_array_append_new(list, o);
-	}
-	return json_pack("{s:i, s:o}", "version", 1, "alerts", list);
+	for (i = 0; a != NULL && i < a->n; i++)
+		json_array_append_new(list, alert_entry_save(a->v[i]));
+	return json_pack("{s:i, s:o, s:I}", "version", 1, "alerts", list,
+	    "journal_seq", (json_int_t)(a != NULL ? a->jseq : 0));
 }
 
 /* A saved word back to its index in names; -1 when unknown. */
@@ -851,7 +877,7 @@ int
 alert_restore(struct alert *a, const json_t *j, char **cause)
 {
 	struct alert_entry **v = NULL, *e;
-	const json_t *list;
+	const json_t *list, *seq;
 	json_int_t version;
 	size_t i, n = 0;
 
@@ -876,18 +902,86 @@ alert_restore(struct alert *a, const json_t *j, char **cause)
 		v = xreallocarray(v, n + 1, sizeof *v);
 		v[n++] = e;
 	}
-	/* All or nothing: the current state goes only now. */
+	/* All or nothing: the current state goes only now. Written before
+	 * the journal existed: no journal_seq, and every line is newer. */
 	for (i = 0; i < a->n; i++)
 		alert_entry_free(a->v[i]);
 	free(a->v);
 	a->v = v;
 	a->n = n;
+	seq = json_object_get(j, "journal_seq");
+	a->jseq = json_is_integer(seq) && json_integer_value(seq) > 0 ?
+	    (uint64_t)json_integer_value(seq) : 0;
 	return 0;
 fail:
 	for (i = 0; i < n; i++)
 		alert_entry_free(v[i]);
 	free(v);
 	return -1;
+}
+
+/* One journaled event over the restored state: it replaces the alert's
+ * older self, or joins the state when the checkpoint never saw it. */
+static void
+alert_journal_lay(void *arg, uint64_t seq, const json_t *j)
+{
+	struct alert *a = arg;
+	struct alert_entry *e, *old;
+	char *cause = NULL;
+	size_t i;
+
+	if (seq > a->jseq)
+		a->jseq = seq;
+	if ((e = alert_restore_one(j, &cause)) == NULL) {
+		log_warnx("alert journal: event %" PRIu64 " refused: %s", seq,
+		    cause);
+		free(cause);
+		return;
+	}
+	alert_journal_replayed(a->journal);
+	if ((old = alert_find(a, e->id)) != NULL) {
+		for (i = 0; a->v[i] != old; i++)
+			;
+		alert_entry_free(old);
+		a->v[i] = e;
+	} else
+		alert_insert(a, e);
+}
+
+/*
+ * After the checkpoint is restored (or there was none): events journaled
+ * after its snapshot are laid over it, so what a crash interrupted is
+ * remembered and never sent twice; from now on every event is journaled.
+ */
+int
+alert_start_journal(struct alert *a, const char *dir, char **cause)
+{
+	uint64_t from = a->jseq;
+
+	if ((a->journal = alert_journal_open(dir, cause)) == NULL)
+		return -1;
+	if (alert_journal_replay(a->journal, from, alert_journal_lay, a) != 0)
+		log_warnx("alert journal: not read; alerts raised since the "
+		    "last checkpoint may be sent again");
+	if (a->jseq > from)
+		log_info("alert journal: events %" PRIu64 "-%" PRIu64 " laid "
+		    "over the checkpoint", from + 1, a->jseq);
+	return 0;
+}
+
+/* The sequence number a checkpoint taken now covers. */
+uint64_t
+alert_journal_seq(const struct alert *a)
+{
+	return a != NULL ? a->jseq : 0;
+}
+
+/* A checkpoint covering events up to seq is on disk. */
+void
+alert_journal_done(struct alert *a, uint64_t seq)
+{
+	if (a != NULL)
+		alert_journal_covered(a->journal, seq);
 }
 
 json_t *
@@ -949,4 +1043,5 @@ alert_metrics(struct alert *a, struct evbuffer *b)
 	    a->duplicates);
 	metrics_counter(b, "stopcock_alerts_evicted_total", "Alerts forgotten "
 	    "because more than the limit were held.", a->evicted);
+	alert_journal_metrics(a->journal, b);
 }

@@ -26,4 +26,17 @@ char	*alert_text_fields(const struct finding *, const char *id,
 	    enum alert_kind, const char *kind_name, const char *severity,
 	    const char *link, const char *unit);
 
+/* The alerts' write-ahead log (alert_journal.c). */
+struct alert_journal;
+struct alert_journal *alert_journal_open(const char *dir, char **cause);
+void	alert_journal_free(struct alert_journal *);
+void	alert_journal_append(struct alert_journal *, uint64_t seq,
+	    const json_t *entry);
+int	alert_journal_replay(struct alert_journal *, uint64_t after,
+	    void (*)(void *, uint64_t, const json_t *), void *);
+void	alert_journal_replayed(struct alert_journal *);
+void	alert_journal_covered(struct alert_journal *, uint64_t seq);
+void	alert_journal_metrics(const struct alert_journal *,
+	    struct evbuffer *);
+
 #endif

@@ -73,6 +73,7 @@ struct ckpt {
 	int		 fd;		/* read end of the child's pipe */
 	struct event	*ev;
 	char		*covered;	/* Redis ID applied at the fork */
+	uint64_t	 jseq;		/* alert journal event at the fork */
 	char		*why;
 	double		 start;
 	char		 cause[CKPT_CAUSE_MAX];
@@ -160,11 +161,13 @@ ckpt_store(struct daemon *d, char **cause)
 	return rc;
 }
 
-/* A checkpoint holding everything up to Redis ID covered is on disk. */
+/* A checkpoint holding everything up to Redis ID covered, and the alert
+ * journal's events up to jseq, is on disk. */
 static void
-ckpt_done(struct daemon *d, const char *covered, double start)
+ckpt_done(struct daemon *d, const char *covered, uint64_t jseq, double start)
 {
 	d->checkpoints++;
+	alert_journal_done(d->alert, jseq);
 	d->last_checkpoint = daemon_now();
 	log_debug("checkpoint written ms=%.1f redis_last_id=%s",
 	    (d->last_checkpoint - start) * 1e3, covered);
@@ -179,6 +182,7 @@ int
 ckpt_write(struct daemon *d, char **cause)
 {
 	char *covered;
+	uint64_t jseq = alert_journal_seq(d->alert);
 	double start = daemon_now();
 
 	if (d->ckpt != NULL && d->ckpt->pid != 0) {
@@ -190,7 +194,7 @@ ckpt_write(struct daemon *d, char **cause)
 		free(covered);
 		return -1;
 	}
-	ckpt_done(d, covered, start);
+	ckpt_done(d, covered, jseq, start);
 	free(covered);
 	return 0;
 }
@@ -250,7 +254,7 @@ ckpt_reap(struct ckpt *c, int wait)
 	if (pid == -1)
 		log_warn("checkpoint: waitpid");
 	else if (WIFEXITED(status) && WEXITSTATUS(status) == 0)
-		ckpt_done(d, c->covered, c->start);
+		ckpt_done(d, c->covered, c->jseq, c->start);
 	else if (c->causelen > 0)
 		log_warnx("checkpoint failed (%s): %.*s", c->why,
 		    (int)c->causelen, c->cause);
@@ -322,6 +326,7 @@ ckpt_start(struct daemon *d, const char *why)
 	}
 	c->covered = xstrdup(d->redis != NULL ? redis_in_last_id(d->redis) :
 	    "");
+	c->jseq = alert_journal_seq(d->alert);
 	c->start = daemon_now();
 	free(c->why);
 	c->why = xstrdup(why);

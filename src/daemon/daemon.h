@@ -22,6 +22,8 @@
  *   alert.c     findings -> alerts: identity, lifecycle, severity,
  *               routing, syslog (alert_*)
  *   alert_text.c  an alert's summary and syslog fields (alert_text_*)
+ *   alert_journal.c  alert events on disk before they are sent
+ *                 (alert_journal_*)
  *   alertmgr.c  alerts in the Alertmanager API's form (alertmgr_*)
  *   webhook.c   signed webhooks over libcurl multi, spooled (webhook_*)
  *   pause.c     auto-pause: rules, audit log, HTTP + Redis delivery (pause_*)
@@ -309,6 +311,10 @@ int		 alert_close(struct alert *, const char *experiment,
 		    const char *guardrail, const char *variant, char **cause);
 json_t		*alert_save(struct alert *);
 int		 alert_restore(struct alert *, const json_t *, char **cause);
+int		 alert_start_journal(struct alert *, const char *dir,
+		    char **cause);
+uint64_t	 alert_journal_seq(const struct alert *);
+void		 alert_journal_done(struct alert *, uint64_t seq);
 json_t		*alert_json(struct alert *);	/* raised alerts */
 void		 alert_metrics(struct alert *, struct evbuffer *);
 

@@ -532,6 +532,8 @@ daemon_start(struct daemon *d)
 	if (ckpt_restore(d, &cause) != 0)
 		daemon_fatal(d, SC_EX_DATAERR, "%s; refusing to start (move "
 		    "the file away to start afresh)", cause);
+	if (alert_start_journal(d->alert, d->state_dir, &cause) != 0)
+		daemon_fatal(d, SC_EX_OSERR, "alerts: %s", cause);
 	if (d->engine != NULL && d->conf->kafka_brokers != NULL) {
 		/* Kafka experiments come back from the state topic, which
 		 * also says where to resume; a local copy would be stale. */
