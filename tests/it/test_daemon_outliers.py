@@ -82,7 +82,9 @@ max_per_hour = 100
 """ % (ops.url, SECRET, prcv.url, PAUSE_SECRET)
     with Daemon("outliers", guardrails=GUARDRAILS, extra=extra, udp=False,
                 unix=False, http=True,
-                daemon_keys={"checkpoint_every": "5s"}) as d:
+                # unsigned TCP, trusted here so auto-pause acts on it
+                daemon_keys={"checkpoint_every": "5s",
+                             "tcp_trusted": "yes"}) as d:
         for k, (exp, big) in enumerate(EXPS.items()):
             d.send_tcp(records(exp, big, 70 + k))
         # The harm on "slower" shows the tests have looked; then give
