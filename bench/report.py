@@ -74,6 +74,7 @@ res = {
                "replay_vs_wc_target": 0.2},
     "tcp": dict(ingest["tcp"], target=5e6,
                 met=ingest["tcp"]["records_per_second"] >= 5e6),
+    "tcp_signed": ingest.get("tcp_signed"),
     "redis": dict(ingest["redis"], target_ratio=1.0,
                   met=ingest["redis"]["ratio"] >= 1.0),
     "memory": dict(mem, target_bytes_per_series=8192,
@@ -162,6 +163,11 @@ t = r["tcp"]
 line("TCP ingest %d records/s (%d records, %.2f s; target >= 5e6)" %
      (t["records_per_second"], t["lines"], t["seconds"]), t["met"],
      ("tcp", "records_per_second"))
+t = r["tcp_signed"]
+if t:
+    line("TCP signed %d records/s (%d records in %d signed batches, %.2f s; "
+         "%.3f of plain TCP)" % (t["records_per_second"], t["records"],
+                                t["batches"], t["seconds"], t["vs_tcp"]))
 t = r["redis"]
 line("Redis      %d records/s (%d records in %d entries, %.2f s); "
      "redis-benchmark XADD %.0f entries/s = %d records/s; ratio %.3f "
