@@ -403,9 +403,19 @@ auth_metrics(struct daemon *d, struct evbuffer *b)
 	}
 	for (s = 0; s < SRC_N; s++)
 		evbuffer_add_printf(b, "stopcock_source_records_total{input="
-		    "\"%s\",trusted=\"%s\"} %" PRIu64 "\n", source_name(s),
-		    auth_trusted(d->conf, s) ? "yes" : "no",
+		    "\"%s\"} %" PRIu64 "\n", source_name(s),
 		    c->unsigned_records[s]);
+	/* gauges, not labels of the counter: a reload may change them */
+	metrics_family(b, "stopcock_input_signed", "gauge",
+	    "1 when the input takes signed batches only.");
+	for (s = 0; s < SRC_N; s++)
+		evbuffer_add_printf(b, "stopcock_input_signed{input=\"%s\"} "
+		    "%d\n", source_name(s), auth_signed(d->conf, s));
+	metrics_family(b, "stopcock_input_trusted", "gauge",
+	    "1 when auto-pause may act on the input's records.");
+	for (s = 0; s < SRC_N; s++)
+		evbuffer_add_printf(b, "stopcock_input_trusted{input=\"%s\"} "
+		    "%d\n", source_name(s), auth_trusted(d->conf, s));
 }
 
 /*

@@ -221,12 +221,14 @@ def part_defaults(tap):
                "defaults: every forged TCP record counted untrusted_input")
         tap.eq(udp, float(len(forged_c)),
                "defaults: every forged UDP record counted untrusted_input")
-        tap.eq(m.get('stopcock_source_records_total{input="unix",'
-                     'trusted="yes"}'), float(len(real_b)),
-               "defaults: the unix records counted by their input, trusted")
-        tap.eq(m.get('stopcock_source_records_total{input="tcp",'
-                     'trusted="no"}'), 0.0,
+        tap.eq(m.get('stopcock_source_records_total{input="unix"}'),
+               float(len(real_b)),
+               "defaults: the unix records counted by their input")
+        tap.eq(m.get('stopcock_source_records_total{input="tcp"}'), 0.0,
                "defaults: no TCP record applied")
+        tap.eq([m.get('stopcock_input_trusted{input="%s"}' % i)
+                for i in ("tcp", "udp", "unix")], [0.0, 0.0, 1.0],
+               "defaults: only the unix socket is trusted")
     finally:
         d.close()
 
