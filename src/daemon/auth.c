@@ -145,8 +145,10 @@ auth_find(struct auth *a, const char *name)
 {
 	int i;
 
+	/* fp is NULL for one auth_configure has taken over */
 	for (i = 0; i < a->nprod; i++)
-		if (strcmp(frame_producer_name(a->prod[i].fp), name) == 0)
+		if (a->prod[i].fp != NULL &&
+		    strcmp(frame_producer_name(a->prod[i].fp), name) == 0)
 			return &a->prod[i];
 	return NULL;
 }

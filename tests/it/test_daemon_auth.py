@@ -43,6 +43,7 @@ import hashlib
 import hmac
 import json
 import os
+import signal
 import socket
 import subprocess
 import sys
@@ -372,13 +373,35 @@ accept_untrusted = yes
             "harbour", {}).get("records"), hb,
             "signed: /api/health shows the records per producer")
 
+        # a key rotation by reload: the new secret, the old one still
+        # accepted; the ids taken before are still refused
+        KEY_NEW = b"ferry-ops-batch-signing-key-0002"
+        d.write_conf(d.conf_text.replace(
+            "secret = %s\n" % whsec(KEY_OPS),
+            "secret = %s\nprevious_secret = %s\n" % (whsec(KEY_NEW),
+                                                    whsec(KEY_OPS))))
+        d.signal(signal.SIGHUP)
+        tap.ok(wait_for(lambda: d.log_text().count(
+            "reload: configuration in force") >= 1, 10),
+            "rotation: the reload took the new secret")
+        d.send_unix(b"".join([
+            frame("ferry_ops", KEY_NEW, "ops-rot-1",
+                  expose("ferry_s", "treatment", 2)),
+            frame("ferry_ops", KEY_OPS, "ops-rot-2",
+                  expose("ferry_s", "treatment", 1)),
+            good1]))
+        want_t = {"control": 49, "treatment": 38}
+        tap.eq(tallies(d, "ferry_s"), want_t,
+               "rotation: batches under the new and the previous secret "
+               "count; a batch taken before the reload is still refused")
+
         # a restart keeps the replay floor: the same batch again is refused
         d.stop()
         d.start()
         d.send_unix(good1)
         m = metrics(d)
         tap.eq(m.get('stopcock_batches_refused_total{source="unix",'
-                     'reason="replayed"}'), 2.0,
+                     'reason="replayed"}'), 3.0,
                "restart: a replayed batch is still refused")
         tap.eq(tallies(d, "ferry_s"), want_t,
                "restart: the tallies did not move")
