@@ -182,6 +182,11 @@ void		 ckpt_start(struct daemon *, const char *why);
 int		 ckpt_write(struct daemon *, char **cause);
 void		 ckpt_free(struct daemon *);
 int		 ckpt_restore(struct daemon *, char **cause);
+/* Replace the running daemon's state (engine, alerts, counters, Redis
+ * position in d->restored_redis_id) with a checkpoint image, all or
+ * nothing: a standby taking over from the checkpoint in Redis. */
+int		 ckpt_adopt(struct daemon *, const char *image, size_t len,
+		    char **cause);
 
 /* listen.c */
 struct listen	*listen_new(struct daemon *, char **cause);
@@ -201,6 +206,17 @@ struct redis_in	*redis_in_new(struct daemon *, const char *last_id,
 void		 redis_in_free(struct redis_in *);
 const char	*redis_in_last_id(struct redis_in *);
 void		 redis_in_covered(struct redis_in *, const char *last_id);
+/* [redis] ha: the checkpoint goes to Redis under the lease. */
+int		 redis_in_ha(struct redis_in *);
+/* A periodic checkpoint is worth writing: not a standby under ha. */
+int		 redis_in_may_checkpoint(struct redis_in *);
+/* Store a checkpoint image in Redis under the lease (synchronous: the
+ * writer child, or shutdown, which also gives the lease up). 0 stored,
+ * 1 refused (another daemon holds the lease), -1 failed. */
+int		 redis_in_state_store(struct redis_in *, const char *const *,
+		    const size_t *, int nparts, int release, char **cause);
+/* A checkpoint Redis refused (the writer's outcome, in the parent). */
+void		 redis_in_fenced(struct redis_in *);
 /* Shutdown: drop the connection and stop reconnecting. Delivered but
  * unapplied entries stay pending in Redis for the next start. */
 void		 redis_in_stop(struct redis_in *);
