@@ -10,6 +10,9 @@
  *   redis_in.c  the Redis stream consumer (hiredis async)    (redis_in_*)
  *   redis_house.c  its housekeeping: acks, dead letters, reclaiming,
  *               lag (redis_house_*; shares redis_in_int.h)
+ *   redis_lease.c  one consumer per group by a lease in Redis; under
+ *               [redis] ha the fenced reads and the checkpoint in Redis
+ *               (redis_lease_*; shares redis_in_int.h)
  *   kafka_in.c  the Kafka consumer: partitions, rebalances (kafka_in_*);
  *               kafka_state.c: each partition's state and offset in
  *               one transaction, read back on assignment (kafka_state_*;

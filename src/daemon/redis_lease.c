@@ -411,6 +411,10 @@ redis_lease_tick_cb(evutil_socket_t fd, short what, void *arg)
 	struct redis_lease *l = arg;
 	double now = daemon_now();
 
+	/* Shutting down: the last checkpoint gave the lease up; taking it
+	 * again now would only make a standby wait for it to expire. */
+	if (l->d->draining)
+		return;
 	if ((l->role == LR_ACTIVE || l->role == LR_RESTORING) &&
 	    now - l->confirmed >= l->ttl * LEASE_VALID_PART) {
 		l->lapses++;

@@ -18,7 +18,9 @@ share of sailings that leave late.
     and resumed: Redis refuses its stale write (fenced counter), it
     applies nothing more, its role is no longer active, and the state
     key holds A's checkpoint only. A's tallies equal everything written.
- 4. Without ha, a second daemon on the same group refuses to consume (log,
+ 4. A stopped with SIGTERM gives the lease up with its last checkpoint;
+    B takes it.
+ 5. Without ha, a second daemon on the same group refuses to consume (log,
     role "refused", counter); the first applies every entry and the
     group has one consumer: nothing split.
 
@@ -233,6 +235,18 @@ def ha_run(tap):
                    "the checkpoint in Redis is A's")
             tap.ok("refused by Redis" in b.log_text(),
                    "B's log says its checkpoint was refused")
+            # A clean stop of the holder gives the lease up with its last
+            # checkpoint: nobody has to wait for it to expire.
+            with open(os.path.join(a.state, "redis-lease")) as f:
+                token_a = f.read().strip()
+            tap.eq(a.stop(), 0, "A stops cleanly")
+            held = redis.cmd("GET", "%s:stopcock:lease" % STREAM)
+            if isinstance(held, bytes):
+                held = held.decode()
+            tap.ok(held != token_a, "A gave the lease up as it stopped")
+            tap.ok(wait_for(lambda: role(b) == "active", 5, 0.05),
+                   "B took the lease A gave up")
+            exact(tap, b, feed, "after A handed over")
         finally:
             a.close()
             b.close()
