@@ -122,7 +122,7 @@ ckpt_build(struct daemon *d, char **cause)
 	    json_integer((json_int_t)d->checkpoints + 1));
 	json_object_set_new(root, "counters", counters);
 	json_object_set_new(root, "summary", engine_json_list(d->engine));
-	if (redis_in_ha(d->redis))
+	if (redis_lease_ha(redis_in_lease(d->redis)))
 		/* Which daemon wrote the checkpoint in Redis, for people
 		 * (and tests) reading it; restore ignores it. */
 		json_object_set_new(root, "writer", json_pack("{s:I}", "pid",
@@ -140,6 +140,7 @@ ckpt_store(struct daemon *d, char **cause)
 	const char *parts[2];
 	size_t lens[2], len;
 	char sha[65];
+	struct redis_lease *lease = redis_in_lease(d->redis);
 	int rc = -1;
 
 	if ((root = ckpt_build(d, cause)) == NULL)
@@ -160,8 +161,8 @@ ckpt_store(struct daemon *d, char **cause)
 	lens[1] = len;
 	/* Under ha the copy in Redis is the one that counts: written first,
 	 * under the lease; the file is then a local copy of it. */
-	if (redis_in_ha(d->redis) && (rc = redis_in_state_store(d->redis,
-	    parts, lens, 2, d->draining, cause)) != 0) {
+	if (redis_lease_ha(lease) && (rc = redis_lease_store(lease, parts,
+	    lens, 2, d->draining, cause)) != 0) {
 		if (rc == 1)
 			rc = CKPT_FENCED;
 		free(payload);
@@ -208,7 +209,7 @@ ckpt_write(struct daemon *d, char **cause)
 	covered = xstrdup(d->redis != NULL ? redis_in_last_id(d->redis) : "");
 	if ((rc = ckpt_store(d, cause)) != 0) {
 		if (rc == CKPT_FENCED) {
-			redis_in_fenced(d->redis);
+			redis_lease_fenced(redis_in_lease(d->redis));
 			*cause = xstrdup("refused by Redis: another daemon holds "
 			    "the lease");
 		}
@@ -279,7 +280,7 @@ ckpt_reap(struct ckpt *c, int wait)
 	else if (WIFEXITED(status) && WEXITSTATUS(status) == 0)
 		ckpt_done(d, c->covered, c->start);
 	else if (WIFEXITED(status) && WEXITSTATUS(status) == CKPT_EXIT_FENCED) {
-		redis_in_fenced(d->redis);
+		redis_lease_fenced(redis_in_lease(d->redis));
 		log_warnx("checkpoint refused by Redis (%s): another daemon "
 		    "holds the lease; this one changes nothing", c->why);
 	}

@@ -12,7 +12,8 @@
  *               lag (redis_house_*; shares redis_in_int.h)
  *   redis_lease.c  one consumer per group by a lease in Redis; under
  *               [redis] ha the fenced reads and the checkpoint in Redis
- *               (redis_lease_*; shares redis_in_int.h)
+ *               (redis_lease_*; shares redis_in_int.h); redis_in_sid.c
+ *               stream entry IDs (redis_in_sid_*)
  *   kafka_in.c  the Kafka consumer: partitions, rebalances (kafka_in_*);
  *               kafka_state.c: each partition's state and offset in
  *               one transaction, read back on assignment (kafka_state_*;
@@ -209,17 +210,8 @@ struct redis_in	*redis_in_new(struct daemon *, const char *last_id,
 void		 redis_in_free(struct redis_in *);
 const char	*redis_in_last_id(struct redis_in *);
 void		 redis_in_covered(struct redis_in *, const char *last_id);
-/* [redis] ha: the checkpoint goes to Redis under the lease. */
-int		 redis_in_ha(struct redis_in *);
-/* A periodic checkpoint is worth writing: not a standby under ha. */
-int		 redis_in_may_checkpoint(struct redis_in *);
-/* Store a checkpoint image in Redis under the lease (synchronous: the
- * writer child, or shutdown, which also gives the lease up). 0 stored,
- * 1 refused (another daemon holds the lease), -1 failed. */
-int		 redis_in_state_store(struct redis_in *, const char *const *,
-		    const size_t *, int nparts, int release, char **cause);
-/* A checkpoint Redis refused (the writer's outcome, in the parent). */
-void		 redis_in_fenced(struct redis_in *);
+/* The consumer's lease (redis_lease.c); NULL without a consumer. */
+struct redis_lease *redis_in_lease(struct redis_in *);
 /* Shutdown: drop the connection and stop reconnecting. Delivered but
  * unapplied entries stay pending in Redis for the next start. */
 void		 redis_in_stop(struct redis_in *);
@@ -227,6 +219,22 @@ void		 redis_in_stop(struct redis_in *);
 int64_t		 redis_in_lag(struct redis_in *);
 void		 redis_in_metrics(struct redis_in *, struct evbuffer *);
 json_t		*redis_in_json(struct redis_in *);
+
+/* redis_lease.c, what the rest of the daemon asks of the lease; each
+ * takes NULL (no Redis input) as "no lease". [redis] ha: the checkpoint
+ * goes to Redis under the lease. */
+struct redis_lease;
+int		 redis_lease_ha(const struct redis_lease *);
+/* A checkpoint (periodic, final) or an idle retirement is this daemon's
+ * to make: not a standby under ha. */
+int		 redis_lease_may_checkpoint(const struct redis_lease *);
+/* Store a checkpoint image in Redis under the lease (synchronous: the
+ * writer child, or shutdown, which also gives the lease up). 0 stored,
+ * 1 refused (another daemon holds the lease), -1 failed. */
+int		 redis_lease_store(struct redis_lease *, const char *const *,
+		    const size_t *, int nparts, int release, char **cause);
+/* A checkpoint Redis refused (the writer's outcome, in the parent). */
+void		 redis_lease_fenced(struct redis_lease *);
 
 /* dispatch.c: the engine's sink. dispatch_finding only queues; the
  * queue drains on the loop, or now with dispatch_drain (before the alert

@@ -69,65 +69,6 @@
 static void	redis_in_connect(struct redis_in *);
 static void	redis_in_trim_flush(struct redis_in *);
 
-int
-redis_in_sid_parse(const char *s, size_t len, struct sid *out)
-{
-	char buf[SID_BUF], *dash, *end;
-
-	if (len == 0 || len >= sizeof buf)
-		return -1;
-	memcpy(buf, s, len);
-	buf[len] = '\0';
-	if (buf[0] < '0' || buf[0] > '9')
-		return -1;
-	errno = 0;
-	out->ms = strtoull(buf, &dash, 10);
-	if (errno != 0 || *dash != '-' || dash[1] < '0' || dash[1] > '9')
-		return -1;
-	out->seq = strtoull(dash + 1, &end, 10);
-	if (errno != 0 || *end != '\0')
-		return -1;
-	return 0;
-}
-
-const char *
-redis_in_sid_fmt(struct sid id, char *buf)
-{
-	snprintf(buf, SID_BUF, "%" PRIu64 "-%" PRIu64, id.ms, id.seq);
-	return buf;
-}
-
-int
-redis_in_sid_cmp(struct sid a, struct sid b)
-{
-	if (a.ms != b.ms)
-		return a.ms < b.ms ? -1 : 1;
-	if (a.seq != b.seq)
-		return a.seq < b.seq ? -1 : 1;
-	return 0;
-}
-
-/* The smallest ID after id (for inclusive ranges on old servers). */
-struct sid
-redis_in_sid_next(struct sid id)
-{
-	if (id.seq == UINT64_MAX) {
-		id.ms++;
-		id.seq = 0;
-	} else
-		id.seq++;
-	return id;
-}
-
-int
-redis_in_sid_reply(const redisReply *r, struct sid *out)
-{
-	if (r == NULL || (r->type != REDIS_REPLY_STRING &&
-	    r->type != REDIS_REPLY_STATUS))
-		return -1;
-	return redis_in_sid_parse(r->str, r->len, out);
-}
-
 static const char *
 redis_in_state_name(enum redis_in_state s)
 {
@@ -967,31 +908,10 @@ redis_in_position(struct redis_in *r, const char *last_id)
 	r->covered_gen++;
 }
 
-int
-redis_in_ha(struct redis_in *r)
+struct redis_lease *
+redis_in_lease(struct redis_in *r)
 {
-	return r != NULL && r->ha;
-}
-
-int
-redis_in_may_checkpoint(struct redis_in *r)
-{
-	return r == NULL || !r->ha || redis_lease_valid(r->lease);
-}
-
-int
-redis_in_state_store(struct redis_in *r, const char *const *parts,
-    const size_t *lens, int nparts, int release, char **cause)
-{
-	return redis_lease_store(r->lease, parts, lens, nparts, release,
-	    cause);
-}
-
-void
-redis_in_fenced(struct redis_in *r)
-{
-	if (r != NULL)
-		redis_lease_fenced(r->lease);
+	return r != NULL ? r->lease : NULL;
 }
 
 void

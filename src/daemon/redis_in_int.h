@@ -202,7 +202,6 @@ struct redis_lease *redis_lease_new(struct redis_in *, char **cause);
 void		 redis_lease_free(struct redis_lease *);
 /* Ours, confirmed recently enough to read and apply now. */
 int		 redis_lease_valid(const struct redis_lease *);
-int		 redis_lease_ha(const struct redis_lease *);
 const char	*redis_lease_key(const struct redis_lease *);
 const char	*redis_lease_token(const struct redis_lease *);
 const char	*redis_lease_role(struct redis_lease *);
@@ -210,9 +209,6 @@ void		 redis_lease_lost(struct redis_lease *);
 /* Under ha, the consumer's reads: fenced by the token (pel: our own
  * pending entries from r->pel_cursor, else new ones). */
 void		 redis_lease_read(struct redis_lease *, int pel);
-void		 redis_lease_fenced(struct redis_lease *);
-int		 redis_lease_store(struct redis_lease *, const char *const *,
-		    const size_t *, int, int release, char **cause);
 void		 redis_lease_metrics(struct redis_lease *, struct evbuffer *);
 json_t		*redis_lease_json(struct redis_lease *);
 

@@ -174,7 +174,13 @@ redis_lease_valid(const struct redis_lease *l)
 int
 redis_lease_ha(const struct redis_lease *l)
 {
-	return l->ha;
+	return l != NULL && l->ha;
+}
+
+int
+redis_lease_may_checkpoint(const struct redis_lease *l)
+{
+	return l == NULL || !l->ha || redis_lease_valid(l);
 }
 
 const char *
@@ -192,7 +198,8 @@ redis_lease_token(const struct redis_lease *l)
 void
 redis_lease_fenced(struct redis_lease *l)
 {
-	l->fenced++;
+	if (l != NULL)
+		l->fenced++;
 }
 
 /* Ours no longer (or not for sure): stop consuming now. */

@@ -72,7 +72,7 @@ retire_idle(struct daemon *d)
 	int n;
 
 	/* A standby's state is a stale copy: the holder retires. */
-	if (!redis_in_may_checkpoint(d->redis))
+	if (!redis_lease_may_checkpoint(redis_in_lease(d->redis)))
 		return;
 	for (n = 0; n < RETIRE_PER_TICK; n++) {
 		if ((id = engine_idle(d->engine, daemon_now(),
