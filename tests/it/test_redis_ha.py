@@ -131,9 +131,24 @@ class Feed:
         return t
 
 
+TOKEN = "it-ferry-token-0123456789"
+
+
+def post(d, path):
+    c = http.client.HTTPConnection("127.0.0.1", d.http, timeout=10)
+    try:
+        c.request("POST", path, body=b"{}",
+                  headers={"Authorization": "Bearer " + TOKEN})
+        r = c.getresponse()
+        return r.status, r.read().decode()
+    finally:
+        c.close()
+
+
 def ha_daemon(name, redis):
     d = Daemon(name, redis=redis, guardrails=GUARDRAILS, tcp=False,
                udp=False, unix=False, http=True, start=False,
+               daemon_keys={"http_token": TOKEN},
                redis_keys={"stream": STREAM, "ha": "yes",
                            "lease_ttl": "%gs" % TTL,
                            "consumer": "ferry-active", "batch": "20",
@@ -198,6 +213,10 @@ def ha_run(tap):
             a.start()
             tap.ok(wait_for(lambda: role(a) == "standby", 10),
                    "A, restarted, stands by")
+            st, text = post(a, "/api/experiments/%s/epoch" % EXP)
+            tap.ok(st == 503 and "standby" in text,
+                   "an operator action sent to the standby is refused "
+                   "(%d)" % st, text)
             before_entries = health(b)["redis"]["entries"]
             before = tallies(b)
             b.signal(signal.SIGSTOP)
