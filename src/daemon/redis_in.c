@@ -15,7 +15,10 @@
  *    restored state and are only acknowledged, the later ones are applied.
  * The rules assume one logical consumer per group (one daemon, whose
  * consumer name may change): entries reclaimed from other consumers obey
- * the same ID rule.
+ * the same ID rule. redis_lease.c keeps it so: nothing is read or applied
+ * unless this daemon holds the group's lease; under [redis] ha the reads
+ * go through its fenced script and a new holder adopts the old one's
+ * checkpoint before reading the shared consumer's pending entries back.
  *
  * One connection carries everything. Between two blocking reads the
  * consumer runs its housekeeping (redis_house.c), one step at a time:
