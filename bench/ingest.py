@@ -17,6 +17,8 @@ Prints one JSON object:
          into the stream behind a consumer group, and stopcockd started
          on it: the clock runs from the daemon's start until /metrics
          counts every line.
+  redis_ha: the same with [redis] ha = yes (reads fenced by the lease
+         token, the checkpoint in Redis), beside the plain Redis rate.
 Everything runs on private loopback ports in temporary directories
 (tests/it/_lib.py starts and stops redis-server and stopcockd).
 """
@@ -150,29 +152,16 @@ out["tcp_signed"] = {"records": lines, "batches": nbatch,
                                      out["tcp"]["records_per_second"], 3)}
 
 # --- Redis -----------------------------------------------------------------
-with open(RECORDS, "rb") as f:
-    head = [next(f).rstrip(b"\n") for _ in range(REDIS_RECORDS)]
-entries = [b"\n".join(head[i:i + BATCH]) for i in range(0, len(head), BATCH)]
-with Redis("bench") as r:
-    # redis-server's own rate for entries like ours (several clients,
-    # pipelined, the best case for the server)
-    n_bench = 50000
-    p = subprocess.run(["redis-benchmark", "-h", "127.0.0.1", "-p",
-                        str(r.port), "-n", str(n_bench), "-c", "8", "-P",
-                        "16", "--csv", "XADD", "bench:xadd", "*", "records",
-                        entries[1].decode()], capture_output=True,
-                       timeout=TIMEOUT)
-    rows = list(csv.reader(io.StringIO(p.stdout.decode())))
-    xadd_rps = float(rows[-1][1])
-    r.cmd("DEL", "bench:xadd")
-
-    d = Daemon("bench-redis", redis=r, tcp=False, udp=False, unix=False,
+def redis_leg(r, name, keys):
+    """Preload the entries behind a new group, start a daemon on them
+    ([redis] keys added), and time it until every line is read."""
+    d = Daemon(name, redis=r, tcp=False, udp=False, unix=False,
                http=True, conf="", start=False, args=())
     d.write_conf(daemon_conf(d, "\n[redis]\naddress = 127.0.0.1:%d\n"
                              "stream = %s\ngroup = %s\nconsumer = %s\n"
-                             "dead_letter = %s\nblock = 200ms\n"
+                             "dead_letter = %s\nblock = 200ms\n%s"
                              % (r.port, d.stream, d.group, d.consumer,
-                                d.dead)))
+                                d.dead, keys)))
     # preload behind a consumer group created at the start of the stream,
     # so the daemon finds the whole backlog waiting
     r.cmd("XGROUP", "CREATE", d.stream, d.group, "0", "MKSTREAM")
@@ -195,11 +184,41 @@ with Redis("bench") as r:
         applied = metric(d.http, "stopcock_records_total", "redis")
     finally:
         d.stop()
-out["redis"] = {"records": len(head), "records_per_entry": BATCH,
-                "entries": len(entries), "records_applied": applied,
-                "seconds": round(secs, 3),
-                "records_per_second": round(len(head) / secs),
-                "redis_xadd_entries_per_second": xadd_rps,
-                "redis_xadd_records_per_second": round(xadd_rps * BATCH),
-                "ratio": round(len(head) / secs / (xadd_rps * BATCH), 3)}
+        d.close()
+    r.cmd("DEL", d.stream)
+    return {"records": len(head), "records_per_entry": BATCH,
+            "entries": len(entries), "records_applied": applied,
+            "seconds": round(secs, 3),
+            "records_per_second": round(len(head) / secs)}
+
+
+with open(RECORDS, "rb") as f:
+    head = [next(f).rstrip(b"\n") for _ in range(REDIS_RECORDS)]
+entries = [b"\n".join(head[i:i + BATCH]) for i in range(0, len(head), BATCH)]
+with Redis("bench") as r:
+    # redis-server's own rate for entries like ours (several clients,
+    # pipelined, the best case for the server)
+    n_bench = 50000
+    p = subprocess.run(["redis-benchmark", "-h", "127.0.0.1", "-p",
+                        str(r.port), "-n", str(n_bench), "-c", "8", "-P",
+                        "16", "--csv", "XADD", "bench:xadd", "*", "records",
+                        entries[1].decode()], capture_output=True,
+                       timeout=TIMEOUT)
+    rows = list(csv.reader(io.StringIO(p.stdout.decode())))
+    xadd_rps = float(rows[-1][1])
+    r.cmd("DEL", "bench:xadd")
+
+    out["redis"] = dict(redis_leg(r, "bench-redis", ""),
+                        redis_xadd_entries_per_second=xadd_rps,
+                        redis_xadd_records_per_second=round(xadd_rps *
+                                                            BATCH))
+    out["redis"]["ratio"] = round(out["redis"]["records_per_second"] /
+                                  (xadd_rps * BATCH), 3)
+    # The same backlog read by a daemon with [redis] ha = yes: every read
+    # is a script that checks the lease token, the checkpoint goes to Redis.
+    out["redis_ha"] = redis_leg(r, "bench-redis-ha",
+                                "ha = yes\nlease_ttl = 10s\n")
+    out["redis_ha"]["vs_redis"] = round(
+        out["redis_ha"]["records_per_second"] /
+        out["redis"]["records_per_second"], 3)
 print(json.dumps(out))

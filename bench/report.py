@@ -77,6 +77,7 @@ res = {
     "tcp_signed": ingest.get("tcp_signed"),
     "redis": dict(ingest["redis"], target_ratio=1.0,
                   met=ingest["redis"]["ratio"] >= 1.0),
+    "redis_ha": ingest.get("redis_ha"),
     "memory": dict(mem, target_bytes_per_series=8192,
                    met=mem["rss_bytes_per_series"] <= 8192),
     "tick": {"experiments": mem["experiments"], "tests": mem["tests"],
@@ -175,6 +176,12 @@ line("Redis      %d records/s (%d records in %d entries, %.2f s); "
                         t["seconds"], t["redis_xadd_entries_per_second"],
                         t["redis_xadd_records_per_second"], t["ratio"]),
      t["met"], ("redis", "ratio"))
+if "redis_ha" in r:
+    t = r["redis_ha"]
+    line("Redis ha   %d records/s (%d records, %.2f s): %.3f of the plain "
+         "Redis rate (reads fenced by the lease, checkpoint in Redis)" %
+         (t["records_per_second"], t["records"], t["seconds"],
+          t["vs_redis"]), None, ("redis_ha", "records_per_second"))
 t = r["memory"]
 line("memory     %.0f bytes per series by RSS (%d series, %d -> %d KiB); "
      "engine's own count %.0f bytes (target <= 8192)" %

@@ -175,6 +175,10 @@ struct conf {
 	uint32_t	redis_batch;	/* entries per XREADGROUP */
 	double		redis_block;	/* seconds per blocking read */
 	int		redis_start;	/* enum conf_redis_start: a new group */
+	int		redis_ha;	/* lease + checkpoint in Redis */
+	char		*redis_lease_key;	/* NULL: derived */
+	double		redis_lease_ttl;	/* seconds */
+	char		*redis_state_key;	/* NULL: derived */
 	int		redis_signed, redis_trusted;
 
 	/* [kafka] */

@@ -573,6 +573,61 @@ conf_check_family(struct conf_parser *p, const struct conf_experiment *e)
 		    "leave it out for every guardrail", e->id);
 }
 
+/* The line of [section] key, 0 when it was not set. */
+static int
+conf_keyline(struct conf_parser *p, int section, size_t offset)
+{
+	const struct conf_option *o;
+
+	for (o = conf_options; o < conf_options + conf_noptions; o++)
+		if (o->section == section && o->offset == offset)
+			return p->keyline[o - conf_options];
+	return 0;
+}
+
+/*
+ * [redis] ha = yes: every daemon reads as one shared consumer (so a new
+ * holder finds the old one's pending entries as its own, in ID order),
+ * hence no %h in its name; and Redis is the only record input, since a
+ * standby replaces its state with the holder's on taking over (records
+ * from a socket would be lost with it).
+ */
+static void
+conf_check_redis_ha(struct conf_parser *p)
+{
+	struct conf *c = p->conf;
+	const char *s;
+	int line = conf_keyline(p, S_REDIS, offsetof(struct conf, redis_ha));
+
+	if (!c->redis_ha)
+		return;
+	if (c->redis_address == NULL) {
+		conf_error(p, line, "[redis] ha = yes needs [redis] address");
+		return;
+	}
+	for (s = c->redis_consumer; *s != '\0'; s++) {
+		if (s[0] == '%' && s[1] == '%') {
+			s++;
+			continue;
+		}
+		if (s[0] == '%' && s[1] == 'h') {
+			conf_error(p, line, "[redis] ha = yes: every daemon must "
+			    "read as the same consumer; set [redis] consumer to "
+			    "a name without %%h");
+			break;
+		}
+	}
+	if (c->tcp != NULL || c->udp != NULL || c->unix_path != NULL)
+		conf_error(p, line, "[redis] ha = yes: Redis must be the "
+		    "daemon's only record input (unset [daemon] tcp, udp and "
+		    "unix): a standby replaces its state with the lease "
+		    "holder's");
+	if (c->redis_lease_key != NULL && c->redis_state_key != NULL &&
+	    strcmp(c->redis_lease_key, c->redis_state_key) == 0)
+		conf_error(p, line, "[redis] lease_key and state_key are both "
+		    "%s", c->redis_lease_key);
+}
+
 /* Rules between sections, once everything is read. */
 static void
 conf_check(struct conf_parser *p)
@@ -629,6 +684,7 @@ conf_check(struct conf_parser *p)
 		conf_error(p, kline, "[kafka] brokers is set: Kafka must be the "
 		    "daemon's only record input (unset [daemon] tcp, udp, unix "
 		    "and [redis] address)");
+	conf_check_redis_ha(p);
 	if (c->kafka_brokers != NULL &&
 	    strcmp(c->kafka_topic, c->kafka_state_topic) == 0)
 		conf_error(p, kline, "[kafka] topic and state_topic are both "

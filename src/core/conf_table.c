@@ -214,6 +214,22 @@ const struct conf_option conf_options[] = {
 	  "already in the stream are skipped, and counted in the log) or "
 	  "beginning (all of them are applied); a group lost after it was "
 	  "made is made again after the last checkpointed entry" },
+	{ S_REDIS, "ha", T_BOOL, C(redis_ha), 0, 0, 0, "no", NULL,
+	  "several daemons share the stream: the one holding the lease "
+	  "consumes, the others stand by; the checkpoint is kept in Redis "
+	  "(state_key) so a standby takes over from it" },
+	{ S_REDIS, "lease_key", T_WORD, C(redis_lease_key), 0,
+	  CONF_STRING_MAX, 0, NULL, NULL, "key of the lease that lets one "
+	  "daemon consume the group; unset: <stream>:<group>:lease" },
+	{ S_REDIS, "lease_ttl", T_DURATION, C(redis_lease_ttl), 1, 300, 0,
+	  "10s", NULL, "the lease's expiry: renewed every quarter of it; a "
+	  "holder with no renewal confirmed for three quarters of it stops "
+	  "consuming; a standby takes over at most this long (and a poll) "
+	  "after the holder died" },
+	{ S_REDIS, "state_key", T_WORD, C(redis_state_key), 0,
+	  CONF_STRING_MAX, 0, NULL, NULL, "with ha = yes, the key holding "
+	  "the checkpoint, written only by the lease holder; unset: "
+	  "<stream>:<group>:state" },
 
 	{ S_REDIS, "signed", T_BOOL, C(redis_signed), 0, 0, 0, "no", NULL,
 	  "entries must carry a signed batch: fields producer, id, ts and "

@@ -118,6 +118,7 @@ static const uint32_t alert_kind_bits[ALERT_NKINDS] = {
 
 static void	alert_journal_note(struct alert *,
 		    const struct alert_entry *);
+static void	alert_journal_lay(void *, uint64_t, const json_t *);
 
 /*
  * syslog(3) keeps the ident pointer for the life of the process, so it
@@ -912,6 +913,11 @@ alert_restore(struct alert *a, const json_t *j, char **cause)
 	seq = json_object_get(j, "journal_seq");
 	a->jseq = json_is_integer(seq) && json_integer_value(seq) > 0 ?
 	    (uint64_t)json_integer_value(seq) : 0;
+	/* Taking over another daemon's state (Redis ha): the events this
+	 * one journaled since its own last checkpoint still count. */
+	if (a->journal != NULL &&
+	    alert_journal_replay(a->journal, 0, alert_journal_lay, a) != 0)
+		log_warnx("alert journal: not read over the adopted state");
 	return 0;
 fail:
 	for (i = 0; i < n; i++)
@@ -920,8 +926,19 @@ fail:
 	return -1;
 }
 
-/* One journaled event over the restored state: it replaces the alert's
- * older self, or joins the state when the checkpoint never saw it. */
+/* How far an alert's life has gone: it only ever moves forward. */
+static uint64_t
+alert_progress(const struct alert_entry *e)
+{
+	return (uint64_t)e->state << 32 | e->reminders;
+}
+
+/*
+ * One journaled event over the restored state: it replaces the alert's
+ * self when it is further on, or joins the state when the checkpoint
+ * never saw it. Further on, not newer by sequence: the state may be
+ * another daemon's (a takeover), whose numbers are not this journal's.
+ */
 static void
 alert_journal_lay(void *arg, uint64_t seq, const json_t *j)
 {
@@ -938,14 +955,18 @@ alert_journal_lay(void *arg, uint64_t seq, const json_t *j)
 		free(cause);
 		return;
 	}
-	alert_journal_replayed(a->journal);
 	if ((old = alert_find(a, e->id)) != NULL) {
+		if (alert_progress(e) <= alert_progress(old)) {
+			alert_entry_free(e);
+			return;
+		}
 		for (i = 0; a->v[i] != old; i++)
 			;
 		alert_entry_free(old);
 		a->v[i] = e;
 	} else
 		alert_insert(a, e);
+	alert_journal_replayed(a->journal);
 }
 
 /*

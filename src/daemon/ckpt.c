@@ -65,6 +65,8 @@
 #define CKPT_HEADER_MAX 256
 #define CKPT_SIZE_MAX ((off_t)2 << 30)	/* refuse bigger files */
 #define CKPT_CAUSE_MAX 1024	/* bytes of a child's error text */
+#define CKPT_FENCED 2		/* ckpt_store: Redis refused (the lease) */
+#define CKPT_EXIT_FENCED 4	/* the writer child's exit for it */
 
 /* The writer child, when one runs. */
 struct ckpt {
@@ -79,6 +81,7 @@ struct ckpt {
 	char		 cause[CKPT_CAUSE_MAX];
 	size_t		 causelen;
 	int		 again;		/* requested while one ran */
+	pid_t		 owner;		/* the daemon's pid (for "writer") */
 };
 
 static json_t *
@@ -121,6 +124,12 @@ ckpt_build(struct daemon *d, char **cause)
 	    json_integer((json_int_t)d->checkpoints + 1));
 	json_object_set_new(root, "counters", counters);
 	json_object_set_new(root, "summary", engine_json_list(d->engine));
+	if (redis_lease_ha(redis_in_lease(d->redis)))
+		/* Which daemon wrote the checkpoint in Redis, for people
+		 * (and tests) reading it; restore ignores it. */
+		json_object_set_new(root, "writer", json_pack("{s:I}", "pid",
+		    (json_int_t)(d->ckpt != NULL && d->ckpt->owner != 0 ?
+		    d->ckpt->owner : getpid())));
 	return root;
 }
 
@@ -133,6 +142,7 @@ ckpt_store(struct daemon *d, char **cause)
 	const char *parts[2];
 	size_t lens[2], len;
 	char sha[65];
+	struct redis_lease *lease = redis_in_lease(d->redis);
 	int rc = -1;
 
 	if ((root = ckpt_build(d, cause)) == NULL)
@@ -151,6 +161,17 @@ ckpt_store(struct daemon *d, char **cause)
 	lens[0] = strlen(header);
 	parts[1] = payload;
 	lens[1] = len;
+	/* Under ha the copy in Redis is the one that counts: written first,
+	 * under the lease; the file is then a local copy of it. */
+	if (redis_lease_ha(lease) && (rc = redis_lease_store(lease, parts,
+	    lens, 2, d->draining, cause)) != 0) {
+		if (rc == 1)
+			rc = CKPT_FENCED;
+		free(payload);
+		free(header);
+		return rc;
+	}
+	rc = -1;
 	xasprintf(&path, "%s/%s", d->state_dir, CKPT_FILE);
 	if (durable_write(d->state_dir, path, parts, lens, 2, 0640,
 	    cause) == 0)
@@ -184,13 +205,19 @@ ckpt_write(struct daemon *d, char **cause)
 	char *covered;
 	uint64_t jseq = alert_journal_seq(d->alert);
 	double start = daemon_now();
+	int rc;
 
 	if (d->ckpt != NULL && d->ckpt->pid != 0) {
 		d->ckpt->again = 0;	/* this write serves it */
 		ckpt_reap(d->ckpt, 1);
 	}
 	covered = xstrdup(d->redis != NULL ? redis_in_last_id(d->redis) : "");
-	if (ckpt_store(d, cause) != 0) {
+	if ((rc = ckpt_store(d, cause)) != 0) {
+		if (rc == CKPT_FENCED) {
+			redis_lease_fenced(redis_in_lease(d->redis));
+			*cause = xstrdup("refused by Redis: another daemon holds "
+			    "the lease");
+		}
 		free(covered);
 		return -1;
 	}
@@ -223,6 +250,8 @@ ckpt_child(struct daemon *d, pid_t parent, int wfd)
 	}
 	close_range(4, ~0U, 0);
 	rc = ckpt_store(d, &cause);
+	if (rc == CKPT_FENCED)
+		_exit(CKPT_EXIT_FENCED);
 	if (rc != 0 && cause != NULL) {
 		size_t len = strlen(cause);
 
@@ -255,6 +284,11 @@ ckpt_reap(struct ckpt *c, int wait)
 		log_warn("checkpoint: waitpid");
 	else if (WIFEXITED(status) && WEXITSTATUS(status) == 0)
 		ckpt_done(d, c->covered, c->jseq, c->start);
+	else if (WIFEXITED(status) && WEXITSTATUS(status) == CKPT_EXIT_FENCED) {
+		redis_lease_fenced(redis_in_lease(d->redis));
+		log_warnx("checkpoint refused by Redis (%s): another daemon "
+		    "holds the lease; this one changes nothing", c->why);
+	}
 	else if (c->causelen > 0)
 		log_warnx("checkpoint failed (%s): %.*s", c->why,
 		    (int)c->causelen, c->cause);
@@ -299,6 +333,7 @@ ckpt_get(struct daemon *d)
 		c = d->ckpt = xcalloc(1, sizeof *c);
 		c->d = d;
 		c->fd = -1;
+		c->owner = getpid();
 	}
 	return c;
 }
@@ -515,6 +550,8 @@ ckpt_frame(const char *path, char *buf, size_t len, char **payload,
 	return 0;
 }
 
+static int	ckpt_parse(const char *, char *, size_t, json_t **, char **);
+
 /*
  * Read, frame and parse the checkpoint at path into *root. 1 when there
  * is no file (a fresh start), 0 with *root set, -1 with a cause.
@@ -522,10 +559,8 @@ ckpt_frame(const char *path, char *buf, size_t len, char **payload,
 static int
 ckpt_load(const char *path, json_t **root, size_t *size, char **cause)
 {
-	char *buf = NULL, *payload;
-	size_t len, plen;
-	json_error_t jerr;
-	json_t *v;
+	char *buf = NULL;
+	size_t len;
 	int r;
 
 	*root = NULL;
@@ -533,12 +568,24 @@ ckpt_load(const char *path, json_t **root, size_t *size, char **cause)
 	if (r != 0)
 		return r;
 	*size = len;
-	if (ckpt_frame(path, buf, len, &payload, &plen, cause) != 0) {
-		free(buf);
-		return -1;
-	}
-	*root = json_loadb(payload, plen, JSON_REJECT_DUPLICATES, &jerr);
+	r = ckpt_parse(path, buf, len, root, cause);
 	free(buf);
+	return r;
+}
+
+/* A framed image in buf (changed in place) into *root. */
+static int
+ckpt_parse(const char *path, char *buf, size_t len, json_t **root,
+    char **cause)
+{
+	char *payload;
+	size_t plen;
+	json_error_t jerr;
+	json_t *v;
+
+	if (ckpt_frame(path, buf, len, &payload, &plen, cause) != 0)
+		return -1;
+	*root = json_loadb(payload, plen, JSON_REJECT_DUPLICATES, &jerr);
 	if (*root == NULL) {
 		xasprintf(cause, "%s: bad checkpoint JSON: %s (line %d)", path,
 		    jerr.text, jerr.line);
@@ -603,6 +650,7 @@ ckpt_restore_state(struct daemon *d, const char *path, json_t *root,
     char **cause)
 {
 	json_t *v, *counters;
+	struct engine *neng;
 	char *why = NULL;
 
 	v = json_object_get(root, "engine");
@@ -610,8 +658,8 @@ ckpt_restore_state(struct daemon *d, const char *path, json_t *root,
 		xasprintf(cause, "%s: no engine state", path);
 		return -1;
 	}
-	d->engine = engine_restore(d->conf, d->hashkey, v, &why);
-	if (d->engine == NULL) {
+	neng = engine_restore(d->conf, d->hashkey, v, &why);
+	if (neng == NULL) {
 		xasprintf(cause, "%s: engine state refused: %s", path,
 		    why != NULL ? why : "unknown error");
 		free(why);
@@ -623,10 +671,14 @@ ckpt_restore_state(struct daemon *d, const char *path, json_t *root,
 		xasprintf(cause, "%s: alert state refused: %s", path,
 		    why != NULL ? why : "unknown error");
 		free(why);
-		engine_free(d->engine);
-		d->engine = NULL;
+		engine_free(neng);
 		return -1;
 	}
+	/* At start there is no engine yet; taking over replaces one. */
+	if (d->engine == NULL)
+		d->engine = neng;
+	else
+		daemon_engine_replace(d, neng);
 	counters = json_object_get(root, "counters");
 	ingest_restore(d, json_object_get(counters, "ingest"));
 	auth_restore(d, json_object_get(counters, "auth"));
@@ -671,5 +723,25 @@ out:
 	json_decref(root);
 	free(path);
 	free(tmp);
+	return rc;
+}
+
+int
+ckpt_adopt(struct daemon *d, const char *image, size_t len, char **cause)
+{
+	const char *what = "the checkpoint in Redis", *last_id;
+	json_t *root = NULL;
+	char *buf;
+	int rc = -1;
+
+	buf = xmalloc(len + 1);
+	memcpy(buf, image, len);
+	buf[len] = '\0';
+	if (ckpt_parse(what, buf, len, &root, cause) == 0 &&
+	    ckpt_redis_position(d, what, root, &last_id, cause) == 0 &&
+	    ckpt_restore_state(d, what, root, cause) == 0)
+		rc = 0;
+	json_decref(root);
+	free(buf);
 	return rc;
 }

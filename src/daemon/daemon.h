@@ -10,6 +10,10 @@
  *   redis_in.c  the Redis stream consumer (hiredis async)    (redis_in_*)
  *   redis_house.c  its housekeeping: acks, dead letters, reclaiming,
  *               lag (redis_house_*; shares redis_in_int.h)
+ *   redis_lease.c  one consumer per group by a lease in Redis; under
+ *               [redis] ha the fenced reads and the checkpoint in Redis
+ *               (redis_lease_*; shares redis_in_int.h); redis_in_sid.c
+ *               stream entry IDs (redis_in_sid_*)
  *   kafka_in.c  the Kafka consumer: partitions, rebalances (kafka_in_*);
  *               kafka_state.c: each partition's state and offset in
  *               one transaction, read back on assignment (kafka_state_*;
@@ -227,6 +231,11 @@ void		 ckpt_start(struct daemon *, const char *why);
 int		 ckpt_write(struct daemon *, char **cause);
 void		 ckpt_free(struct daemon *);
 int		 ckpt_restore(struct daemon *, char **cause);
+/* Replace the running daemon's state (engine, alerts, counters, Redis
+ * position in d->restored_redis_id) with a checkpoint image, all or
+ * nothing: a standby taking over from the checkpoint in Redis. */
+int		 ckpt_adopt(struct daemon *, const char *image, size_t len,
+		    char **cause);
 
 /* listen.c */
 struct listen	*listen_new(struct daemon *, char **cause);
@@ -246,6 +255,8 @@ struct redis_in	*redis_in_new(struct daemon *, const char *last_id,
 void		 redis_in_free(struct redis_in *);
 const char	*redis_in_last_id(struct redis_in *);
 void		 redis_in_covered(struct redis_in *, const char *last_id);
+/* The consumer's lease (redis_lease.c); NULL without a consumer. */
+struct redis_lease *redis_in_lease(struct redis_in *);
 /* Shutdown: drop the connection and stop reconnecting. Delivered but
  * unapplied entries stay pending in Redis for the next start. */
 void		 redis_in_stop(struct redis_in *);
@@ -253,6 +264,22 @@ void		 redis_in_stop(struct redis_in *);
 int64_t		 redis_in_lag(struct redis_in *);
 void		 redis_in_metrics(struct redis_in *, struct evbuffer *);
 json_t		*redis_in_json(struct redis_in *);
+
+/* redis_lease.c, what the rest of the daemon asks of the lease; each
+ * takes NULL (no Redis input) as "no lease". [redis] ha: the checkpoint
+ * goes to Redis under the lease. */
+struct redis_lease;
+int		 redis_lease_ha(const struct redis_lease *);
+/* A checkpoint (periodic, final) or an idle retirement is this daemon's
+ * to make: not a standby under ha. */
+int		 redis_lease_may_checkpoint(const struct redis_lease *);
+/* Store a checkpoint image in Redis under the lease (synchronous: the
+ * writer child, or shutdown, which also gives the lease up). 0 stored,
+ * 1 refused (another daemon holds the lease), -1 failed. */
+int		 redis_lease_store(struct redis_lease *, const char *const *,
+		    const size_t *, int nparts, int release, char **cause);
+/* A checkpoint Redis refused (the writer's outcome, in the parent). */
+void		 redis_lease_fenced(struct redis_lease *);
 
 /* dispatch.c: the engine's sink. dispatch_finding only queues; the
  * queue drains on the loop, or now with dispatch_drain (before the alert

@@ -546,6 +546,13 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 	}
 	if (http_authorised(h, req) != 0)
 		return;
+	if (!redis_lease_may_checkpoint(redis_in_lease(d->redis))) {
+		/* A standby's state is replaced when it takes over. */
+		http_error(h, req, 503, "this daemon is a standby: another "
+		    "daemon holds the Redis lease and the state; send %s to "
+		    "it", action);
+		return;
+	}
 	if (!http_known(h, id)) {
 		http_error(h, req, 400, "experiment names are 1 to %d "
 		    "characters from [A-Za-z0-9._:-]", PROTO_NAME_MAX);

@@ -369,7 +369,11 @@ daemon_shutdown(struct daemon *d, int sig)
 	if (d->listen != NULL)
 		listen_drain(d->listen);
 	dispatch_drain(d->dispatch);
-	if (ckpt_write(d, &cause) != 0) {
+	if (!redis_lease_may_checkpoint(redis_in_lease(d->redis)))
+		/* A standby's state is not the group's: the holder's is. */
+		log_info("no final checkpoint: this daemon is a standby "
+		    "(another holds the Redis lease)");
+	else if (ckpt_write(d, &cause) != 0) {
 		log_crit("final checkpoint failed: %s", cause);
 		free(cause);
 		d->main->exit_code = SC_EX_IOERR;
@@ -416,7 +420,8 @@ daemon_checkpoint_cb(evutil_socket_t fd, short what, void *arg)
 {
 	struct daemon *d = arg;
 
-	if (!d->draining)
+	if (!d->draining &&
+	    redis_lease_may_checkpoint(redis_in_lease(d->redis)))
 		daemon_checkpoint(d, "timer");
 }
 

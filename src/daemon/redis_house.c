@@ -259,6 +259,12 @@ redis_house_claimed_cb(redisAsyncContext *ac, void *reply, void *priv)
 
 	if (redis_in_answer(r, rep) != 0)
 		return;
+	if (!redis_lease_valid(r->lease)) {
+		/* Claimed but not applied: pending on us, read back later. */
+		redis_in_op_done(r);
+		redis_in_suspend(r, "lease not confirmed");
+		return;
+	}
 	if (rep->type != REDIS_REPLY_ARRAY) {
 		r->errors++;
 		log_warnx("redis: XCLAIM failed: %.*s", rep->str != NULL ?

@@ -15,7 +15,10 @@
  *    restored state and are only acknowledged, the later ones are applied.
  * The rules assume one logical consumer per group (one daemon, whose
  * consumer name may change): entries reclaimed from other consumers obey
- * the same ID rule.
+ * the same ID rule. redis_lease.c keeps it so: nothing is read or applied
+ * unless this daemon holds the group's lease; under [redis] ha the reads
+ * go through its fenced script and a new holder adopts the old one's
+ * checkpoint before reading the shared consumer's pending entries back.
  *
  * One connection carries everything. Between two blocking reads the
  * consumer runs its housekeeping (redis_house.c), one step at a time:
@@ -69,65 +72,6 @@
 static void	redis_in_connect(struct redis_in *);
 static void	redis_in_trim_flush(struct redis_in *);
 
-int
-redis_in_sid_parse(const char *s, size_t len, struct sid *out)
-{
-	char buf[SID_BUF], *dash, *end;
-
-	if (len == 0 || len >= sizeof buf)
-		return -1;
-	memcpy(buf, s, len);
-	buf[len] = '\0';
-	if (buf[0] < '0' || buf[0] > '9')
-		return -1;
-	errno = 0;
-	out->ms = strtoull(buf, &dash, 10);
-	if (errno != 0 || *dash != '-' || dash[1] < '0' || dash[1] > '9')
-		return -1;
-	out->seq = strtoull(dash + 1, &end, 10);
-	if (errno != 0 || *end != '\0')
-		return -1;
-	return 0;
-}
-
-const char *
-redis_in_sid_fmt(struct sid id, char *buf)
-{
-	snprintf(buf, SID_BUF, "%" PRIu64 "-%" PRIu64, id.ms, id.seq);
-	return buf;
-}
-
-int
-redis_in_sid_cmp(struct sid a, struct sid b)
-{
-	if (a.ms != b.ms)
-		return a.ms < b.ms ? -1 : 1;
-	if (a.seq != b.seq)
-		return a.seq < b.seq ? -1 : 1;
-	return 0;
-}
-
-/* The smallest ID after id (for inclusive ranges on old servers). */
-struct sid
-redis_in_sid_next(struct sid id)
-{
-	if (id.seq == UINT64_MAX) {
-		id.ms++;
-		id.seq = 0;
-	} else
-		id.seq++;
-	return id;
-}
-
-int
-redis_in_sid_reply(const redisReply *r, struct sid *out)
-{
-	if (r == NULL || (r->type != REDIS_REPLY_STRING &&
-	    r->type != REDIS_REPLY_STATUS))
-		return -1;
-	return redis_in_sid_parse(r->str, r->len, out);
-}
-
 static const char *
 redis_in_state_name(enum redis_in_state s)
 {
@@ -142,6 +86,8 @@ redis_in_state_name(enum redis_in_state s)
 		return "pending";
 	case RS_STEADY:
 		return "steady";
+	case RS_STANDBY:
+		return "standby";
 	case RS_STOPPED:
 		return "stopped";
 	}
@@ -204,8 +150,10 @@ static void
 redis_in_fail_cb(evutil_socket_t fd, short what, void *arg)
 {
 	struct redis_in *r = arg;
+	const char *why = r->fail_why != NULL ? r->fail_why : "protocol error";
 
-	redis_in_drop(r, "protocol error");
+	r->fail_why = NULL;
+	redis_in_drop(r, why);
 }
 
 /* From inside a callback: log now, drop the connection just after. */
@@ -468,11 +416,13 @@ redis_in_entry(struct redis_in *r, const redisReply *e)
 	char buf[SID_BUF];
 	size_t i;
 
-	if (e->type != REDIS_REPLY_ARRAY || e->elements != 2 ||
-	    redis_in_sid_reply(e->element[0], &id) != 0)
+	/* [id] alone: the same, passed through the fenced read's script
+	 * (Lua drops the nil at the end of a list). */
+	if (e->type != REDIS_REPLY_ARRAY || e->elements < 1 ||
+	    e->elements > 2 || redis_in_sid_reply(e->element[0], &id) != 0)
 		return -1;
-	fields = e->element[1];
-	if (fields->type == REDIS_REPLY_NIL) {
+	fields = e->elements == 2 ? e->element[1] : NULL;
+	if (fields == NULL || fields->type == REDIS_REPLY_NIL) {
 		/* Trimmed or deleted while pending: nothing to apply. Above
 		 * the checkpoint it is lost, and said so. */
 		r->deleted++;
@@ -553,52 +503,40 @@ redis_in_entries(struct redis_in *r, const redisReply *rep, size_t *count,
 	return 0;
 }
 
-static void
-redis_in_read_cb(redisAsyncContext *ac, void *reply, void *priv)
+static void	redis_in_pel_next(struct redis_in *);
+
+/*
+ * An XREADGROUP answer, plain or from the fenced read (redis_lease.c):
+ * new entries (pel 0), or our own pending ones read back from the
+ * cursor (pel 1). Nothing is applied once the lease is not sure.
+ */
+void
+redis_in_read_reply(struct redis_in *r, const redisReply *rep, int pel)
 {
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
 	size_t n;
 
-	r->reading = 0;
-	if (redis_in_answer(r, rep) != 0)
+	if (!redis_lease_valid(r->lease)) {
+		redis_in_suspend(r, "lease not confirmed");
 		return;
+	}
 	if (rep->type == REDIS_REPLY_ERROR) {
-		if (strncmp(rep->str, "NOGROUP", 7) == 0) {
+		if (!pel && strncmp(rep->str, "NOGROUP", 7) == 0) {
 			/* The stream or group was deleted under us. */
 			log_warnx("redis: group gone, creating it again "
 			    "stream=%s group=%s", r->stream, r->group);
 			event_active(r->fail_ev, EV_TIMEOUT, 0);
 			return;
 		}
-		redis_in_fail(r, "XREADGROUP", rep);
+		redis_in_fail(r, pel ? "XREADGROUP (pending)" : "XREADGROUP",
+		    rep);
 		return;
 	}
-	if (redis_in_entries(r, rep, &n, NULL) != 0) {
+	if (redis_in_entries(r, rep, &n, pel ? &r->pel_cursor : NULL) != 0) {
 		redis_in_fail(r, "XREADGROUP (unexpected answer)", NULL);
 		return;
 	}
-	redis_in_next(r);
-}
-
-static void
-redis_in_pel_next(struct redis_in *r);
-
-static void
-redis_in_pel_read_cb(redisAsyncContext *ac, void *reply, void *priv)
-{
-	struct redis_in *r = ac->data;
-	redisReply *rep = reply;
-	size_t n;
-
-	if (redis_in_answer(r, rep) != 0)
-		return;
-	if (rep->type == REDIS_REPLY_ERROR) {
-		redis_in_fail(r, "XREADGROUP (pending)", rep);
-		return;
-	}
-	if (redis_in_entries(r, rep, &n, &r->pel_cursor) != 0) {
-		redis_in_fail(r, "XREADGROUP (unexpected answer)", NULL);
+	if (!pel) {
+		redis_in_next(r);
 		return;
 	}
 	if (n < r->d->conf->redis_batch || n == 0) {
@@ -615,6 +553,27 @@ redis_in_pel_read_cb(redisAsyncContext *ac, void *reply, void *priv)
 	redis_in_pel_next(r);
 }
 
+static void
+redis_in_read_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+
+	r->reading = 0;
+	if (redis_in_answer(r, reply) != 0)
+		return;
+	redis_in_read_reply(r, reply, 0);
+}
+
+static void
+redis_in_pel_read_cb(redisAsyncContext *ac, void *reply, void *priv)
+{
+	struct redis_in *r = ac->data;
+
+	if (redis_in_answer(r, reply) != 0)
+		return;
+	redis_in_read_reply(r, reply, 1);
+}
+
 /*
  * Next batch of our own pending entries (those delivered to us before a
  * crash or a lost connection), from just after the cursor.
@@ -624,6 +583,10 @@ redis_in_pel_next(struct redis_in *r)
 {
 	char cur[SID_BUF];
 
+	if (r->ha) {
+		redis_lease_read(r->lease, 1);
+		return;
+	}
 	redis_in_cmd(r, redis_in_pel_read_cb, NULL,
 	    "XREADGROUP GROUP %s %s COUNT %lld STREAMS %s %s", r->group,
 	    r->consumer, (long long)r->d->conf->redis_batch, r->stream,
@@ -683,6 +646,11 @@ redis_in_connect(struct redis_in *r)
 
 	if (r->state == RS_STOPPED || r->ac != NULL)
 		return;
+	if (!redis_lease_valid(r->lease)) {
+		/* redis_in_resume connects once the lease is ours. */
+		redis_in_set_state(r, RS_STANDBY);
+		return;
+	}
 	if (r->unix_path != NULL)
 		ac = redisAsyncConnectUnix(r->unix_path);
 	else
@@ -752,12 +720,18 @@ redis_in_next(struct redis_in *r)
 	if (r->state != RS_STEADY || r->ac == NULL || r->reading ||
 	    r->ops > 0 || r->d->draining)
 		return;
+	if (!redis_lease_valid(r->lease)) {
+		redis_in_suspend(r, "lease not confirmed");
+		return;
+	}
 	now = daemon_now();
 	if (r->ack_due) {
 		redis_house_sweep(r);
 		return;
 	}
-	if (now >= r->next_claim) {
+	/* Under ha every daemon reads as the one consumer: nobody to
+	 * claim from, and its pending entries are read back in order. */
+	if (!r->ha && now >= r->next_claim) {
 		r->next_claim = now + 1;	/* until the answer sets it */
 		redis_house_claim(r);
 		return;
@@ -765,6 +739,10 @@ redis_in_next(struct redis_in *r)
 	if (now >= r->next_info) {
 		r->next_info = now + REDIS_IN_INFO_EVERY;
 		redis_house_info(r);
+		return;
+	}
+	if (r->ha) {
+		redis_lease_read(r->lease, 0);
 		return;
 	}
 	if (redis_in_cmd(r, redis_in_read_cb, NULL,
@@ -853,6 +831,11 @@ redis_in_new(struct daemon *d, const char *last_id, char **cause)
 	}
 	/* The restored state covers everything up to its last ID. */
 	r->covered = r->last;
+	r->ha = conf->redis_ha;
+	if ((r->lease = redis_lease_new(r, cause)) == NULL) {
+		redis_in_free(r);
+		return NULL;
+	}
 	redis_in_mark_open(r);
 	r->retry_ev = evtimer_new(d->base, redis_in_retry_cb, r);
 	r->fail_ev = event_new(d->base, -1, 0, redis_in_fail_cb, r);
@@ -891,6 +874,7 @@ redis_in_free(struct redis_in *r)
 	if (r == NULL)
 		return;
 	redis_in_stop(r);
+	redis_lease_free(r->lease);
 	if (r->retry_ev != NULL)
 		event_free(r->retry_ev);
 	if (r->fail_ev != NULL)
@@ -918,6 +902,50 @@ redis_in_last_id(struct redis_in *r)
 	else
 		redis_in_sid_fmt(r->last, r->last_str);
 	return r->last_str;
+}
+
+void
+redis_in_resume(struct redis_in *r)
+{
+	if (r->state == RS_STOPPED || r->ac != NULL)
+		return;
+	evtimer_del(r->retry_ev);
+	r->backoff = REDIS_IN_BACKOFF_MIN;
+	redis_in_connect(r);
+}
+
+/* Stop reading: the connection goes (just after, never inside one of
+ * its callbacks); delivered entries stay pending for the next reader. */
+void
+redis_in_suspend(struct redis_in *r, const char *why)
+{
+	if (r->state == RS_STOPPED)
+		return;
+	if (r->ac == NULL) {
+		evtimer_del(r->retry_ev);
+		redis_in_set_state(r, RS_STANDBY);
+		return;
+	}
+	r->fail_why = why;
+	event_active(r->fail_ev, EV_TIMEOUT, 0);
+}
+
+void
+redis_in_position(struct redis_in *r, const char *last_id)
+{
+	struct sid id = { 0, 0 };
+
+	if (last_id != NULL && *last_id != '\0' &&
+	    redis_in_sid_parse(last_id, strlen(last_id), &id) != 0)
+		id.ms = id.seq = 0;
+	r->last = r->covered = id;
+	r->covered_gen++;
+}
+
+struct redis_lease *
+redis_in_lease(struct redis_in *r)
+{
+	return r != NULL ? r->lease : NULL;
 }
 
 void
@@ -998,6 +1026,7 @@ redis_in_metrics(struct redis_in *r, struct evbuffer *b)
 	metrics_counter(b, "stopcock_redis_start_skipped_total", "Entries "
 	    "already in the stream that a new group at its end skipped.",
 	    r->start_skipped);
+	redis_lease_metrics(r->lease, b);
 }
 
 json_t *
@@ -1053,5 +1082,7 @@ redis_in_json(struct redis_in *r)
 	json_object_set_new(o, "group_made_at", json_string(r->made_at));
 	json_object_set_new(o, "start_skipped",
 	    json_integer((json_int_t)r->start_skipped));
+	json_object_set_new(o, "role", json_string(redis_lease_role(r->lease)));
+	json_object_set_new(o, "lease", redis_lease_json(r->lease));
 	return o;
 }

@@ -28,6 +28,7 @@ enum redis_in_state {
 	RS_SETUP,	/* XGROUP CREATE in flight */
 	RS_PENDING,	/* reading back our own pending entries */
 	RS_STEADY,	/* new entries, housekeeping between reads */
+	RS_STANDBY,	/* the lease is not ours (redis_lease.c): no reads */
 	RS_STOPPED	/* shutting down: never reconnect */
 };
 
@@ -59,10 +60,15 @@ struct sid {
 
 #define SID_BUF 48
 
+struct redis_lease;
+
 struct redis_in {
 	struct daemon		*d;
 	enum redis_in_state	 state;
 	redisAsyncContext	*ac;
+	struct redis_lease	*lease;
+	int			 ha;		/* [redis] ha: fenced reads */
+	const char		*fail_why;	/* for the deferred drop */
 
 	/* Fixed at start (a reload does not move the consumer). */
 	char			*address;
@@ -178,8 +184,33 @@ int		 redis_in_entry(struct redis_in *, const redisReply *);
 void		 redis_in_batch_begin(struct redis_in *, const redisReply *);
 void		 redis_in_batch_end(struct redis_in *);
 void		 redis_in_next(struct redis_in *);
+/* An XREADGROUP answer: new entries, or (pel) our own pending ones. */
+void		 redis_in_read_reply(struct redis_in *, const redisReply *,
+		    int pel);
 /* The group exists: read our own pending entries back. */
 void		 redis_in_setup_done(struct redis_in *);
+
+/* The lease lets us consume: (re)connect and read; or no longer. */
+void		 redis_in_resume(struct redis_in *);
+void		 redis_in_suspend(struct redis_in *, const char *why);
+/* Taking over: the adopted checkpoint's last applied entry ("" none). */
+void		 redis_in_position(struct redis_in *, const char *last_id);
+
+/* redis_lease.c: the one consumer of a group, by a lease in Redis. */
+extern const char redis_lease_read_lua[];
+struct redis_lease *redis_lease_new(struct redis_in *, char **cause);
+void		 redis_lease_free(struct redis_lease *);
+/* Ours, confirmed recently enough to read and apply now. */
+int		 redis_lease_valid(const struct redis_lease *);
+const char	*redis_lease_key(const struct redis_lease *);
+const char	*redis_lease_token(const struct redis_lease *);
+const char	*redis_lease_role(struct redis_lease *);
+void		 redis_lease_lost(struct redis_lease *);
+/* Under ha, the consumer's reads: fenced by the token (pel: our own
+ * pending entries from r->pel_cursor, else new ones). */
+void		 redis_lease_read(struct redis_lease *, int pel);
+void		 redis_lease_metrics(struct redis_lease *, struct evbuffer *);
+json_t		*redis_lease_json(struct redis_lease *);
 
 /* redis_house.c */
 void		 redis_house_ack_ids(struct redis_in *, const char **ids,

@@ -71,6 +71,9 @@ retire_idle(struct daemon *d)
 	char *path = NULL, *cause = NULL, name[PROTO_NAME_MAX + 1];
 	int n;
 
+	/* A standby's state is a stale copy: the holder retires. */
+	if (!redis_lease_may_checkpoint(redis_in_lease(d->redis)))
+		return;
 	for (n = 0; n < RETIRE_PER_TICK; n++) {
 		if ((id = engine_idle(d->engine, daemon_now(),
 		    d->conf->retire_idle)) == NULL)

@@ -174,6 +174,10 @@ check_defaults(const struct conf *c)
 	assert_true(c->redis_claim_idle == 60);
 	assert_int_equal(c->redis_batch, 256);
 	assert_true(c->redis_block == 2);
+	assert_false(c->redis_ha);
+	assert_true(c->redis_lease_ttl == 10);
+	assert_null(c->redis_lease_key);
+	assert_null(c->redis_state_key);
 	assert_null(c->kafka_brokers);
 	assert_string_equal(c->kafka_topic, "stopcock.records");
 	assert_string_equal(c->kafka_group, "stopcock");
@@ -389,6 +393,20 @@ static const struct ecase ecases[] = {
 	  "t.conf:2: bad value 'paused:%h' for 'redis_key'" },
 	{ "stream blank", "[redis]\nstream = two words\n",
 	  "t.conf:2: bad value 'two words' for 'stream'" },
+	{ "redis ha without address", "[redis]\nha = yes\n",
+	  "t.conf:2: [redis] ha = yes needs [redis] address" },
+	{ "redis ha host consumer", "[redis]\naddress = 127.0.0.1:6379\n"
+	  "ha = yes\n", "t.conf:3: [redis] ha = yes: every daemon must read "
+	  "as the same consumer; set [redis] consumer to a name without %h" },
+	{ "redis ha with tcp", "[daemon]\ntcp = 127.0.0.1:7000\n[redis]\n"
+	  "address = 127.0.0.1:6379\nconsumer = one\nha = yes\n",
+	  "t.conf:6: [redis] ha = yes: Redis must be the daemon's only record "
+	  "input" },
+	{ "redis ha same keys", "[redis]\naddress = 127.0.0.1:6379\n"
+	  "consumer = one\nha = yes\nlease_key = k\nstate_key = k\n",
+	  "t.conf:4: [redis] lease_key and state_key are both k" },
+	{ "redis lease_ttl short", "[redis]\nlease_ttl = 0.5s\n",
+	  "t.conf:2: bad value '0.5s' for 'lease_ttl'" },
 	{ "kafka brokers no port", "[kafka]\nbrokers = k1:9092,k2\n",
 	  "t.conf:2: bad value 'k1:9092,k2' for 'brokers' in [kafka]: "
 	  "expected host:port[,host:port...], port 1-65535" },
