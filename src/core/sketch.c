@@ -795,23 +795,80 @@ sketch_bytes(const struct sketch *s)
 	    sketch_store_bytes(&s->neg);
 }
 
-size_t
-sketch_buckets_side(const struct sketch *s, int side, double *value,
-    uint64_t *count, size_t max)
+/*
+ * One store's blocks for the bucket views, in the order of
+ * sketch_store_next, as plain loops: the quantile tests read every
+ * bucket on every look, and the walker's state machine cost more than
+ * the values. The values are computed as sketch_buckets_side always did
+ * (sketch_block_value, sketch_block_bounds), so they are the same bits.
+ */
+static size_t
+sketch_store_side(const struct sketch *s, const struct sketch_store *st,
+    int neg, int side, double *value, uint64_t *count, size_t n, size_t max)
 {
-	struct sketch_walk w = { 0, 0 };
 	struct sketch_block b;
+	const int32_t *wk;
 	double lo, hi;
-	size_t n = 0;
+	uint64_t c;
+	uint32_t i;
+	int64_t k;
 
-	while (n < max && sketch_next(s, &w, &b)) {
-		if (side != 0 && (b.kind == SK_LOW || b.kind == SK_HIGH)) {
+	b.neg = neg;
+	if (st->low.count != 0 && n < max) {
+		b.kind = SK_LOW;
+		b.kmin = st->low.kmin;
+		b.kmax = st->low.kmax;
+		if (side != 0) {
 			sketch_block_bounds(s, &b, &lo, &hi);
 			value[n] = side < 0 ? lo : hi;
 		} else
 			value[n] = sketch_block_value(s, &b);
-		count[n++] = b.count;
+		count[n++] = st->low.count;
 	}
+	if (st->flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		for (i = 0; i < st->len && n < max; i++) {
+			value[n] = sketch_value(s, wk[i], neg);
+			count[n++] = st->counts[i];
+		}
+	} else if (st->lo <= st->hi) {
+		for (k = st->lo; k <= st->hi && n < max; k++) {
+			if ((c = st->counts[k - st->offset]) != 0) {
+				value[n] = sketch_value(s, (int32_t)k, neg);
+				count[n++] = c;
+			}
+		}
+	}
+	if (st->high.count != 0 && n < max) {
+		b.kind = SK_HIGH;
+		b.kmin = st->high.kmin;
+		b.kmax = st->high.kmax;
+		if (side != 0) {
+			sketch_block_bounds(s, &b, &lo, &hi);
+			value[n] = side < 0 ? lo : hi;
+		} else
+			value[n] = sketch_block_value(s, &b);
+		count[n++] = st->high.count;
+	}
+	return n;
+}
+
+size_t
+sketch_buckets_side(const struct sketch *s, int side, double *value,
+    uint64_t *count, size_t max)
+{
+	size_t n = 0;
+
+	if (s->neg.total != 0)
+		n = sketch_store_side(s, &s->neg, 1, side, value, count, n,
+		    max);
+	if (s->zero != 0 && n < max) {
+		value[n] = 0.0;
+		count[n++] = s->zero;
+	}
+	if (s->pos.total != 0)
+		n = sketch_store_side(s, &s->pos, 0, side, value, count, n,
+		    max);
 	return n;
 }
 
@@ -837,16 +894,27 @@ sketch_bounds(const struct sketch *s, double *lo, double *hi,
 	return n;
 }
 
+/* Blocks of one store, as sketch_store_next would give them. */
+static size_t
+sketch_store_nblocks(const struct sketch_store *st)
+{
+	size_t n = (st->low.count != 0) + (st->high.count != 0);
+	int64_t k;
+
+	if (st->flags & SKETCH_F_WARM)
+		return n + st->len;
+	if (st->lo <= st->hi)
+		for (k = st->lo; k <= st->hi; k++)
+			n += st->counts[k - st->offset] != 0;
+	return n;
+}
+
 size_t
 sketch_nbuckets(const struct sketch *s)
 {
-	struct sketch_walk w = { 0, 0 };
-	struct sketch_block b;
-	size_t n = 0;
-
-	while (sketch_next(s, &w, &b))
-		n++;
-	return n;
+	return (s->neg.total != 0 ? sketch_store_nblocks(&s->neg) : 0) +
+	    (s->zero != 0) +
+	    (s->pos.total != 0 ? sketch_store_nblocks(&s->pos) : 0);
 }
 
 /* Merging o's edges into st: an edge overlapping the other side folds. */
