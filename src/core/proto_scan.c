@@ -86,6 +86,19 @@ scan16(__m128i c, unsigned *blank, unsigned *other, __m128i *bad)
 	*bad = _mm_or_si128(*bad, ctl);
 }
 
+/* Sixteen bits of masks for the bytes from i (a multiple of 16) on. */
+static inline void
+scan_put(uint64_t *blank, uint64_t *other, size_t i, unsigned b, unsigned o)
+{
+	if ((i & 63) == 0) {
+		blank[i >> 6] = b;
+		other[i >> 6] = o;
+	} else {
+		blank[i >> 6] |= (uint64_t)b << (i & 63);
+		other[i >> 6] |= (uint64_t)o << (i & 63);
+	}
+}
+
 /* The masks of line[0..len); 1 when the line holds a control byte. */
 static int
 scan_masks(const char *s, size_t len, uint64_t *blank, uint64_t *other)
@@ -93,25 +106,29 @@ scan_masks(const char *s, size_t len, uint64_t *blank, uint64_t *other)
 	unsigned b, o;
 	char tail[16];
 	size_t i;
-	__m128i c, bad = _mm_setzero_si128();
+	__m128i bad = _mm_setzero_si128();
 
-	for (i = 0; i < len; i += 16) {
-		if (len - i >= 16)
-			c = _mm_loadu_si128((const __m128i *)(const void *)(s + i));
-		else {
+	for (i = 0; i + 16 <= len; i += 16) {
+		scan16(_mm_loadu_si128((const __m128i *)(const void *)(s + i)),
+		    &b, &o, &bad);
+		scan_put(blank, other, i, b, o);
+	}
+	if (i < len) {
+		if (len >= 16) {
+			/* the last sixteen bytes of the line, overlapping the
+			 * chunk before: their top len - i mask bits are new */
+			scan16(_mm_loadu_si128((const __m128i *)(const void *)
+			    (s + len - 16)), &b, &o, &bad);
+			b >>= 16 - (len - i);
+			o >>= 16 - (len - i);
+		} else {
 			/* never read past the line: the rest is blanks */
 			memset(tail, ' ', sizeof tail);
-			memcpy(tail, s + i, len - i);
-			c = _mm_loadu_si128((const __m128i *)(const void *)tail);
+			memcpy(tail, s, len);
+			scan16(_mm_loadu_si128((const __m128i *)(const void *)
+			    tail), &b, &o, &bad);
 		}
-		scan16(c, &b, &o, &bad);
-		if ((i & 63) == 0) {
-			blank[i >> 6] = b;
-			other[i >> 6] = o;
-		} else {
-			blank[i >> 6] |= (uint64_t)b << (i & 63);
-			other[i >> 6] |= (uint64_t)o << (i & 63);
-		}
+		scan_put(blank, other, i, b, o);
 	}
 	return _mm_movemask_epi8(bad) != 0;
 }
@@ -154,6 +171,16 @@ scan_clear(const uint64_t *m, size_t a, size_t b)
 	return (m[last] & hi) == 0;
 }
 
+/* A token [a, b) is a name: no "other" byte in it; most sit in one word. */
+static inline int
+scan_name(const uint64_t *other, size_t a, size_t b)
+{
+	if (b - a < 64 && (a >> 6) == ((b - 1) >> 6))
+		return ((other[a >> 6] >> (a & 63)) &
+		    ((1ULL << (b - a)) - 1)) == 0;
+	return scan_clear(other, a, b);
+}
+
 int
 proto_split(const char *line, size_t len, struct tok *t)
 {
@@ -190,7 +217,7 @@ proto_split(const char *line, size_t len, struct tok *t)
 			if (nt < PROTO_TOKENS) {
 				t[nt].p = line + start;
 				t[nt].n = pos - start;
-				t[nt].name = scan_clear(other, start, pos);
+				t[nt].name = scan_name(other, start, pos);
 			}
 			nt++;
 		}
@@ -200,7 +227,7 @@ proto_split(const char *line, size_t len, struct tok *t)
 		if (nt < PROTO_TOKENS) {
 			t[nt].p = line + start;
 			t[nt].n = len - start;
-			t[nt].name = scan_clear(other, start, len);
+			t[nt].name = scan_name(other, start, len);
 		}
 		nt++;
 	}
