@@ -136,8 +136,7 @@ groups_free(struct groups *g)
 {
 	if (g == NULL)
 		return;
-	free(g->s);
-	free(g->n);
+	free(g->sn);
 	free(g);
 }
 
@@ -147,8 +146,7 @@ groups_new(uint32_t G)
 	struct groups *g = xcalloc(1, sizeof *g);
 
 	g->G = G;
-	g->s = xcalloc(G, sizeof *g->s);
-	g->n = xcalloc(G, sizeof *g->n);
+	g->sn = xcalloc(2 * (size_t)G, sizeof *g->sn);
 	return g;
 }
 
@@ -165,7 +163,9 @@ static void
 groups_add(struct engine *eng, struct groups **gp, uint64_t h, double num,
     double den)
 {
-	uint32_t G, gi;
+	struct groups *g;
+	double *c;
+	uint32_t gi;
 
 	if (*gp == NULL) {
 		if (h == 0)
@@ -173,15 +173,17 @@ groups_add(struct engine *eng, struct groups **gp, uint64_t h, double num,
 		*gp = groups_new(eng->conf->unit_groups);
 		eng->counters.grouped_series++;
 	}
-	G = (*gp)->G;
+	g = *gp;
+	/* h >> 32 fits 32 bits: the same index by a 32-bit division */
 	if (h != 0)
-		gi = (uint32_t)((h >> 32) % G);
+		gi = (uint32_t)(h >> 32) % g->G;
 	else
-		gi = (uint32_t)((*gp)->seq++ % G);
-	if ((*gp)->n[gi] == 0 && den != 0)
-		(*gp)->used++;
-	(*gp)->s[gi] += num;
-	(*gp)->n[gi] += den;
+		gi = (uint32_t)(g->seq++ % g->G);
+	c = &g->sn[2 * (size_t)gi];
+	if (c[1] == 0 && den != 0)
+		g->used++;
+	c[0] += num;
+	c[1] += den;
 }
 
 /*

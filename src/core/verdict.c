@@ -122,7 +122,7 @@ group_var(const struct engine *eng, const struct series *sr, double q)
 
 	if (gp == NULL || gp->used < ENGINE_GROUPS_MIN)
 		return NAN;
-	v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
+	v = stats_group_var_strided((int)gp->G, gp->sn, gp->sn + 1, 2, &R);
 	kappa = stats_group_kappa(gp->used - 1, q);
 	return isfinite(kappa) && kappa > 1 ? v * kappa : v;
 }
@@ -508,12 +508,13 @@ quantile_weights(const struct test *t, double wt[2])
 		if ((gp = t->qg[side]) == NULL)
 			return -1;
 		for (i = used = 0, N = 0; i < gp->G; i++) {
-			used += gp->n[i] != 0;
-			N += gp->n[i];
+			used += gp->sn[2 * (size_t)i + 1] != 0;
+			N += gp->sn[2 * (size_t)i + 1];
 		}
 		if (used < ENGINE_GROUPS_MIN)
 			return -1;
-		v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
+		v = stats_group_var_strided((int)gp->G, gp->sn, gp->sn + 1, 2,
+		    &R);
 		kappa = stats_group_kappa(used - 1, q);
 		if (isfinite(kappa) && kappa > 1)
 			v *= kappa;

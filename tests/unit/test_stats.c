@@ -962,6 +962,31 @@ test_group_var(void **state)
 	    1.006006364, 9);
 	assert_true(isnan(stats_group_var(1, S, N, &R)));
 	assert_true(ok);
+
+	/* interleaved (S, N) pairs, as the engine keeps them: the same bits */
+	{
+		double sn[2 * 256], s1[256], n1[256], R2, v2;
+		uint64_t x = 0x9e3779b97f4a7c15ULL;
+		int g, trial;
+
+		for (trial = 0; trial < 200; trial++) {
+			for (g = 0; g < 256; g++) {
+				x ^= x << 13;
+				x ^= x >> 7;
+				x ^= x << 17;
+				s1[g] = sn[2 * g] = (x % 4 == 0) ? 0 :
+				    (double)(x >> 11) / 9007199254740992.0 *
+				    1e3;
+				n1[g] = sn[2 * g + 1] = s1[g] == 0 ? 0 :
+				    (double)(1 + (x >> 40) % 50);
+			}
+			v = stats_group_var(16 + trial, s1, n1, &R);
+			v2 = stats_group_var_strided(16 + trial, sn, sn + 1,
+			    2, &R2);
+			assert_memory_equal(&v, &v2, sizeof v);
+			assert_memory_equal(&R, &R2, sizeof R);
+		}
+	}
 }
 
 int

@@ -94,10 +94,17 @@ stats_prop_null(double x_t, double n_t, double x_c, double n_c, double D,
 double
 stats_group_var(int G, const double *S, const double *N, double *R)
 {
+	return stats_group_var_strided(G, S, N, 1, R);
+}
+
+double
+stats_group_var_strided(int G, const double *S, const double *N,
+    int stride, double *R)
+{
 	double s = 0, n = 0, zz = 0, z, r;
 	int g, used = 0;
 
-	for (g = 0; g < G; g++) {
+	for (g = 0; g < G * stride; g += stride) {
 		s += S[g];
 		n += N[g];
 		used += N[g] != 0 || S[g] != 0;
@@ -107,7 +114,7 @@ stats_group_var(int G, const double *S, const double *N, double *R)
 		return NAN;
 	}
 	r = s / n;
-	for (g = 0; g < G; g++) {
+	for (g = 0; g < G * stride; g += stride) {
 		z = S[g] - r * N[g];
 		zz += z * z;
 	}
