@@ -809,6 +809,9 @@ engine_free(struct engine *eng)
 	conf_free(eng->conf);
 	free(eng->scratch_v);
 	free(eng->scratch_c);
+	free(eng->view_lo);
+	free(eng->view_hi);
+	free(eng->view_c);
 	free(eng);
 }
 

@@ -303,6 +303,10 @@ struct engine {
 	double		*scratch_v;
 	uint64_t	*scratch_c;
 	size_t		 scratch_n;
+	/* both arms' bucket views of one look (verdict.c view_fill), as
+	 * large as scratch_v: each arm's read once, then transformed */
+	double		*view_lo, *view_hi;
+	uint64_t	*view_c;
 };
 
 /* engine.c */

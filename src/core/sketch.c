@@ -853,6 +853,68 @@ sketch_store_side(const struct sketch *s, const struct sketch_store *st,
 	return n;
 }
 
+/* sketch_store_side for side -1 into vlo and side +1 into vhi at once. */
+static size_t
+sketch_store_sides(const struct sketch *s, const struct sketch_store *st,
+    int neg, double *vlo, double *vhi, uint64_t *count, size_t n,
+    size_t max)
+{
+	struct sketch_block b;
+	const int32_t *wk;
+	uint64_t c;
+	uint32_t i;
+	int64_t k;
+
+	b.neg = neg;
+	if (st->low.count != 0 && n < max) {
+		b.kind = SK_LOW;
+		b.kmin = st->low.kmin;
+		b.kmax = st->low.kmax;
+		sketch_block_bounds(s, &b, &vlo[n], &vhi[n]);
+		count[n++] = st->low.count;
+	}
+	if (st->flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		for (i = 0; i < st->len && n < max; i++) {
+			vlo[n] = vhi[n] = sketch_value(s, wk[i], neg);
+			count[n++] = st->counts[i];
+		}
+	} else if (st->lo <= st->hi) {
+		for (k = st->lo; k <= st->hi && n < max; k++) {
+			if ((c = st->counts[k - st->offset]) != 0) {
+				vlo[n] = vhi[n] = sketch_value(s, (int32_t)k,
+				    neg);
+				count[n++] = c;
+			}
+		}
+	}
+	if (st->high.count != 0 && n < max) {
+		b.kind = SK_HIGH;
+		b.kmin = st->high.kmin;
+		b.kmax = st->high.kmax;
+		sketch_block_bounds(s, &b, &vlo[n], &vhi[n]);
+		count[n++] = st->high.count;
+	}
+	return n;
+}
+
+size_t
+sketch_buckets_sides(const struct sketch *s, double *lo, double *hi,
+    uint64_t *count, size_t max)
+{
+	size_t n = 0;
+
+	if (s->neg.total != 0)
+		n = sketch_store_sides(s, &s->neg, 1, lo, hi, count, n, max);
+	if (s->zero != 0 && n < max) {
+		lo[n] = hi[n] = 0.0;
+		count[n++] = s->zero;
+	}
+	if (s->pos.total != 0)
+		n = sketch_store_sides(s, &s->pos, 0, lo, hi, count, n, max);
+	return n;
+}
+
 size_t
 sketch_buckets_side(const struct sketch *s, int side, double *value,
     uint64_t *count, size_t max)
