@@ -931,7 +931,8 @@ test_sides_conservative(void **state)
 }
 
 /*
- * The bucket views (sketch_buckets_side, sketch_nbuckets: direct loops
+ * The bucket views (sketch_buckets_side, sketch_buckets_sides,
+ * sketch_nbuckets: direct loops
  * over the stores) against the ordered walk that sketch_bounds and
  * sketch_quantile use, on sketches of every shape: warm lists, dense
  * windows, both edges, negatives and zeros. Same number of blocks, same
@@ -989,6 +990,12 @@ test_views_vs_walk(void **state)
 			assert_true(v[0][i] == v[1][i] && v[2][i] == v[1][i]);
 			assert_true(lo[i] <= v[1][i] && v[1][i] <= hi[i]);
 		}
+		/* both sides at once: the same bits as each side alone */
+		assert_int_equal(sketch_buckets_sides(s, lo, hi, c[3],
+		    VIEW_MAX), n);
+		assert_memory_equal(lo, v[0], n * sizeof lo[0]);
+		assert_memory_equal(hi, v[2], n * sizeof hi[0]);
+		assert_memory_equal(c[3], c[0], n * sizeof c[3][0]);
 		/* a short buffer: the first blocks, the same */
 		if (n > 2) {
 			nv[0] = sketch_buckets_side(s, 1, v[0], c[0], n / 2);
