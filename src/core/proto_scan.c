@@ -153,39 +153,29 @@ scan_masks(const char *s, size_t len, uint64_t *blank, uint64_t *other)
 }
 #endif
 
-/* 1 when no bit of m is set in [a, b). */
-static inline int
-scan_clear(const uint64_t *m, size_t a, size_t b)
+/* The first set bit of m[0..nw) at or after pos; SIZE_MAX when none. */
+static inline size_t
+scan_next_set(const uint64_t *m, size_t nw, size_t pos)
 {
-	size_t w = a >> 6, last = (b - 1) >> 6;
-	uint64_t lo = ~0ULL << (a & 63);
-	uint64_t hi = (b & 63) ? ~0ULL >> (64 - (b & 63)) : ~0ULL;
+	size_t w = pos >> 6;
+	uint64_t x;
 
-	if (w == last)
-		return (m[w] & lo & hi) == 0;
-	if (m[w] & lo)
-		return 0;
-	for (w++; w < last; w++)
-		if (m[w])
-			return 0;
-	return (m[last] & hi) == 0;
-}
-
-/* A token [a, b) is a name: no "other" byte in it; most sit in one word. */
-static inline int
-scan_name(const uint64_t *other, size_t a, size_t b)
-{
-	if (b - a < 64 && (a >> 6) == ((b - 1) >> 6))
-		return ((other[a >> 6] >> (a & 63)) &
-		    ((1ULL << (b - a)) - 1)) == 0;
-	return scan_clear(other, a, b);
+	if (w >= nw)
+		return SIZE_MAX;
+	x = m[w] & (~0ULL << (pos & 63));
+	while (x == 0) {
+		if (++w == nw)
+			return SIZE_MAX;
+		x = m[w];
+	}
+	return w * 64 + (size_t)__builtin_ctzll(x);
 }
 
 int
 proto_split(const char *line, size_t len, struct tok *t)
 {
 	uint64_t blank[SCAN_WORDS], other[SCAN_WORDS], nb, edge;
-	size_t nw = (len + 63) >> 6, w, pos, start = 0;
+	size_t nw = (len + 63) >> 6, w, pos, start = 0, onext;
 	int nt = 0, in = 0;
 
 	if (len == 0)
@@ -200,8 +190,12 @@ proto_split(const char *line, size_t len, struct tok *t)
 	/*
 	 * A bit of edge marks a byte unlike the one before it (a blank after
 	 * a token byte or the reverse): token starts and ends alternate, so
-	 * each set bit, lowest first, toggles "in a token".
+	 * each set bit, lowest first, toggles "in a token". A token is a
+	 * name when the next "other" byte at or after its start lies beyond
+	 * its end; tokens come in order, so onext only moves forward (a line
+	 * holds few such bytes: '@', '=').
 	 */
+	onext = scan_next_set(other, nw, 0);
 	for (w = 0; w < nw; w++) {
 		nb = ~blank[w];
 		edge = nb ^ ((nb << 1) | (uint64_t)in);
@@ -215,9 +209,12 @@ proto_split(const char *line, size_t len, struct tok *t)
 			}
 			in = 0;
 			if (nt < PROTO_TOKENS) {
+				while (onext < start)
+					onext = scan_next_set(other, nw,
+					    onext + 1);
 				t[nt].p = line + start;
 				t[nt].n = pos - start;
-				t[nt].name = scan_name(other, start, pos);
+				t[nt].name = onext >= pos;
 			}
 			nt++;
 		}
@@ -225,9 +222,11 @@ proto_split(const char *line, size_t len, struct tok *t)
 	if (in) {
 		/* a token that ends the line, at the end of a mask word */
 		if (nt < PROTO_TOKENS) {
+			while (onext < start)
+				onext = scan_next_set(other, nw, onext + 1);
 			t[nt].p = line + start;
 			t[nt].n = len - start;
-			t[nt].name = scan_name(other, start, len);
+			t[nt].name = onext >= len;
 		}
 		nt++;
 	}
