@@ -281,6 +281,41 @@ scan_accumulate(const char *p, const char *q, uint64_t *m, int *nd,
  * "C".) Each digit is looked at twice, in two tight loops: once to find
  * the end of its run, once to add it to the significand.
  */
+/*
+ * The common case in one loop: at most 19 digits with at most one point
+ * and no exponent, which is m exactly (leading zeros add nothing, no
+ * digit is dropped) over 10^(digits after the point), what the general
+ * path below computes for it: Clinger's (1990) fast path, correctly
+ * rounded while m <= 2^53 and the power is at most 10^22. 1 when it applied (*out set), 0 when the
+ * general path must decide.
+ */
+static inline int
+scan_short(const char *p, const char *e, int neg, double *out)
+{
+	uint64_t m = 0;
+	unsigned d;
+	int nd = 0, frac = -1;
+
+	for (; p < e; p++) {
+		if ((d = (unsigned)(*p - '0')) < 10) {
+			m = m * 10 + d;
+			nd++;
+		} else if (*p == '.' && frac < 0)
+			frac = nd;
+		else
+			return 0;
+	}
+	if (nd == 0 || nd > 19)
+		return 0;
+	frac = frac < 0 ? 0 : nd - frac;
+	if (m > (1ULL << 53) || frac > 22)
+		return 0;
+	*out = frac > 0 ? (double)m / proto_pow10[frac] : (double)m;
+	if (neg)
+		*out = -*out;	/* "-0" is -0.0, as strtod has it */
+	return 1;
+}
+
 int
 proto_number(const char *s, size_t n, int allow_sign, double *out)
 {
@@ -300,6 +335,8 @@ proto_number(const char *s, size_t n, int allow_sign, double *out)
 		neg = *p == '-';
 		p++;
 	}
+	if (scan_short(p, e, neg, out))
+		return 0;
 	/* integer part: leading zeros add nothing; dropped digits scale */
 	q = scan_digits(p, e);
 	digits = (int)(q - p);
