@@ -735,28 +735,108 @@ sketch_block_bounds(const struct sketch *s, const struct sketch_block *b,
 }
 
 /*
+ * One store's part of sketch_quantile, in the walk's order: 1 with *v
+ * once the running count *cum exceeds rank; else 0, with the store's
+ * last block in *last (*any set) when it has one.
+ */
+static int
+sketch_store_rank(const struct sketch *s, const struct sketch_store *st,
+    int neg, double rank, uint64_t *cum, double *v,
+    struct sketch_block *last, int *any)
+{
+	struct sketch_block b;
+	const int32_t *wk;
+	uint64_t c;
+	uint32_t i;
+	int64_t k;
+
+	b.neg = neg;
+	if (st->low.count != 0) {
+		b.kind = SK_LOW;
+		b.kmin = st->low.kmin;
+		b.kmax = st->low.kmax;
+		b.count = st->low.count;
+		if ((double)(*cum += b.count) > rank) {
+			*v = sketch_block_value(s, &b);
+			return 1;
+		}
+		*last = b;
+		*any = 1;
+	}
+	b.kind = SK_KEY;
+	if (st->flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		for (i = 0; i < st->len; i++)
+			if ((double)(*cum += st->counts[i]) > rank) {
+				*v = sketch_value(s, wk[i], neg);
+				return 1;
+			}
+		if (st->len > 0) {
+			b.kmin = b.kmax = wk[st->len - 1];
+			b.count = st->counts[st->len - 1];
+			*last = b;
+			*any = 1;
+		}
+	} else if (st->lo <= st->hi) {
+		for (k = st->lo; k <= st->hi; k++) {
+			if ((c = st->counts[k - st->offset]) == 0)
+				continue;
+			if ((double)(*cum += c) > rank) {
+				*v = sketch_value(s, (int32_t)k, neg);
+				return 1;
+			}
+			b.kmin = b.kmax = (int32_t)k;
+			b.count = c;
+			*last = b;
+			*any = 1;
+		}
+	}
+	if (st->high.count != 0) {
+		b.kind = SK_HIGH;
+		b.kmin = st->high.kmin;
+		b.kmax = st->high.kmax;
+		b.count = st->high.count;
+		if ((double)(*cum += b.count) > rank) {
+			*v = sketch_block_value(s, &b);
+			return 1;
+		}
+		*last = b;
+		*any = 1;
+	}
+	return 0;
+}
+
+/*
  * Rank q(n - 1) (0-based), and the first block whose running count
- * exceeds it, scanning from the lowest value up (docs/methods.md sec. 7).
+ * exceeds it, scanning from the lowest value up (docs/methods.md sec. 7):
+ * the order of sketch_next, as plain loops over the stores.
  */
 double
 sketch_quantile(const struct sketch *s, double q)
 {
-	struct sketch_walk w = { 0, 0 };
-	struct sketch_block b, last = { SK_ZERO, 0, 0, 0, 0 };
-	double rank;
+	struct sketch_block last = { SK_ZERO, 0, 0, 0, 0 };
+	double rank, v;
 	uint64_t cum = 0;
 	int any = 0;
 
 	if (s->count == 0 || !(q >= 0 && q <= 1))
 		return NAN;
 	rank = q * (double)(s->count - 1);
-	while (sketch_next(s, &w, &b)) {
-		cum += b.count;
-		if ((double)cum > rank)
-			return sketch_block_value(s, &b);
-		last = b;
+	if (s->neg.total != 0 &&
+	    sketch_store_rank(s, &s->neg, 1, rank, &cum, &v, &last, &any))
+		return v;
+	if (s->zero != 0) {
+		if ((double)(cum += s->zero) > rank)
+			return 0.0;
+		last.kind = SK_ZERO;
+		last.neg = 0;
+		last.kmin = last.kmax = 0;
+		last.count = s->zero;
 		any = 1;
 	}
+	if (s->pos.total != 0 &&
+	    sketch_store_rank(s, &s->pos, 0, rank, &cum, &v, &last, &any))
+		return v;
 	/* Only reached through rounding of rank near n - 1. */
 	return any ? sketch_block_value(s, &last) : NAN;
 }

@@ -996,6 +996,22 @@ test_views_vs_walk(void **state)
 		assert_memory_equal(lo, v[0], n * sizeof lo[0]);
 		assert_memory_equal(hi, v[2], n * sizeof hi[0]);
 		assert_memory_equal(c[3], c[0], n * sizeof c[3][0]);
+		/* sketch_quantile: the first block whose running count
+		 * exceeds q (n - 1), from the side-0 view */
+		nv[1] = sketch_buckets_side(s, 0, v[1], c[1], VIEW_MAX);
+		for (k = 0; k <= 20; k++) {
+			double q = k / 20.0, rank, want = v[1][nv[1] - 1], got;
+			uint64_t cum = 0;
+
+			rank = q * (double)(sketch_count(s) - 1);
+			for (i = 0; i < nv[1]; i++)
+				if ((double)(cum += c[1][i]) > rank) {
+					want = v[1][i];
+					break;
+				}
+			got = sketch_quantile(s, q);
+			assert_memory_equal(&got, &want, sizeof got);
+		}
 		/* a short buffer: the first blocks, the same */
 		if (n > 2) {
 			nv[0] = sketch_buckets_side(s, 1, v[0], c[0], n / 2);
