@@ -369,19 +369,22 @@ stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
 	l0 = log((n_b + 0.5) / e_b) - log((n_a + 0.5) / e_a);
 	step = upper ? 1 : -1;
 	in = l0;
-	if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper) >= target)
+	if ((fin = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper)) >=
+	    target)
 		return 0;	/* degenerate: keep the trivial bound */
 	for (out = in + step;; out += step) {
 		if (fabs(out - l0) > DIR_BOUND_LOGR)
 			return 0;	/* never rejected: 0 or inf */
-		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out, upper) >=
-		    target)
+		if ((fout = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out,
+		    upper)) >= target)
 			break;
 		in = out;
+		fin = fout;
 	}
-	/* Illinois regula falsi on log r, as in stats_bb_bound */
-	fin = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper) - target;
-	fout = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out, upper) - target;
+	/* Illinois regula falsi on log r, as in stats_bb_bound; the ends'
+	 * factors are the ones the walk just computed */
+	fin -= target;
+	fout -= target;
 	for (i = 0; i < 200 && fabs(out - in) > 1e-13; i++) {
 		mid = isfinite(fout) && isfinite(fin) ?
 		    (in * fout - out * fin) / (fout - fin) : 0.5 * (in + out);
