@@ -54,6 +54,10 @@ size_t		 sketch_buckets(const struct sketch *, double *value,
  */
 size_t		 sketch_buckets_side(const struct sketch *, int side,
 		    double *value, uint64_t *count, size_t max);
+/* Both sides at once: lo[] as side < 0, hi[] as side > 0 (the same
+ * bits), each bucket's representative computed once. */
+size_t		 sketch_buckets_sides(const struct sketch *, double *lo,
+		    double *hi, uint64_t *count, size_t max);
 /*
  * The same blocks as intervals: every value a block holds lies in
  * [lo, hi] (a bucket's own range; an edge's whole range; 0 for zeros).

@@ -80,6 +80,10 @@ int	stats_prop_null(double x_t, double n_t, double x_c, double n_c,
  * / N^2. Sets *R; returns the variance (NAN when N is 0 or G < 2).
  */
 double	stats_group_var(int G, const double *S, const double *N, double *R);
+/* The same over S[g * stride], N[g * stride]: groups kept as interleaved
+ * (S, N) pairs (stride 2), the same sums in the same order. */
+double	stats_group_var_strided(int G, const double *S, const double *N,
+	    int stride, double *R);
 /*
  * Inflation for a variance estimated from nu + 1 groups, so the test's
  * tail at one-sided probability q matches a t with nu degrees of freedom:

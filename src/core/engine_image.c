@@ -187,8 +187,8 @@ groups_save(const struct groups *g)
 	uint32_t i;
 
 	for (i = 0; i < g->G; i++) {
-		json_array_append_new(sa, sreal(g->s[i]));
-		json_array_append_new(na, sreal(g->n[i]));
+		json_array_append_new(sa, sreal(g->sn[2 * (size_t)i]));
+		json_array_append_new(na, sreal(g->sn[2 * (size_t)i + 1]));
 	}
 	/* the design effect's cache too, so a restored engine looks with
 	 * the same variances as the one that saved it */
@@ -253,15 +253,15 @@ groups_load(struct series *sr, const json_t *o, uint32_t Gmax)
 		return -1;
 	sr->grp = xcalloc(1, sizeof *sr->grp);
 	sr->grp->G = (uint32_t)G;
-	sr->grp->s = xcalloc(G, sizeof *sr->grp->s);
-	sr->grp->n = xcalloc(G, sizeof *sr->grp->n);
+	sr->grp->sn = xcalloc(2 * G, sizeof *sr->grp->sn);
 	sr->grp->seq = (uint64_t)json_integer_value(json_object_get(o, "seq"));
 	for (i = 0; i < G; i++) {
-		sr->grp->s[i] = aget(sa, i);
-		sr->grp->n[i] = aget(na, i);
-		if (!isfinite(sr->grp->s[i]) || !isfinite(sr->grp->n[i]))
+		sr->grp->sn[2 * i] = aget(sa, i);
+		sr->grp->sn[2 * i + 1] = aget(na, i);
+		if (!isfinite(sr->grp->sn[2 * i]) ||
+		    !isfinite(sr->grp->sn[2 * i + 1]))
 			return -1;
-		sr->grp->used += sr->grp->n[i] != 0;
+		sr->grp->used += sr->grp->sn[2 * i + 1] != 0;
 	}
 	if ((d = json_object_get(o, "deff")) != NULL) {
 		sr->grp->deff_at = aget(d, 0);

@@ -63,8 +63,11 @@ enum metric_kind { METRIC_UNSET, METRIC_OBSERVE, METRIC_COUNT };
 struct groups {
 	uint32_t	 G;		/* unit_groups when allocated */
 	uint64_t	 seq;		/* records without unit=: round robin */
-	double		*s;		/* [G] numerator: values, events */
-	double		*n;		/* [G] denominator: records, trials */
+	/* [2G]: group g's numerator (values, events) at sn[2g] and its
+	 * denominator (records, trials) at sn[2g + 1], side by side so a
+	 * record touches one cache line, not two (units hash to groups at
+	 * random, so every add is a miss on a large engine) */
+	double		*sn;
 	uint32_t	 used;		/* groups with n != 0 */
 	/* verdict.c group_var: the design effect, refreshed as the series
 	 * grows by 1/ENGINE_DEFF_REFRESH (derived, not saved) */
@@ -302,6 +305,10 @@ struct engine {
 	double		*scratch_v;
 	uint64_t	*scratch_c;
 	size_t		 scratch_n;
+	/* both arms' bucket views of one look (verdict.c view_fill), as
+	 * large as scratch_v: each arm's read once, then transformed */
+	double		*view_lo, *view_hi;
+	uint64_t	*view_c;
 };
 
 /* engine.c */

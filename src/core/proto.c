@@ -46,16 +46,9 @@
 #include <jansson.h>
 
 #include "stopcock/proto.h"
+#include "proto_int.h"
 
 #define PROTO_TS_MAX 1e11	/* year 5138: anything later is a unit error */
-#define PROTO_NUMBER_MAX 400	/* characters in one numeric token */
-#define PROTO_TOKENS 24		/* kept per line; more is always wrong */
-
-struct tok {
-	const char	*p;
-	size_t		 n;
-	int		 name;		/* every byte in [A-Za-z0-9._:-] */
-};
 
 static const char *const proto_reasons[PROTO_NSTATUS] = {
 	[PROTO_OK] = "ok",
@@ -112,31 +105,6 @@ proto_describe(enum proto_status st)
 	return proto_sentences[st];
 }
 
-/* Byte classes: one table look-up per byte splits, screens and checks. */
-#define PC_BLANK 1		/* space, tab: separates tokens */
-#define PC_BAD 2		/* NUL, other controls, DEL */
-#define PC_NAME 4		/* [A-Za-z0-9._:-] */
-
-static const uint8_t proto_class[256] = {
-	2, 2, 2, 2, 2, 2, 2, 2, 2, 1, 2, 2, 2, 2, 2, 2,
-	2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2, 2,
-	1, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 4, 4, 0,
-	4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 0, 0, 0, 0, 0,
-	0, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4,
-	4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 0, 0, 0, 0, 4,
-	0, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4,
-	4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 4, 0, 0, 0, 0, 2,
-	/* 0x80..0xff: allowed in comments and JSON strings, not in names */
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-	0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0,
-};
-
 int
 proto_name_ok(const char *s, size_t len)
 {
@@ -169,104 +137,6 @@ proto_tokname(char *dst, const struct tok *t)
 		return -1;
 	memcpy(dst, t->p, t->n);
 	dst[t->n] = '\0';
-	return 0;
-}
-
-/* Powers of ten that a double holds exactly (10^22 < 2^53 * 2^22). */
-static const double proto_pow10[23] = {
-	1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10, 1e11,
-	1e12, 1e13, 1e14, 1e15, 1e16, 1e17, 1e18, 1e19, 1e20, 1e21, 1e22
-};
-
-/*
- * A finite decimal: [+-] (D+ [. D*] | . D+) [(e|E) [+-] D+], nothing else.
- * When the significant digits fit an integer m <= 2^53 and the decimal
- * exponent e is within +-22, m and 10^|e| are both exact doubles and one
- * IEEE multiply or divide rounds correctly, so the result is the one
- * strtod gives (Clinger 1990's fast path). Everything else goes to strtod
- * on a NUL-terminated copy. (strtod follows LC_NUMERIC; stopcock never
- * calls setlocale, so that is "C".)
- */
-static int
-proto_number(const char *s, size_t n, int allow_sign, double *out)
-{
-	const char *p = s, *e = s + n;
-	uint64_t m = 0;
-	int neg = 0, nd = 0, digits = 0, inexact = 0, e10 = 0, x = 0, xneg = 0;
-	char buf[PROTO_NUMBER_MAX + 1];
-	char *end;
-	double v;
-
-	if (n == 0 || n > PROTO_NUMBER_MAX)
-		return -1;
-	if (*p == '+' || *p == '-') {
-		if (!allow_sign)
-			return -1;
-		neg = *p == '-';
-		p++;
-	}
-	for (; p < e && (unsigned)(*p - '0') < 10; p++) {
-		digits++;
-		if (nd < 19) {
-			if (m != 0 || *p != '0') {
-				m = m * 10 + (unsigned)(*p - '0');
-				nd++;
-			}
-		} else {
-			e10++;
-			inexact |= *p != '0';
-		}
-	}
-	if (p < e && *p == '.') {
-		for (p++; p < e && (unsigned)(*p - '0') < 10; p++) {
-			digits++;
-			if (nd < 19) {
-				if (m != 0 || *p != '0') {
-					m = m * 10 + (unsigned)(*p - '0');
-					nd++;
-				}
-				e10--;
-			} else
-				inexact |= *p != '0';
-		}
-	}
-	if (digits == 0)
-		return -1;
-	if (p < e && (*p == 'e' || *p == 'E')) {
-		p++;
-		if (p < e && (*p == '+' || *p == '-')) {
-			xneg = *p == '-';
-			p++;
-		}
-		if (p == e || (unsigned)(*p - '0') >= 10)
-			return -1;
-		for (; p < e && (unsigned)(*p - '0') < 10; p++) {
-			if (x < 100000)
-				x = x * 10 + (*p - '0');
-		}
-		e10 += xneg ? -x : x;
-	}
-	if (p != e)
-		return -1;
-
-	if (m == 0 && !inexact)
-		v = 0.0;
-	else if (!inexact && m <= (1ULL << 53) && e10 >= -22 && e10 <= 22) {
-		v = (double)m;
-		if (e10 < 0)
-			v /= proto_pow10[-e10];
-		else
-			v *= proto_pow10[e10];
-	} else {
-		memcpy(buf, s, n);
-		buf[n] = '\0';
-		v = strtod(buf, &end);
-		if (end != buf + n || !isfinite(v))
-			return -1;
-		*out = v;
-		return 0;
-	}
-	*out = neg ? -v : v;
 	return 0;
 }
 
@@ -534,7 +404,7 @@ proto_plain(const struct tok *t, int nt, struct record *r)
 	int na = 0, nf;
 
 	if (t[0].p[0] == '@') {
-		if (proto_number(t[0].p + 1, t[0].n - 1, 0, &ts) != 0)
+		if (proto_ts_number(t[0].p + 1, t[0].n - 1, &ts) != 0)
 			return PROTO_E_TS;
 		if ((st = proto_ts(ts, r)) != PROTO_OK)
 			return st;
@@ -882,9 +752,7 @@ enum proto_status
 proto_parse(const char *line, size_t len, struct record *r)
 {
 	struct tok t[PROTO_TOKENS];
-	int nt = 0;
-	size_t i, start;
-	unsigned cl, all;
+	int nt;
 
 	if (len > 0 && line[len - 1] == '\r')
 		len--;
@@ -892,33 +760,10 @@ proto_parse(const char *line, size_t len, struct record *r)
 		return PROTO_E_LONG;
 	proto_clear(r);
 
-	/*
-	 * One pass: split on blanks, refuse control bytes anywhere, and note
-	 * which tokens are all name characters (an empty token cannot occur).
-	 */
-	for (i = 0; i < len;) {
-		cl = proto_class[(unsigned char)line[i]];
-		if (cl & PC_BLANK) {
-			i++;
-			continue;
-		}
-		start = i;
-		all = PC_NAME;
-		for (; i < len; i++) {
-			cl = proto_class[(unsigned char)line[i]];
-			if (cl & (PC_BLANK | PC_BAD))
-				break;
-			all &= cl;
-		}
-		if (cl & PC_BAD && i < len)
-			return PROTO_E_BYTES;
-		if (nt < PROTO_TOKENS) {
-			t[nt].p = line + start;
-			t[nt].n = i - start;
-			t[nt].name = all != 0;
-		}
-		nt++;
-	}
+	/* One pass: split on blanks, refuse control bytes anywhere, and note
+	 * which tokens are all name characters (proto_scan.c). */
+	if ((nt = proto_split(line, len, t)) < 0)
+		return PROTO_E_BYTES;
 	if (nt == 0 || t[0].p[0] == '#')
 		return PROTO_SKIP;
 	if (t[0].p[0] == '{')

@@ -735,28 +735,108 @@ sketch_block_bounds(const struct sketch *s, const struct sketch_block *b,
 }
 
 /*
+ * One store's part of sketch_quantile, in the walk's order: 1 with *v
+ * once the running count *cum exceeds rank; else 0, with the store's
+ * last block in *last (*any set) when it has one.
+ */
+static int
+sketch_store_rank(const struct sketch *s, const struct sketch_store *st,
+    int neg, double rank, uint64_t *cum, double *v,
+    struct sketch_block *last, int *any)
+{
+	struct sketch_block b;
+	const int32_t *wk;
+	uint64_t c;
+	uint32_t i;
+	int64_t k;
+
+	b.neg = neg;
+	if (st->low.count != 0) {
+		b.kind = SK_LOW;
+		b.kmin = st->low.kmin;
+		b.kmax = st->low.kmax;
+		b.count = st->low.count;
+		if ((double)(*cum += b.count) > rank) {
+			*v = sketch_block_value(s, &b);
+			return 1;
+		}
+		*last = b;
+		*any = 1;
+	}
+	b.kind = SK_KEY;
+	if (st->flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		for (i = 0; i < st->len; i++)
+			if ((double)(*cum += st->counts[i]) > rank) {
+				*v = sketch_value(s, wk[i], neg);
+				return 1;
+			}
+		if (st->len > 0) {
+			b.kmin = b.kmax = wk[st->len - 1];
+			b.count = st->counts[st->len - 1];
+			*last = b;
+			*any = 1;
+		}
+	} else if (st->lo <= st->hi) {
+		for (k = st->lo; k <= st->hi; k++) {
+			if ((c = st->counts[k - st->offset]) == 0)
+				continue;
+			if ((double)(*cum += c) > rank) {
+				*v = sketch_value(s, (int32_t)k, neg);
+				return 1;
+			}
+			b.kmin = b.kmax = (int32_t)k;
+			b.count = c;
+			*last = b;
+			*any = 1;
+		}
+	}
+	if (st->high.count != 0) {
+		b.kind = SK_HIGH;
+		b.kmin = st->high.kmin;
+		b.kmax = st->high.kmax;
+		b.count = st->high.count;
+		if ((double)(*cum += b.count) > rank) {
+			*v = sketch_block_value(s, &b);
+			return 1;
+		}
+		*last = b;
+		*any = 1;
+	}
+	return 0;
+}
+
+/*
  * Rank q(n - 1) (0-based), and the first block whose running count
- * exceeds it, scanning from the lowest value up (docs/methods.md sec. 7).
+ * exceeds it, scanning from the lowest value up (docs/methods.md sec. 7):
+ * the order of sketch_next, as plain loops over the stores.
  */
 double
 sketch_quantile(const struct sketch *s, double q)
 {
-	struct sketch_walk w = { 0, 0 };
-	struct sketch_block b, last = { SK_ZERO, 0, 0, 0, 0 };
-	double rank;
+	struct sketch_block last = { SK_ZERO, 0, 0, 0, 0 };
+	double rank, v;
 	uint64_t cum = 0;
 	int any = 0;
 
 	if (s->count == 0 || !(q >= 0 && q <= 1))
 		return NAN;
 	rank = q * (double)(s->count - 1);
-	while (sketch_next(s, &w, &b)) {
-		cum += b.count;
-		if ((double)cum > rank)
-			return sketch_block_value(s, &b);
-		last = b;
+	if (s->neg.total != 0 &&
+	    sketch_store_rank(s, &s->neg, 1, rank, &cum, &v, &last, &any))
+		return v;
+	if (s->zero != 0) {
+		if ((double)(cum += s->zero) > rank)
+			return 0.0;
+		last.kind = SK_ZERO;
+		last.neg = 0;
+		last.kmin = last.kmax = 0;
+		last.count = s->zero;
 		any = 1;
 	}
+	if (s->pos.total != 0 &&
+	    sketch_store_rank(s, &s->pos, 0, rank, &cum, &v, &last, &any))
+		return v;
 	/* Only reached through rounding of rank near n - 1. */
 	return any ? sketch_block_value(s, &last) : NAN;
 }
@@ -795,23 +875,142 @@ sketch_bytes(const struct sketch *s)
 	    sketch_store_bytes(&s->neg);
 }
 
-size_t
-sketch_buckets_side(const struct sketch *s, int side, double *value,
-    uint64_t *count, size_t max)
+/*
+ * One store's blocks for the bucket views, in the order of
+ * sketch_store_next, as plain loops: the quantile tests read every
+ * bucket on every look, and the walker's state machine cost more than
+ * the values. The values are computed as sketch_buckets_side always did
+ * (sketch_block_value, sketch_block_bounds), so they are the same bits.
+ */
+static size_t
+sketch_store_side(const struct sketch *s, const struct sketch_store *st,
+    int neg, int side, double *value, uint64_t *count, size_t n, size_t max)
 {
-	struct sketch_walk w = { 0, 0 };
 	struct sketch_block b;
+	const int32_t *wk;
 	double lo, hi;
-	size_t n = 0;
+	uint64_t c;
+	uint32_t i;
+	int64_t k;
 
-	while (n < max && sketch_next(s, &w, &b)) {
-		if (side != 0 && (b.kind == SK_LOW || b.kind == SK_HIGH)) {
+	b.neg = neg;
+	if (st->low.count != 0 && n < max) {
+		b.kind = SK_LOW;
+		b.kmin = st->low.kmin;
+		b.kmax = st->low.kmax;
+		if (side != 0) {
 			sketch_block_bounds(s, &b, &lo, &hi);
 			value[n] = side < 0 ? lo : hi;
 		} else
 			value[n] = sketch_block_value(s, &b);
-		count[n++] = b.count;
+		count[n++] = st->low.count;
 	}
+	if (st->flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		for (i = 0; i < st->len && n < max; i++) {
+			value[n] = sketch_value(s, wk[i], neg);
+			count[n++] = st->counts[i];
+		}
+	} else if (st->lo <= st->hi) {
+		for (k = st->lo; k <= st->hi && n < max; k++) {
+			if ((c = st->counts[k - st->offset]) != 0) {
+				value[n] = sketch_value(s, (int32_t)k, neg);
+				count[n++] = c;
+			}
+		}
+	}
+	if (st->high.count != 0 && n < max) {
+		b.kind = SK_HIGH;
+		b.kmin = st->high.kmin;
+		b.kmax = st->high.kmax;
+		if (side != 0) {
+			sketch_block_bounds(s, &b, &lo, &hi);
+			value[n] = side < 0 ? lo : hi;
+		} else
+			value[n] = sketch_block_value(s, &b);
+		count[n++] = st->high.count;
+	}
+	return n;
+}
+
+/* sketch_store_side for side -1 into vlo and side +1 into vhi at once. */
+static size_t
+sketch_store_sides(const struct sketch *s, const struct sketch_store *st,
+    int neg, double *vlo, double *vhi, uint64_t *count, size_t n,
+    size_t max)
+{
+	struct sketch_block b;
+	const int32_t *wk;
+	uint64_t c;
+	uint32_t i;
+	int64_t k;
+
+	b.neg = neg;
+	if (st->low.count != 0 && n < max) {
+		b.kind = SK_LOW;
+		b.kmin = st->low.kmin;
+		b.kmax = st->low.kmax;
+		sketch_block_bounds(s, &b, &vlo[n], &vhi[n]);
+		count[n++] = st->low.count;
+	}
+	if (st->flags & SKETCH_F_WARM) {
+		wk = sketch_warm_keys(st);
+		for (i = 0; i < st->len && n < max; i++) {
+			vlo[n] = vhi[n] = sketch_value(s, wk[i], neg);
+			count[n++] = st->counts[i];
+		}
+	} else if (st->lo <= st->hi) {
+		for (k = st->lo; k <= st->hi && n < max; k++) {
+			if ((c = st->counts[k - st->offset]) != 0) {
+				vlo[n] = vhi[n] = sketch_value(s, (int32_t)k,
+				    neg);
+				count[n++] = c;
+			}
+		}
+	}
+	if (st->high.count != 0 && n < max) {
+		b.kind = SK_HIGH;
+		b.kmin = st->high.kmin;
+		b.kmax = st->high.kmax;
+		sketch_block_bounds(s, &b, &vlo[n], &vhi[n]);
+		count[n++] = st->high.count;
+	}
+	return n;
+}
+
+size_t
+sketch_buckets_sides(const struct sketch *s, double *lo, double *hi,
+    uint64_t *count, size_t max)
+{
+	size_t n = 0;
+
+	if (s->neg.total != 0)
+		n = sketch_store_sides(s, &s->neg, 1, lo, hi, count, n, max);
+	if (s->zero != 0 && n < max) {
+		lo[n] = hi[n] = 0.0;
+		count[n++] = s->zero;
+	}
+	if (s->pos.total != 0)
+		n = sketch_store_sides(s, &s->pos, 0, lo, hi, count, n, max);
+	return n;
+}
+
+size_t
+sketch_buckets_side(const struct sketch *s, int side, double *value,
+    uint64_t *count, size_t max)
+{
+	size_t n = 0;
+
+	if (s->neg.total != 0)
+		n = sketch_store_side(s, &s->neg, 1, side, value, count, n,
+		    max);
+	if (s->zero != 0 && n < max) {
+		value[n] = 0.0;
+		count[n++] = s->zero;
+	}
+	if (s->pos.total != 0)
+		n = sketch_store_side(s, &s->pos, 0, side, value, count, n,
+		    max);
 	return n;
 }
 
@@ -837,16 +1036,27 @@ sketch_bounds(const struct sketch *s, double *lo, double *hi,
 	return n;
 }
 
+/* Blocks of one store, as sketch_store_next would give them. */
+static size_t
+sketch_store_nblocks(const struct sketch_store *st)
+{
+	size_t n = (st->low.count != 0) + (st->high.count != 0);
+	int64_t k;
+
+	if (st->flags & SKETCH_F_WARM)
+		return n + st->len;
+	if (st->lo <= st->hi)
+		for (k = st->lo; k <= st->hi; k++)
+			n += st->counts[k - st->offset] != 0;
+	return n;
+}
+
 size_t
 sketch_nbuckets(const struct sketch *s)
 {
-	struct sketch_walk w = { 0, 0 };
-	struct sketch_block b;
-	size_t n = 0;
-
-	while (sketch_next(s, &w, &b))
-		n++;
-	return n;
+	return (s->neg.total != 0 ? sketch_store_nblocks(&s->neg) : 0) +
+	    (s->zero != 0) +
+	    (s->pos.total != 0 ? sketch_store_nblocks(&s->pos) : 0);
 }
 
 /* Merging o's edges into st: an edge overlapping the other side folds. */

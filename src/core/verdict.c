@@ -122,7 +122,7 @@ group_var(const struct engine *eng, const struct series *sr, double q)
 
 	if (gp == NULL || gp->used < ENGINE_GROUPS_MIN)
 		return NAN;
-	v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
+	v = stats_group_var_strided((int)gp->G, gp->sn, gp->sn + 1, 2, &R);
 	kappa = stats_group_kappa(gp->used - 1, q);
 	return isfinite(kappa) && kappa > 1 ? v * kappa : v;
 }
@@ -435,8 +435,50 @@ grown(const struct engine *eng, double *last, double n, double growth,
 	return 1;
 }
 
+static void
+scratch_reserve(struct engine *eng, size_t need)
+{
+	if (eng->scratch_n >= 2 * need)
+		return;
+	eng->scratch_n = 2 * need;
+	eng->scratch_v = xreallocarray(eng->scratch_v, eng->scratch_n,
+	    sizeof *eng->scratch_v);
+	eng->scratch_c = xreallocarray(eng->scratch_c, eng->scratch_n,
+	    sizeof *eng->scratch_c);
+	eng->view_lo = xreallocarray(eng->view_lo, eng->scratch_n,
+	    sizeof *eng->view_lo);
+	eng->view_hi = xreallocarray(eng->view_hi, eng->scratch_n,
+	    sizeof *eng->view_hi);
+	eng->view_c = xreallocarray(eng->view_c, eng->scratch_n,
+	    sizeof *eng->view_c);
+}
+
 /*
- * Fill the engine's scratch with a sketch's blocks: each bucket's value
+ * One arm's buckets for a whole look: a look reads each arm's sketch
+ * four to six times (both tests' sides, the CS at both edge readings),
+ * and the sketch does not change in between, so its values (an exp per
+ * bucket) are taken once, at both sides, into the engine's view arrays
+ * at off (0 or scratch_n / 2, as the scratch).
+ */
+struct arm_view {
+	const double	*lo, *hi;
+	const uint64_t	*c;
+	size_t		 n;
+};
+
+static void
+view_fill(struct engine *eng, const struct sketch *sk, size_t off,
+    struct arm_view *v)
+{
+	v->n = sketch_buckets_sides(sk, eng->view_lo + off,
+	    eng->view_hi + off, eng->view_c + off, eng->scratch_n / 2);
+	v->lo = eng->view_lo + off;
+	v->hi = eng->view_hi + off;
+	v->c = eng->view_c + off;
+}
+
+/*
+ * Fill the engine's scratch with an arm's blocks: each bucket's value
  * moved by the factor w away from zero (w > 1) or towards it (w < 1),
  * then scaled and shifted. The widening puts a bucket at the edge of the
  * values it may hold (relative error a: w = (1 + a)/(1 - a) or its
@@ -448,46 +490,25 @@ grown(const struct engine *eng, double *last, double n, double growth,
  * (sketch_buckets_side).
  */
 static void
-blocks_widened(struct engine *eng, const struct sketch *sk, size_t off,
+blocks_view(struct engine *eng, const struct arm_view *vw, size_t off,
     int side, double w, double scale, double shift, struct stats_blocks *out)
 {
-	size_t i, n;
+	const double *src = side < 0 ? vw->lo : vw->hi;
 	uint64_t total = 0;
+	size_t i;
 	double v;
 
-	n = sketch_buckets_side(sk, side, eng->scratch_v + off,
-	    eng->scratch_c + off, eng->scratch_n / 2);
-	for (i = 0; i < n; i++) {
-		v = eng->scratch_v[off + i];
+	for (i = 0; i < vw->n; i++) {
+		v = src[i];
 		v = v >= 0 ? v * w : v / w;
 		eng->scratch_v[off + i] = v * scale + shift;
-		total += eng->scratch_c[off + i];
+		total += vw->c[i];
 	}
 	out->value = eng->scratch_v + off;
-	out->count = eng->scratch_c + off;
-	out->n = n;
+	out->count = vw->c;
+	out->n = vw->n;
 	out->total = total;
 	out->weight = 1;
-}
-
-/* Fill the engine's scratch with a sketch's blocks, values scaled. */
-static void
-blocks_of(struct engine *eng, const struct sketch *sk, size_t off, int side,
-    double scale, double shift, struct stats_blocks *out)
-{
-	blocks_widened(eng, sk, off, side, 1, scale, shift, out);
-}
-
-static void
-scratch_reserve(struct engine *eng, size_t need)
-{
-	if (eng->scratch_n >= 2 * need)
-		return;
-	eng->scratch_n = 2 * need;
-	eng->scratch_v = xreallocarray(eng->scratch_v, eng->scratch_n,
-	    sizeof *eng->scratch_v);
-	eng->scratch_c = xreallocarray(eng->scratch_c, eng->scratch_n,
-	    sizeof *eng->scratch_c);
 }
 
 /*
@@ -508,12 +529,13 @@ quantile_weights(const struct test *t, double wt[2])
 		if ((gp = t->qg[side]) == NULL)
 			return -1;
 		for (i = used = 0, N = 0; i < gp->G; i++) {
-			used += gp->n[i] != 0;
-			N += gp->n[i];
+			used += gp->sn[2 * (size_t)i + 1] != 0;
+			N += gp->sn[2 * (size_t)i + 1];
 		}
 		if (used < ENGINE_GROUPS_MIN)
 			return -1;
-		v = stats_group_var((int)gp->G, gp->s, gp->n, &R);
+		v = stats_group_var_strided((int)gp->G, gp->sn, gp->sn + 1, 2,
+		    &R);
 		kappa = stats_group_kappa(used - 1, q);
 		if (isfinite(kappa) && kappa > 1)
 			v *= kappa;
@@ -536,8 +558,9 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
     const struct series *b, double level, int want_cs)
 {
 	struct stats_blocks ba, bb, ca, cb;
+	struct arm_view va, vb;
 	double q = g->quantile, scale, shift, m, acc, wt[2];
-	size_t need;
+	size_t need, half;
 
 	if (a->sk == NULL || b->sk == NULL || sketch_count(a->sk) == 0 ||
 	    sketch_count(b->sk) == 0)
@@ -551,6 +574,9 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 		wt[0] = wt[1] = 1;
 	need = sketch_nbuckets(a->sk) + sketch_nbuckets(b->sk) + 2;
 	scratch_reserve(eng, need);
+	half = eng->scratch_n / 2;
+	view_fill(eng, a->sk, 0, &va);
+	view_fill(eng, b->sk, half, &vb);
 	t->ctl_value = sketch_quantile(a->sk, q);
 	t->trt_value = sketch_quantile(b->sk, q);
 	t->est = t->trt_value - t->ctl_value;
@@ -574,18 +600,18 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	if (g->harm == HARM_INCREASE) {
 		scale = g->margin_relative ? 1 + m : 1;
 		shift = g->margin_relative ? 0 : m * (1 + acc);
-		blocks_widened(eng, a->sk, 0, 1, (1 + acc) / (1 - acc), scale,
+		blocks_view(eng, &va, 0, 1, (1 + acc) / (1 - acc), scale,
 		    shift, &ba);
-		blocks_of(eng, b->sk, eng->scratch_n / 2, -1, 1, 0, &bb);
+		blocks_view(eng, &vb, half, -1, 1, 1, 0, &bb);
 		ba.weight = wt[0];
 		bb.weight = wt[1];
 		t->log_e = stats_quantile_log_e1(&ba, &bb, q, plan_units_of(g, e));
 	} else {
 		scale = g->margin_relative ? 1 - m : 1;
 		shift = g->margin_relative ? 0 : -m * (1 - acc);
-		blocks_widened(eng, a->sk, 0, -1, (1 - acc) / (1 + acc), scale,
+		blocks_view(eng, &va, 0, -1, (1 - acc) / (1 + acc), scale,
 		    shift, &ba);
-		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 1, 0, &bb);
+		blocks_view(eng, &vb, half, 1, 1, 1, 0, &bb);
 		ba.weight = wt[0];
 		bb.weight = wt[1];
 		/* H0: Q_a' <= Q_b, i.e. the treatment is not lower */
@@ -597,8 +623,8 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	 * jointly by a union bound. An arm with edges takes its lower bound
 	 * with the edges at their lowest values, its upper at their highest
 	 * (the same martingale, so still one CS at level/2). */
-	blocks_of(eng, a->sk, 0, -1, 1, 0, &ca);
-	blocks_of(eng, b->sk, eng->scratch_n / 2, -1, 1, 0, &cb);
+	blocks_view(eng, &va, 0, -1, 1, 1, 0, &ca);
+	blocks_view(eng, &vb, half, -1, 1, 1, 0, &cb);
 	ca.weight = wt[0];
 	cb.weight = wt[1];
 	if (stats_quantile_cs(&ca, q, plan_units_of(g, e), level / 2, &t->ctl_lo,
@@ -608,8 +634,8 @@ eval_quantile(struct engine *eng, struct experiment *e, struct test *t,
 	if (sketch_edge_count(a->sk) != 0 || sketch_edge_count(b->sk) != 0) {
 		double dummy;
 
-		blocks_of(eng, a->sk, 0, 1, 1, 0, &ca);
-		blocks_of(eng, b->sk, eng->scratch_n / 2, 1, 1, 0, &cb);
+		blocks_view(eng, &va, 0, 1, 1, 1, 0, &ca);
+		blocks_view(eng, &vb, half, 1, 1, 1, 0, &cb);
 		ca.weight = wt[0];
 		cb.weight = wt[1];
 		if (stats_quantile_cs(&ca, q, plan_units_of(g, e), level / 2,
@@ -709,6 +735,7 @@ quantile_harm_bound(struct engine *eng, struct experiment *e, struct test *t,
     const struct series *b, double level)
 {
 	struct stats_blocks ba, bb;
+	struct arm_view va, vb;
 	double target = log(1 / level), lo, hi, mid, m, c = t->ctl_value;
 	int i, rel = g->margin_relative || g->margin == 0;
 
@@ -718,13 +745,16 @@ quantile_harm_bound(struct engine *eng, struct experiment *e, struct test *t,
 	hi = fabs(t->est) / c;
 	if (!(hi > lo))
 		return;
+	/* the scratch as eval_quantile reserved it for these sketches */
+	view_fill(eng, a->sk, 0, &va);
+	view_fill(eng, b->sk, eng->scratch_n / 2, &vb);
 	for (i = 0; i < 30 && hi - lo > 1e-4; i++) {
 		mid = 0.5 * (lo + hi);
 		m = g->harm == HARM_INCREASE ? 1 + mid : 1 - mid;
-		blocks_of(eng, a->sk, 0, g->harm == HARM_INCREASE ? 1 : -1, m,
-		    0, &ba);
-		blocks_of(eng, b->sk, eng->scratch_n / 2,
-		    g->harm == HARM_INCREASE ? -1 : 1, 1, 0, &bb);
+		blocks_view(eng, &va, 0, g->harm == HARM_INCREASE ? 1 : -1, 1,
+		    m, 0, &ba);
+		blocks_view(eng, &vb, eng->scratch_n / 2,
+		    g->harm == HARM_INCREASE ? -1 : 1, 1, 1, 0, &bb);
 		if ((g->harm == HARM_INCREASE ?
 		    stats_quantile_log_e1(&ba, &bb, g->quantile,
 		    plan_units_of(g, e)) :

@@ -1462,6 +1462,112 @@ test_quantile_outliers(void **state)
 	gsl_rng_free(rng);
 }
 
+/* Exposures of arm i of experiment id. */
+static long long
+exposures_of(struct fx *fx, const char *id, int i)
+{
+	json_t *j = engine_json_experiment(fx->eng, id);
+	long long n;
+
+	assert_non_null(j);
+	n = json_integer_value(json_object_get(json_array_get(
+	    json_object_get(j, "arms"), (size_t)i), "exposures"));
+	json_decref(j);
+	return n;
+}
+
+/* A record parsed into a struct whose bytes were 0xff before: what
+ * follows each name's NUL is not zero. */
+static enum engine_reject
+feed_dirty(struct fx *fx, const char *line)
+{
+	struct record r;
+
+	memset(&r, 0xff, sizeof r);
+	assert_int_equal(proto_parse(line, strlen(line), &r), PROTO_OK);
+	fx->now += 0.01;
+	return engine_apply(fx->eng, &r, fx->now, ++fx->event);
+}
+
+/*
+ * The record path matches experiment, variant and metric names word by
+ * word (engine.c name_eq): names of every length up to PROTO_NAME_MAX,
+ * names that are prefixes of others or differ in their last byte only,
+ * with anything after the NUL, reach exactly their own experiment, arm
+ * and metric.
+ */
+static void
+test_name_match(void **state)
+{
+	struct fx *fx = *state;
+	static const int lens[] = { 1, 7, 8, 9, 15, 16, 17, 63, 64 };
+	char a[PROTO_NAME_MAX + 1], b[PROTO_NAME_MAX + 1], line[600];
+	size_t k;
+	int n;
+
+	for (k = 0; k < sizeof lens / sizeof lens[0]; k++) {
+		/* a fresh engine per length: max_experiments = 3 */
+		uint8_t key[16] = { 1, 2, 3 };
+
+		engine_free(fx->eng);
+		fx->eng = engine_new(fx->conf, key);
+		engine_set_sink(fx->eng, sink, &fx->seen);
+		n = lens[k];
+		memset(a, 'e', (size_t)n);
+		a[n] = '\0';
+		memcpy(b, a, (size_t)n + 1);
+		b[n - 1] = 'f';		/* differs in the last byte */
+		/* arms: the name and the name less its last byte */
+		snprintf(line, sizeof line, "plan %s %s=50 %.*s=50", a, a,
+		    n - 1 > 0 ? n - 1 : 1, n > 1 ? a : "z");
+		assert_int_equal(feed(fx, "%s", line), ENGINE_OK);
+		snprintf(line, sizeof line, "plan %s %s=50 %s=50", b, b,
+		    n > 1 ? a : "y");
+		assert_int_equal(feed(fx, "%s", line), ENGINE_OK);
+		/* alternate between the two experiments (no recent hit) and
+		 * repeat one (the recent hit) */
+		snprintf(line, sizeof line, "expose %s %s 3", a, a);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_OK);
+		snprintf(line, sizeof line, "expose %s %s 5", b, b);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_OK);
+		snprintf(line, sizeof line, "expose %s %s 7", b, b);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_OK);
+		snprintf(line, sizeof line, "expose %s %s 11", a, a);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_OK);
+		assert_int_equal(exposures_of(fx, a, 0), 14);
+		assert_int_equal(exposures_of(fx, a, 1), 0);
+		assert_int_equal(exposures_of(fx, b, 0), 12);
+		/* b's arm is not a's, a's second arm is not its first */
+		snprintf(line, sizeof line, "expose %s %s 1", a, b);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_E_VARIANT);
+		if (n > 1) {
+			snprintf(line, sizeof line, "expose %s %.*s 2", a,
+			    n - 1, a);
+			assert_int_equal(feed_dirty(fx, line), ENGINE_OK);
+			assert_int_equal(exposures_of(fx, a, 1), 2);
+		}
+		/* a name one byte longer or shorter is another experiment */
+		if (n < PROTO_NAME_MAX) {
+			snprintf(line, sizeof line, "expose %sx %s 1", a, a);
+			assert_int_equal(feed_dirty(fx, line),
+			    ENGINE_E_UNPLANNED);
+		}
+		if (n > 1) {
+			snprintf(line, sizeof line, "expose %.*s %s 1", n - 1,
+			    a, a);
+			assert_int_equal(feed_dirty(fx, line),
+			    ENGINE_E_UNPLANNED);
+		}
+		/* metrics: two names differing in the last byte stay two */
+		snprintf(line, sizeof line, "count %s %s %s 1 2", a, a, a);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_OK);
+		snprintf(line, sizeof line, "count %s %s %s 1 3", a, a, b);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_OK);
+		snprintf(line, sizeof line, "observe %s %s %s 4", a, a, a);
+		assert_int_equal(feed_dirty(fx, line), ENGINE_E_MISMATCH);
+	}
+}
+
 int
 main(void)
 {
@@ -1469,6 +1575,8 @@ main(void)
 		cmocka_unit_test_setup_teardown(test_rejections, setup,
 		    teardown),
 		cmocka_unit_test_setup_teardown(test_epochs, setup, teardown),
+		cmocka_unit_test_setup_teardown(test_name_match, setup,
+		    teardown),
 		cmocka_unit_test_setup_teardown(test_srm, setup, teardown),
 		cmocka_unit_test_setup_teardown(test_srm_batches, setup,
 		    teardown),

@@ -19,6 +19,7 @@
 #include <cmocka.h>
 
 #include "stopcock/proto.h"
+#include "../../src/core/proto_int.h"
 
 /* xorshift64*: the random cases are the same on every run. */
 #define RNG_SEED 0x9e3779b97f4a7c15ULL
@@ -790,6 +791,10 @@ test_numbers_vs_strtod(void **state)
 		"936475292719074168444365510704342711559699508093042880177904"
 		"174497791", "0.000000000000000000000000000000000000000001",
 		"12345678901234567890", "1234567890123456789000000e-10",
+		"-0", "-0.0", "+0", "0.", ".0", "-.5", "00001.5000",
+		"9007199254740993.0", "0.0000000000000000000001",
+		"1234567890123456789", "-1234567890.123456789",
+		"0.00000000000000000000000001", "123.4567890123456789",
 	};
 	for (i = 0; i < (int)(sizeof edge / sizeof edge[0]); i++) {
 		n = snprintf(line, sizeof line, "observe e v m %s", edge[i]);
@@ -802,6 +807,149 @@ test_numbers_vs_strtod(void **state)
 			assert_memory_equal(&r.value, &want, sizeof want);
 		}
 	}
+}
+
+/*
+ * The splitter (proto_scan.c: byte-class masks, sixteen bytes at a time)
+ * against the plain definition, one table look-up per byte: on random
+ * lines of every length up to PROTO_LINE_MAX, built from blanks, name
+ * characters, other printable bytes, bytes >= 0x80 and (rarely) control
+ * bytes, both give the same tokens, the same name flags and the same
+ * refusal of control bytes.
+ */
+static int
+split_ref(const char *line, size_t len, struct tok *t)
+{
+	size_t i = 0, start;
+	unsigned cl, all;
+	int nt = 0;
+
+	for (i = 0; i < len; i++)
+		if (proto_class[(unsigned char)line[i]] & PC_BAD)
+			return -1;
+	for (i = 0; i < len;) {
+		if (proto_class[(unsigned char)line[i]] & PC_BLANK) {
+			i++;
+			continue;
+		}
+		start = i;
+		all = PC_NAME;
+		for (; i < len; i++) {
+			cl = proto_class[(unsigned char)line[i]];
+			if (cl & PC_BLANK)
+				break;
+			all &= cl;
+		}
+		if (nt < PROTO_TOKENS) {
+			t[nt].p = line + start;
+			t[nt].n = i - start;
+			t[nt].name = all != 0;
+		}
+		nt++;
+	}
+	return nt;
+}
+
+static char
+random_byte(int ctl)
+{
+	static const char name[] = "abcxyzABCXYZ0129.-_:";
+	static const char other[] = "=@#{}\"/,;!~[]`\\";
+	unsigned k = (unsigned)(rng() % 100);
+
+	if (k < 25)
+		return rng() % 4 ? ' ' : '\t';
+	if (k < 80)
+		return name[rng() % (sizeof name - 1)];
+	if (k < 90)
+		return other[rng() % (sizeof other - 1)];
+	if (k < 97 || !ctl)
+		return (char)(0x80 + rng() % 128);
+	return rng() % 8 ? (char)(rng() % 32 == 9 ? 0 : rng() % 32) : 0x7f;
+}
+
+static void
+test_split_vs_bytes(void **state)
+{
+	static char line[PROTO_LINE_MAX];
+	struct tok a[PROTO_TOKENS], b[PROTO_TOKENS];
+	size_t len, i;
+	int n, na, nb, j, bad = 0, refused = 0;
+
+	for (n = 0; n < 200000; n++) {
+		len = rng() % 8 == 0 ? rng() % (PROTO_LINE_MAX + 1) :
+		    rng() % 200;
+		for (i = 0; i < len; i++)
+			line[i] = random_byte(rng() % 4 == 0);
+		na = proto_split(line, len, a);
+		nb = split_ref(line, len, b);
+		refused += nb < 0;
+		if (na != nb) {
+			bad++;
+			continue;
+		}
+		for (j = 0; j < nb && j < PROTO_TOKENS; j++)
+			if (a[j].p != b[j].p || a[j].n != b[j].n ||
+			    a[j].name != b[j].name)
+				bad++;
+	}
+	assert_int_equal(bad, 0);
+	/* both outcomes were reached often */
+	assert_true(refused > 10000 && refused < 190000);
+	/* every byte value, alone between two tokens */
+	for (i = 0; i < 256; i++) {
+		len = (size_t)snprintf(line, sizeof line, "ab%cc d", (int)i);
+		if (i == 0)
+			line[2] = '\0';
+		assert_int_equal(proto_split(line, len, a),
+		    split_ref(line, len, b));
+		if (split_ref(line, len, b) > 0)
+			assert_int_equal(a[0].name, b[0].name);
+	}
+}
+
+/*
+ * Timestamps go through a one-entry memo of the last token: a repeated
+ * time gives the value strtod gives, and a bad token after a good one is
+ * still refused, whatever came before.
+ */
+static void
+test_ts_memo(void **state)
+{
+	char num[128], line[600];
+	struct record r;
+	double want;
+	int i, k, n, bad = 0;
+
+	for (i = 0; i < 50000; i++) {
+		n = snprintf(num, sizeof num, "%llu.%03u",
+		    (unsigned long long)(1700000000 + rng() % 100000000),
+		    (unsigned)(rng() % 1000));
+		want = strtod(num, NULL);
+		for (k = 0; k < 3; k++) {
+			snprintf(line, sizeof line, "@%s observe e v m 1", num);
+			if (proto_parse(line, strlen(line), &r) != PROTO_OK ||
+			    memcmp(&r.ts, &want, sizeof want) != 0)
+				bad++;
+		}
+		/* a token that extends the cached one is parsed afresh */
+		snprintf(line, sizeof line, "@%sx observe e v m 1", num);
+		if (proto_parse(line, strlen(line), &r) != PROTO_E_TS)
+			bad++;
+		snprintf(line, sizeof line, "@%s5 observe e v m 1", num);
+		want = strtod(line + 1, NULL);
+		if (proto_parse(line, strlen(line), &r) != PROTO_OK ||
+		    memcmp(&r.ts, &want, sizeof want) != 0)
+			bad++;
+		(void)n;
+	}
+	assert_int_equal(bad, 0);
+	assert_int_equal(proto_parse("@5 observe e v m 1", 18, &r), PROTO_OK);
+	assert_int_equal(proto_parse("@ observe e v m 1", 17, &r), PROTO_E_TS);
+	assert_int_equal(proto_parse("@-5 observe e v m 1", 19, &r),
+	    PROTO_E_TS);
+	assert_int_equal(proto_parse("@5 observe e v m 1", 18, &r), PROTO_OK);
+	assert_true(r.ts == 5.0);
 }
 
 /*
@@ -938,6 +1086,8 @@ main(void)
 		cmocka_unit_test(test_format_attrs),
 		cmocka_unit_test(test_numbers_vs_strtod),
 		cmocka_unit_test(test_bad_between_good),
+		cmocka_unit_test(test_split_vs_bytes),
+		cmocka_unit_test(test_ts_memo),
 		cmocka_unit_test(test_family),
 	};
 

@@ -930,6 +930,99 @@ test_sides_conservative(void **state)
 	sketch_free(fast);
 }
 
+/*
+ * The bucket views (sketch_buckets_side, sketch_buckets_sides,
+ * sketch_nbuckets: direct loops
+ * over the stores) against the ordered walk that sketch_bounds and
+ * sketch_quantile use, on sketches of every shape: warm lists, dense
+ * windows, both edges, negatives and zeros. Same number of blocks, same
+ * counts; a bucket's value is the same from every side and within its
+ * bounds, an edge's side value is exactly its bound; a short buffer gets
+ * the prefix.
+ */
+#define VIEW_MAX 4096
+static void
+test_views_vs_walk(void **state)
+{
+	static double lo[VIEW_MAX], hi[VIEW_MAX], v[3][VIEW_MAX];
+	static uint64_t c[4][VIEW_MAX];
+	struct sketch *s;
+	size_t n, nv[3], i, k, vals;
+	int trial, side, edges = 0;
+	double x;
+
+	for (trial = 0; trial < 400; trial++) {
+		s = sketch_new(trial % 3 == 0 ? 0.01 : 0.002,
+		    trial % 2 ? 64 : 1024);
+		vals = trial % 5 == 0 ? 1 + rng() % 100 : 1 + rng() % 20000;
+		for (k = 0; k < vals; k++) {
+			x = exp(gauss() * (trial % 4 + 1));
+			switch (rng() % 20) {
+			case 0:
+				x = -x;
+				break;
+			case 1:
+				x = trial % 7 == 0 ? 0 : x;
+				break;
+			case 2:
+				x *= trial % 3 ? 1e12 : 1e-12;
+				break;
+			default:
+				break;
+			}
+			assert_int_equal(sketch_add(s, x, 1 + rng() % 3), 0);
+		}
+		n = sketch_bounds(s, lo, hi, c[3], VIEW_MAX);
+		assert_int_equal(sketch_nbuckets(s), n);
+		for (side = -1; side <= 1; side++)
+			nv[side + 1] = sketch_buckets_side(s, side, v[side + 1],
+			    c[side + 1], VIEW_MAX);
+		for (side = 0; side < 3; side++) {
+			assert_int_equal(nv[side], n);
+			assert_memory_equal(c[side], c[3], n * sizeof c[3][0]);
+		}
+		for (i = 0; i < n; i++) {
+			if (v[0][i] == lo[i] && v[2][i] == hi[i] &&
+			    v[0][i] != v[1][i]) {
+				edges++;
+				continue;
+			}
+			assert_true(v[0][i] == v[1][i] && v[2][i] == v[1][i]);
+			assert_true(lo[i] <= v[1][i] && v[1][i] <= hi[i]);
+		}
+		/* both sides at once: the same bits as each side alone */
+		assert_int_equal(sketch_buckets_sides(s, lo, hi, c[3],
+		    VIEW_MAX), n);
+		assert_memory_equal(lo, v[0], n * sizeof lo[0]);
+		assert_memory_equal(hi, v[2], n * sizeof hi[0]);
+		assert_memory_equal(c[3], c[0], n * sizeof c[3][0]);
+		/* sketch_quantile: the first block whose running count
+		 * exceeds q (n - 1), from the side-0 view */
+		nv[1] = sketch_buckets_side(s, 0, v[1], c[1], VIEW_MAX);
+		for (k = 0; k <= 20; k++) {
+			double q = k / 20.0, rank, want = v[1][nv[1] - 1], got;
+			uint64_t cum = 0;
+
+			rank = q * (double)(sketch_count(s) - 1);
+			for (i = 0; i < nv[1]; i++)
+				if ((double)(cum += c[1][i]) > rank) {
+					want = v[1][i];
+					break;
+				}
+			got = sketch_quantile(s, q);
+			assert_memory_equal(&got, &want, sizeof got);
+		}
+		/* a short buffer: the first blocks, the same */
+		if (n > 2) {
+			nv[0] = sketch_buckets_side(s, 1, v[0], c[0], n / 2);
+			assert_int_equal(nv[0], n / 2);
+			assert_memory_equal(v[0], v[2], (n / 2) * sizeof v[0][0]);
+		}
+		sketch_free(s);
+	}
+	assert_true(edges > 50);
+}
+
 int
 main(void)
 {
@@ -946,6 +1039,7 @@ main(void)
 		cmocka_unit_test(test_sides),
 		cmocka_unit_test(test_old_format),
 		cmocka_unit_test(test_sides_conservative),
+		cmocka_unit_test(test_views_vs_walk),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);

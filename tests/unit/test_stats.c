@@ -12,6 +12,7 @@
 #include <stdarg.h>
 #include <stddef.h>
 #include <stdint.h>
+#include <string.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <math.h>
@@ -962,6 +963,89 @@ test_group_var(void **state)
 	    1.006006364, 9);
 	assert_true(isnan(stats_group_var(1, S, N, &R)));
 	assert_true(ok);
+
+	/* interleaved (S, N) pairs, as the engine keeps them: the same bits */
+	{
+		double sn[2 * 256], s1[256], n1[256], R2, v2;
+		uint64_t x = 0x9e3779b97f4a7c15ULL;
+		int g, trial;
+
+		for (trial = 0; trial < 200; trial++) {
+			for (g = 0; g < 256; g++) {
+				x ^= x << 13;
+				x ^= x >> 7;
+				x ^= x << 17;
+				s1[g] = sn[2 * g] = (x % 4 == 0) ? 0 :
+				    (double)(x >> 11) / 9007199254740992.0 *
+				    1e3;
+				n1[g] = sn[2 * g + 1] = s1[g] == 0 ? 0 :
+				    (double)(1 + (x >> 40) % 50);
+			}
+			v = stats_group_var(16 + trial, s1, n1, &R);
+			v2 = stats_group_var_strided(16 + trial, sn, sn + 1,
+			    2, &R2);
+			assert_memory_equal(&v, &v2, sizeof v);
+			assert_memory_equal(&R, &R2, sizeof R);
+		}
+	}
+}
+
+/*
+ * stats_bb_logm keeps the terms of its last (g, h, r): whatever was asked
+ * before, a call gives the same bits (a hit and a miss agree), for both
+ * sides and for parameter sets that differ in one member only.
+ */
+static void
+test_bb_prior_memo(void **state)
+{
+	static const double P[][3] = {
+		{ 0.2, 0.8, 12.44 }, { 0.5, 0.5, 3.0 }, { 0.01, 0.99, 0.5 },
+		{ 0.2, 0.8, 12.5 }, { 0.3, 1.7, 40 },
+	};
+	double ref[5][2][16], v;
+	int i, j, k, side, bad = 0, round;
+
+	(void)state;
+	for (i = 0; i < 5; i++)
+		for (side = 0; side < 2; side++)
+			for (k = 0; k < 16; k++) {
+				/* another parameter set first: a miss */
+				(void)stats_bb_logm(1, 10, P[(i + 1) % 5][0],
+				    P[(i + 1) % 5][1], P[(i + 1) % 5][2], side);
+				ref[i][side][k] = stats_bb_logm(k * 7.5 - 20,
+				    100 + k * 50, P[i][0], P[i][1], P[i][2],
+				    side);
+			}
+	/* now in runs (hits) and interleaved (misses), in another order */
+	for (round = 0; round < 3; round++)
+		for (j = 0; j < 5; j++) {
+			i = (j * 3 + round) % 5;
+			for (side = 1; side >= 0; side--)
+				for (k = 15; k >= 0; k--) {
+					if (round == 2 && k % 2)
+						(void)stats_bb_logm(2, 30,
+						    P[(i + 2) % 5][0],
+						    P[(i + 2) % 5][1],
+						    P[(i + 2) % 5][2], !side);
+					v = stats_bb_logm(k * 7.5 - 20,
+					    100 + k * 50, P[i][0], P[i][1],
+					    P[i][2], side);
+					bad += memcmp(&v, &ref[i][side][k],
+					    sizeof v) != 0;
+				}
+		}
+	/* straight from one set to another that differs in r only */
+	for (side = 0; side < 2; side++)
+		for (k = 0; k < 16; k++) {
+			(void)stats_bb_logm(k * 7.5 - 20, 100 + k * 50, P[0][0],
+			    P[0][1], P[0][2], side);
+			v = stats_bb_logm(k * 7.5 - 20, 100 + k * 50, P[3][0],
+			    P[3][1], P[3][2], side);
+			bad += memcmp(&v, &ref[3][side][k], sizeof v) != 0;
+		}
+	assert_int_equal(bad, 0);
+	/* the two sets that differ in r only give different values */
+	assert_true(ref[0][0][5] != ref[3][0][5]);
 }
 
 int
@@ -972,6 +1056,7 @@ main(void)
 		cmocka_unit_test(test_harm_table),
 		cmocka_unit_test(test_prop_null),
 		cmocka_unit_test(test_group_var),
+		cmocka_unit_test(test_bb_prior_memo),
 		cmocka_unit_test(test_msprt_table),
 		cmocka_unit_test(test_msprt_hrms_mapping),
 		cmocka_unit_test(test_msprt_sequence),

@@ -369,19 +369,22 @@ stats_rate_ratio_bound(double n_a, double e_a, double n_b, double e_b,
 	l0 = log((n_b + 0.5) / e_b) - log((n_a + 0.5) / e_a);
 	step = upper ? 1 : -1;
 	in = l0;
-	if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper) >= target)
+	if ((fin = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper)) >=
+	    target)
 		return 0;	/* degenerate: keep the trivial bound */
 	for (out = in + step;; out += step) {
 		if (fabs(out - l0) > DIR_BOUND_LOGR)
 			return 0;	/* never rejected: 0 or inf */
-		if (dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out, upper) >=
-		    target)
+		if ((fout = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out,
+		    upper)) >= target)
 			break;
 		in = out;
+		fin = fout;
 	}
-	/* Illinois regula falsi on log r, as in stats_bb_bound */
-	fin = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, in, upper) - target;
-	fout = dir_rate_one_sided(n_a, n_b, e_a, e_b, k, out, upper) - target;
+	/* Illinois regula falsi on log r, as in stats_bb_bound; the ends'
+	 * factors are the ones the walk just computed */
+	fin -= target;
+	fout -= target;
 	for (i = 0; i < 200 && fabs(out - in) > 1e-13; i++) {
 		mid = isfinite(fout) && isfinite(fin) ?
 		    (in * fout - out * fin) / (fout - fin) : 0.5 * (in + out);
@@ -431,33 +434,73 @@ stats_bb_r(double v_opt, double g, double h, double alpha, int one_sided)
  * [-v/h, v/g] for increments in {-g, +h}; beyond that the data are
  * impossible under the null and the evidence is infinite.
  */
+/*
+ * The terms of log m that depend on (g, h, r) alone. A bound search
+ * (stats_bb_bound, quant_bound) calls stats_bb_logm a dozen times with
+ * only s moving, so the last set is kept, one per thread; a hit gives
+ * the very values the computation would (same inputs, same operations),
+ * so log m is the same to the bit either way.
+ */
+struct bb_prior {
+	double		g, h, r;
+	int		one_sided, set;
+	long double	gh, A0, B0, lgh, lg, lh, lb0;
+	double		x, y, ib0;
+};
+
+static const struct bb_prior *
+bb_prior(double g, double h, double r, int one_sided)
+{
+	static _Thread_local struct bb_prior p;
+
+	if (p.set && p.g == g && p.h == h && p.r == r &&
+	    p.one_sided == one_sided)
+		return &p;
+	p.g = g;
+	p.h = h;
+	p.r = r;
+	p.one_sided = one_sided;
+	p.gh = (long double)g + h;
+	p.A0 = r / (g * p.gh);
+	p.B0 = r / (h * p.gh);
+	p.lgh = logl(p.gh);
+	p.lg = logl(g);
+	p.lh = logl(h);
+	p.lb0 = stats_lbeta_l(p.A0, p.B0);
+	if (one_sided) {
+		p.x = (double)(h / p.gh);
+		p.y = (double)(g / p.gh);
+		p.ib0 = stats_log_ibeta_xy((double)p.A0, (double)p.B0, p.x,
+		    p.y);
+	}
+	p.set = 1;
+	return &p;
+}
+
 double
 stats_bb_logm(double s, double v, double g, double h, double r,
     int one_sided)
 {
-	long double gh = (long double)g + h, A, B, A0, B0, t;
-	double x, y;
+	const struct bb_prior *p;
+	long double gh, A, B, t;
 
 	if (!(g > 0) || !(h > 0) || !(r > 0) || !(v >= 0) || isnan(s))
 		return NAN;
 	if (v == 0)
 		return 0;
+	gh = (long double)g + h;
 	A = (r + v - (long double)g * s) / (g * gh);
 	B = (r + v + (long double)h * s) / (h * gh);
 	if (!(A > 0) || !(B > 0))
 		return INFINITY;
-	A0 = r / (g * gh);
-	B0 = r / (h * gh);
-	t = (long double)v / ((long double)g * h) * logl(gh) -
-	    (v + (long double)h * s) / (h * gh) * logl(g) -
-	    (v - (long double)g * s) / (g * gh) * logl(h) +
-	    stats_lbeta_l(A, B) - stats_lbeta_l(A0, B0);
-	if (one_sided) {
-		x = (double)(h / gh);
-		y = (double)(g / gh);
-		t += stats_log_ibeta_xy((double)A, (double)B, x, y) -
-		    stats_log_ibeta_xy((double)A0, (double)B0, x, y);
-	}
+	p = bb_prior(g, h, r, one_sided);
+	t = (long double)v / ((long double)g * h) * p->lgh -
+	    (v + (long double)h * s) / (h * gh) * p->lg -
+	    (v - (long double)g * s) / (g * gh) * p->lh +
+	    stats_lbeta_l(A, B) - p->lb0;
+	if (one_sided)
+		t += stats_log_ibeta_xy((double)A, (double)B, p->x, p->y) -
+		    p->ib0;
 	return (double)t;
 }
 

@@ -91,28 +91,45 @@ stats_prop_null(double x_t, double n_t, double x_c, double n_c, double D,
  * (R first): the one-pass sum S^2 - 2 R S N + R^2 N^2 cancels badly for
  * latencies with a small spread.
  */
-double
-stats_group_var(int G, const double *S, const double *N, double *R)
+static inline double
+group_var(int G, const double *S, const double *N, int stride, double *R)
 {
 	double s = 0, n = 0, zz = 0, z, r;
 	int g, used = 0;
 
-	for (g = 0; g < G; g++) {
-		s += S[g];
-		n += N[g];
-		used += N[g] != 0 || S[g] != 0;
+	for (g = 0; g < G; g++, S += stride, N += stride) {
+		s += *S;
+		n += *N;
+		used += *N != 0 || *S != 0;
 	}
 	if (!(n > 0) || used < 2) {
 		*R = n > 0 ? s / n : NAN;
 		return NAN;
 	}
 	r = s / n;
-	for (g = 0; g < G; g++) {
-		z = S[g] - r * N[g];
+	for (S -= (size_t)G * stride, N -= (size_t)G * stride, g = 0; g < G;
+	    g++, S += stride, N += stride) {
+		z = *S - r * *N;
 		zz += z * z;
 	}
 	*R = r;
 	return (double)used / (used - 1) * zz / (n * n);
+}
+
+double
+stats_group_var(int G, const double *S, const double *N, double *R)
+{
+	return group_var(G, S, N, 1, R);
+}
+
+double
+stats_group_var_strided(int G, const double *S, const double *N,
+    int stride, double *R)
+{
+	/* the engine's pairs: a constant stride the loops are built for */
+	if (stride == 2)
+		return group_var(G, S, N, 2, R);
+	return group_var(G, S, N, stride, R);
 }
 
 /* Inflate a variance from nu + 1 groups so the normal tail at q is the
