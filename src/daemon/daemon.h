@@ -14,6 +14,8 @@
  *               kafka_state.c: each partition's state and offset in
  *               one transaction, read back on assignment (kafka_state_*;
  *               shares kafka_in_int.h) (librdkafka)
+ *   engines.c   the daemon's engines: d->engine and one per owned Kafka
+ *               partition, seen as one by the API, metrics, tick (engines_*)
  *   ckpt.c      checkpoint write/restore, atomic and checksummed,
  *               written by a forked child off the loop (ckpt_*)
  *   notify.c    systemd notifications that never block  (notify_*)
@@ -62,6 +64,7 @@ struct pause;
 struct http;
 struct notify;
 struct ckpt;
+struct engines;
 
 /*
  * d->conf is replaced on SIGHUP (all-or-nothing). Read it afresh in each
@@ -88,7 +91,8 @@ enum ingest_status {
 struct daemon {
 	struct event_base	*base;
 	struct conf		*conf;		/* owned; swapped on reload */
-	struct engine		*engine;
+	struct engine		*engine;		/* sockets, Redis, plans */
+	struct engines		*engines;	/* + each partition's */
 	uint8_t			 hashkey[16];
 
 	struct daemon_main	*main;		/* main.c's own: the loop */
@@ -120,9 +124,27 @@ const char	*source_name(enum source);
 double		 daemon_now(void);	/* wall clock, seconds */
 /* Number of record inputs configured (tcp, udp, unix, redis, kafka). */
 int		 daemon_inputs(const struct conf *);
-/* Make e the daemon's engine (its findings to the sink), freeing the
- * one before: kafka_in.c merges partitions in and out this way. */
-void		 daemon_engine_replace(struct daemon *, struct engine *e);
+
+/* engines.c: every engine of the daemon, index 0 d->engine, then the
+ * Kafka partitions' (added and removed by kafka_in.c, which owns them).
+ * for (i = 0; (e = engines_at(d, i)) != NULL; i++) sees them all. */
+struct engines	*engines_new(void);
+void		 engines_free(struct engines *);
+/* e's findings go to the sink from now on. */
+void		 engines_add(struct daemon *, struct engine *e);
+/* Drains the sink's queue first; the caller frees e. */
+void		 engines_remove(struct daemon *, struct engine *e);
+struct engine	*engines_at(struct daemon *, size_t i);
+/* The engine holding the experiment, NULL when none does. */
+struct engine	*engines_find(struct daemon *, const char *experiment);
+/* engine_json_list's shape over all engines. */
+json_t		*engines_json_list(struct daemon *);
+void		 engines_counters(struct daemon *, struct engine_counters *);
+void		 engines_tick(struct daemon *, double now);
+int		 engines_reconfigure(struct daemon *, const struct conf *,
+		    char **cause);
+/* An operator action changed e: its partition commits it. */
+void		 engines_touched(struct daemon *, struct engine *e);
 
 /* ingest.c: its counters, rejection log budget and event numbers. */
 struct ingest	*ingest_new(void);
@@ -145,6 +167,9 @@ void		 ingest_reject(struct daemon *, enum source, enum proto_status,
 /* Several lines in one block (a datagram, a Redis entry). */
 void		 ingest_lines(struct daemon *, enum source, const char *,
 		    size_t);
+/* The same into engine e rather than d->engine (a Kafka partition's). */
+void		 ingest_lines_into(struct daemon *, struct engine *e,
+		    enum source, const char *, size_t);
 void		 ingest_metrics(struct daemon *, struct evbuffer *);
 /* The counters as JSON (kept in the checkpoint) and back. */
 json_t		*ingest_json(struct daemon *);
@@ -227,6 +252,8 @@ void		 kafka_in_metrics(struct kafka_in *, struct evbuffer *);
 /* {"topic", "group", "partitions": [{"partition", "state", "read",
  *  "committed", "experiments": [ID...]}]}: what this daemon owns. */
 json_t		*kafka_in_json(struct kafka_in *);
+/* e, a partition's engine, changed outside a message: commit it. */
+void		 kafka_in_touched(struct kafka_in *, struct engine *e);
 
 /* alert.c */
 enum alert_kind {

@@ -37,6 +37,7 @@ struct ingest {
 	struct ingest_counters	 counters;
 	struct ingest_log	 log[SRC_N];
 	uint64_t		 seq;		/* engine event numbers */
+	struct engine		*into;		/* NULL: d->engine */
 };
 
 struct ingest *
@@ -167,7 +168,8 @@ ingest_line_status(struct daemon *d, enum source src, const char *line,
 		    line, len, len);
 		return INGEST_BAD_LINE;
 	}
-	er = engine_apply(d->engine, &rec, rec.has_ts ? rec.ts : ingest_now(d),
+	er = engine_apply(d->ingest->into != NULL ? d->ingest->into :
+	    d->engine, &rec, rec.has_ts ? rec.ts : ingest_now(d),
 	    ++d->ingest->seq);
 	if (er != ENGINE_OK) {
 		if (er >= ENGINE_NREJECT)
@@ -204,6 +206,17 @@ ingest_lines(struct daemon *d, enum source src, const char *p, size_t len)
 		p += n + 1;
 		len -= n + 1;
 	}
+}
+
+void
+ingest_lines_into(struct daemon *d, struct engine *e, enum source src,
+    const char *p, size_t len)
+{
+	struct engine *was = d->ingest->into;
+
+	d->ingest->into = e;
+	ingest_lines(d, src, p, len);
+	d->ingest->into = was;
 }
 
 int

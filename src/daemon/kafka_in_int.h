@@ -56,6 +56,8 @@ struct kafka_part {
 	int64_t		 next;		/* next offset to read; -1: start */
 	int64_t		 committed;	/* next offset, as last committed */
 	json_t		*keys;		/* experiment ids seen: a set */
+	struct engine	*eng;		/* its experiments; NULL unless
+					 * running */
 	struct kafka_counts c;
 	uint64_t	 commits;
 	uint64_t	 commit_failures;
@@ -89,7 +91,7 @@ struct kafka_in {
 	uint64_t	 refused[KR_N];
 	uint64_t	 consume_errors;
 	uint64_t	 unowned;	/* messages of a partition not ours */
-	size_t		 stray;		/* experiments no owned key names */
+	size_t		 stray;		/* experiments no key of theirs names */
 };
 
 /* A state read: what one partition's state topic partition held. */
@@ -114,11 +116,11 @@ rd_kafka_conf_t	*kafka_in_conf(struct kafka_in *, const char *suffix,
 		    char **cause);
 
 /* kafka_state.c */
-int		 kafka_state_swap(struct kafka_in *, const json_t *drop,
-		    const json_t *add, char **cause);
-int		 kafka_state_commit(struct kafka_in *, struct kafka_part *,
-		    const json_t *img);
+void		 kafka_state_drop(struct kafka_in *, struct kafka_part *);
+int		 kafka_state_commit(struct kafka_in *, struct kafka_part *);
 void		 kafka_state_commit_all(struct kafka_in *, const char *why);
+/* Experiments of p's engine that none of its message keys names. */
+size_t		 kafka_state_stray(struct kafka_part *);
 rd_kafka_t	*kafka_state_producer(struct kafka_in *, int32_t id,
 		    char **cause);
 void		 kafka_state_read(struct kafka_in *, struct kafka_read *,

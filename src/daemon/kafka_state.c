@@ -6,8 +6,9 @@
  * of the compacted state topic in one transaction with the input
  * offset, from a producer whose transactional.id belongs to the input
  * partition, and comes back (read_committed) when a daemon is assigned
- * the partition. Partitions merge into the daemon's one engine and out
- * of it by saving, filtering and restoring the engine image.
+ * the partition. Each partition has its own engine (p->eng, listed in
+ * the daemon's engines while the partition runs), so its state is that
+ * engine's whole image and a revocation drops exactly its experiments.
  */
 #include <inttypes.h>
 #include <stdio.h>
@@ -18,49 +19,6 @@
 
 #include "stopcock/log.h"
 #include "kafka_in_int.h"
-
-/* ---- the engine: merging a partition's experiments in and out ---- */
-
-/*
- * Replace d->engine by one holding its experiments less those named in
- * drop (a set, may be NULL) and those in add (an array of saved
- * experiments, may be NULL), which replace any of the same id. 0, or -1
- * with *cause and the engine unchanged.
- */
-int
-kafka_state_swap(struct kafka_in *k, const json_t *drop, const json_t *add,
-    char **cause)
-{
-	struct daemon *d = k->d;
-	struct engine *neng;
-	json_t *img, *arr, *ids, *e;
-	const char *id;
-	size_t i;
-
-	ids = json_object();
-	json_array_foreach(add, i, e)
-		if ((id = json_string_value(json_object_get(e, "id"))) != NULL)
-			json_object_set_new(ids, id, json_true());
-	img = engine_save(d->engine);
-	arr = json_array();
-	json_array_foreach(json_object_get(img, "experiments"), i, e) {
-		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		if ((drop != NULL && json_object_get(drop, id) != NULL) ||
-		    json_object_get(ids, id) != NULL)
-			continue;
-		json_array_append(arr, e);
-	}
-	json_array_foreach(add, i, e)
-		json_array_append(arr, e);
-	json_object_set_new(img, "experiments", arr);
-	json_decref(ids);
-	neng = engine_restore(d->conf, d->hashkey, img, cause);
-	json_decref(img);
-	if (neng == NULL)
-		return -1;
-	daemon_engine_replace(d, neng);
-	return 0;
-}
 
 /* ---- one partition's state image ---- */
 
@@ -123,31 +81,24 @@ kafka_state_counts_restore(struct kafka_counts *c, const json_t *o)
 
 /*
  * {"format", "version", "topic", "partition", "next", "keys": [...],
- *  "counters": {...}, "engine": {"format", "version", "experiments"}}
- * with the experiments of img that the partition's keys name.
+ *  "counters": {...}, "engine": engine_save(p->eng)}. A state of the
+ * earlier daemon whose engine held only "format", "version" and
+ * "experiments" restores the same way (engine_restore needs no more).
  */
 static json_t *
-kafka_state_image(struct kafka_in *k, struct kafka_part *p, const json_t *img)
+kafka_state_image(struct kafka_in *k, struct kafka_part *p)
 {
-	json_t *keys = json_array(), *exps = json_array(), *e, *v;
+	json_t *keys = json_array(), *v;
 	const char *id;
-	size_t i;
 
 	json_object_foreach(p->keys, id, v)
 		json_array_append_new(keys, json_string(id));
-	json_array_foreach(json_object_get(img, "experiments"), i, e) {
-		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		if (json_object_get(p->keys, id) != NULL)
-			json_array_append(exps, e);
-	}
-	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, "
-	    "s:{s:O, s:O, s:o}}",
+	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, s:o}",
 	    "format", KAFKA_STATE_FORMAT, "version", KAFKA_STATE_VERSION,
 	    "topic", k->topic, "partition", (int)p->id,
 	    "next", (json_int_t)p->next, "keys", keys,
 	    "counters", kafka_state_counts_json(&p->c),
-	    "engine", "format", json_object_get(img, "format"),
-	    "version", json_object_get(img, "version"), "experiments", exps);
+	    "engine", engine_save(p->eng));
 }
 
 static char *
@@ -186,23 +137,28 @@ kafka_state_pause(struct kafka_in *k, int32_t id)
 	rd_kafka_topic_partition_list_destroy(l);
 }
 
+/* The partition's engine leaves the daemon (revoked, lost, fenced). */
+void
+kafka_state_drop(struct kafka_in *k, struct kafka_part *p)
+{
+	if (p->eng == NULL)
+		return;
+	engines_remove(k->d, p->eng);
+	engine_free(p->eng);
+	p->eng = NULL;
+}
+
 /* Another owner has the partition's transactional.id: stop, forget. */
 static void
 kafka_state_fenced(struct kafka_in *k, struct kafka_part *p, const char *why)
 {
-	char *cause = NULL;
-
 	log_crit("kafka: partition fenced: %s; another daemon owns it now, "
 	    "this one stops testing its experiments partition=%" PRId32
 	    " experiments=%zu", why, p->id, json_object_size(p->keys));
 	k->fenced++;
 	p->state = KP_FENCED;
 	kafka_state_pause(k, p->id);
-	if (kafka_state_swap(k, p->keys, NULL, &cause) != 0) {
-		log_warnx("kafka: dropping a fenced partition's experiments: "
-		    "%s partition=%" PRId32, cause, p->id);
-		free(cause);
-	}
+	kafka_state_drop(k, p);
 	json_object_clear(p->keys);
 }
 
@@ -230,7 +186,7 @@ kafka_state_failed(struct kafka_in *k, struct kafka_part *p, const char *call,
 
 /* State and input offset in one transaction. 0 committed, -1 not. */
 int
-kafka_state_commit(struct kafka_in *k, struct kafka_part *p, const json_t *img)
+kafka_state_commit(struct kafka_in *k, struct kafka_part *p)
 {
 	rd_kafka_topic_partition_list_t *off;
 	rd_kafka_consumer_group_metadata_t *cgmd;
@@ -240,7 +196,7 @@ kafka_state_commit(struct kafka_in *k, struct kafka_part *p, const json_t *img)
 	char *buf, *key;
 	size_t len;
 
-	state = kafka_state_image(k, p, img);
+	state = kafka_state_image(k, p);
 	buf = json_dumps(state, JSON_COMPACT);
 	json_decref(state);
 	if (buf == NULL)
@@ -290,52 +246,53 @@ kafka_state_commit(struct kafka_in *k, struct kafka_part *p, const json_t *img)
 	return 0;
 }
 
-/* Experiments of the engine that no owned partition's keys name. */
-static void
-kafka_state_stray(struct kafka_in *k, const json_t *img)
+/*
+ * Experiments of a partition's engine that no message key of it named:
+ * records sent under another experiment's key. They are kept in that
+ * partition's state, but their records may travel in other partitions
+ * too, and then they are split between engines (and daemons).
+ */
+size_t
+kafka_state_stray(struct kafka_part *p)
 {
-	const json_t *e;
+	json_t *img = engine_json_list(p->eng), *e;
 	const char *id;
 	size_t i, n = 0;
-	int32_t j;
-	int found;
 
 	json_array_foreach(json_object_get(img, "experiments"), i, e) {
 		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		found = 0;
-		for (j = 0; j < KAFKA_PARTITIONS_MAX && !found; j++)
-			found = k->parts[j] != NULL &&
-			    json_object_get(k->parts[j]->keys, id) != NULL;
-		n += !found;
+		n += json_object_get(p->keys, id) == NULL;
 	}
-	if (n > k->stray)
-		log_warnx("kafka: %zu experiments came in messages keyed by "
-		    "another experiment; their state is not kept in Kafka "
-		    "(the key must be the experiment id)", n);
-	k->stray = n;
+	json_decref(img);
+	return n;
 }
 
 void
 kafka_state_commit_all(struct kafka_in *k, const char *why)
 {
-	json_t *img = NULL;
+	size_t stray = 0;
 	int32_t i;
-	int n = 0;
+	int n = 0, tried = 0;
 
 	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++) {
 		struct kafka_part *p = k->parts[i];
 
-		if (p == NULL || p->state != KP_RUNNING || !p->dirty)
+		if (p == NULL || p->state != KP_RUNNING || p->eng == NULL)
 			continue;
-		if (img == NULL)
-			img = engine_save(k->d->engine);
-		n += kafka_state_commit(k, p, img) == 0;
+		if (p->dirty) {
+			tried++;
+			n += kafka_state_commit(k, p) == 0;
+		}
+		stray += kafka_state_stray(p);
 	}
-	if (img != NULL) {
-		kafka_state_stray(k, img);
-		json_decref(img);
+	if (stray > k->stray)
+		log_warnx("kafka: %zu experiments came in messages keyed by "
+		    "another experiment; if their records travel in several "
+		    "partitions they are split (the key must be the "
+		    "experiment id)", stray);
+	k->stray = stray;
+	if (tried > 0)
 		log_debug("kafka: commit reason=%s partitions=%d", why, n);
-	}
 }
 
 /* A partition's transactional producer, fencing any earlier owner. */
@@ -510,6 +467,8 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		p->next = -1;
 		p->committed = -1;
 		p->state = KP_RUNNING;
+		p->eng = engine_new(k->d->conf, k->d->hashkey);
+		engines_add(k->d, p->eng);
 		return;
 	}
 	fmt = json_string_value(json_object_get(state, "format"));
@@ -538,13 +497,14 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		    "or a broker that keeps no transactional offsets, as the "
 		    "mock cluster); resuming from the state's partition=%"
 		    PRId32 " next=%" PRId64, p->id, next);
-	if (kafka_state_swap(k, NULL, json_object_get(json_object_get(state,
-	    "engine"), "experiments"), &cause) != 0) {
+	if ((p->eng = engine_restore(k->d->conf, k->d->hashkey,
+	    json_object_get(state, "engine"), &cause)) == NULL) {
 		kafka_state_refuse(k, p, KR_BAD_STATE, "its state does not "
 		    "restore", cause);
 		free(cause);
 		return;
 	}
+	engines_add(k->d, p->eng);
 	json_array_foreach(keys, i, v)
 		if (json_is_string(v))
 			json_object_set_new(p->keys, json_string_value(v),

@@ -15,7 +15,9 @@ failed checkouts on each.
     the same group.instance.id. In the end every experiment's exposures
     and failed-checkout sums equal the produced ones exactly (no loss, no
     double count), and so do the messages counted per partition, which
-    travel in the partition's state.
+    travel in the partition's state. One experiment's records travel
+    under another's key (a stray): it lives in that partition's engine
+    and comes back whole with its state.
  2. A second daemon joins the group: the partitions split between the
     two (disjoint, together all 8); more records flow; each experiment
     lives in exactly one daemon, with its whole tally, and the union of
@@ -63,6 +65,7 @@ test = proportion
 harm = increase
 margin = 0
 """
+STRAY = "shop_gift_cards"
 EXPS = ["shop_%s" % n for n in (
     "basket_page", "delivery_banner", "pastry_photos", "search_box",
     "loyalty_nudge", "checkout_steps", "gift_wrap", "pickup_slots",
@@ -213,8 +216,10 @@ def tallies(d):
 class Feed:
     """Generated records, counted on the way out as the reference."""
 
-    def __init__(self, mock, seed, bad_rate=0.0):
+    def __init__(self, mock, seed, bad_rate=0.0, carriers=None, exps=EXPS):
         self.mock = mock
+        self.carriers = carriers or {}	# experiment -> the key it goes by
+        self.exps = exps
         self.rng = random.Random(seed)
         self.want = {}
         self.planned = set()
@@ -240,11 +245,11 @@ class Feed:
         if self.rng.random() < self.bad_rate:	# a variant without a name
             lines.append("expose %s" % exp)
         self.lines += lines
-        self.mock.send(exp, lines)
+        self.mock.send(self.carriers.get(exp, exp), lines)
 
     def batch(self, n):
         for _ in range(n):
-            self.message(self.rng.choice(EXPS))
+            self.message(self.rng.choice(self.exps))
         return self.mock.flush()
 
 
@@ -362,7 +367,11 @@ def main():
     mock = Mock()
     a = b = c = None
     try:
-        feed = Feed(mock, seed=14)
+        # gift cards' records travel under the basket page's key (against
+        # the producer contract, but always the same key): a stray
+        # experiment, kept in that partition's engine and state
+        feed = Feed(mock, seed=14, carriers={STRAY: "shop_basket_page"},
+                    exps=EXPS + [STRAY])
         # commits 5 s apart: the kill lands after reads not committed
         a = kafka_daemon("kafka-a", mock, "bakery", "it-a",
                          commit_every="5s")
@@ -378,7 +387,7 @@ def main():
 
         def paced(n):	# about 100 messages a second
             for i in range(n):
-                feed.message(feed.rng.choice(EXPS))
+                feed.message(feed.rng.choice(feed.exps))
                 if i % 10 == 9:
                     feed.mock.flush()
                     time.sleep(0.1)
@@ -399,6 +408,13 @@ def main():
                "counted %r" % messages(a))
         compare(tap, tallies(a), feed.want, "exposures and failed-checkout "
                 "sums equal the produced ones exactly after SIGKILL")
+        compare(tap, {k: v for k, v in tallies(a).items() if k[0] == STRAY},
+                {k: v for k, v in feed.want.items() if k[0] == STRAY},
+                "the stray experiment (records under another experiment's "
+                "key) came back whole with its partition's state")
+        tap.eq([v for n, l, v in metrics(a)
+                if n == "stopcock_kafka_stray_experiments"], [1.0],
+               "and it is counted as a stray")
         restored = [int(m) for m in re.findall(
             r"restored from the state topic .* messages=(\d+)",
             a.log_text())]
