@@ -324,6 +324,12 @@ void		 webhook_send(struct webhook *, uint32_t need, const char *id,
 int		 webhook_post(struct webhook *, const char *receiver,
 		    const char *id, json_t *body);
 void		 webhook_metrics(struct webhook *, struct evbuffer *);
+/* Deliveries not yet answered about experiments mine() accepts, as a
+ * Kafka partition's state carries them; webhook_adopt queues such a
+ * list here (same webhook-ids, none twice). */
+json_t		*webhook_pending(struct webhook *,
+		    int (*mine)(void *, const char *experiment), void *arg);
+size_t		 webhook_adopt(struct webhook *, const json_t *pending);
 
 /* pause.c: the policy and the delivery of auto-pauses. */
 enum pause_decision {
@@ -348,6 +354,11 @@ void		 pause_deliver(struct pause *, const struct finding *,
 void		 pause_metrics(struct pause *, struct evbuffer *);
 /* SIGHUP: the audit log reopened by name (log rotation). */
 void		 pause_reopen(struct pause *);
+/* The once-per-epoch marks and this hour's pause times of experiments
+ * mine() accepts (a Kafka partition's state), and taking them over. */
+json_t		*pause_carry(struct pause *,
+		    int (*mine)(void *, const char *experiment), void *arg);
+void		 pause_adopt(struct pause *, const json_t *carried);
 
 /* http.c */
 struct http	*http_new(struct daemon *, char **cause);

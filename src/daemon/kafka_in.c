@@ -277,6 +277,7 @@ kafka_revoke(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 
 	if (lost)
 		k->lost++;
+	dispatch_drain(k->d->dispatch);	/* alerts before the state */
 	for (i = 0; i < l->cnt; i++) {
 		int32_t n = l->elems[i].partition;
 

@@ -62,6 +62,9 @@ struct kafka_part {
 	uint64_t	 commits;
 	uint64_t	 commit_failures;
 	int		 dirty;		/* read something since the commit */
+	uint64_t	 findings;	/* its engine's, at the last commit:
+					 * a finding of the tick (no record)
+					 * is carried too */
 };
 
 struct kafka_in {

@@ -79,11 +79,29 @@ kafka_state_counts_restore(struct kafka_counts *c, const json_t *o)
 		c->engine_rejected[r] = kafka_state_u64(rej, engine_reason(r));
 }
 
+static void
+kafka_state_noop(void *arg, const struct finding *f)
+{
+}
+
+/* The experiment is one of the partition's (its engine holds it). */
+static int
+kafka_state_mine(void *arg, const char *experiment)
+{
+	struct kafka_part *p = arg;
+
+	return p->eng != NULL &&
+	    engine_foreach_in(p->eng, experiment, kafka_state_noop, NULL) == 0;
+}
+
 /*
  * {"format", "version", "topic", "partition", "next", "keys": [...],
- *  "counters": {...}, "engine": engine_save(p->eng)}. A state of the
+ *  "counters": {...}, "engine": engine_save(p->eng),
+ *  "webhooks": webhook_pending, "pause": pause_carry} (the last two of
+ * the partition's experiments: the alerts not yet delivered and the
+ * pause marks, so a lost host loses no queued alert). A state of the
  * earlier daemon whose engine held only "format", "version" and
- * "experiments" restores the same way (engine_restore needs no more).
+ * "experiments", without the last two, restores the same way.
  */
 static json_t *
 kafka_state_image(struct kafka_in *k, struct kafka_part *p)
@@ -93,12 +111,14 @@ kafka_state_image(struct kafka_in *k, struct kafka_part *p)
 
 	json_object_foreach(p->keys, id, v)
 		json_array_append_new(keys, json_string(id));
-	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, s:o}",
+	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, s:o, s:o, s:o}",
 	    "format", KAFKA_STATE_FORMAT, "version", KAFKA_STATE_VERSION,
 	    "topic", k->topic, "partition", (int)p->id,
 	    "next", (json_int_t)p->next, "keys", keys,
 	    "counters", kafka_state_counts_json(&p->c),
-	    "engine", engine_save(p->eng));
+	    "engine", engine_save(p->eng),
+	    "webhooks", webhook_pending(k->d->webhook, kafka_state_mine, p),
+	    "pause", pause_carry(k->d->pause, kafka_state_mine, p));
 }
 
 static char *
@@ -192,10 +212,12 @@ kafka_state_commit(struct kafka_in *k, struct kafka_part *p)
 	rd_kafka_consumer_group_metadata_t *cgmd;
 	rd_kafka_error_t *e;
 	rd_kafka_resp_err_t err;
+	struct engine_counters ec;
 	json_t *state;
 	char *buf, *key;
 	size_t len;
 
+	engine_counters(p->eng, &ec);
 	state = kafka_state_image(k, p);
 	buf = json_dumps(state, JSON_COMPACT);
 	json_decref(state);
@@ -240,6 +262,7 @@ kafka_state_commit(struct kafka_in *k, struct kafka_part *p)
 	}
 	p->committed = p->next;
 	p->dirty = 0;
+	p->findings = ec.findings;
 	p->commits++;
 	log_debug("kafka: committed partition=%" PRId32 " next=%" PRId64
 	    " bytes=%zu", p->id, p->next, len);
@@ -270,16 +293,20 @@ kafka_state_stray(struct kafka_part *p)
 void
 kafka_state_commit_all(struct kafka_in *k, const char *why)
 {
+	struct engine_counters ec;
 	size_t stray = 0;
 	int32_t i;
 	int n = 0, tried = 0;
 
+	/* the alerts of what is saved reach the webhook queue first */
+	dispatch_drain(k->d->dispatch);
 	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++) {
 		struct kafka_part *p = k->parts[i];
 
 		if (p == NULL || p->state != KP_RUNNING || p->eng == NULL)
 			continue;
-		if (p->dirty) {
+		engine_counters(p->eng, &ec);
+		if (p->dirty || ec.findings != p->findings) {
 			tried++;
 			n += kafka_state_commit(k, p) == 0;
 		}
@@ -443,8 +470,9 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 	json_t *state = r->state, *keys, *v;
 	char *cause = NULL;
 	const char *fmt;
+	struct engine_counters ec;
 	int64_t next;
-	size_t i;
+	size_t i, n;
 
 	if (r->cause != NULL) {
 		kafka_state_refuse(k, p, r->found ? KR_BAD_STATE :
@@ -505,6 +533,14 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		return;
 	}
 	engines_add(k->d, p->eng);
+	engine_counters(p->eng, &ec);
+	p->findings = ec.findings;
+	if ((n = webhook_adopt(k->d->webhook, json_object_get(state,
+	    "webhooks"))) > 0)
+		log_info("kafka: deliveries carried in the partition's state "
+		    "queued again partition=%" PRId32 " deliveries=%zu", p->id,
+		    n);
+	pause_adopt(k->d->pause, json_object_get(state, "pause"));
 	json_array_foreach(keys, i, v)
 		if (json_is_string(v))
 			json_object_set_new(p->keys, json_string_value(v),

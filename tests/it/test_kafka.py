@@ -119,12 +119,12 @@ class Mock:
 
 
 def kafka_daemon(name, mock, group, instance, state_topic="st",
-                 commit_every="200ms"):
+                 commit_every="200ms", guardrails=GUARDRAILS, extra=""):
     d = Daemon(name, tcp=False, udp=False, unix=False, http=True,
                conf="", start=False)
     d.write_conf(
         "[defaults]\nalpha = 0.05\nplan_units = 2000\nlateness = 0\n"
-        "srm_interval = 1ms\n" + GUARDRAILS +
+        "srm_interval = 1ms\n" + guardrails + extra +
         "\n[daemon]\nstate = %s\ntick = 200ms\ncheckpoint_every = 1s\n"
         "http = 127.0.0.1:%d\n" % (d.state, d.http) +
         "\n[kafka]\nbrokers = %s\ntopic = rec\nstate_topic = %s\n"
