@@ -22,6 +22,11 @@ failed checkouts on each.
     two (disjoint, together all 8); more records flow; each experiment
     lives in exactly one daemon, with its whole tally, and the union of
     the two daemons' tallies is the produced one, exactly.
+    `stopcock status` with both --url merges them (each experiment
+    once, with its daemon; each daemon's partitions), shows one
+    experiment from its owner, calls out an experiment a daemon outside
+    the group also holds (a split), and reports a daemon that does not
+    answer (exit 74) while still showing the other.
  3. A rolling restart: the second daemon is stopped (SIGTERM) and
     started again with its group.instance.id; the tallies stay exact.
     The mock cluster has no static membership, so "no rebalance" is
@@ -54,7 +59,7 @@ import time
 
 from prometheus_client.parser import text_string_to_metric_families
 
-from _lib import Tap, Daemon, wait_for, replay, BUILD, OUT
+from _lib import Tap, Daemon, wait_for, replay, BUILD, OUT, STOPCOCK
 
 KAFKAMOCK = os.path.join(BUILD, "tests", "kafkamock")
 NPART = 8
@@ -251,6 +256,68 @@ class Feed:
         for _ in range(n):
             self.message(self.rng.choice(self.exps))
         return self.mock.flush()
+
+
+def url(d):
+    return d if isinstance(d, str) else "http://127.0.0.1:%d" % d.http
+
+
+def status(*ds, args=()):
+    """stopcock status --url D... ARGS: (exit status, stdout, stderr)."""
+    cmd = [STOPCOCK, "status"]
+    for d in ds:
+        cmd += ["--url", url(d)]
+    p = subprocess.run(cmd + list(args), capture_output=True, text=True,
+                       timeout=60, env=dict(os.environ, NO_COLOR="1"))
+    return p.returncode, p.stdout, p.stderr
+
+
+def status_checks(tap, a, b, ea, eb):
+    """stopcock status merging the two daemons of one group, then a
+    daemon outside the group that holds one of their experiments too (a
+    split), then one that does not answer."""
+    rc, out, err = status(a, b, args=["--json"])
+    j = json.loads(out) if rc == 0 else {}
+    owner = {e["id"]: e["daemon"] for e in j.get("experiments", [])}
+    want = dict([(e, url(a)) for e in ea] + [(e, url(b)) for e in eb])
+    tap.ok((rc, owner, j.get("split")) == (0, want, []),
+           "stopcock status with two --url merges them: every experiment "
+           "once, named with its daemon, no split",
+           "rc=%d err=%r split=%r" % (rc, err, j.get("split")))
+    tap.eq([sorted(p["partition"] for p in x["kafka"]["partitions"])
+            for x in j.get("daemons", [])],
+           [sorted(partitions(a)), sorted(partitions(b))],
+           "and says which partitions each daemon owns")
+    rc, out, err = status(a, b)
+    head = [l for l in out.splitlines() if l.startswith("daemon ")]
+    tap.ok(rc == 0 and len(head) == 2 and
+           head[1].startswith("daemon %s: %d experiments, partitions" %
+                              (url(b), len(eb))),
+           "the table opens with one line per daemon", repr(head))
+    one = sorted(eb)[0]
+    rc, out, err = status(a, b, args=[one])
+    tap.ok(rc == 0 and out.startswith("at %s\n" % url(b)),
+           "one experiment is shown from the daemon that holds it",
+           "rc=%d out=%r err=%r" % (rc, out[:80], err))
+    # the same experiment fed to a daemon outside the group: a split
+    plain = Daemon("kafka-plain", udp=False, unix=False, http=True)
+    try:
+        plain.send_tcp(["plan %s control=50 treatment=50" % one,
+                        "expose %s control" % one])
+        wait_for(lambda: tallies(plain), 10)
+        rc, out, err = status(b, plain, args=["--json"])
+        tap.ok(rc == 0 and json.loads(out)["split"] == [one] and
+               "is held by 2 daemons" in err,
+               "an experiment two daemons hold is called out (split)",
+               "rc=%d err=%r" % (rc, err))
+    finally:
+        plain.close()
+    rc, out, err = status(a, "http://127.0.0.1:1")
+    tap.ok(rc == 74 and out.count("daemon ") == 1 and
+           len([l for l in out.splitlines() if l.startswith("shop_")]) ==
+           len(ea) and "127.0.0.1:1" in err,
+           "a daemon that does not answer is reported (exit 74), the "
+           "others still shown", "rc=%d err=%r" % (rc, err))
 
 
 def compare(tap, got, want, name):
@@ -455,6 +522,7 @@ def main():
         union.update(tb)
         compare(tap, union, feed.want, "the union of the two daemons' "
                 "tallies equals the produced records exactly")
+        status_checks(tap, a, b, ea, eb)
 
         def rebalances(d):
             return sum(v for n, l, v in metrics(d)
