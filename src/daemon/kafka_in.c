@@ -371,7 +371,9 @@ kafka_message(struct kafka_in *k, rd_kafka_message_t *m)
 		    m->payload, 80);
 		return;
 	}
-	if (json_object_getn(p->keys, m->key, m->key_len) == NULL)
+	/* bounded like the engine: a key per message must not grow it */
+	if (json_object_getn(p->keys, m->key, m->key_len) == NULL &&
+	    json_object_size(p->keys) < k->d->conf->max_experiments)
 		json_object_setn_new(p->keys, m->key, m->key_len, json_true());
 	/* The same door as a Redis entry; the differences are ours. */
 	before = *ic;
@@ -770,10 +772,11 @@ kafka_in_metrics(struct kafka_in *k, struct evbuffer *b)
 	    "Consumer and client errors.", k->consume_errors);
 	KAFKA_EACH(k, p, i)
 		if (p->eng != NULL)
-			stray += kafka_state_stray(p);
+			stray += p->stray;
 	metrics_gauge(b, "stopcock_kafka_stray_experiments",
 	    "Experiments of the partitions' engines that no message key of "
 	    "their partition names (records sent under another experiment's "
-	    "key): kept, but split if they travel in several partitions.",
+	    "key), at the last commit: kept, but split if they travel in "
+	    "several partitions.",
 	    (double)stray);
 }

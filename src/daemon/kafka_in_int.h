@@ -62,6 +62,8 @@ struct kafka_part {
 	uint64_t	 commits;
 	uint64_t	 commit_failures;
 	int		 dirty;		/* read something since the commit */
+	size_t		 stray;		/* kafka_state_stray at the last
+					 * commit or load */
 	uint64_t	 findings;	/* its engine's, at the last commit:
 					 * a finding of the tick (no record)
 					 * is carried too */
@@ -122,8 +124,6 @@ rd_kafka_conf_t	*kafka_in_conf(struct kafka_in *, const char *suffix,
 void		 kafka_state_drop(struct kafka_in *, struct kafka_part *);
 int		 kafka_state_commit(struct kafka_in *, struct kafka_part *);
 void		 kafka_state_commit_all(struct kafka_in *, const char *why);
-/* Experiments of p's engine that none of its message keys names. */
-size_t		 kafka_state_stray(struct kafka_part *);
 rd_kafka_t	*kafka_state_producer(struct kafka_in *, int32_t id,
 		    char **cause);
 void		 kafka_state_read(struct kafka_in *, struct kafka_read *,

@@ -20,6 +20,8 @@
 #include "stopcock/log.h"
 #include "kafka_in_int.h"
 
+static size_t	kafka_state_stray(struct kafka_part *);
+
 /* ---- one partition's state image ---- */
 
 static json_t *
@@ -263,6 +265,7 @@ kafka_state_commit(struct kafka_in *k, struct kafka_part *p)
 	p->committed = p->next;
 	p->dirty = 0;
 	p->findings = ec.findings;
+	p->stray = kafka_state_stray(p);
 	p->commits++;
 	log_debug("kafka: committed partition=%" PRId32 " next=%" PRId64
 	    " bytes=%zu", p->id, p->next, len);
@@ -275,7 +278,7 @@ kafka_state_commit(struct kafka_in *k, struct kafka_part *p)
  * partition's state, but their records may travel in other partitions
  * too, and then they are split between engines (and daemons).
  */
-size_t
+static size_t
 kafka_state_stray(struct kafka_part *p)
 {
 	json_t *img = engine_json_list(p->eng), *e;
@@ -310,7 +313,7 @@ kafka_state_commit_all(struct kafka_in *k, const char *why)
 			tried++;
 			n += kafka_state_commit(k, p) == 0;
 		}
-		stray += kafka_state_stray(p);
+		stray += p->stray;
 	}
 	if (stray > k->stray)
 		log_warnx("kafka: %zu experiments came in messages keyed by "
@@ -546,6 +549,7 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 			json_object_set_new(p->keys, json_string_value(v),
 			    json_true());
 	kafka_state_counts_restore(&p->c, json_object_get(state, "counters"));
+	p->stray = kafka_state_stray(p);
 	p->next = next;
 	p->committed = next;
 	p->state = KP_RUNNING;
