@@ -47,6 +47,7 @@ with open(os.path.join(tmp, "replay.err")) as f:
 m = re.search(r"(\d+) records applied, (\d+) rejected", replay_err)
 replay_applied = int(m.group(1)) if m else None
 ingest = load("ingest.json")
+kafka = load("kafka.json")
 mem = load("mem.json")
 aa = load("sim_aa.json")
 harm = load("sim_harm.json")
@@ -78,6 +79,7 @@ res = {
     "redis": dict(ingest["redis"], target_ratio=1.0,
                   met=ingest["redis"]["ratio"] >= 1.0),
     "redis_ha": ingest.get("redis_ha"),
+    "kafka": kafka,
     "memory": dict(mem, target_bytes_per_series=8192,
                    met=mem["rss_bytes_per_series"] <= 8192),
     "tick": {"experiments": mem["experiments"], "tests": mem["tests"],
@@ -183,6 +185,14 @@ if "redis_ha" in r:
          "Redis rate (reads fenced by the lease, checkpoint in Redis)" %
          (t["records_per_second"], t["records"], t["seconds"],
           t["vs_redis"]), None, ("redis_ha", "records_per_second"))
+t = r["kafka"]
+line("Kafka      one daemon %d records/s, three of one group %d records/s "
+     "(aggregate; ratio %.3f; %d records in %d messages, %d partitions, "
+     "mock cluster, %d CPUs shared; both applied the same records: %s)" %
+     (t["one"]["records_per_second"], t["three"]["records_per_second"],
+      t["ratio"], t["records"], t["messages"], t["partitions"],
+      r["machine"]["cpus"], "yes" if t["same_records"] else "NO"),
+     None, ("kafka", "three", "records_per_second"))
 t = r["memory"]
 line("memory     %.0f bytes per series by RSS (%d series, %d -> %d KiB); "
      "engine's own count %.0f bytes (target <= 8192)" %

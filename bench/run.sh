@@ -9,6 +9,9 @@
 #   2. stopcockd's ingest rate over TCP on loopback and over a Redis
 #      stream (batched entries), beside redis-benchmark's XADD rate on the
 #      same redis-server (bench/ingest.py);
+#   2b. Kafka: aggregate ingest of three daemons of one consumer group
+#      beside one daemon, same generated records, same run, on
+#      librdkafka's mock cluster (bench/kafka.py);
 #   3. memory per series (resident-size growth over 10,000 experiments x
 #      3 arms x 4 metrics, divided out) and the cost of one engine tick at
 #      that scale (tests/tools/engine_bench.c);
@@ -65,6 +68,9 @@ say "daemon ingest: TCP and Redis"
 $PY bench/ingest.py "$BUILD" "$TMP/records.txt" $CONF 2000000 \
     > "$TMP/ingest.json"
 rm -f "$TMP/records.txt"
+
+say "daemon ingest: Kafka, one daemon and three (mock cluster)"
+$PY bench/kafka.py "$BUILD" $CONF 1000000 > "$TMP/kafka.json"
 
 say "memory and tick: 10,000 experiments x 3 arms x 4 metrics"
 $S generate -c $CONF --experiments 10000 --arms control=34,b=33,c=33 \

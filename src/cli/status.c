@@ -1,11 +1,18 @@
 /*
- * status.c: `stopcock status [--url URL] [--json] [EXP]`, a terminal view
- * of a running daemon. It reads the daemon's JSON API (the same one the
- * page uses) with one blocking libcurl request and prints a compact table:
- * every experiment with its guardrail verdicts, or, given EXP, each test
- * with its estimate, bounds and p-value. Colour only on a terminal, and
- * always with the verdict in words; --json passes the API's answer
- * through untouched.
+ * status.c: `stopcock status [--url URL]... [--json] [EXP]`, a terminal
+ * view of running daemons. It reads each daemon's JSON API (the same one
+ * the page uses) with blocking libcurl requests and prints a compact
+ * table: every experiment with its guardrail verdicts, or, given EXP,
+ * each test with its estimate, bounds and p-value. Colour only on a
+ * terminal, and always with the verdict in words; --json passes one
+ * daemon's answer through untouched.
+ *
+ * Several --url (the daemons of one Kafka group, say) are merged: each
+ * daemon's line says what it owns (its partitions, from /api/health),
+ * each experiment names its daemon, and an experiment that two daemons
+ * both hold is called out on stderr (its records are split between
+ * them, so each tests part of the data). A daemon that does not answer
+ * is reported and the others are still shown (exit status 74).
  */
 #include <ctype.h>
 #include <getopt.h>
@@ -26,6 +33,7 @@
 #define STATUS_URL	"http://127.0.0.1:7721"
 #define STATUS_BODY_MAX	(64u * 1024 * 1024)	/* bytes we accept */
 #define STATUS_TIMEOUT	10L			/* seconds */
+#define STATUS_URLS_MAX	64			/* --url given */
 
 
 struct status_style {
@@ -224,7 +232,13 @@ status_list(const json_t *root, const struct status_style *st)
 		x = json_array_get(xs, i);
 		printf("%s", st->bold);
 		status_name(status_str(x, "id"), 0);
-		printf("%s  epoch %.0f ", st->off, status_num(x, "epoch"));
+		printf("%s", st->off);
+		if (json_is_string(json_object_get(x, "daemon"))) {
+			printf("  %s@", st->dim);
+			status_name(status_str(x, "daemon"), 0);
+			printf("%s", st->off);
+		}
+		printf("  epoch %.0f ", status_num(x, "epoch"));
 		for (j = 0; j < json_array_size(json_object_get(x, "arms"));
 		    j++) {
 			a = json_array_get(json_object_get(x, "arms"), j);
@@ -358,11 +372,212 @@ status_experiment(const json_t *x, const struct status_style *st)
 static void
 status_usage(FILE *fp)
 {
-	fprintf(fp, "usage: stopcock status [--url URL] [--json] "
+	fprintf(fp, "usage: stopcock status [--url URL]... [--json] "
 	    "[EXPERIMENT]\n"
 	    "  --url URL  the daemon's HTTP address (default $STOPCOCK_URL "
-	    "or " STATUS_URL ")\n"
-	    "  --json     print the API's JSON as it comes\n");
+	    "or " STATUS_URL ");\n"
+	    "             several: their answers merged\n"
+	    "  --json     print the API's JSON as it comes (several daemons: "
+	    "merged)\n");
+}
+
+/* base (its trailing slashes dropped) + path; the caller frees. */
+static char *
+status_url(const char *base, const char *path)
+{
+	size_t blen = strlen(base);
+	char *url;
+
+	while (blen > 0 && base[blen - 1] == '/')
+		blen--;
+	xasprintf(&url, "%.*s%s", (int)blen, base, path);
+	return url;
+}
+
+/* GET base+path as JSON: the answer (200) or NULL with *code (0: no
+ * answer, 404: none there) and *cause. */
+static json_t *
+status_fetch(const char *base, const char *path, long *code, char **cause)
+{
+	struct status_body body = { NULL, 0, STATUS_BODY_MAX, 0 };
+	json_error_t jerr;
+	json_t *root = NULL;
+	char *url = status_url(base, path);
+
+	*code = 0;
+	if (status_get(url, &body, code, cause) != 0)
+		*code = 0;
+	else if (*code != 200)
+		xasprintf(cause, "%s: HTTP %ld", url, *code);
+	else if (body.p == NULL ||
+	    (root = json_loadb(body.p, body.len, 0, &jerr)) == NULL) {
+		xasprintf(cause, "%s: answer is not JSON", url);
+		*code = 0;
+	}
+	free(body.p);
+	free(url);
+	return root;
+}
+
+/* "partitions 0 3 7 of rec" from a daemon's /api/health. */
+static void
+status_owned(const json_t *health, char *buf, size_t size)
+{
+	const json_t *k = json_object_get(health, "kafka"), *p;
+	size_t i, o;
+
+	if (k == NULL) {
+		snprintf(buf, size, "no kafka input");
+		return;
+	}
+	o = (size_t)snprintf(buf, size, "partitions");
+	json_array_foreach(json_object_get(k, "partitions"), i, p)
+		if (o < size)
+			o += (size_t)snprintf(buf + o, size - o, " %.0f%s",
+			    status_num(p, "partition"),
+			    strcmp(status_str(p, "state"), "running") == 0 ?
+			    "" : "(not running)");
+	if (i == 0 && o < size)
+		snprintf(buf + o, size - o, " none");
+}
+
+/* Several daemons, no experiment named: one merged list. */
+static int
+status_many_list(const char *const *bases, int n, int raw,
+    const struct status_style *st)
+{
+	json_t *all = json_array(), *daemons = json_array(), *where, *root;
+	json_t *health, *x, *dj, *urls, *split = json_array();
+	const char *id, *c;
+	char *cause = NULL, owned[512];
+	long code;
+	size_t i;
+	int d, rc = SC_EX_OK;
+
+	where = json_object();
+	for (d = 0; d < n; d++) {
+		if ((root = status_fetch(bases[d], "/api/experiments", &code,
+		    &cause)) == NULL) {
+			fprintf(stderr, "stopcock status: %s\n", cause);
+			json_array_append_new(daemons, json_pack("{s:s, s:s}",
+			    "url", bases[d], "error", cause));
+			free(cause);
+			cause = NULL;
+			rc = SC_EX_IOERR;
+			continue;
+		}
+		health = status_fetch(bases[d], "/api/health", &code, &cause);
+		free(cause);
+		cause = NULL;
+		dj = json_pack("{s:s, s:I}", "url", bases[d], "experiments",
+		    (json_int_t)json_array_size(json_object_get(root,
+		    "experiments")));
+		if (health != NULL && json_object_get(health, "kafka") != NULL)
+			json_object_set(dj, "kafka", json_object_get(health,
+			    "kafka"));
+		json_array_append_new(daemons, dj);
+		if (!raw) {
+			status_owned(health, owned, sizeof owned);
+			printf("%sdaemon ", st->dim);
+			status_name(bases[d], 0);
+			printf(": %zu experiments, %s%s\n",
+			    json_array_size(json_object_get(root,
+			    "experiments")), owned, st->off);
+		}
+		json_decref(health);
+		json_array_foreach(json_object_get(root, "experiments"), i,
+		    x) {
+			json_object_set_new(x, "daemon",
+			    json_string(bases[d]));
+			json_array_append(all, x);
+			id = status_str(x, "id");
+			if ((urls = json_object_get(where, id)) == NULL) {
+				urls = json_array();
+				json_object_set_new(where, id, urls);
+			}
+			json_array_append_new(urls, json_string(bases[d]));
+		}
+		json_decref(root);
+	}
+	json_object_foreach(where, id, urls) {
+		if (json_array_size(urls) < 2)
+			continue;
+		json_array_append_new(split, json_string(id));
+		fprintf(stderr, "stopcock status: experiment ");
+		for (c = id; *c != '\0'; c++)	/* id drives the loop */
+			fputc(isprint((unsigned char)*c) ? *c : '?', stderr);
+		fprintf(stderr, " is held by %zu daemons: its records are "
+		    "split between them, each tests only a part\n",
+		    json_array_size(urls));
+	}
+	root = json_pack("{s:o, s:o, s:o}", "daemons", daemons,
+	    "experiments", all, "split", split);
+	if (raw) {
+		char *text = json_dumps(root, JSON_COMPACT);
+
+		if (text == NULL)
+			fatal("status: cannot serialise the merged answer");
+		printf("%s\n", text);
+		free(text);
+	} else
+		status_list(root, st);
+	json_decref(root);
+	json_decref(where);
+	return rc;
+}
+
+/* Several daemons, one experiment: shown from whichever holds it. */
+static int
+status_many_experiment(const char *const *bases, int n, const char *path,
+    const char *exp, int raw, const struct status_style *st)
+{
+	json_t *root;
+	char *cause = NULL, *text;
+	long code;
+	int d, found = 0, failed = 0;
+
+	for (d = 0; d < n; d++) {
+		if ((root = status_fetch(bases[d], path, &code,
+		    &cause)) == NULL) {
+			if (code != 404) {
+				fprintf(stderr, "stopcock status: %s\n",
+				    cause);
+				failed++;
+			}
+			free(cause);
+			cause = NULL;
+			continue;
+		}
+		found++;
+		if (raw) {
+			json_object_set_new(root, "daemon",
+			    json_string(bases[d]));
+			if ((text = json_dumps(root, JSON_COMPACT)) == NULL)
+				fatal("status: cannot serialise an answer");
+			printf("%s\n", text);
+			free(text);
+		} else {
+			printf("%sat ", st->dim);
+			status_name(bases[d], 0);
+			printf("%s\n", st->off);
+			status_experiment(root, st);
+		}
+		json_decref(root);
+	}
+	if (found > 1)
+		fprintf(stderr, "stopcock status: %d daemons hold the "
+		    "experiment: its records are split between them, each "
+		    "tests only a part\n", found);
+	if (found == 0 && failed == 0) {
+		fprintf(stderr, "stopcock status: none of the %d daemons holds "
+		    "an experiment named ", n);
+		for (; *exp != '\0'; exp++)
+			fputc(isprint((unsigned char)*exp) ? *exp : '?',
+			    stderr);
+		fputc('\n', stderr);
+		return SC_EX_NOINPUT;
+	}
+	return failed > 0 ? SC_EX_IOERR : SC_EX_OK;
 }
 
 int
@@ -377,11 +592,12 @@ cmd_status(int argc, char **argv)
 	const struct status_style *st = &status_plain;
 	struct status_body body = { NULL, 0, STATUS_BODY_MAX, 0 };
 	const char *base = getenv("STOPCOCK_URL"), *exp = NULL, *msg;
-	char *url, *cause = NULL, *esc;
+	const char *bases[STATUS_URLS_MAX];
+	char *url, *cause = NULL, *esc, *path;
 	json_error_t jerr;
 	json_t *root;
 	long code = 0;
-	int c, raw = 0, rc = SC_EX_OK;
+	int c, raw = 0, rc = SC_EX_OK, nbases = 0;
 	size_t blen;
 
 	if (base == NULL || *base == '\0')
@@ -389,7 +605,14 @@ cmd_status(int argc, char **argv)
 	optind = 1;
 	while ((c = getopt_long(argc, argv, "u:jh", opts, NULL)) != -1) {
 		switch (c) {
-		case 'u': base = optarg; break;
+		case 'u':
+			if (nbases == STATUS_URLS_MAX) {
+				fprintf(stderr, "stopcock status: at most %d "
+				    "--url\n", STATUS_URLS_MAX);
+				return SC_EX_USAGE;
+			}
+			bases[nbases++] = base = optarg;
+			break;
 		case 'j': raw = 1; break;
 		case 'h': status_usage(stdout); return SC_EX_OK;
 		default: status_usage(stderr); return SC_EX_USAGE;
@@ -407,6 +630,26 @@ cmd_status(int argc, char **argv)
 	if (curl_global_init(CURL_GLOBAL_DEFAULT) != CURLE_OK) {
 		fprintf(stderr, "stopcock status: cannot start libcurl\n");
 		return SC_EX_SOFTWARE;
+	}
+	if (nbases > 1) {
+		if (exp == NULL)
+			rc = status_many_list(bases, nbases, raw, st);
+		else {
+			CURL *e = curl_easy_init();
+
+			if (e == NULL ||
+			    (esc = curl_easy_escape(e, exp, 0)) == NULL)
+				fatal("status: cannot escape the experiment "
+				    "name");
+			xasprintf(&path, "/api/experiments/%s", esc);
+			curl_free(esc);
+			curl_easy_cleanup(e);
+			rc = status_many_experiment(bases, nbases, path, exp,
+			    raw, st);
+			free(path);
+		}
+		curl_global_cleanup();
+		return rc;
 	}
 	blen = strlen(base);
 	while (blen > 0 && base[blen - 1] == '/')

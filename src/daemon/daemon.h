@@ -18,6 +18,8 @@
  *               kafka_state.c: each partition's state and offset in
  *               one transaction, read back on assignment (kafka_state_*;
  *               shares kafka_in_int.h) (librdkafka)
+ *   engines.c   the daemon's engines: d->engine and one per owned Kafka
+ *               partition, seen as one by the API, metrics, tick (engines_*)
  *   ckpt.c      checkpoint write/restore, atomic and checksummed,
  *               written by a forked child off the loop (ckpt_*)
  *   notify.c    systemd notifications that never block  (notify_*)
@@ -70,6 +72,7 @@ struct notify;
 struct ckpt;
 struct auth;
 struct frame;
+struct engines;
 
 /*
  * d->conf is replaced on SIGHUP (all-or-nothing). Read it afresh in each
@@ -98,7 +101,8 @@ enum ingest_status {
 struct daemon {
 	struct event_base	*base;
 	struct conf		*conf;		/* owned; swapped on reload */
-	struct engine		*engine;
+	struct engine		*engine;		/* sockets, Redis, plans */
+	struct engines		*engines;	/* + each partition's */
 	uint8_t			 hashkey[16];
 
 	struct daemon_main	*main;		/* main.c's own: the loop */
@@ -130,10 +134,29 @@ struct daemon {
 const char	*source_name(enum source);
 double		 daemon_now(void);	/* wall clock, seconds */
 /* Number of record inputs configured (tcp, udp, unix, redis, kafka). */
-int		 daemon_inputs(const struct conf *);
-/* Make e the daemon's engine (its findings to the sink), freeing the
- * one before: kafka_in.c merges partitions in and out this way. */
 void		 daemon_engine_replace(struct daemon *, struct engine *e);
+int		 daemon_inputs(const struct conf *);
+
+/* engines.c: every engine of the daemon, index 0 d->engine, then the
+ * Kafka partitions' (added and removed by kafka_in.c, which owns them).
+ * for (i = 0; (e = engines_at(d, i)) != NULL; i++) sees them all. */
+struct engines	*engines_new(void);
+void		 engines_free(struct engines *);
+/* e's findings go to the sink from now on. */
+void		 engines_add(struct daemon *, struct engine *e);
+/* Drains the sink's queue first; the caller frees e. */
+void		 engines_remove(struct daemon *, struct engine *e);
+struct engine	*engines_at(struct daemon *, size_t i);
+/* The engine holding the experiment, NULL when none does. */
+struct engine	*engines_find(struct daemon *, const char *experiment);
+/* engine_json_list's shape over all engines. */
+json_t		*engines_json_list(struct daemon *);
+void		 engines_counters(struct daemon *, struct engine_counters *);
+void		 engines_tick(struct daemon *, double now);
+int		 engines_reconfigure(struct daemon *, const struct conf *,
+		    char **cause);
+/* An operator action changed e: its partition commits it. */
+void		 engines_touched(struct daemon *, struct engine *e);
 
 /* ingest.c: its counters, rejection log budget and event numbers. */
 struct ingest	*ingest_new(void);
@@ -160,6 +183,11 @@ void		 ingest_lines(struct daemon *, enum source, const char *,
  * authenticated, so trusted. Returns the records applied. */
 uint64_t	 ingest_lines_signed(struct daemon *, enum source,
 		    const char *, size_t);
+/* The same into engine e rather than d->engine (a Kafka partition's). */
+void		 ingest_lines_into(struct daemon *, struct engine *e,
+		    enum source, const char *, size_t);
+/* Where ingested lines go (NULL: d->engine); returns the previous. */
+struct engine	*ingest_into(struct daemon *, struct engine *);
 void		 ingest_metrics(struct daemon *, struct evbuffer *);
 /* The counters as JSON (kept in the checkpoint) and back. */
 json_t		*ingest_json(struct daemon *);
@@ -299,6 +327,8 @@ void		 kafka_in_metrics(struct kafka_in *, struct evbuffer *);
 /* {"topic", "group", "partitions": [{"partition", "state", "read",
  *  "committed", "experiments": [ID...]}]}: what this daemon owns. */
 json_t		*kafka_in_json(struct kafka_in *);
+/* e, a partition's engine, changed outside a message: commit it. */
+void		 kafka_in_touched(struct kafka_in *, struct engine *e);
 
 /* alert.c */
 enum alert_kind {
@@ -373,6 +403,12 @@ void		 webhook_send(struct webhook *, uint32_t need, const char *id,
 int		 webhook_post(struct webhook *, const char *receiver,
 		    const char *id, json_t *body);
 void		 webhook_metrics(struct webhook *, struct evbuffer *);
+/* Deliveries not yet answered about experiments mine() accepts, as a
+ * Kafka partition's state carries them; webhook_adopt queues such a
+ * list here (same webhook-ids, none twice). */
+json_t		*webhook_pending(struct webhook *,
+		    int (*mine)(void *, const char *experiment), void *arg);
+size_t		 webhook_adopt(struct webhook *, const json_t *pending);
 
 /* pause.c: the policy and the delivery of auto-pauses. */
 enum pause_decision {
@@ -398,6 +434,11 @@ void		 pause_deliver(struct pause *, const struct finding *,
 void		 pause_metrics(struct pause *, struct evbuffer *);
 /* SIGHUP: the audit log reopened by name (log rotation). */
 void		 pause_reopen(struct pause *);
+/* The once-per-epoch marks and this hour's pause times of experiments
+ * mine() accepts (a Kafka partition's state), and taking them over. */
+json_t		*pause_carry(struct pause *,
+		    int (*mine)(void *, const char *experiment), void *arg);
+void		 pause_adopt(struct pause *, const json_t *carried);
 
 /* http.c */
 struct http	*http_new(struct daemon *, char **cause);

@@ -359,7 +359,7 @@ http_units(struct http *h, json_t *list, const char *key)
 static json_t *
 http_list(struct http *h)
 {
-	json_t *j = engine_json_list(h->d->engine), *x;
+	json_t *j = engines_json_list(h->d), *x;
 	size_t i;
 
 	json_array_foreach(json_object_get(j, "experiments"), i, x)
@@ -377,10 +377,11 @@ static void
 http_experiment_get(struct http *h, struct evhttp_request *req,
     const char *id)
 {
+	struct engine *e;
 	json_t *j;
 
-	if (!http_known(h, id) ||
-	    (j = engine_json_experiment(h->d->engine, id)) == NULL) {
+	if (!http_known(h, id) || (e = engines_find(h->d, id)) == NULL ||
+	    (j = engine_json_experiment(e, id)) == NULL) {
 		http_error(h, req, 404, "no experiment named \"%.64s\"", id);
 		return;
 	}
@@ -397,7 +398,7 @@ http_health_get(struct http *h, struct evhttp_request *req)
 	double now = daemon_now();
 	json_t *j, *redis;
 
-	engine_counters(d->engine, &c);
+	engines_counters(d, &c);
 	redis = d->redis != NULL ? redis_in_json(d->redis) : NULL;
 	j = json_pack("{s:s, s:s, s:f, s:o, s:I, s:o, s:{s:I, s:I, s:I, s:I}}",
 	    "status", d->draining ? "draining" : "ok",
@@ -427,13 +428,14 @@ http_chart_get(struct http *h, struct evhttp_request *req, const char *id,
 	uint64_t idx;
 	char *svg, *num;
 	size_t len = strlen(file);
+	struct engine *e;
 
 	if (len < 5 || strcmp(file + len - 4, ".svg") != 0) {
 		http_error(h, req, 404, "charts are named N.svg or srm.svg");
 		return;
 	}
-	if (!http_known(h, id) ||
-	    (x = engine_json_experiment(h->d->engine, id)) == NULL) {
+	if (!http_known(h, id) || (e = engines_find(h->d, id)) == NULL ||
+	    (x = engine_json_experiment(e, id)) == NULL) {
 		http_error(h, req, 404, "no experiment named \"%.64s\"", id);
 		return;
 	}
@@ -516,11 +518,6 @@ http_plan_arms(const json_t *body, struct proto_arm *arms, int *narms,
 }
 
 static void
-http_noop(void *arg, const struct finding *f)
-{
-}
-
-static void
 http_action(struct http *h, struct evhttp_request *req, const char *id,
     const char *action)
 {
@@ -530,6 +527,7 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 	json_t *body = NULL;
 	char *cause = NULL;
 	char *archive = NULL;
+	struct engine *eng;
 	int narms, rc, exists;
 
 	if (strcmp(action, "plan") != 0 && strcmp(action, "epoch") != 0 &&
@@ -558,7 +556,10 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 		    "characters from [A-Za-z0-9._:-]", PROTO_NAME_MAX);
 		return;
 	}
-	exists = engine_foreach_in(d->engine, id, http_noop, NULL) == 0;
+	/* a new plan goes to the main engine; the rest where it lives */
+	exists = (eng = engines_find(d, id)) != NULL;
+	if (eng == NULL)
+		eng = d->engine;
 	if (!exists && strcmp(action, "plan") != 0) {
 		http_error(h, req, 404, "no experiment named \"%s\"", id);
 		return;
@@ -571,12 +572,12 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 			return;
 		rc = http_plan_arms(body, arms, &narms, &cause);
 		if (rc == 0)
-			rc = engine_plan(d->engine, id, arms, narms,
+			rc = engine_plan(eng, id, arms, narms,
 			    daemon_now(), &cause);
 	} else if (strcmp(action, "epoch") == 0)
-		rc = engine_new_epoch(d->engine, id, daemon_now(), &cause);
+		rc = engine_new_epoch(eng, id, daemon_now(), &cause);
 	else if (strcmp(action, "reset") == 0) {
-		rc = engine_reset(d->engine, id, daemon_now(), &cause);
+		rc = engine_reset(eng, id, daemon_now(), &cause);
 		if (rc == 0)
 			alert_experiment_reset(d->alert, id);
 	} else {
@@ -603,6 +604,9 @@ http_action(struct http *h, struct evhttp_request *req, const char *id,
 		return;
 	}
 	h->actions++;
+	if (strcmp(action, "plan") == 0 || strcmp(action, "epoch") == 0 ||
+	    strcmp(action, "reset") == 0)
+		engines_touched(d, eng);
 	log_info("http: %s experiment=%s", action, id);
 	json_decref(body);
 	/*
@@ -738,6 +742,7 @@ http_metrics(struct http *h, struct evbuffer *b)
 	struct daemon *d = h->d;
 	struct http_scrape s;
 	struct engine_counters ec;
+	struct engine *e;
 	double now = daemon_now();
 	size_t i;
 
@@ -782,7 +787,7 @@ http_metrics(struct http *h, struct evbuffer *b)
 	evbuffer_add_printf(b, "stopcock_http_auth_refused_total %llu\n",
 	    (unsigned long long)h->refused_auth);
 
-	engine_counters(d->engine, &ec);
+	engines_counters(d, &ec);
 	metrics_family(b, "stopcock_engine_experiments", "gauge",
 	    "Experiments tracked (bounded by max_experiments).");
 	evbuffer_add_printf(b, "stopcock_engine_experiments %u\n",
@@ -846,7 +851,8 @@ http_metrics(struct http *h, struct evbuffer *b)
 	for (i = 0; i < FAM_N; i++)
 		if ((s.fam[i] = evbuffer_new()) == NULL)
 			fatalx("http: evbuffer_new failed");
-	engine_foreach(d->engine, http_scrape_finding, &s);
+	for (i = 0; (e = engines_at(d, i)) != NULL; i++)
+		engine_foreach(e, http_scrape_finding, &s);
 	for (i = 0; i < FAM_N; i++) {
 		metrics_family(b, http_fams[i].name, "gauge", http_fams[i].help);
 		evbuffer_add_buffer(b, s.fam[i]);

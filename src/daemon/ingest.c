@@ -41,6 +41,7 @@ struct ingest {
 	struct ingest_counters	 counters;
 	struct ingest_log	 log[SRC_N];
 	uint64_t		 seq;		/* engine event numbers */
+	struct engine		*into;		/* NULL: d->engine */
 };
 
 struct ingest *
@@ -177,7 +178,8 @@ ingest_one(struct daemon *d, enum source src, int authed, const char *line,
 		return INGEST_BAD_LINE;
 	}
 	rec.untrusted = !authed && !auth_trusted(d->conf, src);
-	er = engine_apply(d->engine, &rec, rec.has_ts ? rec.ts : ingest_now(d),
+	er = engine_apply(d->ingest->into != NULL ? d->ingest->into :
+	    d->engine, &rec, rec.has_ts ? rec.ts : ingest_now(d),
 	    ++d->ingest->seq);
 	if (er != ENGINE_OK) {
 		if (er >= ENGINE_NREJECT)
@@ -239,6 +241,27 @@ ingest_lines_signed(struct daemon *d, enum source src, const char *p,
     size_t len)
 {
 	return ingest_block(d, src, 1, p, len);
+}
+
+/* Where lines go from now (a Kafka partition's engine; NULL: the
+ * daemon's); returns where they went before. */
+struct engine *
+ingest_into(struct daemon *d, struct engine *e)
+{
+	struct engine *was = d->ingest->into;
+
+	d->ingest->into = e;
+	return was;
+}
+
+void
+ingest_lines_into(struct daemon *d, struct engine *e, enum source src,
+    const char *p, size_t len)
+{
+	struct engine *was = ingest_into(d, e);
+
+	ingest_lines(d, src, p, len);
+	(void)ingest_into(d, was);
 }
 
 int

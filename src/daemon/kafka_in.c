@@ -19,11 +19,13 @@
  * disagrees with it, refuses the partition loudly (logged, counted, the
  * partition paused), never starts it afresh.
  *
- * The daemon keeps one engine: a partition's experiments are merged into
- * it on assignment and taken out on revocation (engine_save, filter,
- * engine_restore), so each daemon tests only the experiments of the
- * partitions it owns. The states, transactions and the state read live
- * in kafka_state.c (kafka_in_int.h is what the two share). The transactional calls and the state read block
+ * Each owned partition has its own engine, built from its state on
+ * assignment and freed on revocation (engines.c lists it with the
+ * daemon's others for the API and metrics), so each daemon tests only
+ * the experiments of the partitions it owns and a rebalance touches no
+ * other partition's. The states, transactions and the state read live
+ * in kafka_state.c (kafka_in_int.h is what the two share). The
+ * transactional calls and the state read block
  * the loop for a bounded time (KAFKA_TXN_MS, KAFKA_LOAD_MS); on loopback
  * that is milliseconds, on a sick cluster it is a stall, not a loss.
  */
@@ -151,10 +153,11 @@ kafka_commit_cb(evutil_socket_t fd, short what, void *arg)
 /* ---- assignment ---- */
 
 static void
-kafka_part_free(struct kafka_part *p)
+kafka_part_free(struct kafka_in *k, struct kafka_part *p)
 {
 	if (p == NULL)
 		return;
+	kafka_state_drop(k, p);
 	if (p->txn != NULL)
 		rd_kafka_destroy(p->txn);
 	json_decref(p->keys);
@@ -270,13 +273,11 @@ kafka_revoke(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 {
 	struct kafka_part *p;
 	rd_kafka_error_t *e;
-	json_t *img = NULL, *drop = json_object(), *v;
-	const char *id;
-	char *cause = NULL;
 	int i, lost = rd_kafka_assignment_lost(k->rk);
 
 	if (lost)
 		k->lost++;
+	dispatch_drain(k->d->dispatch);	/* alerts before the state */
 	for (i = 0; i < l->cnt; i++) {
 		int32_t n = l->elems[i].partition;
 
@@ -285,27 +286,15 @@ kafka_revoke(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 			continue;
 		/* Lost means another owner may already have it: the
 		 * commit would be fenced, so do not try. */
-		if (!lost && p->state == KP_RUNNING && p->dirty) {
-			if (img == NULL)
-				img = engine_save(k->d->engine);
-			kafka_state_commit(k, p, img);
-		}
-		json_object_foreach(p->keys, id, v)
-			json_object_set(drop, id, json_true());
+		if (!lost && p->state == KP_RUNNING && p->dirty)
+			kafka_state_commit(k, p);
 		log_info("kafka: partition %s partition=%" PRId32 " state=%s "
 		    "next=%" PRId64, lost ? "lost" : "revoked", n,
 		    kafka_pstate_names[p->state], p->next);
 		k->revoked++;
 		k->parts[n] = NULL;
-		kafka_part_free(p);
+		kafka_part_free(k, p);
 	}
-	json_decref(img);
-	if (json_object_size(drop) > 0 &&
-	    kafka_state_swap(k, drop, NULL, &cause) != 0) {
-		log_warnx("kafka: dropping revoked experiments: %s", cause);
-		free(cause);
-	}
-	json_decref(drop);
 	if (strcmp(rd_kafka_rebalance_protocol(k->rk), "COOPERATIVE") == 0) {
 		if ((e = rd_kafka_incremental_unassign(k->rk, l)) != NULL) {
 			log_warnx("kafka: incremental_unassign: %s",
@@ -380,6 +369,7 @@ kafka_message(struct kafka_in *k, rd_kafka_message_t *m)
 {
 	struct ingest_counters *ic = ingest_counters(k->d), before;
 	struct kafka_part *p;
+	struct engine *was;
 	int r;
 
 	if (m->err != 0) {
@@ -413,14 +403,18 @@ kafka_message(struct kafka_in *k, rd_kafka_message_t *m)
 		    m->payload, 80);
 		return;
 	}
-	if (json_object_getn(p->keys, m->key, m->key_len) == NULL)
+	/* bounded like the engine: a key per message must not grow it */
+	if (json_object_getn(p->keys, m->key, m->key_len) == NULL &&
+	    json_object_size(p->keys) < k->d->conf->max_experiments)
 		json_object_setn_new(p->keys, m->key, m->key_len, json_true());
 	/* The same door as a Redis entry; the differences are ours. */
 	before = *ic;
+	was = ingest_into(k->d, p->eng);
 	if (auth_signed(k->d->conf, SRC_KAFKA))
 		kafka_signed(k, m);
 	else
 		ingest_lines(k->d, SRC_KAFKA, m->payload, m->len);
+	(void)ingest_into(k->d, was);
 	p->c.lines += ic->lines[SRC_KAFKA] - before.lines[SRC_KAFKA];
 	p->c.records += ic->records[SRC_KAFKA] - before.records[SRC_KAFKA];
 	for (r = 0; r < PROTO_NSTATUS; r++)
@@ -631,7 +625,7 @@ kafka_in_free(struct kafka_in *k)
 		rd_kafka_destroy(k->reader);
 	}
 	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++)
-		kafka_part_free(k->parts[i]);
+		kafka_part_free(k, k->parts[i]);
 	if (k->ev_io != NULL)
 		event_free(k->ev_io);
 	if (k->ev_more != NULL)
@@ -652,22 +646,37 @@ kafka_in_free(struct kafka_in *k)
 	free(k);
 }
 
+void
+kafka_in_touched(struct kafka_in *k, struct engine *e)
+{
+	int32_t i;
+
+	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++)
+		if (k->parts[i] != NULL && k->parts[i]->eng == e) {
+			k->parts[i]->dirty = 1;
+			return;
+		}
+}
+
 /* ---- seeing it ---- */
 
 json_t *
 kafka_in_json(struct kafka_in *k)
 {
-	json_t *parts = json_array(), *exps, *v;
+	json_t *parts = json_array(), *exps, *list, *e;
 	struct kafka_part *p;
-	const char *id;
+	size_t j;
 	int32_t i;
 
 	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++) {
 		if ((p = k->parts[i]) == NULL)
 			continue;
+		/* what its engine holds, strays (another key) included */
 		exps = json_array();
-		json_object_foreach(p->keys, id, v)
-			json_array_append_new(exps, json_string(id));
+		list = p->eng != NULL ? engine_json_list(p->eng) : NULL;
+		json_array_foreach(json_object_get(list, "experiments"), j, e)
+			json_array_append(exps, json_object_get(e, "id"));
+		json_decref(list);
 		json_array_append_new(parts, json_pack("{s:i, s:s, s:I, s:I, "
 		    "s:o}", "partition", (int)p->id, "state",
 		    kafka_pstate_names[p->state], "read", (json_int_t)p->next,
@@ -703,6 +712,7 @@ kafka_in_metrics(struct kafka_in *k, struct evbuffer *b)
 	int32_t i;
 	int r;
 	int64_t lo, hi;
+	size_t stray = 0;
 
 	metrics_family(b, "stopcock_kafka_partition_owned", "gauge",
 	    "Input partitions this daemon holds, by state (running, refused: "
@@ -797,8 +807,13 @@ kafka_in_metrics(struct kafka_in *k, struct evbuffer *b)
 		    k->refused[r]);
 	metrics_counter(b, "stopcock_kafka_errors_total",
 	    "Consumer and client errors.", k->consume_errors);
+	KAFKA_EACH(k, p, i)
+		if (p->eng != NULL)
+			stray += p->stray;
 	metrics_gauge(b, "stopcock_kafka_stray_experiments",
-	    "Experiments no owned partition's message keys name (at the "
-	    "last commit): their state is not kept in Kafka.",
-	    (double)k->stray);
+	    "Experiments of the partitions' engines that no message key of "
+	    "their partition names (records sent under another experiment's "
+	    "key), at the last commit: kept, but split if they travel in "
+	    "several partitions.",
+	    (double)stray);
 }

@@ -56,10 +56,17 @@ struct kafka_part {
 	int64_t		 next;		/* next offset to read; -1: start */
 	int64_t		 committed;	/* next offset, as last committed */
 	json_t		*keys;		/* experiment ids seen: a set */
+	struct engine	*eng;		/* its experiments; NULL unless
+					 * running */
 	struct kafka_counts c;
 	uint64_t	 commits;
 	uint64_t	 commit_failures;
 	int		 dirty;		/* read something since the commit */
+	size_t		 stray;		/* kafka_state_stray at the last
+					 * commit or load */
+	uint64_t	 findings;	/* its engine's, at the last commit:
+					 * a finding of the tick (no record)
+					 * is carried too */
 };
 
 struct kafka_in {
@@ -89,7 +96,7 @@ struct kafka_in {
 	uint64_t	 refused[KR_N];
 	uint64_t	 consume_errors;
 	uint64_t	 unowned;	/* messages of a partition not ours */
-	size_t		 stray;		/* experiments no owned key names */
+	size_t		 stray;		/* experiments no key of theirs names */
 };
 
 /* A state read: what one partition's state topic partition held. */
@@ -114,10 +121,8 @@ rd_kafka_conf_t	*kafka_in_conf(struct kafka_in *, const char *suffix,
 		    char **cause);
 
 /* kafka_state.c */
-int		 kafka_state_swap(struct kafka_in *, const json_t *drop,
-		    const json_t *add, char **cause);
-int		 kafka_state_commit(struct kafka_in *, struct kafka_part *,
-		    const json_t *img);
+void		 kafka_state_drop(struct kafka_in *, struct kafka_part *);
+int		 kafka_state_commit(struct kafka_in *, struct kafka_part *);
 void		 kafka_state_commit_all(struct kafka_in *, const char *why);
 rd_kafka_t	*kafka_state_producer(struct kafka_in *, int32_t id,
 		    char **cause);

@@ -6,8 +6,9 @@
  * of the compacted state topic in one transaction with the input
  * offset, from a producer whose transactional.id belongs to the input
  * partition, and comes back (read_committed) when a daemon is assigned
- * the partition. Partitions merge into the daemon's one engine and out
- * of it by saving, filtering and restoring the engine image.
+ * the partition. Each partition has its own engine (p->eng, listed in
+ * the daemon's engines while the partition runs), so its state is that
+ * engine's whole image and a revocation drops exactly its experiments.
  */
 #include <inttypes.h>
 #include <stdio.h>
@@ -19,48 +20,7 @@
 #include "stopcock/log.h"
 #include "kafka_in_int.h"
 
-/* ---- the engine: merging a partition's experiments in and out ---- */
-
-/*
- * Replace d->engine by one holding its experiments less those named in
- * drop (a set, may be NULL) and those in add (an array of saved
- * experiments, may be NULL), which replace any of the same id. 0, or -1
- * with *cause and the engine unchanged.
- */
-int
-kafka_state_swap(struct kafka_in *k, const json_t *drop, const json_t *add,
-    char **cause)
-{
-	struct daemon *d = k->d;
-	struct engine *neng;
-	json_t *img, *arr, *ids, *e;
-	const char *id;
-	size_t i;
-
-	ids = json_object();
-	json_array_foreach(add, i, e)
-		if ((id = json_string_value(json_object_get(e, "id"))) != NULL)
-			json_object_set_new(ids, id, json_true());
-	img = engine_save(d->engine);
-	arr = json_array();
-	json_array_foreach(json_object_get(img, "experiments"), i, e) {
-		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		if ((drop != NULL && json_object_get(drop, id) != NULL) ||
-		    json_object_get(ids, id) != NULL)
-			continue;
-		json_array_append(arr, e);
-	}
-	json_array_foreach(add, i, e)
-		json_array_append(arr, e);
-	json_object_set_new(img, "experiments", arr);
-	json_decref(ids);
-	neng = engine_restore(d->conf, d->hashkey, img, cause);
-	json_decref(img);
-	if (neng == NULL)
-		return -1;
-	daemon_engine_replace(d, neng);
-	return 0;
-}
+static size_t	kafka_state_stray(struct kafka_part *);
 
 /* ---- one partition's state image ---- */
 
@@ -121,33 +81,46 @@ kafka_state_counts_restore(struct kafka_counts *c, const json_t *o)
 		c->engine_rejected[r] = kafka_state_u64(rej, engine_reason(r));
 }
 
+static void
+kafka_state_noop(void *arg, const struct finding *f)
+{
+}
+
+/* The experiment is one of the partition's (its engine holds it). */
+static int
+kafka_state_mine(void *arg, const char *experiment)
+{
+	struct kafka_part *p = arg;
+
+	return p->eng != NULL &&
+	    engine_foreach_in(p->eng, experiment, kafka_state_noop, NULL) == 0;
+}
+
 /*
  * {"format", "version", "topic", "partition", "next", "keys": [...],
- *  "counters": {...}, "engine": {"format", "version", "experiments"}}
- * with the experiments of img that the partition's keys name.
+ *  "counters": {...}, "engine": engine_save(p->eng),
+ *  "webhooks": webhook_pending, "pause": pause_carry} (the last two of
+ * the partition's experiments: the alerts not yet delivered and the
+ * pause marks, so a lost host loses no queued alert). A state of the
+ * earlier daemon whose engine held only "format", "version" and
+ * "experiments", without the last two, restores the same way.
  */
 static json_t *
-kafka_state_image(struct kafka_in *k, struct kafka_part *p, const json_t *img)
+kafka_state_image(struct kafka_in *k, struct kafka_part *p)
 {
-	json_t *keys = json_array(), *exps = json_array(), *e, *v;
+	json_t *keys = json_array(), *v;
 	const char *id;
-	size_t i;
 
 	json_object_foreach(p->keys, id, v)
 		json_array_append_new(keys, json_string(id));
-	json_array_foreach(json_object_get(img, "experiments"), i, e) {
-		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		if (json_object_get(p->keys, id) != NULL)
-			json_array_append(exps, e);
-	}
-	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, "
-	    "s:{s:O, s:O, s:o}}",
+	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, s:o, s:o, s:o}",
 	    "format", KAFKA_STATE_FORMAT, "version", KAFKA_STATE_VERSION,
 	    "topic", k->topic, "partition", (int)p->id,
 	    "next", (json_int_t)p->next, "keys", keys,
 	    "counters", kafka_state_counts_json(&p->c),
-	    "engine", "format", json_object_get(img, "format"),
-	    "version", json_object_get(img, "version"), "experiments", exps);
+	    "engine", engine_save(p->eng),
+	    "webhooks", webhook_pending(k->d->webhook, kafka_state_mine, p),
+	    "pause", pause_carry(k->d->pause, kafka_state_mine, p));
 }
 
 static char *
@@ -186,23 +159,28 @@ kafka_state_pause(struct kafka_in *k, int32_t id)
 	rd_kafka_topic_partition_list_destroy(l);
 }
 
+/* The partition's engine leaves the daemon (revoked, lost, fenced). */
+void
+kafka_state_drop(struct kafka_in *k, struct kafka_part *p)
+{
+	if (p->eng == NULL)
+		return;
+	engines_remove(k->d, p->eng);
+	engine_free(p->eng);
+	p->eng = NULL;
+}
+
 /* Another owner has the partition's transactional.id: stop, forget. */
 static void
 kafka_state_fenced(struct kafka_in *k, struct kafka_part *p, const char *why)
 {
-	char *cause = NULL;
-
 	log_crit("kafka: partition fenced: %s; another daemon owns it now, "
 	    "this one stops testing its experiments partition=%" PRId32
 	    " experiments=%zu", why, p->id, json_object_size(p->keys));
 	k->fenced++;
 	p->state = KP_FENCED;
 	kafka_state_pause(k, p->id);
-	if (kafka_state_swap(k, p->keys, NULL, &cause) != 0) {
-		log_warnx("kafka: dropping a fenced partition's experiments: "
-		    "%s partition=%" PRId32, cause, p->id);
-		free(cause);
-	}
+	kafka_state_drop(k, p);
 	json_object_clear(p->keys);
 }
 
@@ -230,17 +208,19 @@ kafka_state_failed(struct kafka_in *k, struct kafka_part *p, const char *call,
 
 /* State and input offset in one transaction. 0 committed, -1 not. */
 int
-kafka_state_commit(struct kafka_in *k, struct kafka_part *p, const json_t *img)
+kafka_state_commit(struct kafka_in *k, struct kafka_part *p)
 {
 	rd_kafka_topic_partition_list_t *off;
 	rd_kafka_consumer_group_metadata_t *cgmd;
 	rd_kafka_error_t *e;
 	rd_kafka_resp_err_t err;
+	struct engine_counters ec;
 	json_t *state;
 	char *buf, *key;
 	size_t len;
 
-	state = kafka_state_image(k, p, img);
+	engine_counters(p->eng, &ec);
+	state = kafka_state_image(k, p);
 	buf = json_dumps(state, JSON_COMPACT);
 	json_decref(state);
 	if (buf == NULL)
@@ -284,58 +264,65 @@ kafka_state_commit(struct kafka_in *k, struct kafka_part *p, const json_t *img)
 	}
 	p->committed = p->next;
 	p->dirty = 0;
+	p->findings = ec.findings;
+	p->stray = kafka_state_stray(p);
 	p->commits++;
 	log_debug("kafka: committed partition=%" PRId32 " next=%" PRId64
 	    " bytes=%zu", p->id, p->next, len);
 	return 0;
 }
 
-/* Experiments of the engine that no owned partition's keys name. */
-static void
-kafka_state_stray(struct kafka_in *k, const json_t *img)
+/*
+ * Experiments of a partition's engine that no message key of it named:
+ * records sent under another experiment's key. They are kept in that
+ * partition's state, but their records may travel in other partitions
+ * too, and then they are split between engines (and daemons).
+ */
+static size_t
+kafka_state_stray(struct kafka_part *p)
 {
-	const json_t *e;
+	json_t *img = engine_json_list(p->eng), *e;
 	const char *id;
 	size_t i, n = 0;
-	int32_t j;
-	int found;
 
 	json_array_foreach(json_object_get(img, "experiments"), i, e) {
 		id = kafka_str(json_string_value(json_object_get(e, "id")));
-		found = 0;
-		for (j = 0; j < KAFKA_PARTITIONS_MAX && !found; j++)
-			found = k->parts[j] != NULL &&
-			    json_object_get(k->parts[j]->keys, id) != NULL;
-		n += !found;
+		n += json_object_get(p->keys, id) == NULL;
 	}
-	if (n > k->stray)
-		log_warnx("kafka: %zu experiments came in messages keyed by "
-		    "another experiment; their state is not kept in Kafka "
-		    "(the key must be the experiment id)", n);
-	k->stray = n;
+	json_decref(img);
+	return n;
 }
 
 void
 kafka_state_commit_all(struct kafka_in *k, const char *why)
 {
-	json_t *img = NULL;
+	struct engine_counters ec;
+	size_t stray = 0;
 	int32_t i;
-	int n = 0;
+	int n = 0, tried = 0;
 
+	/* the alerts of what is saved reach the webhook queue first */
+	dispatch_drain(k->d->dispatch);
 	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++) {
 		struct kafka_part *p = k->parts[i];
 
-		if (p == NULL || p->state != KP_RUNNING || !p->dirty)
+		if (p == NULL || p->state != KP_RUNNING || p->eng == NULL)
 			continue;
-		if (img == NULL)
-			img = engine_save(k->d->engine);
-		n += kafka_state_commit(k, p, img) == 0;
+		engine_counters(p->eng, &ec);
+		if (p->dirty || ec.findings != p->findings) {
+			tried++;
+			n += kafka_state_commit(k, p) == 0;
+		}
+		stray += p->stray;
 	}
-	if (img != NULL) {
-		kafka_state_stray(k, img);
-		json_decref(img);
+	if (stray > k->stray)
+		log_warnx("kafka: %zu experiments came in messages keyed by "
+		    "another experiment; if their records travel in several "
+		    "partitions they are split (the key must be the "
+		    "experiment id)", stray);
+	k->stray = stray;
+	if (tried > 0)
 		log_debug("kafka: commit reason=%s partitions=%d", why, n);
-	}
 }
 
 /* A partition's transactional producer, fencing any earlier owner. */
@@ -486,8 +473,9 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 	json_t *state = r->state, *keys, *v;
 	char *cause = NULL;
 	const char *fmt;
+	struct engine_counters ec;
 	int64_t next;
-	size_t i;
+	size_t i, n;
 
 	if (r->cause != NULL) {
 		kafka_state_refuse(k, p, r->found ? KR_BAD_STATE :
@@ -510,6 +498,8 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		p->next = -1;
 		p->committed = -1;
 		p->state = KP_RUNNING;
+		p->eng = engine_new(k->d->conf, k->d->hashkey);
+		engines_add(k->d, p->eng);
 		return;
 	}
 	fmt = json_string_value(json_object_get(state, "format"));
@@ -538,18 +528,28 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		    "or a broker that keeps no transactional offsets, as the "
 		    "mock cluster); resuming from the state's partition=%"
 		    PRId32 " next=%" PRId64, p->id, next);
-	if (kafka_state_swap(k, NULL, json_object_get(json_object_get(state,
-	    "engine"), "experiments"), &cause) != 0) {
+	if ((p->eng = engine_restore(k->d->conf, k->d->hashkey,
+	    json_object_get(state, "engine"), &cause)) == NULL) {
 		kafka_state_refuse(k, p, KR_BAD_STATE, "its state does not "
 		    "restore", cause);
 		free(cause);
 		return;
 	}
+	engines_add(k->d, p->eng);
+	engine_counters(p->eng, &ec);
+	p->findings = ec.findings;
+	if ((n = webhook_adopt(k->d->webhook, json_object_get(state,
+	    "webhooks"))) > 0)
+		log_info("kafka: deliveries carried in the partition's state "
+		    "queued again partition=%" PRId32 " deliveries=%zu", p->id,
+		    n);
+	pause_adopt(k->d->pause, json_object_get(state, "pause"));
 	json_array_foreach(keys, i, v)
 		if (json_is_string(v))
 			json_object_set_new(p->keys, json_string_value(v),
 			    json_true());
 	kafka_state_counts_restore(&p->c, json_object_get(state, "counters"));
+	p->stray = kafka_state_stray(p);
 	p->next = next;
 	p->committed = next;
 	p->state = KP_RUNNING;

@@ -101,6 +101,7 @@ daemon_inputs(const struct conf *conf)
 	    (conf->kafka_brokers != NULL);
 }
 
+/* The main engine replaced whole (a Redis ha takeover adopts a state). */
 void
 daemon_engine_replace(struct daemon *d, struct engine *e)
 {
@@ -315,7 +316,7 @@ daemon_reload(struct daemon *d)
 		log_warnx("reload: failed; keeping the running configuration");
 		goto done;
 	}
-	if (engine_reconfigure(d->engine, nc, &cause) != 0) {
+	if (engines_reconfigure(d, nc, &cause) != 0) {
 		daemon_log_lines("reload: engine: ", cause);
 		log_warnx("reload: failed; keeping the running configuration");
 		goto done;
@@ -411,7 +412,7 @@ daemon_tick_cb(evutil_socket_t fd, short what, void *arg)
 {
 	struct daemon *d = arg;
 
-	engine_tick(d->engine, daemon_now());
+	engines_tick(d, daemon_now());
 	retire_idle(d);
 }
 
@@ -449,7 +450,7 @@ daemon_status_cb(evutil_socket_t fd, short what, void *arg)
 		m->ingest_rate = (double)(total - m->status_records) / dt;
 	m->status_records = total;
 	m->status_time = now;
-	engine_counters(d->engine, &ec);
+	engines_counters(d, &ec);
 	if (d->redis == NULL)
 		strcpy(lagbuf, "no redis");
 	else if (lag < 0)
@@ -533,18 +534,13 @@ daemon_start(struct daemon *d)
 	if (d->alert == NULL && cause != NULL)
 		daemon_fatal(d, SC_EX_CONFIG, "alerts: %s", cause);
 	d->dispatch = dispatch_new(d);
+	d->engines = engines_new();
 
 	if (ckpt_restore(d, &cause) != 0)
 		daemon_fatal(d, SC_EX_DATAERR, "%s; refusing to start (move "
 		    "the file away to start afresh)", cause);
 	if (alert_start_journal(d->alert, d->state_dir, &cause) != 0)
 		daemon_fatal(d, SC_EX_OSERR, "alerts: %s", cause);
-	if (d->engine != NULL && d->conf->kafka_brokers != NULL) {
-		/* Kafka experiments come back from the state topic, which
-		 * also says where to resume; a local copy would be stale. */
-		engine_free(d->engine);
-		d->engine = NULL;
-	}
 	if (d->engine == NULL)
 		d->engine = engine_new(d->conf, d->hashkey);
 	engine_set_sink(d->engine, dispatch_finding, d->dispatch);
@@ -617,6 +613,7 @@ daemon_stop(struct daemon *d)
 	pause_free(d->pause);
 	webhook_free(d->webhook);
 	notify_free(d->notify);
+	engines_free(d->engines);
 	engine_free(d->engine);
 	conf_free(d->conf);
 	event_base_free(d->base);

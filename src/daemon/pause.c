@@ -95,6 +95,7 @@ struct pause {
 	size_t			 ndone;
 	size_t			 done_next;
 	double			*times;		/* ring of recent pause times */
+	struct pause_done	*times_of;	/* whose (epoch unused) */
 	uint32_t		 rate;		/* pause_max_per_hour, 0 none */
 	uint32_t		 ntimes;
 	uint32_t		 times_next;
@@ -311,10 +312,12 @@ pause_rate_limited(struct pause *p, double now)
 }
 
 static void
-pause_rate_add(struct pause *p, double t)
+pause_rate_add(struct pause *p, double t, const char *experiment)
 {
 	if (p->rate == 0)
 		return;
+	snprintf(p->times_of[p->times_next].experiment,
+	    sizeof p->times_of[p->times_next].experiment, "%s", experiment);
 	p->times[p->times_next] = t;
 	p->times_next = (p->times_next + 1) % p->rate;
 	if (p->ntimes < p->rate)
@@ -583,7 +586,7 @@ pause_audit_reload(struct pause *p)
 			pause_mark_done(p, exp, (uint32_t)epoch);
 			if (strcmp(dec, pause_names[PAUSE_PAUSED].decision) ==
 			    0 && now - t < 3600)
-				pause_rate_add(p, t);
+				pause_rate_add(p, t, exp);
 		}
 		json_decref(j);
 	}
@@ -606,8 +609,10 @@ pause_new(struct daemon *d, char **cause)
 	p->backoff = PAUSE_BACKOFF_MIN;
 	p->rate = c->pause_max_per_hour > PAUSE_RATE_MAX ? PAUSE_RATE_MAX :
 	    c->pause_max_per_hour;
-	if (p->rate > 0)
+	if (p->rate > 0) {
 		p->times = xcalloc(p->rate, sizeof *p->times);
+		p->times_of = xcalloc(p->rate, sizeof *p->times_of);
+	}
 
 	if (c->state_dir != NULL) {
 		xasprintf(&p->audit_path, "%s/pause-audit.log", c->state_dir);
@@ -668,6 +673,7 @@ pause_free(struct pause *p)
 		close(p->audit_fd);
 	free(p->audit_path);
 	free(p->times);
+	free(p->times_of);
 	free(p->host);
 	free(p->unix_path);
 	free(p);
@@ -766,7 +772,7 @@ pause_decide(struct pause *p, const struct finding *f, char **reason)
 	switch (dec) {
 	case PAUSE_PAUSED:
 		pause_mark_done(p, f->experiment, f->epoch);
-		pause_rate_add(p, now);
+		pause_rate_add(p, now, f->experiment);
 		log_warnx("pause: pausing experiment=%s epoch=%u guardrail=%s "
 		    "variant=%s p=%.3g", f->experiment, f->epoch,
 		    f->guardrail ? f->guardrail : "srm",
@@ -787,6 +793,61 @@ pause_decide(struct pause *p, const struct finding *f, char **reason)
 		break;
 	}
 	return dec;
+}
+
+/*
+ * What a Kafka partition carries to its next owner, for the experiments
+ * mine() accepts: {"done": [[ID, epoch]...], "times": [[ID, t]...]},
+ * the epochs already paused (or dry-run) and this hour's pauses, so the
+ * new owner keeps once-per-epoch and counts them in its hourly limit.
+ */
+json_t *
+pause_carry(struct pause *p, int (*mine)(void *, const char *), void *arg)
+{
+	json_t *done = json_array(), *times = json_array();
+	double now = daemon_now();
+	size_t i;
+
+	for (i = 0; p != NULL && i < p->ndone; i++)
+		if (mine(arg, p->done[i].experiment))
+			json_array_append_new(done, json_pack("[s, I]",
+			    p->done[i].experiment,
+			    (json_int_t)p->done[i].epoch));
+	for (i = 0; p != NULL && i < p->ntimes; i++)
+		if (now - p->times[i] < 3600 &&
+		    mine(arg, p->times_of[i].experiment))
+			json_array_append_new(times, json_pack("[s, f]",
+			    p->times_of[i].experiment, p->times[i]));
+	return json_pack("{s:o, s:o}", "done", done, "times", times);
+}
+
+void
+pause_adopt(struct pause *p, const json_t *carried)
+{
+	const json_t *v;
+	const char *exp;
+	json_int_t epoch;
+	double t, now = daemon_now();
+	size_t i, j;
+
+	if (p == NULL)
+		return;
+	json_array_foreach(json_object_get(carried, "done"), i, v)
+		if (json_unpack((json_t *)v, "[s, I]", &exp, &epoch) == 0 &&
+		    epoch > 0 && epoch <= UINT32_MAX &&
+		    strlen(exp) <= PROTO_NAME_MAX)
+			pause_mark_done(p, exp, (uint32_t)epoch);
+	json_array_foreach(json_object_get(carried, "times"), i, v) {
+		if (json_unpack((json_t *)v, "[s, F]", &exp, &t) != 0 ||
+		    !(now - t < 3600) || strlen(exp) > PROTO_NAME_MAX)
+			continue;
+		for (j = 0; j < p->ntimes; j++)
+			if (p->times[j] == t &&
+			    strcmp(p->times_of[j].experiment, exp) == 0)
+				break;	/* this daemon counts it already */
+		if (j == p->ntimes)
+			pause_rate_add(p, t, exp);
+	}
 }
 
 void

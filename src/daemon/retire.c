@@ -29,14 +29,18 @@ retire_experiment(struct daemon *d, const char *id, const char *why,
 	json_t *archive = NULL;
 	char *text, *path;
 	double now = daemon_now();
+	struct engine *e;
 
 	*path_out = NULL;
 	/* a directory that cannot take the archive refuses the retirement
 	 * before the engine lets go of anything */
 	if (durable_mkdirs(d->state_dir, 0750, cause) != 0)
 		return -1;
-	if (engine_retire(d->engine, id, why, now, &archive, cause) != 0)
+	if ((e = engines_find(d, id)) == NULL)
+		e = d->engine;	/* which says there is no such experiment */
+	if (engine_retire(e, id, why, now, &archive, cause) != 0)
 		return -1;
+	engines_touched(d, e);
 	text = json_dumps(archive, JSON_INDENT(1) | JSON_REAL_PRECISION(17));
 	json_decref(archive);
 	if (text == NULL)
@@ -67,16 +71,21 @@ retire_experiment(struct daemon *d, const char *id, const char *why,
 void
 retire_idle(struct daemon *d)
 {
-	const char *id;
+	const char *id = NULL;
 	char *path = NULL, *cause = NULL, name[PROTO_NAME_MAX + 1];
+	struct engine *e;
+	size_t i;
 	int n;
 
 	/* A standby's state is a stale copy: the holder retires. */
 	if (!redis_lease_may_checkpoint(redis_in_lease(d->redis)))
 		return;
 	for (n = 0; n < RETIRE_PER_TICK; n++) {
-		if ((id = engine_idle(d->engine, daemon_now(),
-		    d->conf->retire_idle)) == NULL)
+		for (i = 0; (e = engines_at(d, i)) != NULL; i++)
+			if ((id = engine_idle(e, daemon_now(),
+			    d->conf->retire_idle)) != NULL)
+				break;
+		if (e == NULL)
 			return;
 		snprintf(name, sizeof name, "%s", id);
 		if (retire_experiment(d, name, "idle", &path, &cause) != 0) {

@@ -68,6 +68,7 @@ struct delivery {
 	char			*body;
 	size_t			 len;
 	char			*path;		/* spool file, NULL if none */
+	char			*experiment;	/* the body's, NULL if none */
 	int			 attempts;
 	int			 info;		/* severity info: droppable */
 	CURL			*easy;
@@ -157,6 +158,7 @@ webhook_delivery_free(struct delivery *dl)
 	free(dl->id);
 	free(dl->body);
 	free(dl->path);
+	free(dl->experiment);
 	free(dl);
 }
 
@@ -589,6 +591,18 @@ webhook_kick(struct receiver *r)
 	}
 }
 
+/* The experiment a body (an alert or a pause) is about, or NULL. */
+static char *
+webhook_experiment(const char *body, size_t len)
+{
+	json_t *j = json_loadb(body, len, 0, NULL);
+	const char *e = json_string_value(json_object_get(j, "experiment"));
+	char *out = e != NULL ? xstrdup(e) : NULL;
+
+	json_decref(j);
+	return out;
+}
+
 static void
 webhook_queue(struct receiver *r, const char *id, const char *body,
     size_t len, int info)
@@ -599,6 +613,7 @@ webhook_queue(struct receiver *r, const char *id, const char *body,
 	dl->rcv = r;
 	dl->seq = r->w->seq++;
 	dl->id = xstrdup(id);
+	dl->experiment = webhook_experiment(body, len);
 	dl->body = xmalloc(len + 1);
 	memcpy(dl->body, body, len);
 	dl->body[len] = '\0';
@@ -654,6 +669,7 @@ webhook_spool_load_one(struct receiver *r, const char *path, uint64_t seq)
 	dl->len = len;
 	dl->path = xstrdup(path);
 	dl->info = info;
+	dl->experiment = webhook_experiment(body, len);
 	json_decref(j);
 	if (seq >= r->w->seq)
 		r->w->seq = seq + 1;
@@ -1022,4 +1038,95 @@ webhook_metrics(struct webhook *w, struct evbuffer *b)
 			evbuffer_add_printf(b, "} %" PRIu64 "\n", v);
 		}
 	}
+}
+
+/*
+ * What a Kafka partition carries to its next owner: every delivery not
+ * yet answered whose body is about an experiment mine() accepts, as
+ * [{"receiver", "id", "body" (text), "info"}]. Internal receivers (the
+ * pause URL) are included: a pause is an alert too.
+ */
+json_t *
+webhook_pending(struct webhook *w, int (*mine)(void *, const char *),
+    void *arg)
+{
+	json_t *out = json_array();
+	struct receiver *r;
+	struct delivery *dl;
+	struct deliveries *lists[2];
+	int i, l;
+
+	if (w == NULL)
+		return out;
+	for (i = 0; i < w->nrcv; i++) {
+		r = w->rcv[i];
+		lists[0] = &r->inflight;
+		lists[1] = &r->waiting;
+		for (l = 0; l < 2; l++)
+			TAILQ_FOREACH(dl, lists[l], entry)
+				if (dl->experiment != NULL &&
+				    mine(arg, dl->experiment))
+					json_array_append_new(out, json_pack(
+					    "{s:s, s:s, s:s%, s:b}",
+					    "receiver", r->name, "id", dl->id,
+					    "body", dl->body, dl->len,
+					    "info", dl->info));
+	}
+	return out;
+}
+
+static int
+webhook_has(const struct receiver *r, const char *id)
+{
+	const struct delivery *dl;
+
+	TAILQ_FOREACH(dl, &r->inflight, entry)
+		if (strcmp(dl->id, id) == 0)
+			return 1;
+	TAILQ_FOREACH(dl, &r->waiting, entry)
+		if (strcmp(dl->id, id) == 0)
+			return 1;
+	return 0;
+}
+
+/*
+ * Queue (and spool) another daemon's webhook_pending here, with the
+ * same webhook-ids, so the receivers can tell a repeat; a delivery this
+ * daemon already holds by id is not queued twice. The number queued.
+ */
+size_t
+webhook_adopt(struct webhook *w, const json_t *pending)
+{
+	const json_t *o;
+	const char *name, *id, *body;
+	size_t i, len, n = 0;
+	int info, k;
+
+	if (w == NULL)
+		return 0;
+	json_array_foreach(pending, i, o) {
+		info = 0;
+		if (json_unpack((json_t *)o, "{s:s, s:s, s:s%, s?b}",
+		    "receiver", &name, "id", &id, "body", &body, &len, "info",
+		    &info) != 0 || strlen(id) == 0 || strlen(id) > 128 ||
+		    len > WEBHOOK_SPOOL_MAX) {
+			log_warnx("webhook: a carried delivery is malformed; "
+			    "skipped");
+			continue;
+		}
+		for (k = 0; k < w->nrcv && strcmp(w->rcv[k]->name, name) != 0;
+		    k++)
+			;
+		if (k == w->nrcv) {
+			log_warnx("webhook: a carried delivery is for receiver "
+			    "%s, not configured here; not sent id=%s", name,
+			    id);
+			continue;
+		}
+		if (webhook_has(w->rcv[k], id))
+			continue;
+		webhook_queue(w->rcv[k], id, body, len, info);
+		n++;
+	}
+	return n;
 }

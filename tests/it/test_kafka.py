@@ -15,11 +15,18 @@ failed checkouts on each.
     the same group.instance.id. In the end every experiment's exposures
     and failed-checkout sums equal the produced ones exactly (no loss, no
     double count), and so do the messages counted per partition, which
-    travel in the partition's state.
+    travel in the partition's state. One experiment's records travel
+    under another's key (a stray): it lives in that partition's engine
+    and comes back whole with its state.
  2. A second daemon joins the group: the partitions split between the
     two (disjoint, together all 8); more records flow; each experiment
     lives in exactly one daemon, with its whole tally, and the union of
     the two daemons' tallies is the produced one, exactly.
+    `stopcock status` with both --url merges them (each experiment
+    once, with its daemon; each daemon's partitions), shows one
+    experiment from its owner, calls out an experiment a daemon outside
+    the group also holds (a split), and reports a daemon that does not
+    answer (exit 74) while still showing the other.
  3. A rolling restart: the second daemon is stopped (SIGTERM) and
     started again with its group.instance.id; the tallies stay exact.
     The mock cluster has no static membership, so "no rebalance" is
@@ -52,7 +59,7 @@ import time
 
 from prometheus_client.parser import text_string_to_metric_families
 
-from _lib import Tap, Daemon, wait_for, replay, BUILD, OUT
+from _lib import Tap, Daemon, wait_for, replay, BUILD, OUT, STOPCOCK
 
 KAFKAMOCK = os.path.join(BUILD, "tests", "kafkamock")
 NPART = 8
@@ -63,6 +70,7 @@ test = proportion
 harm = increase
 margin = 0
 """
+STRAY = "shop_gift_cards"
 EXPS = ["shop_%s" % n for n in (
     "basket_page", "delivery_banner", "pastry_photos", "search_box",
     "loyalty_nudge", "checkout_steps", "gift_wrap", "pickup_slots",
@@ -116,17 +124,20 @@ class Mock:
 
 
 def kafka_daemon(name, mock, group, instance, state_topic="st",
-                 commit_every="200ms"):
+                 commit_every="200ms", guardrails=GUARDRAILS, extra=""):
     d = Daemon(name, tcp=False, udp=False, unix=False, http=True,
                conf="", start=False)
     d.write_conf(
         "[defaults]\nalpha = 0.05\nplan_units = 2000\nlateness = 0\n"
-        "srm_interval = 1ms\n" + GUARDRAILS +
+        "srm_interval = 1ms\n" + guardrails + extra +
         "\n[daemon]\nstate = %s\ntick = 200ms\ncheckpoint_every = 1s\n"
         "http = 127.0.0.1:%d\n" % (d.state, d.http) +
         "\n[kafka]\nbrokers = %s\ntopic = rec\nstate_topic = %s\n"
         "group = %s\ninstance_id = %s\ncommit_every = %s\n"
-        "session_timeout = 6s\n" % (mock.bootstrap, state_topic, group,
+        # the test's producer does not sign: its input is trusted
+        # explicitly, so pauses (test_kafka_spool) rest on trusted records
+        "session_timeout = 6s\ntrusted = yes\n" % (mock.bootstrap,
+                                                    state_topic, group,
                                     instance, commit_every))
     d.start()
     return d
@@ -213,8 +224,10 @@ def tallies(d):
 class Feed:
     """Generated records, counted on the way out as the reference."""
 
-    def __init__(self, mock, seed, bad_rate=0.0):
+    def __init__(self, mock, seed, bad_rate=0.0, carriers=None, exps=EXPS):
         self.mock = mock
+        self.carriers = carriers or {}	# experiment -> the key it goes by
+        self.exps = exps
         self.rng = random.Random(seed)
         self.want = {}
         self.planned = set()
@@ -240,12 +253,74 @@ class Feed:
         if self.rng.random() < self.bad_rate:	# a variant without a name
             lines.append("expose %s" % exp)
         self.lines += lines
-        self.mock.send(exp, lines)
+        self.mock.send(self.carriers.get(exp, exp), lines)
 
     def batch(self, n):
         for _ in range(n):
-            self.message(self.rng.choice(EXPS))
+            self.message(self.rng.choice(self.exps))
         return self.mock.flush()
+
+
+def url(d):
+    return d if isinstance(d, str) else "http://127.0.0.1:%d" % d.http
+
+
+def status(*ds, args=()):
+    """stopcock status --url D... ARGS: (exit status, stdout, stderr)."""
+    cmd = [STOPCOCK, "status"]
+    for d in ds:
+        cmd += ["--url", url(d)]
+    p = subprocess.run(cmd + list(args), capture_output=True, text=True,
+                       timeout=60, env=dict(os.environ, NO_COLOR="1"))
+    return p.returncode, p.stdout, p.stderr
+
+
+def status_checks(tap, a, b, ea, eb):
+    """stopcock status merging the two daemons of one group, then a
+    daemon outside the group that holds one of their experiments too (a
+    split), then one that does not answer."""
+    rc, out, err = status(a, b, args=["--json"])
+    j = json.loads(out) if rc == 0 else {}
+    owner = {e["id"]: e["daemon"] for e in j.get("experiments", [])}
+    want = dict([(e, url(a)) for e in ea] + [(e, url(b)) for e in eb])
+    tap.ok((rc, owner, j.get("split")) == (0, want, []),
+           "stopcock status with two --url merges them: every experiment "
+           "once, named with its daemon, no split",
+           "rc=%d err=%r split=%r" % (rc, err, j.get("split")))
+    tap.eq([sorted(p["partition"] for p in x["kafka"]["partitions"])
+            for x in j.get("daemons", [])],
+           [sorted(partitions(a)), sorted(partitions(b))],
+           "and says which partitions each daemon owns")
+    rc, out, err = status(a, b)
+    head = [l for l in out.splitlines() if l.startswith("daemon ")]
+    tap.ok(rc == 0 and len(head) == 2 and
+           head[1].startswith("daemon %s: %d experiments, partitions" %
+                              (url(b), len(eb))),
+           "the table opens with one line per daemon", repr(head))
+    one = sorted(eb)[0]
+    rc, out, err = status(a, b, args=[one])
+    tap.ok(rc == 0 and out.startswith("at %s\n" % url(b)),
+           "one experiment is shown from the daemon that holds it",
+           "rc=%d out=%r err=%r" % (rc, out[:80], err))
+    # the same experiment fed to a daemon outside the group: a split
+    plain = Daemon("kafka-plain", udp=False, unix=False, http=True)
+    try:
+        plain.send_tcp(["plan %s control=50 treatment=50" % one,
+                        "expose %s control" % one])
+        wait_for(lambda: tallies(plain), 10)
+        rc, out, err = status(b, plain, args=["--json"])
+        tap.ok(rc == 0 and json.loads(out)["split"] == [one] and
+               "is held by 2 daemons" in err,
+               "an experiment two daemons hold is called out (split)",
+               "rc=%d err=%r" % (rc, err))
+    finally:
+        plain.close()
+    rc, out, err = status(a, "http://127.0.0.1:1")
+    tap.ok(rc == 74 and out.count("daemon ") == 1 and
+           len([l for l in out.splitlines() if l.startswith("shop_")]) ==
+           len(ea) and "127.0.0.1:1" in err,
+           "a daemon that does not answer is reported (exit 74), the "
+           "others still shown", "rc=%d err=%r" % (rc, err))
 
 
 def compare(tap, got, want, name):
@@ -362,7 +437,11 @@ def main():
     mock = Mock()
     a = b = c = None
     try:
-        feed = Feed(mock, seed=14)
+        # gift cards' records travel under the basket page's key (against
+        # the producer contract, but always the same key): a stray
+        # experiment, kept in that partition's engine and state
+        feed = Feed(mock, seed=14, carriers={STRAY: "shop_basket_page"},
+                    exps=EXPS + [STRAY])
         # commits 5 s apart: the kill lands after reads not committed
         a = kafka_daemon("kafka-a", mock, "bakery", "it-a",
                          commit_every="5s")
@@ -378,7 +457,7 @@ def main():
 
         def paced(n):	# about 100 messages a second
             for i in range(n):
-                feed.message(feed.rng.choice(EXPS))
+                feed.message(feed.rng.choice(feed.exps))
                 if i % 10 == 9:
                     feed.mock.flush()
                     time.sleep(0.1)
@@ -399,6 +478,13 @@ def main():
                "counted %r" % messages(a))
         compare(tap, tallies(a), feed.want, "exposures and failed-checkout "
                 "sums equal the produced ones exactly after SIGKILL")
+        compare(tap, {k: v for k, v in tallies(a).items() if k[0] == STRAY},
+                {k: v for k, v in feed.want.items() if k[0] == STRAY},
+                "the stray experiment (records under another experiment's "
+                "key) came back whole with its partition's state")
+        tap.eq([v for n, l, v in metrics(a)
+                if n == "stopcock_kafka_stray_experiments"], [1.0],
+               "and it is counted as a stray")
         restored = [int(m) for m in re.findall(
             r"restored from the state topic .* messages=(\d+)",
             a.log_text())]
@@ -439,6 +525,7 @@ def main():
         union.update(tb)
         compare(tap, union, feed.want, "the union of the two daemons' "
                 "tallies equals the produced records exactly")
+        status_checks(tap, a, b, ea, eb)
 
         def rebalances(d):
             return sum(v for n, l, v in metrics(d)
