@@ -43,20 +43,15 @@
 #include <sys/types.h>
 #include <sys/queue.h>
 #include <sys/socket.h>
-#include <sys/stat.h>
-#include <sys/un.h>
 
 #include <netinet/in.h>
 #include <arpa/inet.h>
 
-#include <errno.h>
 #include <inttypes.h>
-#include <netdb.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
 #include <time.h>
-#include <unistd.h>
 
 #include <event2/buffer.h>
 #include <event2/bufferevent.h>
@@ -69,99 +64,16 @@
 #include "stopcock/names.h"
 #include "daemon.h"
 
-#define LISTEN_BACKLOG 512
-#define LISTEN_BAD_MAX 100	/* bad lines before "garbage" may cut */
-#define LISTEN_UDP_MAX 65536	/* bytes in one datagram */
-#define LISTEN_UDP_BURST 512	/* datagrams per callback, then yield */
-#define LISTEN_READ_MAX (1024 * 1024)	/* bytes per read call */
-#define LISTEN_DRAIN_MAX (16 * 1024 * 1024)	/* per client at shutdown */
-#define LISTEN_UDP_DRAIN 65536	/* datagrams read at shutdown, at most */
-#define LISTEN_BACKOFF 1	/* seconds without accept after EMFILE */
-#define LISTEN_SWEEP_MS 1000	/* longest time between timeout sweeps */
-#define LISTEN_KEY_MAX 17	/* family byte + IPv6 address */
-
-enum client_state {
-	CLIENT_READING,		/* lines flow */
-	CLIENT_DISCARDING,	/* skipping the rest of an over-long line */
-	CLIENT_DEAD		/* closed or cut off; waiting to be reaped */
-};
-
-enum listen_cut { CUT_GARBAGE, CUT_FLOOD, CUT_N };
+#include "listen_int.h"
 
 static const char *listen_cut_names[CUT_N] = { "garbage", "line_flood" };
-
-/* Closed for what the client did not do, or to make room. */
-enum listen_close { CLOSE_IDLE, CLOSE_SLOW, CLOSE_EVICT, CLOSE_N };
 
 static const char *listen_close_names[CLOSE_N] = {
 	"idle", "slow_line", "evicted"
 };
 
-enum listen_refuse { REFUSE_CAP, REFUSE_SOURCE, REFUSE_N };
-
 static const char *listen_refuse_names[REFUSE_N] = {
 	"max_clients", "max_clients_per_source"
-};
-
-struct listen_sock {
-	struct listen		*l;
-	enum source		 src;
-	struct evconnlistener	*evl;
-	char			*name;		/* address as configured */
-};
-
-struct client {
-	struct listen		*l;
-	enum source		 src;
-	enum client_state	 state;
-	struct bufferevent	*bev;
-	uint64_t		 id;
-	uint64_t		 good, bad;
-	size_t			 discarded;	/* of the current long line */
-	int			 skip_line;	/* signed input: skipping to the
-						 * end of a line, not at its
-						 * start */
-	uint64_t		 last_ms;	/* monotonic, of the last read */
-	uint64_t		 line_ms;	/* the unfinished line began */
-	int			 unfinished;	/* on l->unfinished */
-	uint8_t			 key[LISTEN_KEY_MAX];	/* its source */
-	size_t			 keylen;
-	char			 peer[INET6_ADDRSTRLEN + 8];
-	TAILQ_ENTRY(client)	 entry;		/* by last read, or dead */
-	TAILQ_ENTRY(client)	 uentry;	/* by start of its line */
-};
-
-TAILQ_HEAD(clients, client);
-
-struct listen {
-	struct daemon		*d;
-	struct listen_sock	 tcp, unix_sock;
-	char			*unix_path;	/* we unlink it at exit */
-	ino_t			 unix_ino;
-	int			 udp_fd;
-	struct event		*udp_ev;
-	char			*udp_name;
-	char			*udp_buf;
-	struct event		*backoff_ev;
-	struct event		*reap_ev;
-	struct event		*sweep_ev;
-	uint64_t		 swept_ms;	/* the last sweep ran */
-	uint64_t		 sweep_ms;	/* its period */
-	struct clients		 clients[SRC_N];	/* oldest read first */
-	struct clients		 unfinished;	/* oldest line first */
-	struct clients		 dead;
-	struct nmap		*per_source;	/* key -> connections */
-	uint32_t		 nclients;
-	uint32_t		 nby[SRC_N];
-	uint64_t		 next_id;
-	int			 draining;
-
-	uint64_t		 accepted[SRC_N];
-	uint64_t		 refused[REFUSE_N];
-	uint64_t		 backoffs;
-	uint64_t		 cut[SRC_N][CUT_N];
-	uint64_t		 closed[SRC_N][CLOSE_N];
-	uint64_t		 udp_datagrams;
 };
 
 static const enum source listen_streams[] = { SRC_TCP, SRC_UNIX };
@@ -633,7 +545,7 @@ listen_make_room(struct listen *l, enum source src, uint64_t now)
 	return 0;
 }
 
-static void
+void
 listen_accept_cb(struct evconnlistener *evl, evutil_socket_t fd,
     struct sockaddr *sa, int salen, void *arg)
 {
@@ -763,259 +675,11 @@ listen_sweep_cb(evutil_socket_t fd, short what, void *arg)
 		listen_sweep_arm(l);
 }
 
-static void
-listen_set_accept(struct listen *l, int on)
-{
-	struct listen_sock *socks[] = { &l->tcp, &l->unix_sock };
-	size_t i;
-
-	for (i = 0; i < SC_NELEM(socks); i++) {
-		if (socks[i]->evl == NULL)
-			continue;
-		if (on)
-			evconnlistener_enable(socks[i]->evl);
-		else
-			evconnlistener_disable(socks[i]->evl);
-	}
-}
-
-static void
-listen_backoff_cb(evutil_socket_t fd, short what, void *arg)
-{
-	struct listen *l = arg;
-
-	if (l->draining)
-		return;
-	log_info("listen: accepting again after backoff");
-	listen_set_accept(l, 1);
-}
-
-/* Out of descriptors: stop accepting for a while rather than spin. */
-static void
-listen_accept_error_cb(struct evconnlistener *evl, void *arg)
-{
-	struct listen_sock *ls = arg;
-	struct listen *l = ls->l;
-	int err = EVUTIL_SOCKET_ERROR();
-	struct timeval tv = { LISTEN_BACKOFF, 0 };
-
-	if (err == EMFILE || err == ENFILE || err == ENOBUFS || err == ENOMEM) {
-		l->backoffs++;
-		log_warnx("listen: accept: %s; pausing accept for %ds "
-		    "source=%s clients=%u", strerror(err), LISTEN_BACKOFF,
-		    source_name(ls->src), l->nclients);
-		listen_set_accept(l, 0);
-		event_add(l->backoff_ev, &tv);
-		return;
-	}
-	log_warnx("listen: accept: %s source=%s", strerror(err),
-	    source_name(ls->src));
-}
-
-/* "host:port" or "[v6]:port" (addr.h) to a socket address. */
-static int
-listen_resolve(const char *spec, int socktype, struct sockaddr_storage *ss,
-    socklen_t *sslen, char **cause)
-{
-	struct addrinfo hints, *res;
-	struct addr a;
-	char port[8];
-	int rc;
-
-	if (addr_parse(spec, 0, &a, cause) != 0)
-		return -1;
-	snprintf(port, sizeof port, "%u", (unsigned)a.port);
-	memset(&hints, 0, sizeof hints);
-	hints.ai_family = AF_UNSPEC;
-	hints.ai_socktype = socktype;
-	hints.ai_flags = AI_PASSIVE | AI_NUMERICSERV;
-	rc = getaddrinfo(a.host, port, &hints, &res);
-	if (rc != 0) {
-		xasprintf(cause, "%s: %s", spec, gai_strerror(rc));
-		return -1;
-	}
-	memcpy(ss, res->ai_addr, res->ai_addrlen);
-	*sslen = res->ai_addrlen;
-	freeaddrinfo(res);
-	return 0;
-}
-
-static int
-listen_stream(struct listen *l, struct listen_sock *ls, enum source src,
-    const struct sockaddr *sa, socklen_t salen, unsigned flags,
-    const char *name, char **cause)
-{
-	ls->l = l;
-	ls->src = src;
-	ls->name = xstrdup(name);
-	ls->evl = evconnlistener_new_bind(l->d->base, listen_accept_cb, ls,
-	    LEV_OPT_CLOSE_ON_FREE | LEV_OPT_CLOSE_ON_EXEC | flags,
-	    LISTEN_BACKLOG, sa, (int)salen);
-	if (ls->evl == NULL) {
-		xasprintf(cause, "%s %s: %s", source_name(src), name,
-		    strerror(errno));
-		return -1;
-	}
-	evconnlistener_set_error_cb(ls->evl, listen_accept_error_cb);
-	log_info("listen: accepting source=%s address=%s", source_name(src),
-	    name);
-	return 0;
-}
-
-static int
-listen_tcp(struct listen *l, const char *spec, char **cause)
-{
-	struct sockaddr_storage ss;
-	socklen_t sslen;
-
-	if (listen_resolve(spec, SOCK_STREAM, &ss, &sslen, cause) != 0)
-		return -1;
-	return listen_stream(l, &l->tcp, SRC_TCP, (struct sockaddr *)&ss,
-	    sslen, LEV_OPT_REUSEABLE, spec, cause);
-}
-
-/* Bind the Unix socket, replacing a stale one but never a live one. */
-static int
-listen_unix(struct listen *l, const char *path, char **cause)
-{
-	struct sockaddr_un sun;
-	struct stat st;
-	unsigned gid;
-	int fd;
-
-	memset(&sun, 0, sizeof sun);
-	sun.sun_family = AF_UNIX;
-	if (strlen(path) >= sizeof sun.sun_path) {
-		xasprintf(cause, "unix %s: path too long", path);
-		return -1;
-	}
-	strcpy(sun.sun_path, path);
-	if (lstat(path, &st) == 0) {
-		if (!S_ISSOCK(st.st_mode)) {
-			xasprintf(cause, "unix %s: exists and is not a socket",
-			    path);
-			return -1;
-		}
-		fd = socket(AF_UNIX, SOCK_STREAM | SOCK_CLOEXEC, 0);
-		if (fd != -1 && connect(fd, (struct sockaddr *)&sun,
-		    sizeof sun) == 0) {
-			close(fd);
-			xasprintf(cause, "unix %s: in use by another process",
-			    path);
-			return -1;
-		}
-		if (fd != -1)
-			close(fd);
-		if (unlink(path) != 0) {
-			xasprintf(cause, "unix %s: cannot remove stale socket: "
-			    "%s", path, strerror(errno));
-			return -1;
-		}
-		log_info("listen: removed stale socket path=%s", path);
-	}
-	if (listen_stream(l, &l->unix_sock, SRC_UNIX, (struct sockaddr *)&sun,
-	    sizeof sun, 0, path, cause) != 0)
-		return -1;
-	/* who may write records here: the socket's mode and group */
-	if (l->d->conf->unix_group != NULL) {
-		if (conf_unix_group(l->d->conf->unix_group, &gid, cause) != 0)
-			return -1;
-		if (chown(path, (uid_t)-1, (gid_t)gid) != 0) {
-			xasprintf(cause, "unix %s: unix_group %s: chown: %s",
-			    path, l->d->conf->unix_group, strerror(errno));
-			return -1;
-		}
-	}
-	if (chmod(path, (mode_t)l->d->conf->unix_mode) != 0 ||
-	    lstat(path, &st) != 0) {
-		xasprintf(cause, "unix %s: unix_mode %04o: %s", path,
-		    (unsigned)l->d->conf->unix_mode, strerror(errno));
-		return -1;
-	}
-	log_info("listen: unix socket path=%s mode=%04o group=%u", path,
-	    (unsigned)(st.st_mode & 07777), (unsigned)st.st_gid);
-	l->unix_path = xstrdup(path);
-	l->unix_ino = st.st_ino;
-	return 0;
-}
-
-/* Read up to burst datagrams, fewer when the socket runs dry. */
-static void
-listen_udp_read(struct listen *l, int burst)
-{
-	ssize_t n;
-	int i;
-
-	for (i = 0; i < burst; i++) {
-		n = recv(l->udp_fd, l->udp_buf, LISTEN_UDP_MAX, MSG_TRUNC);
-		if (n == -1) {
-			if (errno == EINTR)
-				continue;
-			if (errno != EAGAIN && errno != EWOULDBLOCK)
-				log_warn("listen: udp recv");
-			return;
-		}
-		l->udp_datagrams++;
-		if ((size_t)n > LISTEN_UDP_MAX) {
-			ingest_reject(l->d, SRC_UDP, PROTO_E_LONG, (size_t)n,
-			    l->udp_buf, 80);
-			continue;
-		}
-		if (auth_signed(l->d->conf, SRC_UDP))
-			(void)auth_datagram(l->d, SRC_UDP, l->udp_buf,
-			    (size_t)n);
-		else
-			ingest_lines(l->d, SRC_UDP, l->udp_buf, (size_t)n);
-	}
-}
-
-static void
-listen_udp_cb(evutil_socket_t fd, short what, void *arg)
-{
-	struct listen *l = arg;
-
-	listen_udp_read(l, LISTEN_UDP_BURST);
-}
-
-static int
-listen_udp(struct listen *l, const char *spec, char **cause)
-{
-	struct sockaddr_storage ss;
-	socklen_t sslen;
-	int size = 4 * 1024 * 1024;
-
-	if (listen_resolve(spec, SOCK_DGRAM, &ss, &sslen, cause) != 0)
-		return -1;
-	l->udp_fd = socket(ss.ss_family, SOCK_DGRAM | SOCK_NONBLOCK |
-	    SOCK_CLOEXEC, 0);
-	if (l->udp_fd == -1) {
-		xasprintf(cause, "udp %s: socket: %s", spec, strerror(errno));
-		return -1;
-	}
-	/* Best effort: a deeper queue rides out bursts; the kernel caps it
-	 * at net.core.rmem_max. */
-	(void)setsockopt(l->udp_fd, SOL_SOCKET, SO_RCVBUF, &size, sizeof size);
-	if (bind(l->udp_fd, (struct sockaddr *)&ss, sslen) != 0) {
-		xasprintf(cause, "udp %s: %s", spec, strerror(errno));
-		return -1;
-	}
-	l->udp_buf = xmalloc(LISTEN_UDP_MAX);
-	l->udp_name = xstrdup(spec);
-	l->udp_ev = event_new(l->d->base, l->udp_fd, EV_READ | EV_PERSIST,
-	    listen_udp_cb, l);
-	if (l->udp_ev == NULL || event_add(l->udp_ev, NULL) != 0) {
-		xasprintf(cause, "udp %s: cannot add event", spec);
-		return -1;
-	}
-	log_info("listen: accepting source=udp address=%s", spec);
-	return 0;
-}
 
 struct listen *
 listen_new(struct daemon *d, char **cause)
 {
 	struct listen *l;
-	const struct conf *conf = d->conf;
 	size_t i;
 
 	l = xcalloc(1, sizeof *l);
@@ -1027,18 +691,13 @@ listen_new(struct daemon *d, char **cause)
 	TAILQ_INIT(&l->dead);
 	l->per_source = nmap_new(d->hashkey);
 	l->reap_ev = event_new(d->base, -1, 0, listen_reap_cb, l);
-	l->backoff_ev = evtimer_new(d->base, listen_backoff_cb, l);
 	l->sweep_ev = evtimer_new(d->base, listen_sweep_cb, l);
-	if (l->reap_ev == NULL || l->backoff_ev == NULL ||
-	    l->sweep_ev == NULL) {
+	if (l->reap_ev == NULL || l->sweep_ev == NULL) {
 		*cause = xstrdup("cannot create listener events");
 		listen_free(l);
 		return NULL;
 	}
-	if ((conf->tcp != NULL && listen_tcp(l, conf->tcp, cause) != 0) ||
-	    (conf->udp != NULL && listen_udp(l, conf->udp, cause) != 0) ||
-	    (conf->unix_path != NULL &&
-	    listen_unix(l, conf->unix_path, cause) != 0)) {
+	if (listen_sock_open(l, cause) != 0) {
 		listen_free(l);
 		return NULL;
 	}
@@ -1050,7 +709,6 @@ void
 listen_free(struct listen *l)
 {
 	struct client *c;
-	struct stat st;
 	size_t i;
 
 	if (l == NULL)
@@ -1064,30 +722,12 @@ listen_free(struct listen *l)
 		TAILQ_REMOVE(&l->dead, c, entry);
 		listen_client_free(c);
 	}
-	if (l->tcp.evl != NULL)
-		evconnlistener_free(l->tcp.evl);
-	if (l->unix_sock.evl != NULL)
-		evconnlistener_free(l->unix_sock.evl);
-	/* Remove the socket file only if it is still the one we bound. */
-	if (l->unix_path != NULL && lstat(l->unix_path, &st) == 0 &&
-	    st.st_ino == l->unix_ino)
-		unlink(l->unix_path);
-	if (l->udp_ev != NULL)
-		event_free(l->udp_ev);
-	if (l->udp_fd != -1)
-		close(l->udp_fd);
+	listen_sock_close(l);
 	if (l->reap_ev != NULL)
 		event_free(l->reap_ev);
-	if (l->backoff_ev != NULL)
-		event_free(l->backoff_ev);
 	if (l->sweep_ev != NULL)
 		event_free(l->sweep_ev);
 	nmap_free(l->per_source);
-	free(l->tcp.name);
-	free(l->unix_sock.name);
-	free(l->unix_path);
-	free(l->udp_name);
-	free(l->udp_buf);
 	free(l);
 }
 
@@ -1128,11 +768,11 @@ listen_drain(struct listen *l)
 	size_t i;
 
 	l->draining = 1;
-	listen_set_accept(l, 0);
+	listen_sock_accept(l, 0);
 	event_del(l->sweep_ev);
 	if (l->udp_ev != NULL) {
 		event_del(l->udp_ev);
-		listen_udp_read(l, LISTEN_UDP_DRAIN);
+		listen_sock_udp_read(l, LISTEN_UDP_DRAIN);
 	}
 	for (i = 0; i < SC_NELEM(listen_streams); i++)
 		while ((c = TAILQ_FIRST(&l->clients[listen_streams[i]])) !=
