@@ -49,8 +49,6 @@
  * happens inside its own callbacks: failures found there are handed to a
  * deferred event.
  */
-#include <errno.h>
-#include <fcntl.h>
 #include <inttypes.h>
 #include <math.h>
 #include <limits.h>
@@ -228,93 +226,6 @@ redis_in_op_done(struct redis_in *r)
 	redis_in_next(r);
 }
 
-#define REDIS_IN_MARK_FILE "redis-applying"
-#define REDIS_IN_MARK_SIZE 128	/* "A <first> <last> <failures>", padded */
-
-/*
- * The crash-loop guard's file: "A <first> <last> <failures>" while a
- * batch of entries is being applied, "D" once it is. Two writes per
- * batch, not per entry, keep it cheap for producers of one-record
- * entries. Written without fsync: it guards against the process dying,
- * whose writes the kernel keeps; after a power cut it may say less,
- * which only delays a dead letter.
- */
-static void
-redis_in_mark_open(struct redis_in *r)
-{
-	char *path, buf[REDIS_IN_MARK_SIZE + 1], a[SID_BUF], b[SID_BUF];
-	unsigned failures;
-	ssize_t n;
-
-	xasprintf(&path, "%s/%s", r->d->state_dir, REDIS_IN_MARK_FILE);
-	r->mark_fd = open(path, O_RDWR | O_CREAT | O_CLOEXEC, 0640);
-	if (r->mark_fd == -1) {
-		log_warn("redis: %s: no crash-loop guard", path);
-		free(path);
-		return;
-	}
-	free(path);
-	n = pread(r->mark_fd, buf, REDIS_IN_MARK_SIZE, 0);
-	if (n <= 0 || buf[0] != 'A')
-		return;
-	buf[n] = '\0';
-	if (sscanf(buf, "A %47s %47s %u", a, b, &failures) != 3 ||
-	    redis_in_sid_parse(a, strlen(a), &r->suspect) != 0 ||
-	    redis_in_sid_parse(b, strlen(b), &r->suspect_last) != 0 ||
-	    failures >= UINT_MAX - 1)
-		return;
-	r->suspect_failures = failures + 1;
-	log_warnx("redis: the last run died while applying an entry "
-	    "entry=%s%s%s failures=%u max_deliveries=%u", a,
-	    strcmp(a, b) != 0 ? ".." : "", strcmp(a, b) != 0 ? b : "",
-	    r->suspect_failures, (unsigned)r->d->conf->redis_max_deliveries);
-}
-
-static void
-redis_in_mark(struct redis_in *r, const char *text)
-{
-	char buf[REDIS_IN_MARK_SIZE];
-	size_t len = strlen(text);
-
-	if (r->mark_fd == -1)
-		return;
-	memset(buf, ' ', sizeof buf);
-	memcpy(buf, text, len < sizeof buf ? len : sizeof buf);
-	buf[sizeof buf - 1] = '\n';
-	if (pwrite(r->mark_fd, buf, sizeof buf, 0) != (ssize_t)sizeof buf) {
-		log_warn("redis: cannot write %s; no crash-loop guard",
-		    REDIS_IN_MARK_FILE);
-		close(r->mark_fd);
-		r->mark_fd = -1;
-	}
-}
-
-static void
-redis_in_mark_range(struct redis_in *r, struct sid a, struct sid b,
-    unsigned failures)
-{
-	char text[REDIS_IN_MARK_SIZE], x[SID_BUF], y[SID_BUF];
-
-	snprintf(text, sizeof text, "A %s %s %u", redis_in_sid_fmt(a, x),
-	    redis_in_sid_fmt(b, y), failures);
-	redis_in_mark(r, text);
-}
-
-/*
- * Failures to apply id so far: the deaths in the batch (or the entry)
- * the last run died in, charged to each of its entries until a second
- * death, marked entry by entry, names one.
- */
-static unsigned
-redis_in_failures(struct redis_in *r, struct sid id)
-{
-	if (r->suspect_failures > 0 &&
-	    redis_in_sid_cmp(id, r->suspect) >= 0 &&
-	    redis_in_sid_cmp(id, r->suspect_last) <= 0)
-		return r->suspect_failures;
-	return 0;
-}
-
 void
 redis_in_batch_begin(struct redis_in *r, const redisReply *list)
 {
@@ -331,17 +242,17 @@ redis_in_batch_begin(struct redis_in *r, const redisReply *list)
 		if (n++ == 0)
 			first = id;
 		last = id;
-		if (redis_in_failures(r, id) > 0)
+		if (redis_in_guard_failures(r, id) > 0)
 			r->mark_each = 1;
 	}
 	if (n > 0 && !r->mark_each)
-		redis_in_mark_range(r, first, last, 0);
+		redis_in_guard_range(r, first, last, 0);
 }
 
 void
 redis_in_batch_end(struct redis_in *r)
 {
-	redis_in_mark(r, "D");
+	redis_in_guard_write(r, "D");
 	r->mark_each = 0;
 	redis_in_trim_flush(r);
 }
@@ -368,7 +279,7 @@ redis_in_apply(struct redis_in *r, struct sid id, const redisReply *fields,
 	const redisReply *pr, *mid, *ts, *sig;
 
 	if (r->mark_each)
-		redis_in_mark_range(r, id, id, redis_in_failures(r, id));
+		redis_in_guard_range(r, id, id, redis_in_guard_failures(r, id));
 	if (auth_signed(r->d->conf, SRC_REDIS)) {
 		/* a signed batch: producer, id, ts, signature beside records
 		 * (frame.h); refused whole or applied whole */
@@ -445,7 +356,7 @@ redis_in_entry(struct redis_in *r, const redisReply *e)
 	}
 	/* A death inside a batch names no entry yet: only one marked
 	 * entry by entry may reach the limit (no innocent neighbours). */
-	failures = redis_in_failures(r, id);
+	failures = redis_in_guard_failures(r, id);
 	if (failures >= r->d->conf->redis_max_deliveries &&
 	    redis_in_sid_cmp(r->suspect, r->suspect_last) == 0) {
 		log_warnx("redis: entry failed to apply %u times (the daemon "
@@ -836,7 +747,7 @@ redis_in_new(struct daemon *d, const char *last_id, char **cause)
 		redis_in_free(r);
 		return NULL;
 	}
-	redis_in_mark_open(r);
+	redis_in_guard_open(r);
 	r->retry_ev = evtimer_new(d->base, redis_in_retry_cb, r);
 	r->fail_ev = event_new(d->base, -1, 0, redis_in_fail_cb, r);
 	r->watchdog_ev = event_new(d->base, -1, EV_PERSIST,
@@ -888,8 +799,7 @@ redis_in_free(struct redis_in *r)
 	free(r->group);
 	free(r->consumer);
 	free(r->dead);
-	if (r->mark_fd != -1)
-		close(r->mark_fd);
+	redis_in_guard_close(r);
 	free(r);
 }
 

@@ -224,4 +224,12 @@ void		 redis_house_info(struct redis_in *);
 /* After connecting: XINFO STREAM, then XGROUP CREATE at the right place. */
 void		 redis_house_setup(struct redis_in *);
 
+/* redis_in_guard.c: the crash-loop guard's file */
+void	redis_in_guard_open(struct redis_in *);
+void	redis_in_guard_close(struct redis_in *);
+void	redis_in_guard_write(struct redis_in *, const char *text);
+void	redis_in_guard_range(struct redis_in *, struct sid, struct sid,
+	    unsigned failures);
+unsigned redis_in_guard_failures(struct redis_in *, struct sid);
+
 #endif
