@@ -72,7 +72,8 @@ struct conf_producer {
  * What an alert output receives ([webhook] kinds, [syslog] kinds,
  * [alertmanager] kinds): a set of alert kinds, each raised alert of those
  * kinds, plus the lifecycle events named. An event reaches an output when
- * both its alert's kind and (for all but raised) its event are chosen.
+ * both its alert's kind and (for all but raised) its event are chosen;
+ * restarted and retired, which belong to no alert, when they are named.
  */
 enum conf_kind {
 	CONF_KIND_HARM = 1 << 0,
@@ -82,9 +83,12 @@ enum conf_kind {
 	CONF_KIND_DRY_RUN = 1 << 4,
 	CONF_KIND_REMINDER = 1 << 5,
 	CONF_KIND_ACKNOWLEDGED = 1 << 6,
-	CONF_KIND_RESOLVED = 1 << 7
+	CONF_KIND_RESOLVED = 1 << 7,
+	/* news that is not an alert: it reaches an output that names it */
+	CONF_KIND_RESTARTED = 1 << 8,	/* a reload restarted a test */
+	CONF_KIND_RETIRED = 1 << 9	/* an experiment was retired */
 };
-#define CONF_KINDS_ALL 0xffu
+#define CONF_KINDS_ALL 0x3ffu
 /* The words of enum conf_kind, bit i = word i, NULL-ended. */
 extern const char *const conf_kind_names[];
 

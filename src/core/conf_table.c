@@ -24,6 +24,7 @@
 #define CONF_STRING_MAX 1024
 #define CONF_IDENT_MAX 48		/* RFC 5424 APP-NAME */
 #define CONF_TOPIC_MAX 249		/* Kafka's limit on a topic name */
+#define CONF_KINDS_WORDS_MAX 160	/* "words of" and every kind word */
 
 _Static_assert(sizeof(enum conf_test) == sizeof(int), "enum stored as int");
 _Static_assert(sizeof(enum conf_harm) == sizeof(int), "enum stored as int");
@@ -46,10 +47,20 @@ const struct conf_section_info conf_sections[S_COUNT] = {
 
 const char *const conf_kind_names[] = {
 	"harm", "safe", "srm", "pause", "pause_dry_run", "reminder",
+	"acknowledged", "resolved", "restarted", "retired", NULL
+};
+/*
+ * Alertmanager takes alerts, which fire and resolve; a restarted test
+ * or a retired experiment is news, not an alert, so its [alertmanager]
+ * kinds stop before the last two words (bit i is still word i).
+ */
+static const char *const conf_am_kind_names[] = {
+	"harm", "safe", "srm", "pause", "pause_dry_run", "reminder",
 	"acknowledged", "resolved", NULL
 };
-#define CONF_KINDS_DEFAULT "harm srm pause pause_dry_run reminder " \
+#define CONF_AM_KINDS_DEFAULT "harm srm pause pause_dry_run reminder " \
 	"acknowledged resolved"
+#define CONF_KINDS_DEFAULT CONF_AM_KINDS_DEFAULT " restarted retired"
 
 
 const char *const conf_tests[] = {
@@ -327,7 +338,8 @@ const struct conf_option conf_options[] = {
 	  "Alertmanager base URL; alerts are POSTed to its /api/v2/alerts; "
 	  "unset: none" },
 	{ S_ALERTMANAGER, "kinds", T_KINDS, C(am_kinds), 0, 0, 0,
-	  CONF_KINDS_DEFAULT, conf_kind_names, "alert kinds and events sent" },
+	  CONF_AM_KINDS_DEFAULT, conf_am_kind_names, "alert kinds and "
+	  "lifecycle events sent (alerts only: not restarted, retired)" },
 	{ S_ALERTMANAGER, "resend", T_DURATION, C(am_resend), 1, 3600, 0,
 	  "1m", NULL, "how often a holding alert is sent again; its endsAt "
 	  "is four of these ahead" },
@@ -444,6 +456,18 @@ conf_table_duration_text(double s, char *buf, size_t size)
 		snprintf(buf, size, "%gms", s * 1000);
 }
 
+/* "words of harm safe ...": o->extra's words, for errors and help. */
+static void
+conf_table_words(const struct conf_option *o, char *buf, size_t size)
+{
+	const char *const *c;
+	size_t len;
+
+	len = (size_t)snprintf(buf, size, "words of");
+	for (c = o->extra; *c != NULL && len < size; c++)
+		len += (size_t)snprintf(buf + len, size - len, " %s", *c);
+}
+
 /* The accepted values in words: used by errors and by conf_help. */
 static void
 conf_table_range_text(const struct conf_option *o, char *buf, size_t size)
@@ -537,8 +561,7 @@ conf_table_range_text(const struct conf_option *o, char *buf, size_t size)
 		    o->max);
 		break;
 	case T_KINDS:
-		snprintf(buf, size, "words of harm safe srm pause "
-		    "pause_dry_run reminder acknowledged resolved");
+		conf_table_words(o, buf, size);
 		break;
 	}
 }
@@ -706,7 +729,7 @@ conf_table_kinds(const struct conf_option *o, char *field, const char *v,
     char **why)
 {
 	const char *const *c;
-	char *copy, *w, *save = NULL;
+	char *copy, *w, *save = NULL, words[CONF_KINDS_WORDS_MAX];
 	uint32_t set = 0, bit;
 	int i;
 
@@ -718,10 +741,10 @@ conf_table_kinds(const struct conf_option *o, char *field, const char *v,
 				break;
 		bit = *c != NULL ? 1u << i : 0;
 		if (bit == 0 || (set & bit) != 0) {
+			conf_table_words(o, words, sizeof words);
 			xasprintf(why, "%s '%.40s': expected %s",
 			    bit == 0 ? "unknown kind" : "kind given twice", w,
-			    "words of harm safe srm pause pause_dry_run "
-			    "reminder acknowledged resolved");
+			    words);
 			free(copy);
 			return -1;
 		}

@@ -1066,3 +1066,18 @@ alert_metrics(struct alert *a, struct evbuffer *b)
 	    "because more than the limit were held.", a->evicted);
 	alert_journal_metrics(a->journal, b);
 }
+
+void
+alert_news(struct alert *a, uint32_t kind, const char *fields,
+    const char *id)
+{
+	const char *word = kind == CONF_KIND_RESTARTED ? "restarted" :
+	    "retired";
+
+	if ((a->d->conf->syslog_kinds & kind) == 0)
+		return;
+	/* No copy on stderr in the foreground: the daemon's log line,
+	 * with the same fields, is already there. */
+	syslog(a->facility | LOG_NOTICE, "event %s %s id=%s", word, fields,
+	    id);
+}

@@ -374,6 +374,10 @@ uint64_t	 alert_journal_seq(const struct alert *);
 void		 alert_journal_done(struct alert *, uint64_t seq);
 json_t		*alert_json(struct alert *);	/* raised alerts */
 void		 alert_metrics(struct alert *, struct evbuffer *);
+/* News that is no alert (kind: CONF_KIND_RESTARTED or _RETIRED) to the
+ * syslog alert lines, when [syslog] kinds names it. */
+void		 alert_news(struct alert *, uint32_t kind, const char *fields,
+		    const char *id);
 
 /* alertmgr.c: what an Alertmanager is told of one alert. */
 struct alert_view {

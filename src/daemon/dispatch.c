@@ -10,7 +10,8 @@
  * Alertmanager) and hands the pause to its receivers. Two findings are
  * events, not alerts: a test a reload restarted (stopcock.test.restarted)
  * and a retired experiment (stopcock.experiment.retired, whose alerts
- * resolve with it); both are logged and sent to every webhook.
+ * resolve with it); both are logged, and sent to the webhooks and the
+ * syslog alert lines whose kinds name them (restarted, retired).
  *
  * Before anything reads or saves the alert state (a checkpoint, an HTTP
  * request, shutdown), dispatch_drain empties the queue synchronously so
@@ -134,12 +135,14 @@ dispatch_raise(struct dispatch *ds, enum alert_kind kind,
 
 /*
  * An event that is not an alert (a test restarted by a reload, an
- * experiment retired): logged, and sent to the webhooks as its own type
- * with an id of its own, so a receiver that deduplicates alerts keeps it.
+ * experiment retired): sent to the webhooks that chose its kind as its
+ * own type with an id of its own, so a receiver that deduplicates alerts
+ * keeps it, and to syslog as an "event" line (fields: the key=value
+ * words of the daemon's log line, then the id).
  */
 static void
 dispatch_event_send(struct dispatch *ds, const struct finding *f,
-    const char *type)
+    const char *type, uint32_t kind, const char *fields)
 {
 	char *s, id[3 + 2 * 16 + 1];
 	json_t *body;
@@ -151,12 +154,14 @@ dispatch_event_send(struct dispatch *ds, const struct finding *f,
 	memcpy(id, "sc_", 3);
 	digest_sha256_hex(s, (size_t)len, 16, id + 3);
 	free(s);
+	if (ds->d->alert != NULL)
+		alert_news(ds->d->alert, kind, fields, id);
 	if (ds->d->webhook == NULL)
 		return;
 	body = finding_json(f);
 	json_object_set_new(body, "id", json_string(id));
 	json_object_set_new(body, "type", json_string(type));
-	webhook_send(ds->d->webhook, 0, id, body);
+	webhook_send(ds->d->webhook, kind, id, body);
 	json_decref(body);
 }
 
@@ -164,11 +169,33 @@ dispatch_event_send(struct dispatch *ds, const struct finding *f,
 static void
 dispatch_restart(struct dispatch *ds, const struct finding *f)
 {
-	log_warnx("test restarted experiment=%s epoch=%u guardrail=%s variant=%s "
+	char *fields;
+
+	xasprintf(&fields, "experiment=%s epoch=%u guardrail=%s variant=%s "
 	    "reason=\"%s\" previous=%s", f->experiment, f->epoch,
 	    f->guardrail ? f->guardrail : "-", f->variant ? f->variant : "-",
 	    f->reason ? f->reason : "-", verdict_name(f->previous));
-	dispatch_event_send(ds, f, "stopcock.test.restarted");
+	log_warnx("test restarted %s", fields);
+	dispatch_event_send(ds, f, "stopcock.test.restarted",
+	    CONF_KIND_RESTARTED, fields);
+	free(fields);
+}
+
+static void
+dispatch_retired(struct dispatch *ds, const struct finding *f)
+{
+	char *fields;
+
+	xasprintf(&fields, "experiment=%s epoch=%u reason=%s", f->experiment,
+	    f->epoch, f->reason ? f->reason : "-");
+	log_info("experiment retired %s", fields);
+	/* its alerts are over: the experiment is gone */
+	if (ds->d->alert != NULL)
+		alert_experiment_resolve(ds->d->alert, f->experiment,
+		    "retired");
+	dispatch_event_send(ds, f, "stopcock.experiment.retired",
+	    CONF_KIND_RETIRED, fields);
+	free(fields);
 }
 
 /* The pause policy decides; a pause is delivered, then alerted. */
@@ -225,13 +252,7 @@ dispatch_one(struct dispatch *ds, const struct finding *f)
 		dispatch_restart(ds, f);
 		break;
 	case FINDING_RETIRED:
-		log_info("experiment retired experiment=%s epoch=%u reason=%s",
-		    f->experiment, f->epoch, f->reason ? f->reason : "-");
-		/* its alerts are over: the experiment is gone */
-		if (ds->d->alert != NULL)
-			alert_experiment_resolve(ds->d->alert, f->experiment,
-			    "retired");
-		dispatch_event_send(ds, f, "stopcock.experiment.retired");
+		dispatch_retired(ds, f);
 		break;
 	}
 }

@@ -64,8 +64,9 @@ dry_run = yes
 [syslog]
 ident = stopcockd-it
 facility = local3
-; safe news too (the default is every kind but safe)
-kinds = harm safe srm pause pause_dry_run reminder acknowledged resolved
+; safe news too (the default is every kind but safe); the retired news,
+; not the restarted
+kinds = harm safe srm pause pause_dry_run reminder acknowledged resolved retired
 """
 LOCAL3 = 19
 SEV = {"crit": 2, "err": 3, "warning": 4, "notice": 5}
@@ -219,6 +220,29 @@ def main():
         status, _ = post(d, "/api/experiments/%s/ack" % EXP,
                          {"guardrail": "declines", "variant": "treatment"})
         tap.eq(status, 400, "a second ack finds nothing raised")
+
+        # Retiring the experiment: one "event retired" line (kinds names
+        # it), notice, with the webhooks' event id; its alerts resolve.
+        def news(word):
+            out = []
+            for raw in log.lines:
+                m = LINE_RE.match(raw.rstrip("\n"))
+                w = m.group(5).split(" ") if m else []
+                if w[:2] == ["event", word]:
+                    out.append((int(m.group(1)), dict(
+                        x.split("=", 1) for x in w[2:] if "=" in x)))
+            return out
+        status, _ = post(d, "/api/experiments/%s/retire" % EXP, {})
+        tap.eq(status, 200, "retire through the API")
+        log.read(lambda l: news("retired"), 5)
+        ev = news("retired")
+        tap.ok(len(ev) == 1 and ev[0][0] == LOCAL3 * 8 + SEV["notice"] and
+               ev[0][1].get("experiment") == EXP and
+               ev[0][1].get("reason") == "operator" and
+               ev[0][1].get("id", "").startswith("sc_"),
+               "one 'event retired' line: local3.notice, the experiment, "
+               "why, an id", repr(ev))
+        tap.ok(not news("restarted"), "nothing restarted")
     log.close()
     tap.done()
 

@@ -11,7 +11,9 @@ harm. Then the operator widens the margin of "errors" and sends SIGHUP:
   - "errors" starts its evidence afresh: the log says "test restarted"
     with the reason, the webhook receiver gets one stopcock.test.restarted
     event (signature checked by the receiver) naming the verdict it held;
-  - the harm alert raised for "errors" is not withdrawn by the reload.
+  - the harm alert raised for "errors" is not withdrawn by the reload;
+  - a second receiver whose kinds do not name "restarted" gets the harm
+    alerts but not the event.
 """
 import http.client
 import json
@@ -67,7 +69,11 @@ def gauge(m, family, guardrail):
 def main():
     tap = Tap()
     rcv = Receiver()
-    extra = "[webhook ops]\nurl = %s\nsecret = %s\n" % (rcv.url, SECRET)
+    quiet = Receiver()
+    extra = ("[webhook ops]\nurl = %s\nsecret = %s\n"
+             "[webhook pager]\nurl = %s\nsecret = %s\n"
+             "kinds = harm srm pause resolved\n" %
+             (rcv.url, SECRET, quiet.url, SECRET))
     with Daemon("reload-verdicts", guardrails=GUARDRAILS, extra=extra,
                 udp=False, unix=False, http=True) as d:
         d.send_tcp(records(3000, 11))
@@ -136,7 +142,13 @@ def main():
                   if a.get("guardrail") == "errors"]
         tap.ok(raised, "the harm alert for errors is still raised", raised)
         tap.ok(d.stop() == 0, "clean stop")
+        types = [(r["json"] or {}).get("type") for r in quiet.requests]
+        tap.ok("stopcock.alert.raised" in types and
+               "stopcock.test.restarted" not in types,
+               "pager (kinds without restarted): the alerts, not the event",
+               types)
     rcv.close()
+    quiet.close()
     tap.done()
 
 

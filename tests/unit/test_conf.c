@@ -549,6 +549,18 @@ static const struct ecase ecases[] = {
 	  "t.conf:2: bad value '1777' for 'unix_mode'" },
 	{ "signature_tolerance zero", "[daemon]\nsignature_tolerance = 0\n",
 	  "t.conf:2: bad value '0' for 'signature_tolerance'" },
+	/* Alertmanager takes alerts: news that is no alert is refused,
+	 * and the error lists what it does take. */
+	{ "alertmanager retired", "[alertmanager]\nkinds = harm retired\n",
+	  "t.conf:2: bad value 'harm retired' for 'kinds' in [alertmanager]: "
+	  "unknown kind 'retired': expected words of harm safe srm pause "
+	  "pause_dry_run reminder acknowledged resolved" },
+	{ "webhook kind twice", "[webhook w]\nurl = http://h.example/\n"
+	  "kinds = restarted harm restarted\n",
+	  "t.conf:3: bad value 'restarted harm restarted' for 'kinds' in "
+	  "[webhook w]: kind given twice 'restarted': expected words of harm "
+	  "safe srm pause pause_dry_run reminder acknowledged resolved "
+	  "restarted retired" },
 };
 
 static void
@@ -741,6 +753,22 @@ test_webhooks(void **state)
 	assert_int_equal(c->webhooks[0].max_attempts, 1);
 	assert_int_equal(c->webhooks[0].queue, 1000000);
 	assert_string_equal(c->webhooks[1].secret, "whsec_YWI=");
+	/* The default: everything but safe, news included, except for
+	 * Alertmanager, which takes alerts only. */
+	assert_int_equal(c->webhooks[0].kinds, CONF_KINDS_ALL &
+	    ~(uint32_t)CONF_KIND_SAFE);
+	assert_int_equal(c->syslog_kinds, CONF_KINDS_ALL &
+	    ~(uint32_t)CONF_KIND_SAFE);
+	assert_int_equal(c->am_kinds, CONF_KINDS_ALL &
+	    ~(uint32_t)(CONF_KIND_SAFE | CONF_KIND_RESTARTED |
+	    CONF_KIND_RETIRED));
+	conf_free(c);
+
+	c = good("[webhook a]\nurl = https://h.example/a\n"
+	    "kinds = harm retired\n[syslog]\nkinds = restarted\n");
+	assert_int_equal(c->webhooks[0].kinds, CONF_KIND_HARM |
+	    CONF_KIND_RETIRED);
+	assert_int_equal(c->syslog_kinds, CONF_KIND_RESTARTED);
 	conf_free(c);
 }
 
