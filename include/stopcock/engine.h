@@ -156,7 +156,34 @@ struct engine;
 /* hashkey seeds the SipHash tables; the conf is copied (not borrowed). */
 struct engine	*engine_new(const struct conf *, const uint8_t hashkey[16]);
 void		 engine_free(struct engine *);
+/*
+ * An engine for a shard of the experiments (a Kafka partition, or the
+ * main engine of a daemon whose records all come from Kafka): an
+ * experiment planned in the configuration is planned here when its
+ * first record arrives, not at creation, so it lives only in the shard
+ * its records reach and not as an empty copy in every other. (Retired,
+ * it comes back with its next record, as it would at a start.)
+ */
+struct engine	*engine_new_shard(const struct conf *,
+		    const uint8_t hashkey[16]);
 void		 engine_set_sink(struct engine *, engine_sink, void *arg);
+
+/*
+ * A cap on experiments that several engines share (a daemon's Kafka
+ * partitions have an engine each): a new experiment is refused
+ * (ENGINE_E_EXPERIMENTS) when the pool holds max, as when the engine
+ * itself holds max_experiments, so hostile keys spread over many
+ * partitions cannot multiply the bound. The owner keeps the pool and
+ * sets max; an engine counts its experiments in it from engine_set_pool
+ * until engine_set_pool(eng, NULL) or engine_free. Experiments an engine
+ * already holds when it joins stay (a restored state is never cut), so
+ * used may exceed max until some retire.
+ */
+struct engine_pool {
+	uint32_t	 used;
+	uint32_t	 max;
+};
+void		 engine_set_pool(struct engine *, struct engine_pool *);
 /* Swap the configuration (guardrails, alpha, caps) keeping tallies;
  * tests whose guardrail changed restart. */
 int		 engine_reconfigure(struct engine *, const struct conf *,
@@ -242,6 +269,9 @@ json_t		*engine_json_tuning(const struct engine *);
 json_t		*engine_save(const struct engine *);
 struct engine	*engine_restore(const struct conf *, const uint8_t hashkey[16],
 		    const json_t *, char **cause);
+/* The same into an engine_new_shard. */
+struct engine	*engine_restore_shard(const struct conf *,
+		    const uint8_t hashkey[16], const json_t *, char **cause);
 
 const char	*verdict_name(enum verdict);
 /*

@@ -612,6 +612,8 @@ engine_exp_new(struct engine *eng, const char *id,
 	nmap_put(eng->index, e->id, strlen(e->id), eng->nexps);
 	eng->exps[eng->nexps++] = e;
 	eng->counters.experiments = eng->nexps;
+	if (eng->pool != NULL)
+		eng->pool->used++;
 	return e;
 }
 
@@ -790,7 +792,8 @@ apply_plan(struct engine *eng, const struct proto_arm *arms, int narms,
 	if ((uint32_t)narms > eng->conf->max_variants)
 		return ENGINE_E_VARIANTS;
 	if ((e = exp_find(eng, id)) == NULL) {
-		if (eng->nexps >= eng->conf->max_experiments)
+		if (eng->nexps >= eng->conf->max_experiments ||
+		    (eng->pool != NULL && eng->pool->used >= eng->pool->max))
 			return ENGINE_E_EXPERIMENTS;
 		if (family == NULL && (ce = conf_experiment_find(eng->conf,
 		    id)) != NULL && ce->guardrails != NULL)
@@ -821,7 +824,7 @@ engine_emit(struct engine *eng, const struct finding *f)
 /* ---- the engine ---- */
 
 struct engine *
-engine_new(const struct conf *conf, const uint8_t hashkey[16])
+engine_make(const struct conf *conf, const uint8_t hashkey[16], int shard)
 {
 	struct engine *eng;
 	const struct conf_experiment *ce;
@@ -830,9 +833,10 @@ engine_new(const struct conf *conf, const uint8_t hashkey[16])
 	eng = xcalloc(1, sizeof *eng);
 	eng->conf = conf_dup(conf);
 	eng->clock = NAN;
+	eng->shard = shard;
 	memcpy(eng->key, hashkey, sizeof eng->key);
 	eng->index = nmap_new(eng->key);
-	for (i = 0; i < conf->nexperiments; i++) {
+	for (i = 0; !shard && i < conf->nexperiments; i++) {
 		ce = &conf->experiments[i];
 		if (ce->narms >= 2 && exp_find(eng, ce->id) == NULL &&
 		    eng->nexps < eng->conf->max_experiments)
@@ -842,6 +846,36 @@ engine_new(const struct conf *conf, const uint8_t hashkey[16])
 	return eng;
 }
 
+struct engine *
+engine_new(const struct conf *conf, const uint8_t hashkey[16])
+{
+	return engine_make(conf, hashkey, 0);
+}
+
+struct engine *
+engine_new_shard(const struct conf *conf, const uint8_t hashkey[16])
+{
+	return engine_make(conf, hashkey, 1);
+}
+
+/* A shard plans a configured experiment when its first record comes. */
+static struct experiment *
+exp_find_or_configured(struct engine *eng, const char *id, double now,
+    enum engine_reject *rc)
+{
+	const struct conf_experiment *ce;
+	struct experiment *e;
+
+	if ((e = exp_find_recent(eng, id)) != NULL || !eng->shard ||
+	    (ce = conf_experiment_find(eng->conf, id)) == NULL ||
+	    ce->narms < 2)
+		return e;
+	if ((*rc = apply_plan(eng, ce->arms, ce->narms, ce->id, NULL,
+	    now)) != ENGINE_OK)
+		return NULL;
+	return exp_find_recent(eng, id);
+}
+
 void
 engine_free(struct engine *eng)
 {
@@ -849,6 +883,7 @@ engine_free(struct engine *eng)
 
 	if (eng == NULL)
 		return;
+	engine_set_pool(eng, NULL);
 	for (i = 0; i < eng->nexps; i++)
 		engine_exp_free(eng->exps[i]);
 	free(eng->exps);
@@ -867,6 +902,16 @@ engine_set_sink(struct engine *eng, engine_sink sink, void *arg)
 {
 	eng->sink = sink;
 	eng->sink_arg = arg;
+}
+
+void
+engine_set_pool(struct engine *eng, struct engine_pool *pool)
+{
+	if (eng->pool != NULL)
+		eng->pool->used -= eng->nexps;
+	eng->pool = pool;
+	if (pool != NULL)
+		pool->used += eng->nexps;
 }
 
 /*
@@ -1271,8 +1316,10 @@ engine_apply(struct engine *eng, const struct record *r, double now,
 		    r->has_ts && r->ts < now ? r->ts : now);
 		goto done;
 	}
-	if ((e = exp_find_recent(eng, r->experiment)) == NULL) {
-		rc = ENGINE_E_UNPLANNED;
+	if ((e = exp_find_or_configured(eng, r->experiment, now, &rc)) ==
+	    NULL) {
+		if (rc == ENGINE_OK)
+			rc = ENGINE_E_UNPLANNED;
 		goto done;
 	}
 	if (r->untrusted && untrusted_refused(eng, r, e)) {
@@ -1584,6 +1631,8 @@ engine_retire(struct engine *eng, const char *id, const char *why, double now,
 	nmap_del(eng->index, id, strlen(id));
 	engine_exp_free(e);
 	eng->exps[slot] = eng->exps[--eng->nexps];
+	if (eng->pool != NULL)
+		eng->pool->used--;
 	if (slot < eng->nexps)
 		nmap_put(eng->index, eng->exps[slot]->id,
 		    strlen(eng->exps[slot]->id), slot);

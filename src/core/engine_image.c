@@ -1018,6 +1018,8 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 		engine_exp_free(eng->exps[slot]);
 		eng->recent = NULL;
 		eng->exps[slot] = eng->exps[--eng->nexps];
+		if (eng->pool != NULL)
+			eng->pool->used--;
 		nmap_del(eng->index, id, strlen(id));
 		if (slot < eng->nexps)
 			nmap_put(eng->index, eng->exps[slot]->id,
@@ -1027,9 +1029,9 @@ exp_restore(struct engine *eng, const json_t *o, char **cause)
 	return exp_fill(eng, e, o, cause);
 }
 
-struct engine *
-engine_restore(const struct conf *conf, const uint8_t hashkey[16],
-    const json_t *state, char **cause)
+static struct engine *
+engine_restore_as(const struct conf *conf, const uint8_t hashkey[16],
+    const json_t *state, int shard, char **cause)
 {
 	struct engine *eng;
 	const json_t *a, *v, *c;
@@ -1053,7 +1055,7 @@ engine_restore(const struct conf *conf, const uint8_t hashkey[16],
 		xasprintf(cause, "engine state without experiments");
 		return NULL;
 	}
-	eng = engine_new(conf, hashkey);
+	eng = engine_make(conf, hashkey, shard);
 	json_array_foreach(a, i, v) {
 		if (eng->nexps >= eng->conf->max_experiments) {
 			xasprintf(cause, "state holds more experiments than "
@@ -1079,4 +1081,18 @@ engine_restore(const struct conf *conf, const uint8_t hashkey[16],
 	eng->counters.findings = (uint64_t)json_integer_value(
 	    json_object_get(c, "findings"));
 	return eng;
+}
+
+struct engine *
+engine_restore(const struct conf *conf, const uint8_t hashkey[16],
+    const json_t *state, char **cause)
+{
+	return engine_restore_as(conf, hashkey, state, 0, cause);
+}
+
+struct engine *
+engine_restore_shard(const struct conf *conf, const uint8_t hashkey[16],
+    const json_t *state, char **cause)
+{
+	return engine_restore_as(conf, hashkey, state, 1, cause);
 }

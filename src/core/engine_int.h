@@ -292,6 +292,8 @@ struct engine {
 	struct nmap	*index;		/* id -> slot in exps */
 	struct experiment **exps;
 	uint32_t	 nexps, capexps;
+	struct engine_pool *pool;	/* shared cap, NULL none; not ours */
+	int		 shard;		/* configured plans on first record */
 	engine_sink	 sink;
 	void		*sink_arg;
 	struct engine_counters counters;
@@ -388,5 +390,9 @@ double		 verdict_level(const struct experiment *);
 /* pause_alpha, or a tenth of the alpha, split over the family */
 double		 verdict_pause_level(const struct engine *,
 		    const struct experiment *);
+
+/* engine.c: a new engine; shard: engine_new_shard's, else engine_new's. */
+struct engine	*engine_make(const struct conf *, const uint8_t hashkey[16],
+		    int shard);
 
 #endif

@@ -658,7 +658,9 @@ ckpt_restore_state(struct daemon *d, const char *path, json_t *root,
 		xasprintf(cause, "%s: no engine state", path);
 		return -1;
 	}
-	neng = engine_restore(d->conf, d->hashkey, v, &why);
+	neng = d->conf->kafka_brokers != NULL ?
+	    engine_restore_shard(d->conf, d->hashkey, v, &why) :
+	    engine_restore(d->conf, d->hashkey, v, &why);
 	if (neng == NULL) {
 		xasprintf(cause, "%s: engine state refused: %s", path,
 		    why != NULL ? why : "unknown error");

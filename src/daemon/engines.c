@@ -8,6 +8,12 @@
  * (the API, /metrics, the tick, reload, retirement) goes through the
  * list here, so it sees every engine without knowing where they came
  * from. Index 0 is always d->engine.
+ *
+ * The partitions' engines share one engine_pool, so max_experiments
+ * bounds the experiments of all of them together, not each: keys spread
+ * over many partitions cannot multiply the memory a daemon holds.
+ * (d->engine, which then holds only plans made over HTTP, keeps its own
+ * max_experiments.)
  */
 #include <stdlib.h>
 #include <string.h>
@@ -21,6 +27,7 @@ struct engines {
 	struct engine	**e;
 	size_t		  n;
 	size_t		  cap;
+	struct engine_pool pool;	/* the partitions' engines' */
 };
 
 struct engines *
@@ -52,6 +59,8 @@ engines_add(struct daemon *d, struct engine *e)
 	}
 	es->e[es->n++] = e;
 	engine_set_sink(e, dispatch_finding, d->dispatch);
+	es->pool.max = d->conf->max_experiments;
+	engine_set_pool(e, &es->pool);
 }
 
 void
@@ -64,6 +73,7 @@ engines_remove(struct daemon *d, struct engine *e)
 	dispatch_drain(d->dispatch);
 	for (i = 0; i < es->n; i++)
 		if (es->e[i] == e) {
+			engine_set_pool(e, NULL);
 			memmove(es->e + i, es->e + i + 1,
 			    (es->n - i - 1) * sizeof *es->e);
 			es->n--;
@@ -165,6 +175,7 @@ engines_reconfigure(struct daemon *d, const struct conf *nc, char **cause)
 
 	if (engine_reconfigure(d->engine, nc, cause) != 0)
 		return -1;
+	d->engines->pool.max = nc->max_experiments;
 	for (i = 1; (e = engines_at(d, i)) != NULL; i++)
 		if (engine_reconfigure(e, nc, &why) != 0) {
 			log_warnx("reload: a partition's engine kept its "

@@ -364,6 +364,19 @@ kafka_signed(struct kafka_in *k, rd_kafka_message_t *m)
 	    sigl, m->payload, m->len);
 }
 
+/* Keys the owned partitions carry, all together (a new key costs a walk
+ * over the partitions; a known one nothing). */
+static size_t
+kafka_keys(const struct kafka_in *k)
+{
+	size_t i, n = 0;
+
+	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++)
+		if (k->parts[i] != NULL)
+			n += json_object_size(k->parts[i]->keys);
+	return n;
+}
+
 static void
 kafka_message(struct kafka_in *k, rd_kafka_message_t *m)
 {
@@ -403,9 +416,10 @@ kafka_message(struct kafka_in *k, rd_kafka_message_t *m)
 		    m->payload, 80);
 		return;
 	}
-	/* bounded like the engine: a key per message must not grow it */
+	/* bounded like the engines, across the partitions: a new key per
+	 * message must not grow it */
 	if (json_object_getn(p->keys, m->key, m->key_len) == NULL &&
-	    json_object_size(p->keys) < k->d->conf->max_experiments)
+	    kafka_keys(k) < k->d->conf->max_experiments)
 		json_object_setn_new(p->keys, m->key, m->key_len, json_true());
 	/* The same door as a Redis entry; the differences are ours. */
 	before = *ic;

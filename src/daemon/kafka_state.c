@@ -498,7 +498,7 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		p->next = -1;
 		p->committed = -1;
 		p->state = KP_RUNNING;
-		p->eng = engine_new(k->d->conf, k->d->hashkey);
+		p->eng = engine_new_shard(k->d->conf, k->d->hashkey);
 		engines_add(k->d, p->eng);
 		return;
 	}
@@ -528,7 +528,7 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		    "or a broker that keeps no transactional offsets, as the "
 		    "mock cluster); resuming from the state's partition=%"
 		    PRId32 " next=%" PRId64, p->id, next);
-	if ((p->eng = engine_restore(k->d->conf, k->d->hashkey,
+	if ((p->eng = engine_restore_shard(k->d->conf, k->d->hashkey,
 	    json_object_get(state, "engine"), &cause)) == NULL) {
 		kafka_state_refuse(k, p, KR_BAD_STATE, "its state does not "
 		    "restore", cause);

@@ -541,8 +541,12 @@ daemon_start(struct daemon *d)
 		    "the file away to start afresh)", cause);
 	if (alert_start_journal(d->alert, d->state_dir, &cause) != 0)
 		daemon_fatal(d, SC_EX_OSERR, "alerts: %s", cause);
+	/* Under Kafka the partitions' engines hold the experiments; the
+	 * main one only plans made over HTTP, no copies of the configured. */
 	if (d->engine == NULL)
-		d->engine = engine_new(d->conf, d->hashkey);
+		d->engine = d->conf->kafka_brokers != NULL ?
+		    engine_new_shard(d->conf, d->hashkey) :
+		    engine_new(d->conf, d->hashkey);
 	engine_set_sink(d->engine, dispatch_finding, d->dispatch);
 
 	d->http = http_new(d, &cause);

@@ -710,6 +710,72 @@ feed_from(struct engine *eng, int untrusted, double now, uint64_t ev,
 	return engine_apply(eng, &r, now, ev);
 }
 
+/*
+ * Shards (a daemon's Kafka partitions): a configured experiment is
+ * planned by its first record, not in every shard at creation; shards
+ * sharing an engine_pool hold max experiments together, and an engine
+ * that leaves the pool gives its count back.
+ */
+static void
+test_shard_pool(void **state)
+{
+	static const char *text = "[experiment planned]\n"
+	    "plan = control=50 b=50\n";
+	struct conf *c = load(text);
+	uint8_t key[16] = { 4 };
+	struct engine_pool pool = { 0, 3 };
+	struct engine *plain, *s1, *s2;
+	struct engine_counters ec;
+	json_t *st;
+
+	plain = engine_new(c, key);
+	s1 = engine_new_shard(c, key);
+	s2 = engine_new_shard(c, key);
+	engine_counters(plain, &ec);
+	assert_int_equal(ec.experiments, 1);	/* planned at creation */
+	engine_counters(s1, &ec);
+	assert_int_equal(ec.experiments, 0);	/* not in a shard */
+	engine_set_pool(s1, &pool);
+	engine_set_pool(s2, &pool);
+	assert_int_equal(feed_from(s1, 0, 10, 1, "expose planned b"),
+	    ENGINE_OK);
+	engine_counters(s1, &ec);
+	assert_int_equal(ec.experiments, 1);	/* its first record planned it */
+	assert_int_equal(feed_from(s1, 0, 10, 2, "expose stranger b"),
+	    ENGINE_E_UNPLANNED);		/* only configured ones */
+	assert_int_equal(feed_from(s2, 0, 10, 3, "plan x1 a=50 b=50"),
+	    ENGINE_OK);
+	assert_int_equal(feed_from(s1, 0, 10, 4, "plan x2 a=50 b=50"),
+	    ENGINE_OK);
+	assert_int_equal(pool.used, 3);
+	/* full across the two: a third shard experiment is refused */
+	assert_int_equal(feed_from(s2, 0, 10, 5, "plan x3 a=50 b=50"),
+	    ENGINE_E_EXPERIMENTS);
+	/* nor may s2 plan the configured one (s1 holds it) */
+	assert_int_equal(feed_from(s2, 0, 10, 6, "expose planned b"),
+	    ENGINE_E_EXPERIMENTS);
+	assert_int_equal(pool.used, 3);
+	engine_counters(s2, &ec);
+	assert_int_equal(ec.experiments, 1);
+	/* a shard restored from its image is still a shard */
+	st = engine_save(s1);
+	engine_set_pool(s1, NULL);
+	assert_int_equal(pool.used, 1);
+	engine_free(s1);
+	s1 = engine_restore_shard(c, key, st, &(char *){ NULL });
+	assert_non_null(s1);
+	json_decref(st);
+	engine_counters(s1, &ec);
+	assert_int_equal(ec.experiments, 2);	/* planned and x2, no more */
+	engine_set_pool(s1, &pool);
+	assert_int_equal(pool.used, 3);
+	engine_free(s1);			/* leaves the pool */
+	engine_free(s2);
+	assert_int_equal(pool.used, 0);
+	engine_free(plain);
+	conf_free(c);
+}
+
 static long long
 untrusted_of(const struct engine *eng, const char *id)
 {
@@ -1612,6 +1678,7 @@ main(void)
 		    setup, teardown),
 		cmocka_unit_test(test_quantile_outliers),
 		cmocka_unit_test(test_untrusted),
+		cmocka_unit_test(test_shard_pool),
 	};
 
 	return cmocka_run_group_tests(tests, NULL, NULL);
