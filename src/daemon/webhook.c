@@ -3,13 +3,10 @@
  * driven by the daemon's libevent loop, so no call here ever blocks on
  * the network. One receiver per [webhook NAME], plus an internal receiver
  * for the pause URL (pause.c posts through webhook_post). Each delivery
- * is spooled to <state_dir>/spool/<receiver>/ before it is attempted and
- * deleted once the receiver answers 2xx, so an outage or a restart loses
- * nothing. A spooled delivery is retried until the receiver takes it: the
- * spool per receiver is bounded by bytes and by entries, and when it is
- * full the oldest info alert goes (logged, counted); harm, SRM, pause and
- * anything without a severity are never dropped, they are kept beyond
- * the bound (counted as overfull) rather than lost.
+ * is spooled before it is attempted and deleted once the receiver
+ * answers 2xx (webhook_spool.c: the queue, its files and its bound), so
+ * an outage or a restart loses nothing; a spooled delivery is retried
+ * until the receiver takes it.
  *
  * Signing follows the Standard Webhooks specification: the secret is
  * "whsec_" + base64 key bytes; webhook-signature is "v1," +
@@ -28,12 +25,8 @@
  * Any other answer (4xx, 3xx) is final: counted as failed and dropped.
  */
 #include <sys/queue.h>
-#include <sys/stat.h>
 #include <sys/types.h>
 
-#include <dirent.h>
-#include <errno.h>
-#include <fcntl.h>
 #include <inttypes.h>
 #include <math.h>
 #include <stdio.h>
@@ -46,84 +39,7 @@
 
 #include "stopcock/log.h"
 #include "stopcock/sign.h"
-#include "daemon.h"
-
-#define WEBHOOK_INFLIGHT_MAX	4	/* requests per healthy receiver */
-#define WEBHOOK_BACKOFF_BASE	1.0	/* seconds */
-#define WEBHOOK_BACKOFF_CAP	300.0
-#define WEBHOOK_TIMEOUT		10.0	/* when the config gives none */
-#define WEBHOOK_PROBE		5.0	/* seconds, when not configured */
-#define WEBHOOK_SPOOL_BYTES	(64u * 1024 * 1024)
-#define WEBHOOK_QUEUE		1000
-#define WEBHOOK_SPOOL_MAX	(1024 * 1024)	/* bytes of one spool file */
-#define WEBHOOK_REPLY_MAX	256	/* bytes of an answer kept for logs */
-
-struct receiver;
-
-struct delivery {
-	TAILQ_ENTRY(delivery)	 entry;
-	struct receiver		*rcv;
-	uint64_t		 seq;
-	char			*id;
-	char			*body;
-	size_t			 len;
-	char			*path;		/* spool file, NULL if none */
-	char			*experiment;	/* the body's, NULL if none */
-	int			 attempts;
-	int			 info;		/* severity info: droppable */
-	CURL			*easy;
-	struct curl_slist	*headers;
-	char			 error[CURL_ERROR_SIZE];
-	char			 reply[WEBHOOK_REPLY_MAX + 1];
-	size_t			 replylen;
-};
-TAILQ_HEAD(deliveries, delivery);
-
-struct receiver {
-	struct webhook		*w;
-	char			*name;
-	char			*url;
-	char			*spool;		/* directory, NULL: memory only */
-	unsigned char		 key[SIGN_KEY_MAX];
-	size_t			 keylen;
-	int			 sign;
-	int			 internal;	/* not reached by webhook_send */
-	uint32_t		 kinds;		/* what webhook_send brings */
-	double			 timeout;
-	int			 max_attempts;	/* <= 0: unlimited */
-	int			 supersede;	/* a later post repeats it */
-	uint32_t		 queue_max;
-	double			 backoff_cap;
-	double			 probe;
-	uint64_t		 spool_max;	/* bytes of bodies held */
-	uint64_t		 spool_used;
-
-	struct deliveries	 waiting;	/* oldest first */
-	struct deliveries	 inflight;
-	uint32_t		 nwaiting;
-	uint32_t		 ninflight;
-	uint32_t		 failing;	/* consecutive retryable failures */
-	double			 next_try;	/* wall time */
-	struct event		*wake;
-
-	uint64_t		 sent;
-	uint64_t		 failed;
-	uint64_t		 dropped;
-	uint64_t		 overfull;	/* kept beyond the bound */
-	uint64_t		 retries;
-	uint64_t		 spool_errors;
-};
-
-struct webhook {
-	struct daemon		*d;
-	CURLM			*multi;
-	struct event		*timer;
-	struct receiver		**rcv;
-	int			 nrcv;
-	uint64_t		 seq;
-};
-
-static void	webhook_kick(struct receiver *);
+#include "webhook_int.h"
 
 /*
  * Full jitter: uniform in [0, min(cap, base * 2^(failures - 1))]; once
@@ -146,7 +62,7 @@ webhook_backoff(const struct receiver *r)
 	return ceiling * ((double)u / 4294967296.0);
 }
 
-static void
+void
 webhook_delivery_free(struct delivery *dl)
 {
 	if (dl->easy != NULL) {
@@ -160,120 +76,6 @@ webhook_delivery_free(struct delivery *dl)
 	free(dl->path);
 	free(dl->experiment);
 	free(dl);
-}
-
-/* The delivery is settled (sent, failed or dropped): forget its spool. */
-static void
-webhook_unspool(struct delivery *dl)
-{
-	if (dl->path != NULL && unlink(dl->path) == -1 && errno != ENOENT)
-		log_warn("webhook: unlink %s", dl->path);
-}
-
-/* The delivery's spool file, written durably before any attempt. */
-static int
-webhook_spool_write(struct receiver *r, struct delivery *dl)
-{
-	json_t *j;
-	char *text, *path, *cause = NULL;
-	const char *parts[1];
-	size_t lens[1];
-
-	j = json_pack("{s:s, s:s%, s:s, s:I, s:b}", "id", dl->id, "body",
-	    dl->body, dl->len, "receiver", r->name, "seq", (json_int_t)dl->seq,
-	    "info", dl->info);
-	if (j == NULL)
-		return -1;
-	text = json_dumps(j, JSON_COMPACT);
-	json_decref(j);
-	if (text == NULL)
-		return -1;
-	xasprintf(&path, "%s/%016" PRIx64 ".json", r->spool, dl->seq);
-	parts[0] = text;
-	lens[0] = strlen(text);
-	if (durable_write(r->spool, path, parts, lens, 1, 0600, &cause) != 0) {
-		log_warnx("webhook: spool: %s", cause);
-		free(cause);
-		free(text);
-		free(path);
-		return -1;
-	}
-	free(text);
-	dl->path = path;
-	return 0;
-}
-
-static int
-webhook_full(const struct receiver *r, const struct delivery *dl)
-{
-	return r->nwaiting + r->ninflight >= r->queue_max ||
-	    r->spool_used + dl->len > r->spool_max;
-}
-
-/*
- * Room for the new delivery dl (not yet queued): drop the oldest waiting
- * info alerts while the spool is full. With none left, a new info alert
- * is itself dropped (-1); anything else is kept beyond the bound, since
- * losing a harm, SRM or pause alert is worse than a fuller disk.
- */
-static int
-webhook_make_room(struct receiver *r, struct delivery *dl)
-{
-	struct delivery *old;
-
-	while (webhook_full(r, dl)) {
-		TAILQ_FOREACH(old, &r->waiting, entry)
-			if (old->info)
-				break;
-		if (old != NULL) {
-			TAILQ_REMOVE(&r->waiting, old, entry);
-			r->nwaiting--;
-		} else {
-			/* An attempt under way is cancelled with its handle. */
-			TAILQ_FOREACH(old, &r->inflight, entry)
-				if (old->info)
-					break;
-			if (old == NULL)
-				break;
-			TAILQ_REMOVE(&r->inflight, old, entry);
-			r->ninflight--;
-		}
-		r->dropped++;
-		log_warnx("webhook: spool full, dropped oldest info alert "
-		    "receiver=%s id=%s queue=%u bytes=%" PRIu64, r->name,
-		    old->id, r->nwaiting + r->ninflight, r->spool_used);
-		webhook_unspool(old);
-		webhook_delivery_free(old);
-	}
-	if (!webhook_full(r, dl))
-		return 0;
-	if (dl->info) {
-		r->dropped++;
-		log_warnx("webhook: spool full, dropped new info alert "
-		    "receiver=%s id=%s", r->name, dl->id);
-		return -1;
-	}
-	r->overfull++;
-	log_warnx("webhook: spool full, kept beyond the bound receiver=%s "
-	    "id=%s queue=%u bytes=%" PRIu64, r->name, dl->id,
-	    r->nwaiting + r->ninflight, r->spool_used);
-	return 0;
-}
-
-/* Insert by seq so spool loading and re-queued retries keep the order. */
-static void
-webhook_enqueue(struct receiver *r, struct delivery *dl)
-{
-	struct delivery *at;
-
-	TAILQ_FOREACH(at, &r->waiting, entry)
-		if (at->seq > dl->seq)
-			break;
-	if (at != NULL)
-		TAILQ_INSERT_BEFORE(at, dl, entry);
-	else
-		TAILQ_INSERT_TAIL(&r->waiting, dl, entry);
-	r->nwaiting++;
 }
 
 static size_t
@@ -378,7 +180,7 @@ webhook_retry(struct receiver *r, struct delivery *dl, double retry_after)
 		r->failed++;
 		log_warnx("webhook: giving up receiver=%s id=%s attempts=%d",
 		    r->name, dl->id, dl->attempts);
-		webhook_unspool(dl);
+		webhook_spool_forget(dl);
 		webhook_delivery_free(dl);
 		return;
 	}
@@ -390,7 +192,7 @@ webhook_retry(struct receiver *r, struct delivery *dl, double retry_after)
 		    retry_after;
 	if (now + delay > r->next_try)
 		r->next_try = now + delay;
-	webhook_enqueue(r, dl);
+	webhook_spool_insert(r, dl);
 }
 
 static void
@@ -422,7 +224,7 @@ webhook_done(struct webhook *w, CURL *e, CURLcode rc)
 		r->next_try = 0;
 		log_debug("webhook: sent receiver=%s id=%s status=%ld "
 		    "attempts=%d", r->name, dl->id, status, dl->attempts);
-		webhook_unspool(dl);
+		webhook_spool_forget(dl);
 		webhook_delivery_free(dl);
 	} else if (rc != CURLE_OK) {
 		log_warnx("webhook: attempt failed receiver=%s id=%s "
@@ -431,7 +233,7 @@ webhook_done(struct webhook *w, CURL *e, CURLcode rc)
 		if (rc == CURLE_URL_MALFORMAT ||
 		    rc == CURLE_UNSUPPORTED_PROTOCOL) {
 			r->failed++;
-			webhook_unspool(dl);
+			webhook_spool_forget(dl);
 			webhook_delivery_free(dl);
 		} else
 			webhook_retry(r, dl, 0);
@@ -447,7 +249,7 @@ webhook_done(struct webhook *w, CURL *e, CURLcode rc)
 		r->next_try = 0;
 		log_warnx("webhook: refused receiver=%s id=%s status=%ld "
 		    "reply=\"%.80s\"", r->name, dl->id, status, dl->reply);
-		webhook_unspool(dl);
+		webhook_spool_forget(dl);
 		webhook_delivery_free(dl);
 	}
 	webhook_kick(r);
@@ -556,7 +358,7 @@ webhook_wake_event(evutil_socket_t fd, short what, void *arg)
 }
 
 /* Start what may start now; otherwise arm the wake timer. */
-static void
+void
 webhook_kick(struct receiver *r)
 {
 	struct delivery *dl;
@@ -591,145 +393,6 @@ webhook_kick(struct receiver *r)
 	}
 }
 
-/* The experiment a body (an alert or a pause) is about, or NULL. */
-static char *
-webhook_experiment(const char *body, size_t len)
-{
-	json_t *j = json_loadb(body, len, 0, NULL);
-	const char *e = json_string_value(json_object_get(j, "experiment"));
-	char *out = e != NULL ? xstrdup(e) : NULL;
-
-	json_decref(j);
-	return out;
-}
-
-static void
-webhook_queue(struct receiver *r, const char *id, const char *body,
-    size_t len, int info)
-{
-	struct delivery *dl;
-
-	dl = xcalloc(1, sizeof *dl);
-	dl->rcv = r;
-	dl->seq = r->w->seq++;
-	dl->id = xstrdup(id);
-	dl->experiment = webhook_experiment(body, len);
-	dl->body = xmalloc(len + 1);
-	memcpy(dl->body, body, len);
-	dl->body[len] = '\0';
-	dl->len = len;
-	dl->info = info;
-	if (webhook_make_room(r, dl) == -1) {
-		dl->len = 0;	/* never counted in spool_used */
-		webhook_delivery_free(dl);
-		return;
-	}
-	r->spool_used += len;
-	if (r->spool != NULL && webhook_spool_write(r, dl) == -1)
-		r->spool_errors++;
-	webhook_enqueue(r, dl);
-	webhook_kick(r);
-}
-
-/* Read one spool file back; a damaged file is kept aside, not lost. */
-static void
-webhook_spool_load_one(struct receiver *r, const char *path, uint64_t seq)
-{
-	struct delivery *dl;
-	json_error_t err;
-	json_t *j;
-	const char *id = NULL, *body = NULL;
-	size_t len = 0;
-	int info = 0;
-	char *bad;
-
-	/* "info" is absent from files written before the spool had a
-	 * bound: such an entry is kept like a harm alert. */
-	j = json_load_file(path, 0, &err);
-	if (j == NULL || json_unpack(j, "{s:s, s:s%, s?b}", "id", &id, "body",
-	    &body, &len, "info", &info) == -1 || strlen(id) == 0 ||
-	    strlen(id) > 128) {
-		xasprintf(&bad, "%s.bad", path);
-		log_warnx("webhook: damaged spool file %s kept as %s", path,
-		    bad);
-		if (rename(path, bad) == -1)
-			log_warn("webhook: rename %s", path);
-		free(bad);
-		r->spool_errors++;
-		json_decref(j);
-		return;
-	}
-	dl = xcalloc(1, sizeof *dl);
-	dl->rcv = r;
-	dl->seq = seq;
-	dl->id = xstrdup(id);
-	dl->body = xmalloc(len + 1);
-	memcpy(dl->body, body, len);
-	dl->body[len] = '\0';
-	dl->len = len;
-	dl->path = xstrdup(path);
-	dl->info = info;
-	dl->experiment = webhook_experiment(body, len);
-	json_decref(j);
-	if (seq >= r->w->seq)
-		r->w->seq = seq + 1;
-	if (webhook_make_room(r, dl) == -1) {
-		webhook_unspool(dl);
-		dl->len = 0;
-		webhook_delivery_free(dl);
-		return;
-	}
-	r->spool_used += len;
-	webhook_enqueue(r, dl);
-}
-
-static void
-webhook_spool_load(struct receiver *r)
-{
-	DIR *dir;
-	struct dirent *de;
-	struct stat st;
-	char *path, *end;
-	uint64_t seq;
-	size_t n = 0;
-
-	if ((dir = opendir(r->spool)) == NULL) {
-		log_warn("webhook: opendir %s", r->spool);
-		return;
-	}
-	while ((de = readdir(dir)) != NULL) {
-		if (de->d_name[0] == '.')
-			continue;
-		xasprintf(&path, "%s/%s", r->spool, de->d_name);
-		if (strlen(de->d_name) == 16 + 9 &&
-		    strcmp(de->d_name + 16, ".json.tmp") == 0) {
-			/* A write that never completed: nothing was sent. */
-			unlink(path);
-			free(path);
-			continue;
-		}
-		errno = 0;
-		seq = strtoull(de->d_name, &end, 16);
-		if (strlen(de->d_name) != 16 + 5 || end != de->d_name + 16 ||
-		    strcmp(end, ".json") != 0 || errno != 0) {
-			free(path);
-			continue;
-		}
-		if (stat(path, &st) == -1 || !S_ISREG(st.st_mode) ||
-		    st.st_size > WEBHOOK_SPOOL_MAX) {
-			log_warnx("webhook: skipping spool file %s", path);
-			free(path);
-			continue;
-		}
-		webhook_spool_load_one(r, path, seq);
-		n++;
-		free(path);
-	}
-	closedir(dir);
-	if (n > 0)
-		log_info("webhook: loaded spool receiver=%s deliveries=%u",
-		    r->name, r->nwaiting);
-}
 
 /* cw: a configured receiver's tunables; NULL for the internal ones. */
 static int
@@ -950,7 +613,7 @@ webhook_send(struct webhook *w, uint32_t need, const char *id, json_t *body)
 		return;
 	for (i = 0; i < w->nrcv; i++)
 		if (!w->rcv[i]->internal && (w->rcv[i]->kinds & need) == need)
-			webhook_queue(w->rcv[i], id, text, len,
+			webhook_spool_queue(w->rcv[i], id, text, len,
 			    webhook_info(body));
 	free(text);
 }
@@ -970,7 +633,7 @@ webhook_post(struct webhook *w, const char *receiver, const char *id,
 			continue;
 		if ((text = webhook_dump(body, &len)) == NULL)
 			return -1;
-		webhook_queue(w->rcv[i], id, text, len, webhook_info(body));
+		webhook_spool_queue(w->rcv[i], id, text, len, webhook_info(body));
 		free(text);
 		return 0;
 	}
@@ -1125,7 +788,7 @@ webhook_adopt(struct webhook *w, const json_t *pending)
 		}
 		if (webhook_has(w->rcv[k], id))
 			continue;
-		webhook_queue(w->rcv[k], id, body, len, info);
+		webhook_spool_queue(w->rcv[k], id, body, len, info);
 		n++;
 	}
 	return n;
