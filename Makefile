@@ -35,7 +35,7 @@ CFLAGS	?= -g
 override CFLAGS += -std=c11 $(OPT) $(WARN) -fno-strict-aliasing \
 	   $(shell pkg-config --cflags $(PKGS_CORE) $(PKGS_DAEMON) 2>/dev/null)
 LDLIBS_CORE	= $(shell pkg-config --libs $(PKGS_CORE) 2>/dev/null) -lm
-LDLIBS_DAEMON	= $(shell pkg-config --libs $(PKGS_DAEMON) 2>/dev/null)
+LDLIBS_DAEMON	= $(shell pkg-config --libs $(PKGS_DAEMON) 2>/dev/null) -pthread
 LDLIBS_CLI	= $(shell pkg-config --libs $(PKGS_CLI) 2>/dev/null)
 LDLIBS_TEST	= $(shell pkg-config --libs $(PKGS_TEST) 2>/dev/null)
 

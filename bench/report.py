@@ -193,6 +193,19 @@ line("Kafka      one daemon %d records/s, three of one group %d records/s "
       t["ratio"], t["records"], t["messages"], t["partitions"],
       r["machine"]["cpus"], "yes" if t["same_records"] else "NO"),
      None, ("kafka", "three", "records_per_second"))
+if "records_per_cpu_second" in t["one"]:
+    line("Kafka cpu  %d records per daemon-CPU-second with one daemon, %d "
+         "with three (user + system time of the daemons only)" %
+         (t["one"]["records_per_cpu_second"] or 0,
+          t["three"]["records_per_cpu_second"] or 0), None,
+         ("kafka", "one", "records_per_cpu_second"))
+if "stall" in t:
+    st = t["stall"]
+    line("Kafka loop longest API answer: %.0f ms reading (timer commits), "
+         "%.0f ms joining, %.0f ms leaving (median %.1f ms reading)" %
+         (st["reading"]["max_ms"], st["join"]["max_ms"],
+          st["leave"]["max_ms"], st["reading"]["median_ms"]), None,
+         ("kafka", "stall", "reading", "max_ms"))
 t = r["memory"]
 line("memory     %.0f bytes per series by RSS (%d series, %d -> %d KiB); "
      "engine's own count %.0f bytes (target <= 8192)" %

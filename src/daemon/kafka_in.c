@@ -271,23 +271,34 @@ kafka_assign(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 static void
 kafka_revoke(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 {
-	struct kafka_part *p;
+	struct kafka_part *p, **due;
 	rd_kafka_error_t *e;
-	int i, lost = rd_kafka_assignment_lost(k->rk);
+	int i, lost = rd_kafka_assignment_lost(k->rk), committed = 0, ndue = 0;
+	double t0 = daemon_now();
 
 	if (lost)
 		k->lost++;
 	dispatch_drain(k->d->dispatch);	/* alerts before the state */
+	due = xcalloc(l->cnt > 0 ? (size_t)l->cnt : 1, sizeof *due);
+	for (i = 0; i < l->cnt; i++) {
+		int32_t n = l->elems[i].partition;
+
+		/* Lost means another owner may already have it: the
+		 * commit would be fenced, so do not try. */
+		if (n >= 0 && n < KAFKA_PARTITIONS_MAX &&
+		    (p = k->parts[n]) != NULL && !lost &&
+		    p->state == KP_RUNNING && p->dirty)
+			due[ndue++] = p;
+	}
+	if (ndue > 0)
+		committed = kafka_state_commit(k, due, ndue);
+	free(due);
 	for (i = 0; i < l->cnt; i++) {
 		int32_t n = l->elems[i].partition;
 
 		if (n < 0 || n >= KAFKA_PARTITIONS_MAX ||
 		    (p = k->parts[n]) == NULL)
 			continue;
-		/* Lost means another owner may already have it: the
-		 * commit would be fenced, so do not try. */
-		if (!lost && p->state == KP_RUNNING && p->dirty)
-			kafka_state_commit(k, p);
 		log_info("kafka: partition %s partition=%" PRId32 " state=%s "
 		    "next=%" PRId64, lost ? "lost" : "revoked", n,
 		    kafka_pstate_names[p->state], p->next);
@@ -295,6 +306,9 @@ kafka_revoke(struct kafka_in *k, rd_kafka_topic_partition_list_t *l)
 		k->parts[n] = NULL;
 		kafka_part_free(k, p);
 	}
+	/* the loop stood still this long, as for an assignment */
+	log_info("kafka: revocation done partitions=%d committed=%d "
+	    "commit_ms=%.0f", l->cnt, committed, (daemon_now() - t0) * 1e3);
 	if (strcmp(rd_kafka_rebalance_protocol(k->rk), "COOPERATIVE") == 0) {
 		if ((e = rd_kafka_incremental_unassign(k->rk, l)) != NULL) {
 			log_warnx("kafka: incremental_unassign: %s",

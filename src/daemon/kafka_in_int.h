@@ -15,6 +15,7 @@
 #define KAFKA_PARTITIONS_MAX	4096	/* input partitions one daemon holds */
 #define KAFKA_POLL_BUDGET	4096	/* messages per loop turn */
 #define KAFKA_TXN_MS		10000	/* one transactional call, at most */
+#define KAFKA_TXN_PARALLEL	16	/* transactions side by side */
 #define KAFKA_LOAD_MS		30000	/* reading an assignment's states */
 #define KAFKA_POLL_EVERY	0.2	/* s: serve callbacks even when idle */
 #define KAFKA_HOST_MAX		256
@@ -122,7 +123,8 @@ rd_kafka_conf_t	*kafka_in_conf(struct kafka_in *, const char *suffix,
 
 /* kafka_state.c */
 void		 kafka_state_drop(struct kafka_in *, struct kafka_part *);
-int		 kafka_state_commit(struct kafka_in *, struct kafka_part *);
+int		 kafka_state_commit(struct kafka_in *, struct kafka_part **,
+		    int);
 void		 kafka_state_commit_all(struct kafka_in *, const char *why);
 rd_kafka_t	*kafka_state_producer(struct kafka_in *, int32_t id,
 		    char **cause);

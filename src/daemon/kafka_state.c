@@ -11,6 +11,7 @@
  * engine's whole image and a revocation drops exactly its experiments.
  */
 #include <inttypes.h>
+#include <pthread.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -206,70 +207,152 @@ kafka_state_failed(struct kafka_in *k, struct kafka_part *p, const char *call,
 	rd_kafka_error_destroy(e);
 }
 
-/* State and input offset in one transaction. 0 committed, -1 not. */
-int
-kafka_state_commit(struct kafka_in *k, struct kafka_part *p)
-{
-	rd_kafka_topic_partition_list_t *off;
+/*
+ * One partition's transaction: prepared on the loop (the state image,
+ * its text, the consumer group's metadata), run on a thread of its own
+ * (only librdkafka calls on the partition's own producer, which is
+ * thread-safe), finished on the loop (counters, logs, fencing). Each
+ * transaction waits for round trips to the coordinators (a few hundred
+ * ms each on the mock cluster), so a commit of many partitions one by
+ * one held the loop for their sum (11 s for 32 partitions in
+ * bench/kafka.py's stall phase); side by side it holds it for about
+ * the slowest one.
+ */
+struct kafka_txn {
+	struct kafka_part	*p;
+	struct kafka_in		*k;
+	char			*buf;	/* the state; librdkafka's once produced */
+	size_t			 len;
+	char			*key;
+	int64_t			 next;
+	uint64_t		 findings;
 	rd_kafka_consumer_group_metadata_t *cgmd;
-	rd_kafka_error_t *e;
-	rd_kafka_resp_err_t err;
+	const char		*call;	/* the call that failed, NULL if none */
+	rd_kafka_error_t	*e;
+	rd_kafka_resp_err_t	 err;	/* producev's, when call is it */
+	int			 begun;
+	pthread_t		 th;
+	int			 threaded;
+};
+
+static void
+kafka_state_txn_prepare(struct kafka_in *k, struct kafka_part *p,
+    struct kafka_txn *t)
+{
 	struct engine_counters ec;
 	json_t *state;
-	char *buf, *key;
-	size_t len;
 
+	memset(t, 0, sizeof *t);
+	t->p = p;
+	t->k = k;
 	engine_counters(p->eng, &ec);
+	t->findings = ec.findings;
+	t->next = p->next;
 	state = kafka_state_image(k, p);
-	buf = json_dumps(state, JSON_COMPACT);
+	t->buf = json_dumps(state, JSON_COMPACT);
 	json_decref(state);
-	if (buf == NULL)
+	if (t->buf == NULL)
 		fatalx("kafka: cannot serialise a partition state");
-	len = strlen(buf);
-	if ((e = rd_kafka_begin_transaction(p->txn)) != NULL) {
-		free(buf);
-		kafka_state_failed(k, p, "begin_transaction", e, 0);
-		return -1;
+	t->len = strlen(t->buf);
+	t->key = kafka_state_key(k, p->id);
+	t->cgmd = rd_kafka_consumer_group_metadata(k->rk);
+}
+
+/* On its own thread: nothing here may touch the daemon but p->txn. */
+static void *
+kafka_state_txn_run(void *arg)
+{
+	struct kafka_txn *t = arg;
+	rd_kafka_topic_partition_list_t *off;
+	rd_kafka_t *txn = t->p->txn;
+
+	if ((t->e = rd_kafka_begin_transaction(txn)) != NULL) {
+		t->call = "begin_transaction";
+		return NULL;
 	}
-	key = kafka_state_key(k, p->id);
-	err = rd_kafka_producev(p->txn, RD_KAFKA_V_TOPIC(k->state_topic),
-	    RD_KAFKA_V_PARTITION(p->id), RD_KAFKA_V_KEY(key, strlen(key)),
-	    RD_KAFKA_V_VALUE(buf, len),
-	    RD_KAFKA_V_MSGFLAGS(RD_KAFKA_MSG_F_FREE),
-	    RD_KAFKA_V_END);
-	free(key);
-	if (err != 0) {
-		free(buf);
+	t->begun = 1;
+	t->err = rd_kafka_producev(txn, RD_KAFKA_V_TOPIC(t->k->state_topic),
+	    RD_KAFKA_V_PARTITION(t->p->id),
+	    RD_KAFKA_V_KEY(t->key, strlen(t->key)),
+	    RD_KAFKA_V_VALUE(t->buf, t->len),
+	    RD_KAFKA_V_MSGFLAGS(RD_KAFKA_MSG_F_FREE), RD_KAFKA_V_END);
+	if (t->err != 0) {
+		t->call = "producev";
+		return NULL;
+	}
+	t->buf = NULL;
+	off = rd_kafka_topic_partition_list_new(1);
+	rd_kafka_topic_partition_list_add(off, t->k->topic, t->p->id)->offset =
+	    t->next;
+	t->e = rd_kafka_send_offsets_to_transaction(txn, off, t->cgmd,
+	    KAFKA_TXN_MS);
+	rd_kafka_topic_partition_list_destroy(off);
+	if (t->e != NULL) {
+		t->call = "send_offsets_to_transaction";
+		return NULL;
+	}
+	if ((t->e = rd_kafka_commit_transaction(txn, KAFKA_TXN_MS)) != NULL)
+		t->call = "commit_transaction";
+	return NULL;
+}
+
+/* Back on the loop: 0 committed, -1 not. */
+static int
+kafka_state_txn_finish(struct kafka_in *k, struct kafka_txn *t)
+{
+	struct kafka_part *p = t->p;
+	int rc = -1;
+
+	if (t->call == NULL) {
+		p->committed = t->next;
+		p->dirty = 0;
+		p->findings = t->findings;
+		p->stray = kafka_state_stray(p);
+		p->commits++;
+		log_debug("kafka: committed partition=%" PRId32 " next=%" PRId64
+		    " bytes=%zu", p->id, t->next, t->len);
+		rc = 0;
+	} else if (t->e == NULL) {
 		p->commit_failures++;
 		log_warnx("kafka: cannot produce the state: %s partition=%"
-		    PRId32 " bytes=%zu", rd_kafka_err2str(err), p->id, len);
+		    PRId32 " bytes=%zu", rd_kafka_err2str(t->err), p->id,
+		    t->len);
 		kafka_state_abort(p);
-		return -1;
+	} else
+		kafka_state_failed(k, p, t->call, t->e, t->begun);
+	free(t->buf);
+	free(t->key);
+	rd_kafka_consumer_group_metadata_destroy(t->cgmd);
+	return rc;
+}
+
+/*
+ * State and input offset in one transaction for each of parts[0..n),
+ * up to KAFKA_TXN_PARALLEL side by side. The number committed.
+ */
+int
+kafka_state_commit(struct kafka_in *k, struct kafka_part **parts, int n)
+{
+	struct kafka_txn t[KAFKA_TXN_PARALLEL];
+	int i, j, m, done = 0;
+
+	for (i = 0; i < n; i += m) {
+		m = n - i < KAFKA_TXN_PARALLEL ? n - i : KAFKA_TXN_PARALLEL;
+		for (j = 0; j < m; j++) {
+			kafka_state_txn_prepare(k, parts[i + j], &t[j]);
+			/* a single one, or no thread to be had: here */
+			t[j].threaded = m > 1 && pthread_create(&t[j].th, NULL,
+			    kafka_state_txn_run, &t[j]) == 0;
+			if (!t[j].threaded)
+				kafka_state_txn_run(&t[j]);
+		}
+		for (j = 0; j < m; j++) {
+			if (t[j].threaded)
+				pthread_join(t[j].th, NULL);
+			done += kafka_state_txn_finish(k, &t[j]) == 0;
+		}
 	}
-	off = rd_kafka_topic_partition_list_new(1);
-	rd_kafka_topic_partition_list_add(off, k->topic, p->id)->offset =
-	    p->next;
-	cgmd = rd_kafka_consumer_group_metadata(k->rk);
-	e = rd_kafka_send_offsets_to_transaction(p->txn, off, cgmd,
-	    KAFKA_TXN_MS);
-	rd_kafka_consumer_group_metadata_destroy(cgmd);
-	rd_kafka_topic_partition_list_destroy(off);
-	if (e != NULL) {
-		kafka_state_failed(k, p, "send_offsets_to_transaction", e, 1);
-		return -1;
-	}
-	if ((e = rd_kafka_commit_transaction(p->txn, KAFKA_TXN_MS)) != NULL) {
-		kafka_state_failed(k, p, "commit_transaction", e, 1);
-		return -1;
-	}
-	p->committed = p->next;
-	p->dirty = 0;
-	p->findings = ec.findings;
-	p->stray = kafka_state_stray(p);
-	p->commits++;
-	log_debug("kafka: committed partition=%" PRId32 " next=%" PRId64
-	    " bytes=%zu", p->id, p->next, len);
-	return 0;
+	return done;
 }
 
 /*
@@ -296,10 +379,12 @@ kafka_state_stray(struct kafka_part *p)
 void
 kafka_state_commit_all(struct kafka_in *k, const char *why)
 {
+	struct kafka_part *due[KAFKA_PARTITIONS_MAX];
 	struct engine_counters ec;
 	size_t stray = 0;
 	int32_t i;
 	int n = 0, tried = 0;
+	double t0 = daemon_now();
 
 	/* the alerts of what is saved reach the webhook queue first */
 	dispatch_drain(k->d->dispatch);
@@ -309,12 +394,14 @@ kafka_state_commit_all(struct kafka_in *k, const char *why)
 		if (p == NULL || p->state != KP_RUNNING || p->eng == NULL)
 			continue;
 		engine_counters(p->eng, &ec);
-		if (p->dirty || ec.findings != p->findings) {
-			tried++;
-			n += kafka_state_commit(k, p) == 0;
-		}
-		stray += p->stray;
+		if (p->dirty || ec.findings != p->findings)
+			due[tried++] = p;
 	}
+	if (tried > 0)
+		n = kafka_state_commit(k, due, tried);
+	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++)
+		if (k->parts[i] != NULL && k->parts[i]->state == KP_RUNNING)
+			stray += k->parts[i]->stray;
 	if (stray > k->stray)
 		log_warnx("kafka: %zu experiments came in messages keyed by "
 		    "another experiment; if their records travel in several "
@@ -322,7 +409,8 @@ kafka_state_commit_all(struct kafka_in *k, const char *why)
 		    "experiment id)", stray);
 	k->stray = stray;
 	if (tried > 0)
-		log_debug("kafka: commit reason=%s partitions=%d", why, n);
+		log_debug("kafka: commit reason=%s partitions=%d of %d ms=%.0f",
+		    why, n, tried, (daemon_now() - t0) * 1e3);
 }
 
 /* A partition's transactional producer, fencing any earlier owner. */
