@@ -24,7 +24,9 @@
  * makes untrustworthy are part of it, and a safe verdict in an untrusted
  * epoch raises nothing (and a safe alert already raised is resolved).
  * Resolved alerts are kept (bounded) so a replay never pages again. The
- * state is saved in the checkpoint (alert_save / alert_restore).
+ * state is saved in the checkpoint (alert_save / alert_restore); under
+ * Kafka a partition's state carries its experiments' alerts to the next
+ * owner (alert_carry.c, which also holds an alert's saved form).
  */
 #include <inttypes.h>
 #include <math.h>
