@@ -151,11 +151,14 @@ def main():
         tap.eq((alerts(h).get(exp_ack, {}).get("state"),
                 exp_close in alerts(h)), ("acked", False),
                "the holder shows one alert acknowledged, the other gone")
-        tap.ok(wait_for(lambda: reqs(rcv, "stopcock.alert.reminder",
-                                     exp_open), 10),
-               "the alert left raised is reminded")
-        time.sleep(0.5)	# the reminder's commit
-        n_open = len(reqs(rcv, "stopcock.alert.reminder", exp_open))
+        tap.ok(wait_for(lambda: [r for r in reqs(
+            rcv, "stopcock.alert.reminder", exp_open)
+            if r["json"]["reminder"] >= 2], 10),
+            "the alert left raised is reminded (twice)")
+        time.sleep(0.3)	# the reminder's commit
+        rem = reqs(rcv, "stopcock.alert.reminder", exp_open)
+        n_open = len(rem)
+        last_r = max(r["json"]["reminder"] for r in rem)
 
         # 2. the holder dies; the other takes its partitions over
         h.kill9()
@@ -172,8 +175,6 @@ def main():
         tap.eq(got.get(exp_open, {}).get("id"), ids[exp_open],
                "and the raised one with its id")
         tap.ok(exp_close not in got, "the closed alert is not listed")
-        last_r = max(r["json"]["reminder"] for r in
-                     reqs(rcv, "stopcock.alert.reminder", exp_open))
         tap.ok(wait_for(lambda: [r for r in reqs(
             rcv, "stopcock.alert.reminder", exp_open)
             if r["json"]["reminder"] > last_r], 10),
@@ -183,16 +184,13 @@ def main():
                "no reminder for the acknowledged alert since its ack")
         raised_c = reqs(rcv, "stopcock.alert.raised", exp_close)
         tap.eq(len(raised_c), 1, "the closed alert was raised once only")
-        rem = reqs(rcv, "stopcock.alert.reminder", exp_open)
-        old_ids = {r["headers"].get("webhook-id") for r in rem[:n_open]}
-        new_r = [r["json"]["reminder"] for r in rem[n_open:]]
-        again = {r["headers"].get("webhook-id") for r in rem[n_open:]
-                 if r["json"]["reminder"] <= last_r}
-        # one sent after the old owner's last commit comes again, with
+        new_r = [r["json"]["reminder"] for r in reqs(
+            rcv, "stopcock.alert.reminder", exp_open)[n_open:]]
+        # one sent after the old owner's last commit may come again, with
         # its webhook-id (at least once); none restarts the count
-        tap.ok(new_r and min(new_r) >= last_r and max(new_r) > last_r and
-               again <= old_ids, "the new owner's reminders go on from the "
-               "old owner's number (%d)" % last_r, repr(new_r))
+        tap.ok(new_r and min(new_r) >= last_r and max(new_r) > last_r,
+               "the new owner's reminders go on from the old owner's "
+               "number (%d)" % last_r, repr(new_r))
 
         # 3. the holder back; the partitions split again, O alive
         h.start()
