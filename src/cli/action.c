@@ -7,6 +7,11 @@
  * uses the record protocol's own names: "weights", "variant", "weight"). The daemon's address and token
  * come from --url/--token, else $STOPCOCK_URL/$STOPCOCK_TOKEN, else the
  * [daemon] http and http_token of the configuration file given with -c.
+ *
+ * ack and close take several --url (the daemons of one Kafka group): each
+ * is asked whether it holds the experiment (GET /api/experiments/EXP,
+ * the same lookup the action makes), and the action goes to that one
+ * only; none, or two (a split), is an error and nothing is sent.
  */
 #include <getopt.h>
 #include <stdio.h>
@@ -24,6 +29,7 @@
 #define ACTION_URL	"http://127.0.0.1:7721"
 #define ACTION_BODY_MAX	(1024u * 1024)	/* bytes of an answer we keep */
 #define ACTION_TIMEOUT	30L		/* seconds */
+#define ACTION_URLS_MAX	64		/* --url given */
 
 
 /* POST the JSON body to url with the token; 0 with the HTTP status in
@@ -146,14 +152,78 @@ action_usage(FILE *fp, const char *verb)
 {
 	const struct action_verb *v = action_find(verb);
 
-	fprintf(fp, "usage: stopcock %s [-c CONF] [--url URL] [--token TOKEN] "
-	    "EXPERIMENT%s%s\n", verb, v != NULL && v->args ? " " : "",
-	    v != NULL && v->args ? v->args : "");
+	fprintf(fp, "usage: stopcock %s [-c CONF] [--url URL]%s [--token TOKEN] "
+	    "EXPERIMENT%s%s\n", verb, v != NULL && v->nargs == 2 ? "..." : "",
+	    v != NULL && v->args ? " " : "", v != NULL && v->args ? v->args :
+	    "");
 	fputs("  -c CONF        read [daemon] http and http_token from CONF\n"
 	    "  --url URL      the daemon's HTTP address (default $STOPCOCK_URL, "
-	    "CONF's, or " ACTION_URL ")\n"
+	    "CONF's, or " ACTION_URL ")\n", fp);
+	if (v != NULL && v->nargs == 2)
+		fputs("                 several: sent to the one that holds "
+		    "EXPERIMENT\n", fp);
+	fputs(
 	    "  --token TOKEN  the bearer token (default $STOPCOCK_TOKEN or "
 	    "CONF's)\n", fp);
+}
+
+/*
+ * Of several daemons, the one that holds the experiment: its index, or
+ * -1 with the exit status in *rc (none holds it, two or more do, or none
+ * that answered does). One that does not answer is reported; when
+ * another holds the experiment the action still goes there.
+ */
+static int
+action_owner(const char *verb, const char *const *bases, int n,
+    const char *esc, const char *exp, int *rc)
+{
+	char *path, *why = NULL, held[1024] = "";
+	size_t o = 0;
+	json_t *root;
+	long code;
+	int i, owner = -1, nheld = 0, failed = 0;
+
+	xasprintf(&path, "/api/experiments/%s", esc);
+	for (i = 0; i < n; i++) {
+		if ((root = status_fetch(bases[i], path, &code, &why)) !=
+		    NULL) {
+			json_decref(root);
+			if (nheld++ == 0)
+				owner = i;
+			if (o < sizeof held)
+				o += (size_t)snprintf(held + o, sizeof held - o,
+				    "%s%s", o > 0 ? ", " : "", bases[i]);
+			continue;
+		}
+		if (code != 404) {
+			fprintf(stderr, "stopcock %s: %s\n", verb, why);
+			failed++;
+		}
+		free(why);
+		why = NULL;
+	}
+	free(path);
+	if (nheld > 1) {
+		fprintf(stderr, "stopcock %s: experiment %s is held by %d "
+		    "daemons (%s): its records are split between them; "
+		    "nothing sent (give one --url to act on one of them)\n",
+		    verb, exp, nheld, held);
+		*rc = SC_EX_DATAERR;
+		return -1;
+	}
+	if (nheld == 0) {
+		if (failed > 0)
+			fprintf(stderr, "stopcock %s: none of the daemons that "
+			    "answered holds experiment %s (%d did not "
+			    "answer); nothing sent\n", verb, exp, failed);
+		else
+			fprintf(stderr, "stopcock %s: none of the %d daemons "
+			    "holds experiment %s; nothing sent\n", verb, n,
+			    exp);
+		*rc = failed > 0 ? SC_EX_IOERR : SC_EX_NOINPUT;
+		return -1;
+	}
+	return owner;
 }
 
 /* One action verb: POST /api/experiments/EXP/<verb>. */
@@ -171,10 +241,11 @@ action_run(const char *verb, int argc, char **argv)
 	struct conf *conf = NULL;
 	const char *url = getenv("STOPCOCK_URL");
 	const char *token = getenv("STOPCOCK_TOKEN"), *path = NULL, *msg;
+	const char *bases[ACTION_URLS_MAX];
 	char *full = NULL, *cause = NULL, *base = NULL, *esc, *body = NULL;
 	json_t *root;
 	long code = 0;
-	int c, rc = SC_EX_OK;
+	int c, rc = SC_EX_OK, nbases = 0, owner;
 	size_t blen;
 	CURL *e;
 
@@ -182,7 +253,14 @@ action_run(const char *verb, int argc, char **argv)
 	while ((c = getopt_long(argc, argv, "c:u:t:h", opts, NULL)) != -1) {
 		switch (c) {
 		case 'c': path = optarg; break;
-		case 'u': url = optarg; break;
+		case 'u':
+			if (nbases == ACTION_URLS_MAX) {
+				fprintf(stderr, "stopcock %s: at most %d "
+				    "--url\n", verb, ACTION_URLS_MAX);
+				return SC_EX_USAGE;
+			}
+			bases[nbases++] = url = optarg;
+			break;
 		case 't': token = optarg; break;
 		case 'h': action_usage(stdout, verb); return SC_EX_OK;
 		default: action_usage(stderr, verb); return SC_EX_USAGE;
@@ -192,6 +270,17 @@ action_run(const char *verb, int argc, char **argv)
 	    argc - optind - 1 != v->nargs) || (v->nargs < 0 &&
 	    argc - optind < 3)) {
 		action_usage(stderr, verb);
+		return SC_EX_USAGE;
+	}
+	if (nbases > 1 && v->nargs != 2) {
+		fprintf(stderr, "stopcock %s: one --url only (several are for "
+		    "ack and close, sent to the daemon that holds the "
+		    "experiment)\n", verb);
+		return SC_EX_USAGE;
+	}
+	if (nbases > 1 && !proto_name_ok(argv[optind], strlen(argv[optind]))) {
+		fprintf(stderr, "stopcock %s: experiment names are 1 to %d "
+		    "characters from [A-Za-z0-9._:-]\n", verb, PROTO_NAME_MAX);
 		return SC_EX_USAGE;
 	}
 	if ((body = action_body(v, argc - optind - 1, argv + optind + 1,
@@ -224,12 +313,22 @@ action_run(const char *verb, int argc, char **argv)
 		rc = SC_EX_SOFTWARE;
 		goto out;
 	}
-	blen = strlen(base);
-	while (blen > 0 && base[blen - 1] == '/')
-		blen--;
 	if ((e = curl_easy_init()) == NULL ||
 	    (esc = curl_easy_escape(e, argv[optind], 0)) == NULL)
 		fatal("%s: cannot escape the experiment name", verb);
+	if (nbases > 1) {
+		if ((owner = action_owner(verb, bases, nbases, esc,
+		    argv[optind], &rc)) == -1) {
+			curl_free(esc);
+			curl_easy_cleanup(e);
+			goto done;
+		}
+		free(base);
+		base = xstrdup(bases[owner]);
+	}
+	blen = strlen(base);
+	while (blen > 0 && base[blen - 1] == '/')
+		blen--;
 	xasprintf(&full, "%.*s/api/experiments/%s/%s", (int)blen, base, esc,
 	    verb);
 	curl_free(esc);
@@ -249,8 +348,9 @@ action_run(const char *verb, int argc, char **argv)
 		    SC_EX_CONFIG : SC_EX_IOERR;
 	} else {
 		msg = json_string_value(json_object_get(root, "archive"));
-		printf("%s %s%s%s\n", argv[optind], v->done, msg != NULL ?
-		    "; archive " : "", msg != NULL ? msg : "");
+		printf("%s %s%s%s%s%s\n", argv[optind], v->done, msg != NULL ?
+		    "; archive " : "", msg != NULL ? msg : "", nbases > 1 ?
+		    " at " : "", nbases > 1 ? base : "");
 	}
 	json_decref(root);
 done:

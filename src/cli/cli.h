@@ -8,6 +8,8 @@
 
 #include <stddef.h>
 
+#include <jansson.h>
+
 /* An HTTP answer read by libcurl (status.c; action.c uses it too). */
 struct status_body {
 	char	*p;		/* NUL-terminated, NULL when empty */
@@ -16,6 +18,10 @@ struct status_body {
 	int	 overflow;	/* the answer was longer than max */
 };
 size_t	status_body_write(char *, size_t, size_t, void *);
+/* GET base+path as JSON: the answer (200), or NULL with *code (0: no
+ * answer, 404: none there) and *cause. */
+json_t	*status_fetch(const char *base, const char *path, long *code,
+	    char **cause);
 
 int	cmd_replay(int, char **);	/* replay.c */
 int	cmd_check_config(int, char **);	/* main.c */

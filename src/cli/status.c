@@ -396,7 +396,7 @@ status_url(const char *base, const char *path)
 
 /* GET base+path as JSON: the answer (200) or NULL with *code (0: no
  * answer, 404: none there) and *cause. */
-static json_t *
+json_t *
 status_fetch(const char *base, const char *path, long *code, char **cause)
 {
 	struct status_body body = { NULL, 0, STATUS_BODY_MAX, 0 };

@@ -24,7 +24,9 @@
  * makes untrustworthy are part of it, and a safe verdict in an untrusted
  * epoch raises nothing (and a safe alert already raised is resolved).
  * Resolved alerts are kept (bounded) so a replay never pages again. The
- * state is saved in the checkpoint (alert_save / alert_restore).
+ * state is saved in the checkpoint (alert_save / alert_restore); under
+ * Kafka a partition's state carries its experiments' alerts to the next
+ * owner (alert_carry.c, which also holds an alert's saved form).
  */
 #include <inttypes.h>
 #include <math.h>
@@ -38,14 +40,8 @@
 #include "daemon.h"
 #include "alert_int.h"
 
-#define ALERT_MAX	4096	/* alerts remembered (raised and acked) */
-#define ALERT_ID_BYTES	16	/* of SHA-256, as hex after "sc_" */
-
-enum alert_state { ALERT_RAISED, ALERT_ACKED, ALERT_RESOLVED };
-static const char *const alert_states[] = { "raised", "acked", "resolved" };
-
-enum alert_sev { SEV_CRITICAL, SEV_WARNING, SEV_INFO };
-static const char *const alert_sevs[] = { "critical", "warning", "info" };
+const char *const alert_states[] = { "raised", "acked", "resolved" };
+const char *const alert_sevs[] = { "critical", "warning", "info" };
 
 /* The lifecycle events, with their routing bit (raised needs none). */
 enum alert_ev { EV_RAISED, EV_REMINDER, EV_ACKNOWLEDGED, EV_RESOLVED };
@@ -56,48 +52,8 @@ static const uint32_t alert_ev_bits[] = {
 	0, CONF_KIND_REMINDER, CONF_KIND_ACKNOWLEDGED, CONF_KIND_RESOLVED
 };
 
-struct alert_entry {
-	char		 id[3 + 2 * ALERT_ID_BYTES + 1];
-	char		*experiment;
-	uint32_t	 epoch;
-	double		 epoch_start;	/* record time; NAN in old state */
-	char		*guardrail;
-	char		*variant;	/* "" for the SRM check */
-	enum alert_kind	 kind;
-	enum alert_state state;
-	enum alert_sev	 severity;
-	int		 priority;
-	double		 first_seen;	/* wall time */
-	double		 last_sent;
-	uint32_t	 reminders;
-	double		 resolved_at;	/* wall time, 0 while not resolved */
-	char		*resolution;	/* why it was resolved, or NULL */
-	char		*line;		/* syslog fields, for every event */
-	json_t		*body;		/* webhook payload as first sent */
-};
-
-struct alert {
-	struct daemon		*d;
-	int			 facility;
-	struct event		*remind;
-	double			 remind_every;
-	struct alert_entry	**v;
-	size_t			 n;
-	uint64_t		 raised[ALERT_NKINDS];
-	uint64_t		 reminders;
-	uint64_t		 acked;
-	uint64_t		 resolved;
-	uint64_t		 evicted;
-	uint64_t		 duplicates;
-	uint64_t		 untrusted_safe;	/* safe under SRM */
-	struct event		*am_timer;	/* Alertmanager refreshes */
-	double			 am_resend;
-	struct alert_journal	*journal;	/* NULL until started */
-	uint64_t		 jseq;		/* newest event journaled */
-};
-
 /* The names in syslog, webhooks, the API, metrics and the state. */
-static const char *const alert_kinds[ALERT_NKINDS] = {
+const char *const alert_kinds[ALERT_NKINDS] = {
 	[ALERT_HARM] = "harm",
 	[ALERT_SAFE] = "safe",
 	[ALERT_SRM] = "srm",
@@ -116,8 +72,6 @@ static const uint32_t alert_kind_bits[ALERT_NKINDS] = {
 	[ALERT_PAUSE_DRY_RUN] = CONF_KIND_DRY_RUN,
 };
 
-static void	alert_journal_note(struct alert *,
-		    const struct alert_entry *);
 static void	alert_journal_lay(void *, uint64_t, const json_t *);
 
 /*
@@ -127,18 +81,6 @@ static void	alert_journal_lay(void *, uint64_t, const json_t *);
  */
 static char alert_ident[64];
 
-/* A saved kind's name back to the kind; -1 when unknown. */
-static int
-alert_kind_parse(const char *name)
-{
-	int k;
-
-	for (k = 0; k < ALERT_NKINDS; k++)
-		if (strcmp(alert_kinds[k], name) == 0)
-			return k;
-	return -1;
-}
-
 /*
  * "sc_" + hex of the first bytes of SHA-256 over the identity, its parts
  * NUL-separated so no two identities share a string: experiment, epoch,
@@ -146,7 +88,7 @@ alert_kind_parse(const char *name)
  * A state saved before the start was part of it (start NAN) keeps the
  * ids it had, computed without it.
  */
-static void
+void
 alert_make_id(char *out, const char *experiment, uint32_t epoch,
     double start, const char *guardrail, const char *variant,
     const char *what)
@@ -237,7 +179,7 @@ alert_unit(const struct alert *a, const char *guardrail)
 }
 
 
-static void
+void
 alert_entry_free(struct alert_entry *e)
 {
 	if (e == NULL)
@@ -251,7 +193,7 @@ alert_entry_free(struct alert_entry *e)
 	free(e);
 }
 
-static struct alert_entry *
+struct alert_entry *
 alert_find(struct alert *a, const char *id)
 {
 	size_t i;
@@ -262,7 +204,7 @@ alert_find(struct alert *a, const char *id)
 	return NULL;
 }
 
-static void
+void
 alert_remove_at(struct alert *a, size_t i)
 {
 	alert_entry_free(a->v[i]);
@@ -272,7 +214,7 @@ alert_remove_at(struct alert *a, size_t i)
 
 /* Bounded: past ALERT_MAX the oldest resolved, then acknowledged, alert
  * goes first. */
-static void
+void
 alert_insert(struct alert *a, struct alert_entry *e)
 {
 	size_t i, victim = 0;
@@ -606,6 +548,13 @@ alert_operator(struct alert *a, const char *experiment, const char *guardrail,
 	}
 	if (!close)
 		a->acked += (uint64_t)n;
+	/* Under Kafka the partition's state keeps it, before the answer:
+	 * a takeover a moment later still knows. */
+	if (a->d->kafka != NULL &&
+	    kafka_state_commit_of(a->d->kafka, experiment) != 0)
+		log_warnx("alert: %s of experiment %s not yet in its "
+		    "partition's state (retried at the next commit)",
+		    close ? "close" : "ack", experiment);
 	return 0;
 }
 
@@ -630,6 +579,31 @@ alert_remindable(const struct alert_entry *e)
 	    alert_text_srm(e->kind));
 }
 
+/*
+ * Under Kafka an alert is this daemon's while an engine here holds its
+ * experiment: one of a partition that left (restored from an older
+ * local checkpoint, or waiting for its partition's state) is kept, so a
+ * repeat is still known, but neither listed, reminded nor refreshed.
+ */
+static int
+alert_held(const struct alert *a, const struct alert_entry *e)
+{
+	return a->d->kafka == NULL || engines_find(a->d, e->experiment) !=
+	    NULL;
+}
+
+/* The alert's life moved on outside a record: its partition's state
+ * carries that at its next commit. */
+static void
+alert_touched(struct alert *a, const char *experiment)
+{
+	struct engine *eng;
+
+	if (a->d->kafka != NULL && (eng = engines_find(a->d, experiment)) !=
+	    NULL)
+		engines_touched(a->d, eng);
+}
+
 static void
 alert_remind_event(evutil_socket_t fd, short what, void *arg)
 {
@@ -640,12 +614,14 @@ alert_remind_event(evutil_socket_t fd, short what, void *arg)
 
 	for (i = 0; i < a->n; i++) {
 		e = a->v[i];
-		if (!alert_remindable(e) || now - e->last_sent < a->remind_every)
+		if (!alert_remindable(e) || now - e->last_sent <
+		    a->remind_every || !alert_held(a, e))
 			continue;
 		e->reminders++;
 		e->last_sent = now;
 		a->reminders++;
 		alert_emit(a, e, EV_REMINDER);
+		alert_touched(a, e->experiment);
 	}
 }
 
@@ -669,7 +645,8 @@ alert_am_event(evutil_socket_t fd, short what, void *arg)
 	for (i = 0; i < a->n; i++) {
 		e = a->v[i];
 		if (e->state == ALERT_RESOLVED ||
-		    (c->am_kinds & alert_kind_bits[e->kind]) == 0)
+		    (c->am_kinds & alert_kind_bits[e->kind]) == 0 ||
+		    !alert_held(a, e))
 			continue;
 		alert_view(e, &v);
 		alertmgr_post(a->d, &v, ends);
@@ -741,40 +718,15 @@ alert_free(struct alert *a)
 	free(a);
 }
 
-/* One alert as the checkpoint and the journal keep it. */
-static json_t *
-alert_entry_save(const struct alert_entry *e)
-{
-	json_t *o;
-
-	o = json_pack("{s:s, s:s, s:I, s:s, s:s, s:s, s:s, s:i, s:f, "
-	    "s:f, s:I, s:s, s:O, s:s}",
-	    "id", e->id, "experiment", e->experiment, "epoch",
-	    (json_int_t)e->epoch, "guardrail", e->guardrail, "variant",
-	    e->variant, "alert", alert_kinds[e->kind], "state",
-	    alert_states[e->state], "priority", e->priority,
-	    "first_seen", e->first_seen, "last_sent", e->last_sent,
-	    "reminders", (json_int_t)e->reminders, "line", e->line,
-	    "body", e->body, "severity", alert_sevs[e->severity]);
-	if (isfinite(e->epoch_start))
-		json_object_set_new(o, "epoch_start", json_real(e->epoch_start));
-	if (e->state == ALERT_RESOLVED) {
-		json_object_set_new(o, "resolved_at", json_real(e->resolved_at));
-		json_object_set_new(o, "resolution", json_string(e->resolution ?
-		    e->resolution : "closed"));
-	}
-	return o;
-}
-
 /* Before any output hears of an event, the journal has it on disk. */
-static void
+void
 alert_journal_note(struct alert *a, const struct alert_entry *e)
 {
 	json_t *o;
 
 	if (a->journal == NULL)
 		return;
-	o = alert_entry_save(e);
+	o = alert_carry_entry(e);
 	a->jseq++;
 	alert_journal_append(a->journal, a->jseq, o);
 	json_decref(o);
@@ -787,91 +739,9 @@ alert_save(struct alert *a)
 	size_t i;
 
 	for (i = 0; a != NULL && i < a->n; i++)
-		json_array_append_new(list, alert_entry_save(a->v[i]));
+		json_array_append_new(list, alert_carry_entry(a->v[i]));
 	return json_pack("{s:i, s:o, s:I}", "version", 1, "alerts", list,
 	    "journal_seq", (json_int_t)(a != NULL ? a->jseq : 0));
-}
-
-/* A saved word back to its index in names; -1 when unknown. */
-static int
-alert_word(const char *const *names, int n, const char *w)
-{
-	int i;
-
-	for (i = 0; w != NULL && i < n; i++)
-		if (strcmp(names[i], w) == 0)
-			return i;
-	return -1;
-}
-
-static struct alert_entry *
-alert_restore_one(const json_t *j, char **cause)
-{
-	struct alert_entry *e;
-	const char *id, *exp, *gr, *var, *what, *state, *line;
-	json_int_t epoch, reminders;
-	json_t *body;
-	json_error_t err;
-	char check[sizeof e->id];
-	int priority, kind, st, sev;
-	double first, last, start = NAN;
-	const json_t *o;
-
-	if (json_unpack_ex((json_t *)j, &err, 0, "{s:s, s:s, s:I, s:s, s:s, "
-	    "s:s, s:s, s:i, s:F, s:F, s:I, s:s, s:o}", "id", &id, "experiment",
-	    &exp, "epoch", &epoch, "guardrail", &gr, "variant", &var, "alert",
-	    &what, "state", &state, "priority", &priority, "first_seen",
-	    &first, "last_sent", &last, "reminders", &reminders, "line", &line,
-	    "body", &body) == -1) {
-		xasprintf(cause, "alert state: %s", err.text);
-		return NULL;
-	}
-	/* Written before severity and resolution were kept: absent. */
-	o = json_object_get(j, "severity");
-	sev = o == NULL ? -2 : alert_word(alert_sevs, 3, json_string_value(o));
-	if ((o = json_object_get(j, "epoch_start")) != NULL)
-		start = json_is_number(o) ? json_number_value(o) : -1;
-	if (epoch < 1 || epoch > UINT32_MAX || reminders < 0 ||
-	    reminders > UINT32_MAX || (kind = alert_kind_parse(what)) == -1 ||
-	    (st = alert_word(alert_states, 3, state)) == -1 || sev == -1 ||
-	    (o != NULL && !(isfinite(start) && start >= 0)) ||
-	    priority < LOG_EMERG || priority > LOG_DEBUG ||
-	    !json_is_object(body) || strlen(line) >= ALERT_LINE_MAX ||
-	    !proto_name_ok(exp, strlen(exp))) {
-		xasprintf(cause, "alert state: bad entry %s", id);
-		return NULL;
-	}
-	alert_make_id(check, exp, (uint32_t)epoch, start, gr, var, what);
-	if (strcmp(check, id) != 0) {
-		xasprintf(cause, "alert state: id %s does not match its "
-		    "identity", id);
-		return NULL;
-	}
-	e = xcalloc(1, sizeof *e);
-	memcpy(e->id, check, sizeof e->id);
-	e->experiment = xstrdup(exp);
-	e->epoch = (uint32_t)epoch;
-	e->epoch_start = start;
-	e->guardrail = xstrdup(gr);
-	e->variant = xstrdup(var);
-	e->kind = (enum alert_kind)kind;
-	e->state = (enum alert_state)st;
-	e->severity = sev >= 0 ? (enum alert_sev)sev : priority <= LOG_CRIT ?
-	    SEV_CRITICAL : priority <= LOG_WARNING ? SEV_WARNING : SEV_INFO;
-	if (st == ALERT_RESOLVED) {
-		o = json_object_get(j, "resolution");
-		e->resolution = xstrdup(json_is_string(o) ?
-		    json_string_value(o) : "closed");
-		o = json_object_get(j, "resolved_at");
-		e->resolved_at = json_is_number(o) ? json_number_value(o) : 0;
-	}
-	e->priority = priority;
-	e->first_seen = first;
-	e->last_sent = last;
-	e->reminders = (uint32_t)reminders;
-	e->line = xstrdup(line);
-	e->body = json_incref(body);
-	return e;
 }
 
 int
@@ -897,7 +767,7 @@ alert_restore(struct alert *a, const json_t *j, char **cause)
 		return -1;
 	}
 	for (i = 0; i < json_array_size(list); i++) {
-		if ((e = alert_restore_one(json_array_get(list, i), cause)) ==
+		if ((e = alert_carry_load(json_array_get(list, i), cause)) ==
 		    NULL)
 			goto fail;
 		v = xreallocarray(v, n + 1, sizeof *v);
@@ -926,13 +796,6 @@ fail:
 	return -1;
 }
 
-/* How far an alert's life has gone: it only ever moves forward. */
-static uint64_t
-alert_progress(const struct alert_entry *e)
-{
-	return (uint64_t)e->state << 32 | e->reminders;
-}
-
 /*
  * One journaled event over the restored state: it replaces the alert's
  * self when it is further on, or joins the state when the checkpoint
@@ -949,14 +812,14 @@ alert_journal_lay(void *arg, uint64_t seq, const json_t *j)
 
 	if (seq > a->jseq)
 		a->jseq = seq;
-	if ((e = alert_restore_one(j, &cause)) == NULL) {
+	if ((e = alert_carry_load(j, &cause)) == NULL) {
 		log_warnx("alert journal: event %" PRIu64 " refused: %s", seq,
 		    cause);
 		free(cause);
 		return;
 	}
 	if ((old = alert_find(a, e->id)) != NULL) {
-		if (alert_progress(e) <= alert_progress(old)) {
+		if (alert_carry_progress(e) <= alert_carry_progress(old)) {
 			alert_entry_free(e);
 			return;
 		}
@@ -1014,7 +877,7 @@ alert_json(struct alert *a)
 
 	for (i = 0; a != NULL && i < a->n; i++) {
 		e = a->v[i];
-		if (e->state == ALERT_RESOLVED)
+		if (e->state == ALERT_RESOLVED || !alert_held(a, e))
 			continue;	/* kept against repeats, not shown */
 		o = json_deep_copy(e->body);
 		json_object_set_new(o, "state", json_string(
@@ -1036,7 +899,7 @@ alert_metrics(struct alert *a, struct evbuffer *b)
 	if (a == NULL)
 		return;
 	for (i = 0; i < a->n; i++)
-		if (a->v[i]->state == ALERT_RAISED)
+		if (a->v[i]->state == ALERT_RAISED && alert_held(a, a->v[i]))
 			active[a->v[i]->kind]++;
 	metrics_family(b, "stopcock_alerts_raised_total", "counter",
 	    "Alerts raised since start, by kind.");
@@ -1064,6 +927,14 @@ alert_metrics(struct alert *a, struct evbuffer *b)
 	    a->duplicates);
 	metrics_counter(b, "stopcock_alerts_evicted_total", "Alerts forgotten "
 	    "because more than the limit were held.", a->evicted);
+	metrics_counter(b, "stopcock_alerts_adopted_total", "Alerts taken "
+	    "from a Kafka partition's state (new here, or further on).",
+	    a->adopted);
+	metrics_counter(b, "stopcock_alerts_carried_refused_total", "Alerts "
+	    "in a Kafka partition's state refused as malformed.",
+	    a->carried_refused);
+	metrics_counter(b, "stopcock_alerts_forgotten_total", "Alerts that "
+	    "left with their Kafka partition.", a->forgotten);
 	alert_journal_metrics(a->journal, b);
 }
 

@@ -30,6 +30,8 @@
  *   alert_text.c  an alert's summary and syslog fields (alert_text_*)
  *   alert_journal.c  alert events on disk before they are sent
  *                 (alert_journal_*)
+ *   alert_carry.c  an alert's saved form, and its travel with a Kafka
+ *                 partition (alert_carry_*)
  *   alertmgr.c  alerts in the Alertmanager API's form (alertmgr_*)
  *   webhook.c   signed webhooks over libcurl multi, spooled (webhook_*)
  *   pause.c     auto-pause: rules, audit log, HTTP + Redis delivery (pause_*)
@@ -329,6 +331,11 @@ void		 kafka_in_metrics(struct kafka_in *, struct evbuffer *);
 json_t		*kafka_in_json(struct kafka_in *);
 /* e, a partition's engine, changed outside a message: commit it. */
 void		 kafka_in_touched(struct kafka_in *, struct engine *e);
+/* An operator's action on an alert of the experiment: the partition that
+ * holds it commits its state now. 0 done (or no partition holds it), -1
+ * failed (committed again at the next commit). */
+int		 kafka_state_commit_of(struct kafka_in *,
+		    const char *experiment);
 
 /* alert.c */
 enum alert_kind {
@@ -373,6 +380,15 @@ int		 alert_start_journal(struct alert *, const char *dir,
 uint64_t	 alert_journal_seq(const struct alert *);
 void		 alert_journal_done(struct alert *, uint64_t seq);
 json_t		*alert_json(struct alert *);	/* raised alerts */
+/* alert_carry.c: the alerts of experiments mine() accepts, as a Kafka
+ * partition's state carries them; taking such a list over (the further
+ * life of an alert wins, ids kept; the number taken); and forgetting
+ * them when the partition leaves (the number forgotten). */
+json_t		*alert_carry(struct alert *,
+		    int (*mine)(void *, const char *experiment), void *arg);
+size_t		 alert_carry_adopt(struct alert *, const json_t *carried);
+size_t		 alert_carry_forget(struct alert *,
+		    int (*mine)(void *, const char *experiment), void *arg);
 void		 alert_metrics(struct alert *, struct evbuffer *);
 /* News that is no alert (kind: CONF_KIND_RESTARTED or _RETIRED) to the
  * syslog alert lines, when [syslog] kinds names it. */

@@ -100,11 +100,14 @@ kafka_state_mine(void *arg, const char *experiment)
 /*
  * {"format", "version", "topic", "partition", "next", "keys": [...],
  *  "counters": {...}, "engine": engine_save(p->eng),
- *  "webhooks": webhook_pending, "pause": pause_carry} (the last two of
- * the partition's experiments: the alerts not yet delivered and the
- * pause marks, so a lost host loses no queued alert). A state of the
- * earlier daemon whose engine held only "format", "version" and
- * "experiments", without the last two, restores the same way.
+ *  "webhooks": webhook_pending, "pause": pause_carry,
+ *  "alerts": alert_carry} (the last three of the partition's
+ * experiments: the deliveries not yet answered, so a lost host loses no
+ * queued alert; the pause marks; the alerts themselves, raised,
+ * acknowledged or closed, so the next owner knows their later life). A
+ * state of an earlier daemon without some of the last three (or whose
+ * engine held only "format", "version" and "experiments") restores the
+ * same way.
  */
 static json_t *
 kafka_state_image(struct kafka_in *k, struct kafka_part *p)
@@ -114,14 +117,16 @@ kafka_state_image(struct kafka_in *k, struct kafka_part *p)
 
 	json_object_foreach(p->keys, id, v)
 		json_array_append_new(keys, json_string(id));
-	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, s:o, s:o, s:o}",
+	return json_pack("{s:s, s:i, s:s, s:i, s:I, s:o, s:o, s:o, s:o, s:o, "
+	    "s:o}",
 	    "format", KAFKA_STATE_FORMAT, "version", KAFKA_STATE_VERSION,
 	    "topic", k->topic, "partition", (int)p->id,
 	    "next", (json_int_t)p->next, "keys", keys,
 	    "counters", kafka_state_counts_json(&p->c),
 	    "engine", engine_save(p->eng),
 	    "webhooks", webhook_pending(k->d->webhook, kafka_state_mine, p),
-	    "pause", pause_carry(k->d->pause, kafka_state_mine, p));
+	    "pause", pause_carry(k->d->pause, kafka_state_mine, p),
+	    "alerts", alert_carry(k->d->alert, kafka_state_mine, p));
 }
 
 static char *
@@ -160,12 +165,21 @@ kafka_state_pause(struct kafka_in *k, int32_t id)
 	rd_kafka_topic_partition_list_destroy(l);
 }
 
-/* The partition's engine leaves the daemon (revoked, lost, fenced). */
+/*
+ * The partition's engine leaves the daemon (revoked, lost, fenced), after
+ * its last commit: its experiments' alerts go too, the next owner's now,
+ * so two daemons never both remind.
+ */
 void
 kafka_state_drop(struct kafka_in *k, struct kafka_part *p)
 {
+	size_t n;
+
 	if (p->eng == NULL)
 		return;
+	if ((n = alert_carry_forget(k->d->alert, kafka_state_mine, p)) > 0)
+		log_info("kafka: alerts left with the partition partition=%"
+		    PRId32 " alerts=%zu", p->id, n);
 	engines_remove(k->d, p->eng);
 	engine_free(p->eng);
 	p->eng = NULL;
@@ -374,6 +388,25 @@ kafka_state_stray(struct kafka_part *p)
 	}
 	json_decref(img);
 	return n;
+}
+
+int
+kafka_state_commit_of(struct kafka_in *k, const char *experiment)
+{
+	struct kafka_part *p;
+	int32_t i;
+
+	if (k == NULL || k->closed)
+		return 0;
+	for (i = 0; i < KAFKA_PARTITIONS_MAX; i++) {
+		if ((p = k->parts[i]) == NULL || p->state != KP_RUNNING ||
+		    !kafka_state_mine(p, experiment))
+			continue;
+		p->dirty = 1;	/* kept when this commit fails */
+		dispatch_drain(k->d->dispatch);
+		return kafka_state_commit(k, &p, 1) == 1 ? 0 : -1;
+	}
+	return 0;
 }
 
 void
@@ -632,6 +665,10 @@ kafka_state_load(struct kafka_in *k, struct kafka_part *p, int64_t committed,
 		    "queued again partition=%" PRId32 " deliveries=%zu", p->id,
 		    n);
 	pause_adopt(k->d->pause, json_object_get(state, "pause"));
+	if ((n = alert_carry_adopt(k->d->alert, json_object_get(state,
+	    "alerts"))) > 0)
+		log_info("kafka: alerts carried in the partition's state taken "
+		    "over partition=%" PRId32 " alerts=%zu", p->id, n);
 	json_array_foreach(keys, i, v)
 		if (json_is_string(v))
 			json_object_set_new(p->keys, json_string_value(v),
