@@ -472,7 +472,7 @@ ibeta_lower(double a, double b, double x, double y)
  * one. The function is pure, so a small per-thread table keyed by the
  * arguments' exact bits returns the very same double it computed.
  */
-#define IBETA_MEMO_BITS 9
+#define IBETA_MEMO_BITS 12
 #define IBETA_MEMO (1u << IBETA_MEMO_BITS)
 
 struct ibeta_memo {
