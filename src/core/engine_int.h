@@ -394,5 +394,20 @@ double		 verdict_pause_level(const struct engine *,
 /* engine.c: a new engine; shard: engine_new_shard's, else engine_new's. */
 struct engine	*engine_make(const struct conf *, const uint8_t hashkey[16],
 		    int shard);
+/* engine.c: an experiment by id, or NULL */
+struct experiment *engine_find(const struct engine *, const char *id);
+void		 engine_groups_free(struct groups *);
+
+/* engine_exp.c: a plan for experiment id (family: its family or NULL) */
+enum engine_reject engine_exp_apply_plan(struct engine *,
+		    const struct proto_arm *, int narms, const char *id,
+		    const char *family, double now);
+void		 engine_exp_retire_closing(struct engine *, struct experiment *);
+void		 engine_exp_test_init(struct test *, int g, const char *variant);
+/* guardrail g is in e's family */
+int		 engine_exp_applies(const struct experiment *, int g);
+void		 engine_exp_ensure_tests(const struct engine *,
+		    struct experiment *);
+void		 engine_exp_settings(const struct engine *, struct experiment *);
 
 #endif

@@ -63,4 +63,21 @@ sketch_warm_keys(const struct sketch_store *st)
 	return (int32_t *)(void *)(st->counts + st->cap);
 }
 
+/* One block of the ordered view: an edge, a bucket or the zeros. */
+enum sketch_kind { SK_LOW, SK_KEY, SK_HIGH, SK_ZERO };
+
+struct sketch_block {
+	enum sketch_kind kind;
+	int		 neg;
+	int32_t		 kmin, kmax;
+	uint64_t	 count;
+};
+
+/*
+ * Ordered walk over one store (sketch_view.c): low edge, keys, high edge.
+ * *pos is the walker's state (start at 0); returns 0 at the end.
+ */
+int	 sketch_view_store_next(const struct sketch_store *, int, int64_t *,
+	    struct sketch_block *);
+
 #endif

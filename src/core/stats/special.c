@@ -10,6 +10,8 @@
  */
 #include <float.h>
 #include <math.h>
+#include <stdint.h>
+#include <string.h>
 
 #include <gsl/gsl_cdf.h>
 #include <gsl/gsl_sf_erf.h>
@@ -464,13 +466,64 @@ ibeta_lower(double a, double b, double x, double y)
 	return v;
 }
 
+/*
+ * Looks ask for the same incomplete beta again and again: a test's prior
+ * term on every look, an arm whose counts did not move since the last
+ * one. The function is pure, so a small per-thread table keyed by the
+ * arguments' exact bits returns the very same double it computed.
+ */
+#define IBETA_MEMO_BITS 12
+#define IBETA_MEMO (1u << IBETA_MEMO_BITS)
+
+struct ibeta_memo {
+	uint64_t key[4];
+	double	 v;
+};
+
+static uint64_t
+ibeta_bits(double d)
+{
+	uint64_t u;
+
+	memcpy(&u, &d, sizeof u);
+	return u;
+}
+
+static double ibeta_xy(double, double, double, double);
+
 double
 stats_log_ibeta_xy(double a, double b, double x, double y)
 {
+	static _Thread_local struct ibeta_memo memo[IBETA_MEMO];
+	static _Thread_local int memo_set;
+	uint64_t k[4] = { ibeta_bits(a), ibeta_bits(b), ibeta_bits(x),
+	    ibeta_bits(y) }, h;
+	struct ibeta_memo *m;
+
+	if (!memo_set) {
+		/* a key no call has: NaN arguments never reach the table */
+		for (h = 0; h < IBETA_MEMO; h++)
+			memo[h].key[0] = ibeta_bits(NAN);
+		memo_set = 1;
+	}
+	if (isnan(a) || isnan(b) || isnan(x) || isnan(y))
+		return NAN;
+	h = (k[0] * 0x9e3779b97f4a7c15u) ^ (k[1] * 0xc2b2ae3d27d4eb4fu) ^
+	    (k[2] * 0x165667b19e3779f9u) ^ (k[3] * 0x27d4eb2f165667c5u);
+	m = &memo[(h ^ (h >> 29)) >> (64 - IBETA_MEMO_BITS)];
+	if (memcmp(m->key, k, sizeof k) == 0)
+		return m->v;
+	m->v = ibeta_xy(a, b, x, y);
+	memcpy(m->key, k, sizeof k);
+	return m->v;
+}
+
+static double
+ibeta_xy(double a, double b, double x, double y)
+{
 	int big;
 
-	if (isnan(a) || isnan(b) || isnan(x) || isnan(y) || !(a > 0) ||
-	    !(b > 0))
+	if (!(a > 0) || !(b > 0))
 		return NAN;
 	if (x <= 0)
 		return -INFINITY;
