@@ -33,8 +33,17 @@
 #define FRAME_ID_MAX	64	/* bytes of a message id */
 #define FRAME_TS_DIGITS	12	/* digits of a timestamp (year 33658) */
 #define FRAME_KEYS_MAX	4	/* secrets of one producer at once */
-/* message ids remembered per producer: 4096 x 16 bytes */
-#define FRAME_REPLAY_IDS 4096
+/*
+ * Message ids remembered per producer: the window starts at
+ * FRAME_REPLAY_IDS_MIN and doubles, up to FRAME_REPLAY_IDS, when it is
+ * full (24 bytes an id with its index: 1.5 MiB at most per producer).
+ * Forgetting an id raises the floor to its stamp, refusing every later
+ * batch stamped in the same second: a window of 4096 refused a producer's
+ * 4097th batch of one second (bench/ingest.py's signed TCP sends about
+ * 10,000 of 60 KB a second), so it grows to hold 65,536 a second.
+ */
+#define FRAME_REPLAY_IDS_MIN 4096
+#define FRAME_REPLAY_IDS 65536
 
 enum frame_status {
 	FRAME_OK,		/* header and body complete */
@@ -95,9 +104,10 @@ void		 frame_producer_take_keys(struct frame_producer *dst,
 /*
  * Verify one batch against the producer at time now (unix seconds),
  * allowing tolerance seconds either way. An accepted batch's id is
- * remembered: of FRAME_REPLAY_IDS ids the oldest is forgotten first, and
- * from then on no batch stamped at or before a forgotten one is
- * accepted, so a replay is refused even after its id is forgotten.
+ * remembered: of FRAME_REPLAY_IDS ids (a window that grows to that from
+ * FRAME_REPLAY_IDS_MIN) the oldest is forgotten first, and from then on
+ * no batch stamped at or before a forgotten one is accepted, so a replay
+ * is refused even after its id is forgotten.
  */
 enum frame_verdict frame_check(struct frame_producer *, const struct frame *,
 		    const char *body, double now, double tolerance);

@@ -33,10 +33,12 @@ struct frame_producer {
 	uint8_t		 hashkey[16];
 	struct frame_key keys[FRAME_KEYS_MAX];
 	int		 nkeys;
-	/* a ring of the last FRAME_REPLAY_IDS accepted ids, oldest at
-	 * next once full */
+	/* a ring of the last cap accepted ids, oldest at next once full,
+	 * and an open-addressing index of it (2 * cap slots, each a ring
+	 * position + 1, 0 empty) so a check costs one probe, not a scan */
 	struct frame_seen *seen;
-	uint32_t	 nseen, next;
+	uint32_t	*slot;
+	uint32_t	 cap, nseen, next;
 	long long	 floor;		/* batches at or before it: refused */
 };
 
@@ -178,7 +180,9 @@ frame_producer_new(const char *name, const uint8_t hashkey[16])
 	fp = xcalloc(1, sizeof *fp);
 	snprintf(fp->name, sizeof fp->name, "%s", name);
 	memcpy(fp->hashkey, hashkey, sizeof fp->hashkey);
-	fp->seen = xcalloc(FRAME_REPLAY_IDS, sizeof *fp->seen);
+	fp->cap = FRAME_REPLAY_IDS_MIN;
+	fp->seen = xcalloc(fp->cap, sizeof *fp->seen);
+	fp->slot = xcalloc(2 * (size_t)fp->cap, sizeof *fp->slot);
 	fp->floor = -1;
 	return fp;
 }
@@ -189,6 +193,7 @@ frame_producer_free(struct frame_producer *fp)
 	if (fp == NULL)
 		return;
 	free(fp->seen);
+	free(fp->slot);
 	/* key bytes are secrets: do not leave them in freed memory */
 	memset(fp->keys, 0, sizeof fp->keys);
 	free(fp);
@@ -251,12 +256,84 @@ frame_producer_set_floor(struct frame_producer *fp, long long floor)
 		fp->floor = floor;
 }
 
+/* ---- the window of recent ids ---- */
+
+static uint32_t
+frame_seen_home(const struct frame_producer *fp, uint64_t h)
+{
+	return (uint32_t)(h & (2 * (uint64_t)fp->cap - 1));
+}
+
+static int
+frame_seen_has(const struct frame_producer *fp, uint64_t h)
+{
+	uint32_t mask = 2 * fp->cap - 1, i;
+
+	for (i = frame_seen_home(fp, h); fp->slot[i] != 0; i = (i + 1) & mask)
+		if (fp->seen[fp->slot[i] - 1].h == h)
+			return 1;
+	return 0;
+}
+
+static void
+frame_seen_index(struct frame_producer *fp, uint32_t pos)
+{
+	uint32_t mask = 2 * fp->cap - 1, i;
+
+	for (i = frame_seen_home(fp, fp->seen[pos].h); fp->slot[i] != 0;
+	    i = (i + 1) & mask)
+		;
+	fp->slot[i] = pos + 1;
+}
+
+/* Unindex ring position pos, shifting later probes back into the gap
+ * (linear probing's deletion without tombstones). */
+static void
+frame_seen_unindex(struct frame_producer *fp, uint32_t pos)
+{
+	uint32_t mask = 2 * fp->cap - 1, i, k, home;
+
+	for (i = frame_seen_home(fp, fp->seen[pos].h); fp->slot[i] != pos + 1;
+	    i = (i + 1) & mask)
+		;
+	fp->slot[i] = 0;
+	for (k = (i + 1) & mask; fp->slot[k] != 0; k = (k + 1) & mask) {
+		home = frame_seen_home(fp, fp->seen[fp->slot[k] - 1].h);
+		/* an entry stays when its home lies cyclically in (i, k] */
+		if (i <= k ? (home > i && home <= k) : (home > i || home <= k))
+			continue;
+		fp->slot[i] = fp->slot[k];
+		fp->slot[k] = 0;
+		i = k;
+	}
+}
+
+/* A full window doubles, oldest first, so none is forgotten yet. */
+static void
+frame_seen_grow(struct frame_producer *fp)
+{
+	struct frame_seen *ring;
+	uint32_t i, old = fp->cap;
+
+	ring = xcalloc(2 * (size_t)old, sizeof *ring);
+	for (i = 0; i < old; i++)
+		ring[i] = fp->seen[(fp->next + i) % old];
+	free(fp->seen);
+	free(fp->slot);
+	fp->seen = ring;
+	fp->cap = 2 * old;
+	fp->slot = xcalloc(2 * (size_t)fp->cap, sizeof *fp->slot);
+	fp->next = 0;
+	for (i = 0; i < fp->nseen; i++)
+		frame_seen_index(fp, i);
+}
+
 enum frame_verdict
 frame_check(struct frame_producer *fp, const struct frame *f,
     const char *body, double now, double tolerance)
 {
 	uint64_t h;
-	uint32_t i;
+	uint32_t pos;
 	int k, ok = 0;
 
 	/* every key is tried, so the time taken does not say which one
@@ -271,18 +348,22 @@ frame_check(struct frame_producer *fp, const struct frame *f,
 	if (f->ts <= fp->floor)
 		return FRAME_REPLAYED;
 	h = siphash24(fp->hashkey, f->id, f->id_len);
-	for (i = 0; i < fp->nseen; i++)
-		if (fp->seen[i].h == h)
-			return FRAME_REPLAYED;
-	if (fp->nseen < FRAME_REPLAY_IDS) {
-		fp->seen[fp->nseen++] = (struct frame_seen){ h, f->ts };
-	} else {
+	if (frame_seen_has(fp, h))
+		return FRAME_REPLAYED;
+	if (fp->nseen == fp->cap && fp->cap < FRAME_REPLAY_IDS)
+		frame_seen_grow(fp);
+	if (fp->nseen < fp->cap)
+		pos = fp->nseen++;
+	else {
 		/* forgetting an id: nothing at or before its stamp passes */
-		if (fp->seen[fp->next].ts > fp->floor)
-			fp->floor = fp->seen[fp->next].ts;
-		fp->seen[fp->next] = (struct frame_seen){ h, f->ts };
-		fp->next = (fp->next + 1) % FRAME_REPLAY_IDS;
+		pos = fp->next;
+		if (fp->seen[pos].ts > fp->floor)
+			fp->floor = fp->seen[pos].ts;
+		frame_seen_unindex(fp, pos);
+		fp->next = (fp->next + 1) % fp->cap;
 	}
+	fp->seen[pos] = (struct frame_seen){ h, f->ts };
+	frame_seen_index(fp, pos);
 	return FRAME_ACCEPT;
 }
 
