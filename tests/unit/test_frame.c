@@ -327,24 +327,37 @@ test_replay_bound(void **state)
 	frame_producer_free(fp);
 }
 
+/* Sign an empty batch id@ts with key and check it at time ts. */
+static enum frame_verdict
+frame_try(struct frame_producer *fp, const unsigned char *key,
+    size_t keylen, const char *id, long long ts, double tolerance)
+{
+	char sig[SIGN_SIG_MAX];
+	struct frame f;
+
+	assert_int_equal(sign_make(key, keylen, id, strlen(id), ts, "", 0,
+	    sig, sizeof sig), 0);
+	frame_of(&f, "bakery", id, ts, sig, 0);
+	return frame_check(fp, &f, "", (double)ts, tolerance);
+}
+
 /*
  * A busy producer: 20,000 batches stamped in one second (about what a
  * signed TCP producer sends at 1 M records/s in 60 KB batches) are all
  * accepted, and each one's replay is refused; a window of 4096 refused
- * the 4097th and every later one as replayed. Then ids keep coming one
- * second apart past the window's bound, so ids are forgotten and
- * unindexed: every id still in the window is refused, and the floor
- * refuses the forgotten ones.
+ * the 4097th and every later one as replayed. Then ids keep coming, 100
+ * a second, past the window's bound, so ids are forgotten and unindexed:
+ * every id still in the window is refused by its id, the forgotten ones
+ * by the floor, and a fresh id of the newest second passes.
  */
 static void
 test_replay_busy_second(void **state)
 {
 	struct frame_producer *fp;
 	unsigned char key[SIGN_KEY_MAX];
-	char sig[SIGN_SIG_MAX], id[32], *cause = NULL;
-	struct frame f;
+	char id[32], *cause = NULL;
 	size_t keylen;
-	long long ts = 1700000000, last;
+	long long ts = 1700000000;
 	int i, n = 20000, m = FRAME_REPLAY_IDS + 5000;
 
 	fp = frame_producer_new("bakery", hashkey);
@@ -352,54 +365,28 @@ test_replay_busy_second(void **state)
 	assert_int_equal(sign_secret_key(SECRET2, key, &keylen, &cause), 0);
 	for (i = 0; i < n; i++) {
 		snprintf(id, sizeof id, "s%d", i);
-		assert_int_equal(sign_make(key, keylen, id, strlen(id), ts, "",
-		    0, sig, sizeof sig), 0);
-		frame_of(&f, "bakery", id, ts, sig, 0);
-		assert_int_equal(frame_check(fp, &f, "", (double)ts, 300),
+		assert_int_equal(frame_try(fp, key, keylen, id, ts, 300),
 		    FRAME_ACCEPT);
 	}
 	for (i = 0; i < n; i += 7) {
 		snprintf(id, sizeof id, "s%d", i);
-		assert_int_equal(sign_make(key, keylen, id, strlen(id), ts, "",
-		    0, sig, sizeof sig), 0);
-		frame_of(&f, "bakery", id, ts, sig, 0);
-		assert_int_equal(frame_check(fp, &f, "", (double)ts, 300),
+		assert_int_equal(frame_try(fp, key, keylen, id, ts, 300),
 		    FRAME_REPLAYED);
 	}
-	/* past the bound: m more, 100 a second */
 	for (i = 0; i < m; i++) {
 		snprintf(id, sizeof id, "t%d", i);
-		last = ts + 1 + i / 100;
-		assert_int_equal(sign_make(key, keylen, id, strlen(id), last,
-		    "", 0, sig, sizeof sig), 0);
-		frame_of(&f, "bakery", id, last, sig, 0);
-		assert_int_equal(frame_check(fp, &f, "", (double)last, 1e6),
-		    FRAME_ACCEPT);
+		assert_int_equal(frame_try(fp, key, keylen, id,
+		    ts + 1 + i / 100, 1e6), FRAME_ACCEPT);
 	}
-	/* the last FRAME_REPLAY_IDS are remembered by id; the floor is
-	 * the stamp of the newest forgotten one */
 	for (i = m - FRAME_REPLAY_IDS; i < m; i += 13) {
 		snprintf(id, sizeof id, "t%d", i);
-		last = ts + 1 + i / 100;
-		assert_int_equal(sign_make(key, keylen, id, strlen(id), last,
-		    "", 0, sig, sizeof sig), 0);
-		frame_of(&f, "bakery", id, last, sig, 0);
-		assert_int_equal(frame_check(fp, &f, "", (double)last, 1e6),
-		    FRAME_REPLAYED);
+		assert_int_equal(frame_try(fp, key, keylen, id,
+		    ts + 1 + i / 100, 1e6), FRAME_REPLAYED);
 	}
-	snprintf(id, sizeof id, "s%d", 5);
-	assert_int_equal(sign_make(key, keylen, id, strlen(id), ts, "", 0,
-	    sig, sizeof sig), 0);
-	frame_of(&f, "bakery", id, ts, sig, 0);
-	assert_int_equal(frame_check(fp, &f, "", (double)ts, 1e6),
+	assert_int_equal(frame_try(fp, key, keylen, "s5", ts, 1e6),
 	    FRAME_REPLAYED);
-	/* a fresh id of the newest second still passes */
-	last = ts + 1 + (m - 1) / 100;
-	assert_int_equal(sign_make(key, keylen, "fresh", 5, last, "", 0, sig,
-	    sizeof sig), 0);
-	frame_of(&f, "bakery", "fresh", last, sig, 0);
-	assert_int_equal(frame_check(fp, &f, "", (double)last, 1e6),
-	    FRAME_ACCEPT);
+	assert_int_equal(frame_try(fp, key, keylen, "fresh",
+	    ts + 1 + (m - 1) / 100, 1e6), FRAME_ACCEPT);
 	frame_producer_free(fp);
 }
 
