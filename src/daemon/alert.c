@@ -243,6 +243,32 @@ alert_insert(struct alert *a, struct alert_entry *e)
 	a->v[a->n++] = e;
 }
 
+/*
+ * Take e (a journaled or carried alert) into the table: it replaces the
+ * alert of the same id when it is further on (alert_carry_progress),
+ * joins when the id is new, and is freed otherwise. 1 taken, 0 not.
+ */
+int
+alert_merge(struct alert *a, struct alert_entry *e)
+{
+	struct alert_entry *old;
+	size_t i;
+
+	if ((old = alert_find(a, e->id)) == NULL) {
+		alert_insert(a, e);
+		return 1;
+	}
+	if (alert_carry_progress(e) <= alert_carry_progress(old)) {
+		alert_entry_free(e);
+		return 0;
+	}
+	for (i = 0; a->v[i] != old; i++)
+		;
+	alert_entry_free(old);
+	a->v[i] = e;
+	return 1;
+}
+
 /* The event's webhook-id: the alert's id, and one per later event. */
 static char *
 alert_event_id(const struct alert_entry *e, enum alert_ev ev)
@@ -806,9 +832,8 @@ static void
 alert_journal_lay(void *arg, uint64_t seq, const json_t *j)
 {
 	struct alert *a = arg;
-	struct alert_entry *e, *old;
+	struct alert_entry *e;
 	char *cause = NULL;
-	size_t i;
 
 	if (seq > a->jseq)
 		a->jseq = seq;
@@ -818,17 +843,7 @@ alert_journal_lay(void *arg, uint64_t seq, const json_t *j)
 		free(cause);
 		return;
 	}
-	if ((old = alert_find(a, e->id)) != NULL) {
-		if (alert_carry_progress(e) <= alert_carry_progress(old)) {
-			alert_entry_free(e);
-			return;
-		}
-		for (i = 0; a->v[i] != old; i++)
-			;
-		alert_entry_free(old);
-		a->v[i] = e;
-	} else
-		alert_insert(a, e);
+	alert_merge(a, e);
 	alert_journal_replayed(a->journal);
 }
 

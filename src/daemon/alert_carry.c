@@ -175,10 +175,10 @@ alert_carry(struct alert *a, int (*mine)(void *, const char *), void *arg)
 size_t
 alert_carry_adopt(struct alert *a, const json_t *carried)
 {
-	struct alert_entry *e, *old;
+	struct alert_entry *e;
 	const json_t *j;
 	char *cause = NULL;
-	size_t i, k, n = 0;
+	size_t i, n = 0;
 
 	if (a == NULL || !json_is_array(carried))
 		return 0;
@@ -197,17 +197,8 @@ alert_carry_adopt(struct alert *a, const json_t *carried)
 			a->carried_refused++;
 			continue;
 		}
-		if ((old = alert_find(a, e->id)) != NULL) {
-			if (alert_carry_progress(e) <= alert_carry_progress(old)) {
-				alert_entry_free(e);
-				continue;
-			}
-			for (k = 0; a->v[k] != old; k++)
-				;
-			alert_entry_free(old);
-			a->v[k] = e;
-		} else
-			alert_insert(a, e);
+		if (!alert_merge(a, e))
+			continue;
 		alert_journal_note(a, e);
 		a->adopted++;
 		n++;

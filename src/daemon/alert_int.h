@@ -73,6 +73,7 @@ void	alert_entry_free(struct alert_entry *);
 struct alert_entry *alert_find(struct alert *, const char *id);
 void	alert_remove_at(struct alert *, size_t i);
 void	alert_insert(struct alert *, struct alert_entry *);
+int	alert_merge(struct alert *, struct alert_entry *);
 /* Before any output hears of an event, the journal has it on disk. */
 void	alert_journal_note(struct alert *, const struct alert_entry *);
 
